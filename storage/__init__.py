@@ -1,0 +1,1 @@
+"""Tables, queries and migrations. The only package that writes SQL."""
