@@ -1,0 +1,68 @@
+"""Write each notification as one structured JSON log line (always delivered)."""
+
+import json
+import logging
+from collections.abc import Mapping
+from typing import Literal
+
+import pydantic
+
+from adapters.notify import render
+from adapters.notify.base import DeliveryResult, log_ref, parse_options
+from monitor.engine.model import Notification
+
+
+class LogOptions(pydantic.BaseModel):
+    model_config = pydantic.ConfigDict(extra="forbid", frozen=True)
+
+    type: Literal["log"] = "log"
+    level: Literal["DEBUG", "INFO", "WARNING", "ERROR"] = "WARNING"
+
+
+def log_record(n: Notification) -> dict[str, object]:
+    """The fields of the log line. The only patient identity is the display key; the
+    alert id and idempotency key are left out (they may be built from the patient key)
+    and replaced by a digest of the key."""
+    return {
+        "ref": log_ref(n),
+        "patient": n.patient_display,
+        "location": n.location.label() if n.location else None,
+        "rule": n.rule,
+        "priority": n.priority.value,
+        "event": n.event,
+        "time": n.created_at.isoformat(),
+        "summary": n.summary,
+        "numbers": json.loads(json.dumps(n.numbers, default=render.json_default)),
+        "preliminary": n.preliminary,
+        "estimated": n.estimated,
+        "advisory": n.advisory,
+    }
+
+
+class LogChannel:
+    """Write each notification as one JSON line to ``gasgap.notify.<alias>``.
+
+    Channel type: ``log``
+
+    For sites that collect logs centrally, and as the fallback that cannot fail.
+    """
+
+    def __init__(
+        self,
+        alias: str,
+        options: Mapping[str, object],
+        *,
+        environ: Mapping[str, str] | None = None,
+    ) -> None:
+        self.alias = alias
+        self.options = parse_options(alias, LogOptions, options)
+        self._level = logging.getLevelName(self.options.level)
+        self._log = logging.getLogger(f"gasgap.notify.{alias}")
+
+    def send(self, notification: Notification) -> DeliveryResult:
+        line = json.dumps(log_record(notification), sort_keys=True, ensure_ascii=False)
+        self._log.log(self._level, "%s", line)
+        return DeliveryResult.delivered("logged")
+
+    def close(self) -> None:
+        """Nothing to release."""
