@@ -1,0 +1,190 @@
+"""Opening the database: engine, connection settings, migrations.
+
+SQLite (the default, ``sqlite:///gasgap.db`` in the working directory) serves one
+hospital on one host; PostgreSQL (``postgresql+psycopg://...``) serves several gasgap
+processes. Every storage function takes a ``Connection`` inside a transaction the
+caller owns, so one pipeline step (reading stored, derivation saved, alert changed,
+notification queued) commits or rolls back as a whole::
+
+    db = open_database("sqlite:///gasgap.db")
+    with db.begin() as conn:
+        store_readings(conn, readings)
+
+SQLite settings, set on every new connection: write-ahead log (readers never wait for
+the writer), foreign keys on, a busy timeout (a second writer waits instead of failing
+at once), ``synchronous=NORMAL`` (safe with WAL: a power cut can lose the last
+commits, never corrupt the file). Write transactions start with ``BEGIN IMMEDIATE`` so
+two processes do not both read, then both try to upgrade to a write lock and deadlock.
+
+``sqlite://`` (no path) is an in-memory database for replay: one connection shared by
+everything (``StaticPool``), gone when the process ends.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import sqlalchemy as sa
+from alembic import command
+from alembic.config import Config
+from sqlalchemy.engine import Connection, Engine
+from sqlalchemy.pool import StaticPool
+
+DEFAULT_URL = "sqlite:///gasgap.db"
+#: How long a SQLite writer waits for another writer before giving up (milliseconds).
+SQLITE_BUSY_TIMEOUT_MS = 10_000
+MIGRATIONS_DIR = Path(__file__).resolve().parent / "migrations"
+
+# Execution option read by the SQLite "begin" hook: a read-only transaction uses a
+# plain (deferred) BEGIN so readers never queue behind the writer.
+_READ_ONLY = "gasgap_read_only"
+
+
+@dataclass(frozen=True)
+class Database:
+    """An opened database: the engine plus the way to start a transaction."""
+
+    engine: Engine
+    url: str
+
+    @property
+    def dialect_name(self) -> str:
+        """``"sqlite"`` or ``"postgresql"``."""
+        return self.engine.dialect.name
+
+    @contextmanager
+    def begin(self, *, read_only: bool = False) -> Iterator[Connection]:
+        """A connection in a transaction: committed on success, rolled back on error.
+
+        ``read_only=True`` is a promise the caller makes (the board, reports); on SQLite
+        it avoids taking the write lock.
+        """
+        with self.engine.connect() as conn:
+            if read_only:
+                conn = conn.execution_options(**{_READ_ONLY: True})
+            with conn.begin():
+                yield conn
+
+    def dispose(self) -> None:
+        """Close every pooled connection."""
+        self.engine.dispose()
+
+
+def is_memory_sqlite(url: str | sa.URL) -> bool:
+    parsed = sa.make_url(url)
+    return parsed.get_backend_name() == "sqlite" and parsed.database in (None, "", ":memory:")
+
+
+def create_engine(url: str) -> Engine:
+    """An engine with gasgap's connection settings for the URL's dialect."""
+    parsed = sa.make_url(url)
+    if parsed.get_backend_name() == "sqlite":
+        return _sqlite_engine(parsed)
+    return sa.create_engine(parsed, pool_pre_ping=True)
+
+
+def _sqlite_engine(url: sa.URL) -> Engine:
+    kwargs: dict[str, Any] = {}
+    memory = is_memory_sqlite(url)
+    if memory:
+        kwargs = {"poolclass": StaticPool, "connect_args": {"check_same_thread": False}}
+    engine = sa.create_engine(url, **kwargs)
+
+    @sa.event.listens_for(engine, "connect")
+    def _on_connect(dbapi_connection: Any, _record: Any) -> None:
+        # Take transaction control away from the sqlite3 module (its legacy mode
+        # starts transactions late and skips them for DDL); the "begin" hook below
+        # emits BEGIN itself.
+        dbapi_connection.isolation_level = None
+        cursor = dbapi_connection.cursor()
+        try:
+            if not memory:
+                cursor.execute("PRAGMA journal_mode=WAL")
+                cursor.execute("PRAGMA synchronous=NORMAL")
+            cursor.execute("PRAGMA foreign_keys=ON")
+            cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS:d}")
+        finally:
+            cursor.close()
+
+    @sa.event.listens_for(engine, "begin")
+    def _on_begin(conn: Connection) -> None:
+        read_only = conn.get_execution_options().get(_READ_ONLY, False)
+        conn.exec_driver_sql("BEGIN" if read_only else "BEGIN IMMEDIATE")
+
+    return engine
+
+
+def alembic_config(url: str | None = None) -> Config:
+    """Alembic configuration built in code, pointing at this package's migrations.
+
+    Located relative to this module, so it works from an installed package as well as
+    from a checkout.
+    """
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS_DIR))
+    if url is not None:
+        # ConfigParser treats % as interpolation; URLs may carry %-escapes.
+        config.set_main_option("sqlalchemy.url", url.replace("%", "%%"))
+    return config
+
+
+def upgrade_engine(engine: Engine) -> None:
+    """Run the migrations to head over one of ``engine``'s connections."""
+    config = alembic_config()
+    with engine.connect() as conn:
+        config.attributes["connection"] = conn
+        command.upgrade(config, "head")
+        conn.commit()
+
+
+def upgrade(url: str) -> None:
+    """Bring the database at ``url`` to the newest schema (a no-op if it is there).
+
+    For ``sqlite://`` (in memory) this would migrate a database nobody else sees: use
+    ``open_database("sqlite://")``, which migrates its own engine.
+    """
+    engine = create_engine(url)
+    try:
+        upgrade_engine(engine)
+    finally:
+        engine.dispose()
+
+
+def open_database(url: str | None = None, *, create: bool = True) -> Database:
+    """Open the database at ``url`` (default ``sqlite:///gasgap.db``).
+
+    With ``create=True`` the schema is migrated to head first, creating the file and
+    tables on first use.
+    """
+    url = url or DEFAULT_URL
+    engine = create_engine(url)
+    if create:
+        try:
+            upgrade_engine(engine)
+        except BaseException:
+            engine.dispose()
+            raise
+    return Database(engine=engine, url=url)
+
+
+def insert_for(conn: Connection, table: sa.Table) -> Any:
+    """The dialect's INSERT (both have ``on_conflict_do_nothing`` / ``_do_update``)."""
+    if conn.dialect.name == "postgresql":
+        from sqlalchemy.dialects.postgresql import insert as pg_insert
+
+        return pg_insert(table)
+    if conn.dialect.name == "sqlite":
+        from sqlalchemy.dialects.sqlite import insert as sqlite_insert
+
+        return sqlite_insert(table)
+    raise ValueError(f"database dialect must be sqlite or postgresql, not {conn.dialect.name!r}")
+
+
+def chunks(items: list[Any], size: int = 500) -> Iterator[list[Any]]:
+    """``items`` in slices short enough for one statement's parameter limit."""
+    for start in range(0, len(items), size):
+        yield items[start : start + size]

@@ -1,0 +1,320 @@
+"""Raw readings and the patients they belong to.
+
+A reading is stored once per delivery (``delivery_id``); a second delivery of the same
+transmission changes nothing. Several deliveries of one result (``logical_id``) are all
+kept as history, and exactly one of them is *current*: the one received last
+(``received_at``); on a tie, the stronger status (retracted > corrected > final >
+preliminary), then the greater delivery id. Choosing by those fields, not by the order
+rows happen to arrive in, makes the current set the same however a batch is split,
+repeated or reordered (a property test checks this).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Collection, Iterable
+from dataclasses import dataclass, field
+from datetime import date, datetime
+from typing import Any
+
+import sqlalchemy as sa
+from sqlalchemy.engine import Connection
+
+from monitor.engine.model import Kind, Location, Reading, Status
+from storage.db import chunks, insert_for
+from storage.locks import advisory_locks
+from storage.serialize import location_to_row, reading_to_row, row_to_location, row_to_reading
+from storage.tables import UTCDateTime, patients, readings
+
+_STATUS_RANK = {
+    Status.PRELIMINARY.value: 0,
+    Status.FINAL.value: 1,
+    Status.CORRECTED.value: 2,
+    Status.RETRACTED.value: 3,
+}
+#: Fields whose change in the current delivery means derived values must be redone.
+_CONTENT = ("value", "code_value", "effective_at", "status", "specimen", "unit")
+
+
+@dataclass(frozen=True)
+class StoreResult:
+    """What one ``store_readings`` call did.
+
+    ``superseded``: logical ids whose current content changed (value, time, status,
+    specimen): what depended on them must be derived again. ``retracted``: logical ids
+    whose current delivery now withdraws the result. ``new``: readings stored by this
+    call, in the order given.
+    """
+
+    stored: int = 0
+    duplicates: int = 0
+    superseded: list[str] = field(default_factory=list)
+    retracted: list[str] = field(default_factory=list)
+    new: list[Reading] = field(default_factory=list)
+
+
+@dataclass(frozen=True)
+class Patient:
+    patient_key: str
+    display_key: str | None
+    birth_date: date | None
+    location: Location | None
+    updated_at: datetime
+
+
+def _precedence(row: Any) -> tuple[datetime, int, str]:
+    return (row.received_at, _STATUS_RANK[row.status], row.delivery_id)
+
+
+def store_readings(conn: Connection, batch: Iterable[Reading]) -> StoreResult:
+    """Store a batch of readings: idempotent by delivery, corrections supersede."""
+    unique: dict[str, Reading] = {}
+    given = 0
+    for reading in batch:
+        given += 1
+        unique.setdefault(reading.delivery_id, reading)
+    if not unique:
+        return StoreResult()
+    logical_ids = sorted({r.logical_id for r in unique.values()})
+    # Two processes storing deliveries of one result would both pick a current row.
+    advisory_locks(conn, (f"reading:{lid}" for lid in logical_ids))
+    before = _current_rows(conn, logical_ids)
+    inserted = _insert_new(conn, list(unique.values()))
+    new = [r for r in unique.values() if r.delivery_id in inserted]
+    superseded, retracted = _choose_current(conn, {r.logical_id for r in new}, before)
+    return StoreResult(
+        stored=len(new),
+        duplicates=given - len(new),
+        superseded=superseded,
+        retracted=retracted,
+        new=new,
+    )
+
+
+def _insert_new(conn: Connection, batch: list[Reading]) -> set[str]:
+    rows = [reading_to_row(r) | {"is_current": False, "superseded_at": None} for r in batch]
+    statement = (
+        insert_for(conn, readings)
+        .on_conflict_do_nothing(index_elements=["delivery_id"])
+        .returning(readings.c.delivery_id)
+    )
+    inserted: set[str] = set()
+    for part in chunks(rows):
+        inserted.update(conn.execute(statement, part).scalars())
+    return inserted
+
+
+def _rows_for(conn: Connection, logical_ids: Collection[str], *, current_only: bool) -> list[Any]:
+    found: list[Any] = []
+    for part in chunks(sorted(logical_ids)):
+        query = sa.select(readings).where(readings.c.logical_id.in_(part))
+        if current_only:
+            query = query.where(readings.c.is_current)
+        found.extend(conn.execute(query))
+    return found
+
+
+def _current_rows(conn: Connection, logical_ids: Collection[str]) -> dict[str, Any]:
+    return {row.logical_id: row for row in _rows_for(conn, logical_ids, current_only=True)}
+
+
+def _choose_current(
+    conn: Connection, logical_ids: set[str], before: dict[str, Any]
+) -> tuple[list[str], list[str]]:
+    by_logical: dict[str, list[Any]] = {}
+    for row in _rows_for(conn, logical_ids, current_only=False):
+        by_logical.setdefault(row.logical_id, []).append(row)
+    losers: list[dict[str, Any]] = []
+    winners: list[dict[str, Any]] = []
+    superseded: list[str] = []
+    retracted: list[str] = []
+    for lid in sorted(by_logical):
+        rows = by_logical[lid]
+        winner = max(rows, key=_precedence)
+        winners.append({"b_id": winner.id})
+        losers.extend(
+            {"b_id": row.id, "b_at": winner.received_at}
+            for row in rows
+            if row.id != winner.id and (row.is_current or row.superseded_at is None)
+        )
+        old = before.get(lid)
+        now_retracted = winner.status == Status.RETRACTED.value
+        if now_retracted and (old is None or old.status != Status.RETRACTED.value):
+            retracted.append(lid)
+        elif old is not None and old.id != winner.id and _content_changed(old, winner):
+            superseded.append(lid)
+    _update_current(conn, losers, winners)
+    return superseded, retracted
+
+
+def _content_changed(old: Any, new: Any) -> bool:
+    return any(getattr(old, name) != getattr(new, name) for name in _CONTENT)
+
+
+def _update_current(
+    conn: Connection, losers: list[dict[str, Any]], winners: list[dict[str, Any]]
+) -> None:
+    # Losers first: the partial unique index allows one current row per logical id.
+    if losers:
+        conn.execute(
+            sa.update(readings)
+            .where(readings.c.id == sa.bindparam("b_id"))
+            .values(
+                is_current=False,
+                superseded_at=sa.func.coalesce(readings.c.superseded_at, sa.bindparam("b_at", type_=UTCDateTime)),
+            ),
+            losers,
+        )
+    if winners:
+        conn.execute(
+            sa.update(readings)
+            .where(readings.c.id == sa.bindparam("b_id"))
+            .values(is_current=True, superseded_at=None),
+            winners,
+        )
+
+
+def readings_for_patient(
+    conn: Connection,
+    patient_key: str,
+    start: datetime,
+    end: datetime,
+    kinds: Collection[Kind] | None = None,
+) -> list[Reading]:
+    """Current, not retracted readings with ``start <= effective_at <= end``, oldest first."""
+    query = (
+        sa.select(readings)
+        .where(readings.c.patient_key == patient_key)
+        .where(readings.c.effective_at >= start, readings.c.effective_at <= end)
+        .where(readings.c.is_current, readings.c.status != Status.RETRACTED.value)
+        .order_by(readings.c.effective_at, readings.c.id)
+    )
+    if kinds is not None:
+        query = query.where(readings.c.kind.in_([Kind(k).value for k in kinds]))
+    return [row_to_reading(row._mapping) for row in conn.execute(query)]
+
+
+def latest_reading(
+    conn: Connection, patient_key: str, kind: Kind, at_or_before: datetime
+) -> Reading | None:
+    """The patient's most recent current, not retracted ``kind`` reading at or before
+    ``at_or_before`` (by effective time), or None. Served by the
+    (patient_key, kind, effective_at) index."""
+    query = (
+        sa.select(readings)
+        .where(readings.c.patient_key == patient_key, readings.c.kind == Kind(kind).value)
+        .where(readings.c.effective_at <= at_or_before)
+        .where(readings.c.is_current, readings.c.status != Status.RETRACTED.value)
+        .order_by(readings.c.effective_at.desc(), readings.c.id.desc())
+        .limit(1)
+    )
+    row = conn.execute(query).first()
+    return None if row is None else row_to_reading(row._mapping)
+
+
+def reading_by_logical_id(conn: Connection, logical_id: str) -> Reading | None:
+    """The current delivery of a result (retracted ones included), or None."""
+    query = sa.select(readings).where(readings.c.logical_id == logical_id, readings.c.is_current)
+    row = conn.execute(query).first()
+    return None if row is None else row_to_reading(row._mapping)
+
+
+def reading_history(conn: Connection, logical_id: str) -> list[Reading]:
+    """Every stored delivery of a result, oldest received first."""
+    query = (
+        sa.select(readings)
+        .where(readings.c.logical_id == logical_id)
+        .order_by(readings.c.received_at, readings.c.id)
+    )
+    return [row_to_reading(row._mapping) for row in conn.execute(query)]
+
+
+def count_readings(conn: Connection) -> dict[str, int]:
+    """Counts for status pages: total deliveries, current results, superseded
+    deliveries, current results that are retracted."""
+    retracted = sa.case(
+        (sa.and_(readings.c.is_current, readings.c.status == Status.RETRACTED.value), 1), else_=0
+    )
+    row = conn.execute(
+        sa.select(
+            sa.func.count(),
+            sa.func.coalesce(sa.func.sum(sa.case((readings.c.is_current, 1), else_=0)), 0),
+            sa.func.coalesce(sa.func.sum(retracted), 0),
+        )
+    ).one()
+    total, current, n_retracted = (int(v) for v in row)
+    return {
+        "total": total,
+        "current": current,
+        "superseded": total - current,
+        "retracted": n_retracted,
+    }
+
+
+def patient_keys(conn: Connection) -> list[str]:
+    """Every patient with a reading or a patient record, sorted."""
+    query = sa.union(
+        sa.select(readings.c.patient_key).distinct(), sa.select(patients.c.patient_key)
+    )
+    return sorted(conn.execute(query).scalars())
+
+
+def upsert_patient(
+    conn: Connection,
+    patient_key: str,
+    *,
+    birth_date: date | None,
+    location: Location | None,
+    display_key: str | None,
+    at: datetime,
+) -> None:
+    """Record what we know of a patient as of ``at``.
+
+    A value given as None keeps what is stored; news older than the stored record
+    (``at`` before ``updated_at``) is ignored, so a late message cannot move a patient
+    back to the bed they left.
+    """
+    values: dict[str, Any] = {
+        "patient_key": patient_key,
+        "display_key": display_key,
+        "birth_date": birth_date,
+        **location_to_row(location),
+        "updated_at": at,
+    }
+    statement = insert_for(conn, patients).values(values)
+    excluded = statement.excluded
+    keep = {
+        name: sa.func.coalesce(excluded[name], patients.c[name])
+        for name in ("display_key", "birth_date")
+    }
+    if location is not None:
+        keep.update({name: excluded[name] for name in location_to_row(location)})
+    statement = statement.on_conflict_do_update(
+        index_elements=["patient_key"],
+        set_={**keep, "updated_at": excluded.updated_at},
+        where=patients.c.updated_at <= excluded.updated_at,
+    )
+    conn.execute(statement)
+
+
+def get_patient(conn: Connection, patient_key: str) -> Patient | None:
+    row = conn.execute(sa.select(patients).where(patients.c.patient_key == patient_key)).first()
+    if row is None:
+        return None
+    m = row._mapping
+    return Patient(
+        patient_key=m["patient_key"],
+        display_key=m["display_key"],
+        birth_date=m["birth_date"],
+        location=row_to_location(m),
+        updated_at=m["updated_at"],
+    )
+
+
+def purge_raw_readings(conn: Connection, older_than: datetime) -> int:
+    """Delete stored readings measured before ``older_than`` (the retention period).
+
+    Derivations keep their values and the logical ids of their inputs; alerts, their
+    audit events and the outbox are untouched. Returns the number of rows deleted.
+    """
+    result = conn.execute(sa.delete(readings).where(readings.c.effective_at < older_than))
+    return int(result.rowcount)
