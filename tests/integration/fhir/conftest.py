@@ -1,0 +1,3 @@
+"""FHIR integration tests run against the real FHIR test server (tests/fhir_server.py)."""
+
+from tests.fhir_server import fhir_server  # noqa: F401
