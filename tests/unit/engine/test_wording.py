@@ -1,0 +1,187 @@
+"""Notification wording: display key, what changed, inputs, quality flags, advisory.
+
+All data invented (Hollowmere General Hospital, MRN system urn:oid:2.999.1.1.1).
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from datetime import UTC, datetime, timedelta
+from zoneinfo import ZoneInfo
+
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+from monitor.engine.alerts import AlertSettings, apply_outcome, escalate_due
+from monitor.engine.errors import InvalidInput
+from monitor.engine.model import (
+    ADVISORY,
+    Derivation,
+    FiO2Source,
+    InputUsed,
+    Location,
+    Priority,
+    QualityFlag,
+    Specimen,
+)
+from monitor.engine.rules import RuleOutcome
+from monitor.engine.wording import (
+    SUMMARY_MAX,
+    html_body,
+    notification_for,
+    outcome_summary,
+    patient_display,
+    plain_text_body,
+    what_changed,
+)
+
+T0 = datetime(2026, 3, 4, 6, 10, tzinfo=UTC)
+PATIENT = "urn:oid:2.999.1.1.1|HGH-000042"
+BED = Location(unit="ICU-North", room="N3", bed="B2")
+
+NUMBERS = {
+    "pf": 182.0,
+    "pf_at": (T0 + timedelta(hours=4)).isoformat(),
+    "best_pf": 290.0,
+    "best_pf_at": T0.isoformat(),
+    "change_percent": -37.2,
+}
+
+
+def sample() -> Derivation:
+    drawn = T0 + timedelta(hours=4)
+    return Derivation(
+        patient_key=PATIENT, sample_id="lab-778-pao2", drawn_at=drawn,
+        specimen=Specimen.ARTERIAL, equation="full", pao2=91.0, fio2=0.5,
+        fio2_source=FiO2Source.CHARTED, paco2=41.0, barometric_pressure=626.5, peep=8.0,
+        pf_ratio=182.0, location=BED,
+        inputs=(InputUsed("fio2", 0.5, "charted before the draw", "fio2-1",
+                          drawn - timedelta(minutes=12)),),
+        flags=frozenset({QualityFlag.ESTIMATED_PRESSURE}),
+    )
+
+
+def fall_outcome(**kw: object) -> RuleOutcome:
+    values: dict[str, object] = dict(
+        rule_id="pf-fall", patient_key=PATIENT, sample_id="lab-778-pao2", fired=True,
+        priority=Priority.MEDIUM, cleared=False, label="P/F fall >= 25 %", numbers=NUMBERS,
+    )
+    values.update(kw)
+    return RuleOutcome(**values)  # type: ignore[arg-type]
+
+
+def raised_alert(**kw: object):
+    decision = apply_outcome(None, None, fall_outcome(**kw), sample(),
+                             T0 + timedelta(hours=4, minutes=2), AlertSettings())
+    assert decision.alert is not None
+    return decision.alert
+
+
+NOW = T0 + timedelta(hours=4, minutes=2)
+
+
+def note(event: str = "raised", alert=None, derivation=sample(), tz=UTC):
+    return notification_for(alert or raised_alert(), event, derivation,
+                            display_key="…0042", now=NOW, numbers=NUMBERS, tz=tz)
+
+
+def test_what_changed_says_the_fall_with_its_time():
+    assert what_changed(NUMBERS, NOW) == (
+        "P/F 182, was 290 at 06:10 (best of the window), -37 %"
+    )
+
+
+def test_times_are_written_in_the_site_zone():
+    # Hollowmere's zone is set to America/Denver in the example config (UTC-7 on 4 March,
+    # before the US change to daylight time): 06:10 UTC is 23:10 the evening before,
+    # so the date is written too.
+    assert "was 290 at 2026-03-03 23:10" in what_changed(NUMBERS, NOW, ZoneInfo("America/Denver"))
+
+
+def test_notification_names_patient_location_inputs_flags_and_advisory():
+    n = note()
+    assert n.patient_display == "…0042"
+    assert "ICU-North N3 B2" in n.detail
+    assert "P/F 182, was 290 at 06:10" in n.detail
+    assert "FiO2 0.50 (charted before the draw, 09:58)" in n.detail
+    assert "PaCO2 41 mmHg" in n.detail
+    assert "barometric pressure 626.5 mmHg" in n.detail
+    assert QualityFlag.ESTIMATED_PRESSURE.value in n.detail
+    assert n.detail.endswith(ADVISORY)
+    assert n.advisory == ADVISORY
+    assert n.summary.startswith("MEDIUM New flag")
+    assert len(n.summary) <= SUMMARY_MAX
+
+
+def test_the_mrn_never_appears_when_the_display_key_hides_it():
+    n = note()
+    assert "HGH-000042" not in n.summary and "HGH-000042" not in n.detail
+
+
+def test_preliminary_and_estimated_flags_say_so():
+    n = note(alert=raised_alert(preliminary=True, estimated=True))
+    assert "preliminary" in n.detail and "pulse oximetry" in n.detail
+    assert n.preliminary and n.estimated
+
+
+def test_idempotency_key_is_stable_per_change_and_differs_between_changes():
+    alert = raised_alert()
+    assert note(alert=alert).idempotency_key == note(alert=alert).idempotency_key
+    [escalation] = escalate_due([alert], NOW + timedelta(minutes=30), AlertSettings())
+    assert escalation.alert is not None
+    assert note("escalated", alert=escalation.alert).idempotency_key != note(
+        alert=alert).idempotency_key
+    later_version = replace(alert, updated_at=NOW + timedelta(minutes=1))
+    assert note(alert=later_version).idempotency_key != note(alert=alert).idempotency_key
+
+
+def test_unknown_event_is_refused():
+    with pytest.raises(InvalidInput, match="event"):
+        note("exploded")
+
+
+def test_a_notification_without_derivation_still_carries_the_advisory():
+    n = note("escalated", derivation=None)
+    assert "Still not acknowledged" in n.summary and n.detail.endswith(ADVISORY)
+
+
+@pytest.mark.parametrize(
+    ("mode", "location", "shown"),
+    [("mrn", BED, "HGH-000042"), ("mrn-last4", BED, "…0042"), ("bed", BED, "ICU-North N3 B2"),
+     ("bed", None, "…0042")],
+)
+def test_patient_display_modes(mode, location, shown):
+    assert patient_display(PATIENT, location, mode) == shown
+
+
+def test_patient_display_refuses_unknown_mode():
+    with pytest.raises(InvalidInput, match="display_key"):
+        patient_display(PATIENT, None, "name")
+
+
+def test_outcome_summary_marks_estimates():
+    text = outcome_summary(fall_outcome(estimated=True))
+    assert text == "P/F fall >= 25 %: change % -37 (estimated)"
+
+
+def test_plain_text_body_holds_summary_and_advisory():
+    body = plain_text_body(note())
+    assert body.startswith(note().summary) and ADVISORY in body
+
+
+@given(st.text(min_size=1, max_size=30))
+def test_html_body_escapes_everything(user_text):
+    n = replace(note(), summary=f"<b>{user_text}", detail=f"{user_text}\n<script>x</script>")
+    body = html_body(n)
+    assert "<script>" not in body and "<b>" not in body
+
+
+def test_other_rules_read_well():
+    assert what_changed({"aa_gradient": 62.0, "aa_expected": 17.5, "aa_excess": 44.5,
+                         "aa_at": T0.isoformat()}, NOW).startswith(
+        "A–a gradient 62 mmHg on room air, age-expected up to 18")
+    assert what_changed({"fio2": 0.6, "fio2_at": T0.isoformat(), "fio2_lowest": 0.3,
+                         "fio2_lowest_at": (T0 - timedelta(hours=3)).isoformat(),
+                         "fio2_rise": 0.3}, NOW) == "FiO2 0.60 at 06:10, was 0.30 at 03:10, +0.30"
+    assert what_changed({}, NOW) == "no numbers recorded"
