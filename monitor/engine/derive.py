@@ -1,0 +1,300 @@
+"""Derivation: the oxygenation indices of one paired sample, with their quality flags.
+
+Theory of operation. ``derive`` takes a ``Snapshot`` (built by ``pairing.pair``) and
+the site's ``DerivationSettings`` and returns a ``Derivation``. Every number comes from
+``monitor.engine.physiology`` (one place for each formula); this module only decides
+*which* indices apply to the sample and what to say when one does not:
+
+- a sample that is not arterial gets no value computed from its PO2 as if it were
+  arterial: no PAO2, A-a, a/A, P/F, Berlin band, OI or CaO2 (flag NOT_ARTERIAL);
+  PIO2, S/F and OSI do not use the sample's PO2 and are still given;
+- no FiO2: nothing that needs it (FIO2_UNKNOWN comes from pairing);
+- no PaCO2: no PAO2 and nothing built on it (PACO2_MISSING);
+- age-expected A-a only on room air (FiO2 0.21), else NOT_ON_ROOM_AIR
+  (reference sheet section 4: age-normal formulas apply to room air only);
+- Berlin band only with PEEP >= 5 cmH2O and a FiO2 that is not estimated from device
+  and flow (reference sheet section 8);
+- PaO2 more than ``unreliable_margin_mmhg`` above PAO2 is impossible in a correct
+  pairing: kept, flagged PAO2_ABOVE_ALVEOLAR, and the derivation is unreliable;
+- S/F and OSI are not given above SpO2 97 % (SPO2_ABOVE_97; Rice 2007).
+
+A formula that refuses its input (``InvalidInput``, e.g. PaCO2 >= PB - PH2O) leaves
+that value None and adds a note (an ``InputUsed`` with role "note"); it never escapes.
+
+``derive_spo2_series`` gives the estimated S/F (and, at SpO2 <= 96 %, an imputed PaO2
+and P/F) for SpO2 readings between gases, always marked estimated.
+"""
+
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass
+from typing import TypeVar
+
+from monitor.engine import physiology
+from monitor.engine.errors import InvalidInput
+from monitor.engine.model import (
+    Derivation,
+    InputUsed,
+    Kind,
+    QualityFlag,
+    Reading,
+    Snapshot,
+    Specimen,
+    Status,
+)
+from monitor.engine.pairing import PairingSettings, current_readings, fio2_in_effect
+
+__all__ = ["DerivationSettings", "derive", "derive_spo2_series"]
+
+_T = TypeVar("_T")
+
+
+@dataclass(frozen=True, slots=True)
+class DerivationSettings:
+    """A site's choices for the formulas.
+
+    ``equation``: full (default) or simplified alveolar gas equation; ``rq``:
+    respiratory quotient 0.6-1.3 (0.8, reference sheet section 1); ``age_normal``: the
+    age-expected A-a formula (section 4); ``hb_bound_per_g``: mL O2 per g Hb, 1.30-1.40
+    (1.34, section 9); ``dissolved``: mL O2/dL/mmHg, 0.0025-0.0035 (0.003, section 9);
+    ``unreliable_margin_mmhg``: how far PaO2 may exceed PAO2 before the pairing is
+    judged wrong (10 mmHg; common practice, no source).
+    """
+
+    equation: physiology.Equation = physiology.Equation.FULL
+    rq: float = physiology.DEFAULT_RQ
+    age_normal: physiology.AgeNormal = physiology.AgeNormal.AGE_PLUS_10_OVER_4
+    hb_bound_per_g: float = physiology.HUFNER_DEFAULT
+    dissolved: float = physiology.DISSOLVED_O2_DEFAULT
+    unreliable_margin_mmhg: float = 10.0
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "equation", physiology.Equation(self.equation))
+        object.__setattr__(self, "age_normal", physiology.AgeNormal(self.age_normal))
+        if not 0.6 <= self.rq <= 1.3:
+            raise InvalidInput("rq", self.rq, "must be in [0.6, 1.3]")
+        if not 1.30 <= self.hb_bound_per_g <= 1.40:
+            raise InvalidInput(
+                "hb_bound_per_g", self.hb_bound_per_g, "must be in [1.30, 1.40] mL/g"
+            )
+        if not 0.0025 <= self.dissolved <= 0.0035:
+            raise InvalidInput("dissolved", self.dissolved, "must be in [0.0025, 0.0035]")
+        if not 0.0 <= self.unreliable_margin_mmhg <= 100.0:
+            raise InvalidInput(
+                "unreliable_margin_mmhg", self.unreliable_margin_mmhg, "must be in [0, 100] mmHg"
+            )
+
+
+class _Notes:
+    """Collects the reasons a formula refused its input, instead of raising."""
+
+    def __init__(self) -> None:
+        self.items: list[InputUsed] = []
+
+    def attempt(self, what: str, compute: Callable[[], _T]) -> _T | None:
+        try:
+            return compute()
+        except InvalidInput as exc:
+            self.items.append(InputUsed("note", None, f"{what} not computed: {exc}"))
+            return None
+
+
+def _constants(settings: DerivationSettings, ph2o: float | None) -> dict[str, float | str]:
+    constants: dict[str, float | str] = {
+        "equation": settings.equation.value,
+        "rq": settings.rq,
+        "age_normal": settings.age_normal.value,
+        "hb_bound_ml_per_g": settings.hb_bound_per_g,
+        "dissolved_ml_per_dl_per_mmhg": settings.dissolved,
+        "unreliable_margin_mmhg": settings.unreliable_margin_mmhg,
+    }
+    if ph2o is not None:
+        constants["water_vapour_pressure_mmhg"] = ph2o
+    return constants
+
+
+def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
+    """The indices of one paired sample (pressures mmHg, FiO2 fraction, SpO2 %, MAP and
+    PEEP cmH2O, Hb g/dL, CaO2 mL/dL). See the module docstring for which apply when."""
+    s = snapshot
+    notes = _Notes()
+    flags = set(s.flags)
+    arterial = s.specimen is Specimen.ARTERIAL and QualityFlag.NOT_ARTERIAL not in flags
+    if not arterial:
+        flags.add(QualityFlag.NOT_ARTERIAL)
+    pb = s.barometric_pressure
+    fio2 = s.fio2
+    ph2o = notes.attempt("water vapour pressure",
+                         lambda: physiology.water_vapour_pressure(s.temperature_c))
+
+    pio2 = None
+    if fio2 is not None and ph2o is not None:
+        pio2 = notes.attempt("inspired PO2", lambda: physiology.inspired_po2(fio2, pb, ph2o))
+    if s.paco2 is None:
+        flags.add(QualityFlag.PACO2_MISSING)
+    if fio2 is not None and abs(fio2 - physiology.ROOM_AIR_FIO2) > 1e-9:
+        flags.add(QualityFlag.NOT_ON_ROOM_AIR)
+
+    alveolar = aa = aa_expected = a_over_a = pf = pf_adjusted = berlin = oi = cao2 = None
+    if arterial:
+        paco2 = s.paco2
+        if fio2 is not None and paco2 is not None and ph2o is not None:
+            alveolar = notes.attempt("alveolar PO2", lambda: physiology.alveolar_po2(
+                fio2, paco2, pb, ph2o, settings.rq, settings.equation))
+        if alveolar is not None:
+            pao2_alv = alveolar
+            aa = notes.attempt("A-a gradient", lambda: physiology.aa_gradient(pao2_alv, s.pao2))
+            a_over_a = notes.attempt(
+                "a/A ratio", lambda: physiology.arterial_alveolar_ratio(s.pao2, pao2_alv))
+            if s.pao2 > alveolar + settings.unreliable_margin_mmhg:
+                flags.add(QualityFlag.PAO2_ABOVE_ALVEOLAR)
+        if fio2 is not None and abs(fio2 - physiology.ROOM_AIR_FIO2) <= 1e-9:
+            age = s.age_years
+            if age is not None:
+                aa_expected = notes.attempt("age-expected A-a", lambda: (
+                    physiology.expected_aa_gradient(age, settings.age_normal)))
+        if fio2 is not None:
+            pf = notes.attempt("P/F", lambda: physiology.pf_ratio(s.pao2, fio2))
+            mean_airway = s.mean_airway_pressure
+            if mean_airway is not None:
+                oi = notes.attempt("oxygenation index",
+                                   lambda: physiology.oxygenation_index(fio2, mean_airway, s.pao2))
+        if pf is not None:
+            ratio = pf
+            pf_adjusted = notes.attempt(
+                "altitude-adjusted P/F", lambda: physiology.pf_ratio_altitude_adjusted(ratio, pb))
+            if QualityFlag.ESTIMATED_FIO2 not in flags:
+                band = notes.attempt("Berlin band",
+                                     lambda: physiology.berlin_band(ratio, s.peep, pb))
+                berlin = None if band is None else band.value
+        hb, sao2 = s.haemoglobin, s.sao2
+        if hb is not None and sao2 is not None:
+            cao2 = notes.attempt("arterial O2 content", lambda: physiology.arterial_o2_content(
+                hb, sao2, s.pao2, settings.hb_bound_per_g, settings.dissolved))
+
+    sf = osi = None
+    spo2 = s.spo2
+    if spo2 is not None:
+        if spo2 > physiology.SPO2_RATIO_LIMIT:
+            flags.add(QualityFlag.SPO2_ABOVE_97)
+        if fio2 is not None:
+            sf = notes.attempt("S/F", lambda: physiology.sf_ratio(spo2, fio2))
+            mean_airway = s.mean_airway_pressure
+            if mean_airway is not None:
+                osi = notes.attempt("oxygen saturation index", lambda: (
+                    physiology.oxygen_saturation_index(fio2, mean_airway, spo2)))
+
+    return Derivation(
+        patient_key=s.patient_key,
+        sample_id=s.sample_id,
+        drawn_at=s.drawn_at,
+        specimen=s.specimen,
+        equation=settings.equation.value,
+        pao2=s.pao2,
+        fio2=fio2,
+        fio2_source=s.fio2_source,
+        paco2=s.paco2,
+        barometric_pressure=pb,
+        water_vapour_pressure=ph2o,
+        inspired_po2=pio2,
+        alveolar_po2=alveolar,
+        aa_gradient=aa,
+        aa_gradient_expected=aa_expected,
+        arterial_alveolar_ratio=a_over_a,
+        pf_ratio=pf,
+        pf_ratio_adjusted=pf_adjusted,
+        berlin_band=berlin,
+        sf_ratio=sf,
+        oxygenation_index=oi,
+        oxygen_saturation_index=osi,
+        arterial_o2_content=cao2,
+        peep=s.peep,
+        spo2=spo2,
+        age_years=s.age_years,
+        location=s.location,
+        estimated=False,
+        preliminary=s.preliminary,
+        constants=_constants(settings, ph2o),
+        inputs=s.inputs + tuple(notes.items),
+        flags=frozenset(flags),
+    )
+
+
+def _spo2_derivation(
+    spo2: Reading, context: Sequence[Reading], pairing_settings: PairingSettings
+) -> Derivation | None:
+    value = spo2.value
+    if value is None or value > physiology.SPO2_RATIO_LIMIT:
+        return None
+    fio2 = fio2_in_effect(spo2.patient_key, spo2.effective_at, context, pairing_settings,
+                          panel_id=spo2.panel_id)
+    if fio2.value is None:
+        return None
+    notes = _Notes()
+    fio2_value = fio2.value
+    sf = notes.attempt("S/F", lambda: physiology.sf_ratio(value, fio2_value))
+    imputed = notes.attempt("imputed PaO2", lambda: physiology.pao2_imputed_from_spo2(value))
+    pf = None
+    if imputed is not None:
+        pao2 = imputed
+        pf = notes.attempt("imputed P/F", lambda: physiology.pf_ratio(pao2, fio2_value))
+    inputs = (
+        InputUsed("spo2", value, "SpO2 recorded between gases", spo2.logical_id,
+                  spo2.effective_at),
+        *fio2.inputs,
+        *notes.items,
+    )
+    preliminary = any(r.status is Status.PRELIMINARY for r in (spo2, *fio2.used))
+    flags = set(fio2.flags) | {QualityFlag.ESTIMATED_FROM_SPO2}
+    if preliminary:
+        flags.add(QualityFlag.PRELIMINARY_INPUTS)
+    return Derivation(
+        patient_key=spo2.patient_key,
+        sample_id=spo2.logical_id,
+        drawn_at=spo2.effective_at,
+        specimen=Specimen.UNKNOWN,
+        equation="none",
+        pao2=imputed,
+        fio2=fio2_value,
+        fio2_source=fio2.source,
+        sf_ratio=sf,
+        pf_ratio=pf,
+        spo2=value,
+        location=spo2.location,
+        estimated=True,
+        preliminary=preliminary,
+        constants={
+            "spo2_ratio_limit_percent": physiology.SPO2_RATIO_LIMIT,
+            "spo2_imputation_limit_percent": physiology.SPO2_IMPUTATION_LIMIT,
+            "imputation": "exact inverse of Severinghaus 1979 Eq. 1",
+        },
+        inputs=inputs,
+        flags=frozenset(flags),
+    )
+
+
+def derive_spo2_series(
+    spo2_readings: Iterable[Reading],
+    context: Sequence[Reading],
+    settings: DerivationSettings,
+    pairing_settings: PairingSettings,
+) -> list[Derivation]:
+    """Estimated derivations for SpO2 readings (%) between gases, in time order.
+
+    Each current SpO2 reading at or below 97 % with a FiO2 in effect (the same priority
+    as for a gas) gives one Derivation with ``estimated=True``, flag
+    ESTIMATED_FROM_SPO2, specimen UNKNOWN and ``sample_id`` the SpO2's logical id: S/F
+    (Rice 2007) and, at SpO2 <= 96 %, the PaO2 imputed by the exact inverse of
+    Severinghaus Eq. 1 and its P/F (Brown 2016). Readings above 97 %, retracted or
+    without a FiO2 in effect give nothing. ``settings`` is accepted so callers pass the
+    site's choices uniformly; no setting changes these estimates today.
+    """
+    del settings  # no alveolar equation or content is computed from SpO2 alone
+    spo2s = [r for r in spo2_readings if r.kind is Kind.SPO2]
+    result: list[Derivation] = []
+    for patient in sorted({r.patient_key for r in spo2s}):
+        for r in current_readings(spo2s, patient):
+            derived = _spo2_derivation(r, context, pairing_settings)
+            if derived is not None:
+                result.append(derived)
+    result.sort(key=lambda d: (d.drawn_at, d.patient_key, d.sample_id))
+    return result

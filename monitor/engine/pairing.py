@@ -1,0 +1,605 @@
+"""Pairing: which readings belong to one blood-gas sample, and what was in effect at its draw.
+
+Theory of operation. ``pair`` takes one PaO2 reading (the *sample*, drawn at ``t``)
+and the patient's current readings around ``t`` (the caller passes
+``[t - context_window()[0], t + context_window()[1]]``) and returns a ``Snapshot``:
+the sample, the PaCO2 / pH / SaO2 / Hb of the same sample, the FiO2 in effect, the
+barometric pressure, the body temperature, PEEP, mean airway pressure, SpO2 and age.
+Every choice is written down as an ``InputUsed`` with its reason in plain words, and
+every doubt as a ``QualityFlag``. Nothing here computes an index; ``derive`` does.
+
+Rules, in brief (the settings hold every window):
+
+- Same sample: same ``panel_id``, else the same patient and an effective time within
+  ``same_sample_window`` (2 min) of ``t`` and the same specimen kind (a reading whose
+  specimen is unknown is accepted below a known match). A reading of a *different*
+  panel never joins by time.
+- FiO2 in effect, first that applies: (1) reported with the gas (same panel);
+  (2) the latest charted FiO2 (or ventilator setting) at or before ``t`` that is not
+  stale (4 h ventilator, 2 h otherwise) and not superseded by a later room-air
+  charting; (3) room air charted (latest O2 device, not stale); (4) an FiO2 charted up
+  to 10 min *after* ``t``, only when nothing at or before ``t`` documents the FiO2
+  (flag FIO2_CHARTED_AFTER_DRAW); (5) estimated from device and flow (flag
+  ESTIMATED_FIO2); (6) unknown (flag FIO2_UNKNOWN). FIO2_NOT_STEADY when a charted
+  FiO2 or a room-air charting changed the value less than 15 min before ``t``.
+- Barometric pressure: measured with the sample > site setting > standard atmosphere
+  at the site elevation (ESTIMATED_PRESSURE) > 760 mmHg (DEFAULT_PRESSURE).
+- Temperature: with the sample, else charted within 4 h before ``t``, else 37 C
+  (DEFAULT_TEMPERATURE).
+- PEEP and mean airway pressure: latest within 1 h before ``t``. SpO2: nearest within
+  15 min either side.
+- Retracted readings are never used; of several versions of one logical id only the
+  last received counts. Any PRELIMINARY input marks the snapshot preliminary.
+
+Ties are broken by effective time, received time, logical id and delivery id, so the
+order of ``context`` never changes the result.
+"""
+
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from datetime import UTC, date, datetime, timedelta
+
+from monitor.engine import physiology
+from monitor.engine.errors import InvalidInput
+from monitor.engine.model import (
+    FiO2Source,
+    InputUsed,
+    Kind,
+    O2Device,
+    PressureSource,
+    QualityFlag,
+    Reading,
+    Snapshot,
+    Specimen,
+    Status,
+    TemperatureSource,
+)
+
+__all__ = [
+    "FiO2InEffect",
+    "PairingSettings",
+    "context_window",
+    "current_readings",
+    "fio2_in_effect",
+    "influence_window",
+    "pair",
+]
+
+
+@dataclass(frozen=True, slots=True)
+class PairingSettings:
+    """Windows and site values for pairing. Durations are ``timedelta``; pressure in
+    mmHg (250-800), elevation in metres (-500 to 11000). Defaults are common practice,
+    no source, except where the reference sheet says otherwise."""
+
+    fio2_staleness: timedelta = timedelta(hours=2)
+    ventilator_staleness: timedelta = timedelta(hours=4)
+    charted_after_grace: timedelta = timedelta(minutes=10)
+    steady_state: timedelta = timedelta(minutes=15)
+    same_sample_window: timedelta = timedelta(minutes=2)
+    temperature_window: timedelta = timedelta(hours=4)
+    ventilator_window: timedelta = timedelta(hours=1)
+    spo2_window: timedelta = timedelta(minutes=15)
+    site_barometric_pressure: float | None = None
+    site_elevation_m: float | None = None
+
+    def __post_init__(self) -> None:
+        for name in (
+            "fio2_staleness",
+            "ventilator_staleness",
+            "charted_after_grace",
+            "steady_state",
+            "same_sample_window",
+            "temperature_window",
+            "ventilator_window",
+            "spo2_window",
+        ):
+            value = getattr(self, name)
+            if not isinstance(value, timedelta) or value < timedelta(0):
+                raise InvalidInput(name, value, "must be a non-negative timedelta")
+        pb = self.site_barometric_pressure
+        if pb is not None and not 250.0 <= pb <= 800.0:
+            raise InvalidInput("site_barometric_pressure", pb, "must be in [250, 800] mmHg")
+        elevation = self.site_elevation_m
+        if elevation is not None and not -500.0 <= elevation <= 11000.0:
+            raise InvalidInput("site_elevation_m", elevation, "must be in [-500, 11000] m")
+
+
+# --- choosing among readings ------------------------------------------------------------
+
+
+def _order(r: Reading) -> tuple[datetime, datetime, str, str]:
+    """A total order on readings, so that the input order never matters."""
+    return (r.effective_at, r.received_at, r.logical_id, r.delivery_id)
+
+
+def _usable(r: Reading) -> bool:
+    if r.status is Status.RETRACTED:
+        return False
+    return r.code_value is not None if r.kind is Kind.O2_DEVICE else r.value is not None
+
+
+def current_readings(readings: Iterable[Reading], patient_key: str) -> list[Reading]:
+    """The patient's usable readings: the last-received version of each logical id,
+    retracted ones dropped, sorted by effective time (then received time and ids)."""
+    latest: dict[str, Reading] = {}
+    for r in readings:
+        if r.patient_key != patient_key:
+            continue
+        held = latest.get(r.logical_id)
+        if held is None or (r.received_at, r.delivery_id) > (held.received_at, held.delivery_id):
+            latest[r.logical_id] = r
+    return sorted((r for r in latest.values() if _usable(r)), key=_order)
+
+
+def _of(readings: Sequence[Reading], *kinds: Kind) -> list[Reading]:
+    return [r for r in readings if r.kind in kinds]
+
+
+def _latest_in(readings: Sequence[Reading], start: datetime, end: datetime) -> Reading | None:
+    """Latest reading with start <= effective_at <= end (``readings`` sorted)."""
+    inside = [r for r in readings if start <= r.effective_at <= end]
+    return inside[-1] if inside else None
+
+
+def _stale_after(r: Reading, settings: PairingSettings) -> timedelta:
+    return settings.ventilator_staleness if r.from_ventilator else settings.fio2_staleness
+
+
+def _fresh(r: Reading, at: datetime, settings: PairingSettings) -> bool:
+    """Charted at or before ``at`` and no older than its staleness (boundary included)."""
+    return r.effective_at <= at and at - r.effective_at <= _stale_after(r, settings)
+
+
+# --- plain-words reasons --------------------------------------------------------------
+
+
+def _span(delta: timedelta) -> str:
+    minutes = round(abs(delta).total_seconds() / 60)
+    hours, minutes = divmod(minutes, 60)
+    if hours and minutes:
+        return f"{hours} h {minutes} min"
+    if hours:
+        return f"{hours} h"
+    return f"{minutes} min" if minutes else "less than 1 min"
+
+
+def _relative(at: datetime, draw: datetime) -> str:
+    if at == draw:
+        return "at the draw"
+    side = "before" if at < draw else "after"
+    return f"{_span(at - draw)} {side} the draw"
+
+
+def _clock(at: datetime) -> str:
+    """Reasons are written in UTC: the engine never guesses a site's zone."""
+    return f"{at.astimezone(UTC):%H:%M} UTC"
+
+
+def _when(verb: str, r: Reading, draw: datetime) -> str:
+    return f"{verb} {_clock(r.effective_at)}, {_relative(r.effective_at, draw)}"
+
+
+def _used(role: str, r: Reading, reason: str, value: float | str | None = None) -> InputUsed:
+    shown = value if value is not None else (r.value if r.value is not None else r.code_value)
+    return InputUsed(
+        role=role, value=shown, reason=reason, reading_id=r.logical_id, at=r.effective_at
+    )
+
+
+# --- the same sample --------------------------------------------------------------------
+
+
+def _same_sample(
+    sample: Reading,
+    readings: Sequence[Reading],
+    kind: Kind,
+    settings: PairingSettings,
+    *,
+    match_specimen: bool,
+) -> tuple[Reading, str] | None:
+    """The reading of ``kind`` from the same sample as ``sample``, with the reason.
+
+    Same panel first; then, within ``same_sample_window``, the same specimen kind,
+    then an unknown specimen; nearest in time; never a reading of another panel.
+    """
+    t = sample.effective_at
+    best: tuple[tuple[int, timedelta, tuple[datetime, datetime, str, str]], Reading, str] | None
+    best = None
+    for r in _of(readings, kind):
+        gap = abs(r.effective_at - t)
+        if sample.panel_id is not None and r.panel_id == sample.panel_id:
+            rank, why = 0, "same panel as the PaO2"
+        elif sample.panel_id is not None and r.panel_id is not None:
+            continue  # belongs to another sample's panel
+        elif gap > settings.same_sample_window:
+            continue
+        elif not match_specimen or r.specimen is sample.specimen:
+            rank, why = 1, "same sample: " + _when("resulted for", r, t)
+        elif Specimen.UNKNOWN in (r.specimen, sample.specimen):
+            rank, why = 2, "same sample (specimen not stated): " + _when("resulted for", r, t)
+        else:
+            continue  # a different specimen kind is a different sample
+        key = (rank, gap, _order(r))
+        if best is None or key < best[0]:
+            best = (key, r, why)
+    return None if best is None else (best[1], best[2])
+
+
+# --- FiO2 in effect ------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class FiO2InEffect:
+    """The FiO2 (fraction) in effect at a time, where it came from, and why."""
+
+    value: float | None
+    source: FiO2Source
+    flags: frozenset[QualityFlag] = frozenset()
+    inputs: tuple[InputUsed, ...] = ()
+    used: tuple[Reading, ...] = field(default=(), compare=False)
+
+
+def _is_room_air(r: Reading) -> bool:
+    return r.code_value == O2Device.ROOM_AIR.value
+
+
+def _not_steady(
+    charted: Sequence[Reading], devices: Sequence[Reading], at: datetime, settings: PairingSettings
+) -> bool:
+    """True when a charted FiO2 or a room-air charting changed the value in effect less
+    than ``steady_state`` before ``at``. A value is a change only against a previous
+    value still within its staleness when the new one was charted: a first value, or one
+    after a gap, says nothing about a change."""
+    room_air = [(d, physiology.ROOM_AIR_FIO2) for d in devices if _is_room_air(d)]
+    timeline = sorted(
+        [(r, r.value) for r in charted if r.effective_at <= at]
+        + [(d, v) for d, v in room_air if d.effective_at <= at],
+        key=lambda item: _order(item[0]),
+    )
+    for (previous, before), (r, after) in zip(timeline, timeline[1:], strict=False):
+        recent = at - r.effective_at < settings.steady_state
+        if recent and before is not None and after is not None and abs(after - before) > 1e-9:
+            if _fresh(previous, r.effective_at, settings):
+                return True
+    return False
+
+
+def _choose_fio2(
+    at: datetime, readings: Sequence[Reading], settings: PairingSettings, panel_id: str | None
+) -> FiO2InEffect:
+    fio2s = _of(readings, Kind.FIO2)
+    with_gas = [r for r in fio2s if panel_id is not None and r.panel_id == panel_id]
+    charted = [r for r in fio2s if r not in with_gas]
+    devices = _of(readings, Kind.O2_DEVICE)
+    flags: set[QualityFlag] = set()
+    if _not_steady(charted, devices, at, settings):
+        flags.add(QualityFlag.FIO2_NOT_STEADY)  # whatever the source: the lung had no time
+    if with_gas:
+        r = min(with_gas, key=lambda x: (abs(x.effective_at - at), _order(x)))
+        why = "reported with the gas (same panel)"
+        return FiO2InEffect(r.value, FiO2Source.WITH_GAS, frozenset(flags),
+                            (_used("fio2", r, why),), (r,))
+    before = [r for r in charted if r.effective_at <= at]
+    last_fio2 = before[-1] if before else None
+    last_device = next((d for d in reversed(devices) if d.effective_at <= at), None)
+    device_fresh = last_device is not None and _fresh(last_device, at, settings)
+    room_air = last_device if device_fresh and last_device and _is_room_air(last_device) else None
+
+    if last_fio2 is not None and _fresh(last_fio2, at, settings):
+        superseded = room_air is not None and _order(room_air) > _order(last_fio2)
+        if not superseded:
+            setting = " (ventilator setting)" if last_fio2.from_ventilator else ""
+            why = _when("charted", last_fio2, at) + setting + ", no later change before the draw"
+            return FiO2InEffect(last_fio2.value, FiO2Source.CHARTED, frozenset(flags),
+                                (_used("fio2", last_fio2, why),), (last_fio2,))
+    if room_air is not None:
+        why = _when("room air charted", room_air, at)
+        return FiO2InEffect(physiology.ROOM_AIR_FIO2, FiO2Source.ROOM_AIR, frozenset(flags),
+                            (_used("fio2", room_air, why, physiology.ROOM_AIR_FIO2),), (room_air,))
+    after = [r for r in charted if at < r.effective_at <= at + settings.charted_after_grace]
+    if after:
+        r = after[0]
+        why = _when("charted", r, at) + ": nothing valid at or before the draw"
+        flags.add(QualityFlag.FIO2_CHARTED_AFTER_DRAW)
+        return FiO2InEffect(r.value, FiO2Source.CHARTED_AFTER, frozenset(flags),
+                            (_used("fio2", r, why),), (r,))
+    notes: list[InputUsed] = []
+    if device_fresh and last_device is not None:
+        flows = [f for f in _of(readings, Kind.O2_FLOW) if _fresh(f, at, settings)]
+        flow = flows[-1] if flows else None
+        try:
+            value = physiology.estimated_fio2(
+                str(last_device.code_value), flow.value if flow is not None else None
+            )
+        except (InvalidInput, ValueError) as exc:
+            notes.append(_used("fio2", last_device, f"not estimated from the device: {exc}", "-"))
+        else:
+            used = (last_device,) if flow is None else (last_device, flow)
+            inputs = [_used("o2_device", last_device, _when("device charted", last_device, at))]
+            if flow is not None:
+                inputs.append(_used("o2_flow", flow, _when("flow charted", flow, at)))
+            inputs.append(InputUsed("fio2", value, "estimated from device and flow "
+                                    "(rule of thumb, reference sheet section 8)", None, at))
+            flags.add(QualityFlag.ESTIMATED_FIO2)
+            return FiO2InEffect(value, FiO2Source.DEVICE_ESTIMATE, frozenset(flags),
+                                tuple(inputs), used)
+    flags.add(QualityFlag.FIO2_UNKNOWN)
+    notes.append(InputUsed("fio2", None, "no FiO2, room air or device charted within its "
+                           "staleness limit", None, at))
+    return FiO2InEffect(None, FiO2Source.UNKNOWN, frozenset(flags), tuple(notes), ())
+
+
+def fio2_in_effect(
+    patient_key: str,
+    at: datetime,
+    context: Iterable[Reading],
+    settings: PairingSettings,
+    *,
+    panel_id: str | None = None,
+) -> FiO2InEffect:
+    """The FiO2 (fraction 0.21-1.0) in effect for ``patient_key`` at ``at``, by the
+    priority in this module's docstring. ``panel_id`` names the panel whose own FiO2
+    counts as "reported with the gas"."""
+    return _choose_fio2(at, current_readings(context, patient_key), settings, panel_id)
+
+
+# --- pressure, temperature, ventilator, SpO2, age ------------------------------------------
+
+
+def _pressure(
+    sample: Reading, readings: Sequence[Reading], settings: PairingSettings
+) -> tuple[float, PressureSource, InputUsed, QualityFlag | None, Reading | None]:
+    t = sample.effective_at
+    found = _same_sample(sample, readings, Kind.BAROMETRIC_PRESSURE, settings, match_specimen=False)
+    if found is not None:
+        r, why = found
+        measured = _used("barometric_pressure", r, why)
+        return float(r.value or 0.0), PressureSource.MEASURED, measured, None, r
+    if settings.site_barometric_pressure is not None:
+        pb = settings.site_barometric_pressure
+        note = InputUsed("barometric_pressure", pb, f"site setting {pb:g} mmHg", None, t)
+        return pb, PressureSource.SITE_SETTING, note, None, None
+    if settings.site_elevation_m is not None:
+        pb = physiology.barometric_pressure_at_elevation(settings.site_elevation_m)
+        why = (f"standard atmosphere at the site elevation {settings.site_elevation_m:g} m "
+               "(yearly average; weather moves it 10-20 mmHg)")
+        note = InputUsed("barometric_pressure", pb, why, None, t)
+        return pb, PressureSource.STANDARD_ATMOSPHERE, note, QualityFlag.ESTIMATED_PRESSURE, None
+    pb = physiology.STANDARD_PRESSURE_MMHG
+    note = InputUsed("barometric_pressure", pb, "no measured or site pressure: default 760 mmHg",
+                     None, t)
+    return pb, PressureSource.DEFAULT, note, QualityFlag.DEFAULT_PRESSURE, None
+
+
+def _temperature(
+    sample: Reading, readings: Sequence[Reading], settings: PairingSettings
+) -> tuple[float, TemperatureSource, InputUsed, Reading | None]:
+    t = sample.effective_at
+    found = _same_sample(sample, readings, Kind.BODY_TEMPERATURE, settings, match_specimen=False)
+    if found is not None:
+        r, why = found
+        return float(r.value or 0.0), TemperatureSource.WITH_SAMPLE, _used("temperature", r, why), r
+    temps = _of(readings, Kind.BODY_TEMPERATURE)
+    r = _latest_in(temps, t - settings.temperature_window, t)
+    if r is not None:
+        why = _when("charted", r, t)
+        return float(r.value or 0.0), TemperatureSource.CHARTED, _used("temperature", r, why), r
+    limit = _span(settings.temperature_window)
+    note = InputUsed("temperature", physiology.DEFAULT_TEMPERATURE_C,
+                     f"none with the sample or charted within {limit} before: default 37 C",
+                     None, t)
+    return physiology.DEFAULT_TEMPERATURE_C, TemperatureSource.DEFAULT, note, None
+
+
+def _latest_before(
+    role: str, kind: Kind, readings: Sequence[Reading], t: datetime, window: timedelta
+) -> tuple[Reading, InputUsed] | None:
+    r = _latest_in(_of(readings, kind), t - window, t)
+    return None if r is None else (r, _used(role, r, _when("charted", r, t)))
+
+
+def _nearest_spo2(
+    readings: Sequence[Reading], t: datetime, settings: PairingSettings
+) -> tuple[Reading, InputUsed] | None:
+    near = [r for r in _of(readings, Kind.SPO2) if abs(r.effective_at - t) <= settings.spo2_window]
+    if not near:
+        return None
+    r = min(near, key=lambda x: (abs(x.effective_at - t), _order(x)))
+    return r, _used("spo2", r, _when("recorded", r, t) + " (nearest to the draw)")
+
+
+def _completed_years(born: date, on: date) -> int:
+    return on.year - born.year - ((on.month, on.day) < (born.month, born.day))
+
+
+def _age(
+    sample: Reading, readings: Sequence[Reading]
+) -> tuple[float | None, InputUsed | None]:
+    """Completed years at the draw, from the sample's birth date or, failing that, the
+    last-received reading of the patient that carries one."""
+    t = sample.effective_at
+    carrier = sample if sample.birth_date is not None else None
+    if carrier is None:
+        dated = [r for r in readings if r.birth_date is not None]
+        carrier = max(dated, key=lambda r: (r.received_at, r.logical_id, r.delivery_id),
+                      default=None)
+    if carrier is None or carrier.birth_date is None:
+        return None, None
+    born = carrier.birth_date
+    on = t.astimezone(UTC).date()
+    if born > on:
+        why = "recorded birth date is after the draw: age not used"
+        return None, InputUsed("age", None, why, carrier.logical_id, t)
+    years = float(_completed_years(born, on))
+    # The birth date itself stays out of the reason: it identifies the patient.
+    why = f"{years:g} completed years at the draw, from the recorded birth date"
+    return years, InputUsed("age", years, why, carrier.logical_id, t)
+
+
+# --- the snapshot ----------------------------------------------------------------------------
+
+_LAB_ROLES: tuple[tuple[str, Kind], ...] = (
+    ("paco2", Kind.PACO2),
+    ("ph", Kind.PH),
+    ("sao2", Kind.SAO2),
+    ("haemoglobin", Kind.HAEMOGLOBIN),
+)
+
+
+def pair(sample: Reading, context: Sequence[Reading], settings: PairingSettings) -> Snapshot:
+    """Pair one PaO2 reading with everything in effect at its draw.
+
+    ``sample`` is a PaO2 reading (mmHg) of any specimen; anything but ARTERIAL gives a
+    snapshot flagged NOT_ARTERIAL (an unknown specimen is not assumed arterial:
+    reference sheet section 10, LOINC 11556-8). ``context`` holds the patient's readings
+    around the draw (see ``context_window``); other patients' readings, retracted
+    readings and superseded versions are ignored. Raises ``InvalidInput`` only when
+    ``sample`` is not a usable PaO2 reading.
+    """
+    if sample.kind is not Kind.PAO2 or sample.value is None or sample.status is Status.RETRACTED:
+        raise InvalidInput("sample", sample.logical_id, "must be a PaO2 reading with a value")
+    t = sample.effective_at
+    readings = [r for r in current_readings(context, sample.patient_key)
+                if r.logical_id != sample.logical_id]
+    flags: set[QualityFlag] = set()
+    used: list[Reading] = [sample]
+    specimen_note = "" if sample.specimen is Specimen.ARTERIAL else ": not arterial, no A-a or P/F"
+    inputs: list[InputUsed] = [
+        _used("pao2", sample,
+              f"the sample, {sample.specimen} blood drawn {_clock(t)}{specimen_note}")
+    ]
+    if sample.specimen is not Specimen.ARTERIAL:
+        flags.add(QualityFlag.NOT_ARTERIAL)
+
+    lab: dict[str, float | None] = {}
+    for role, kind in _LAB_ROLES:
+        found = _same_sample(sample, readings, kind, settings, match_specimen=True)
+        lab[role] = None if found is None else found[0].value
+        if found is not None:
+            used.append(found[0])
+            inputs.append(_used(role, found[0], found[1]))
+
+    fio2 = _choose_fio2(t, readings, settings, sample.panel_id)
+    flags |= fio2.flags
+    used.extend(fio2.used)
+    inputs.extend(fio2.inputs)
+
+    pb, pb_source, pb_input, pb_flag, pb_reading = _pressure(sample, readings, settings)
+    inputs.append(pb_input)
+    if pb_flag is not None:
+        flags.add(pb_flag)
+    if pb_reading is not None:
+        used.append(pb_reading)
+
+    temp, temp_source, temp_input, temp_reading = _temperature(sample, readings, settings)
+    inputs.append(temp_input)
+    if temp_reading is None:
+        flags.add(QualityFlag.DEFAULT_TEMPERATURE)
+    else:
+        used.append(temp_reading)
+
+    nearby: dict[str, float | None] = {}
+    for role, found_near in (
+        ("peep", _latest_before("peep", Kind.PEEP, readings, t, settings.ventilator_window)),
+        ("mean_airway_pressure", _latest_before("mean_airway_pressure",
+                                                Kind.MEAN_AIRWAY_PRESSURE, readings, t,
+                                                settings.ventilator_window)),
+        ("spo2", _nearest_spo2(readings, t, settings)),
+    ):
+        nearby[role] = None if found_near is None else found_near[0].value
+        if found_near is not None:
+            used.append(found_near[0])
+            inputs.append(found_near[1])
+
+    age, age_input = _age(sample, readings)
+    if age_input is not None:
+        inputs.append(age_input)
+    if age is None:
+        flags.add(QualityFlag.AGE_UNKNOWN)
+
+    preliminary = any(r.status is Status.PRELIMINARY for r in used)
+    if preliminary:
+        flags.add(QualityFlag.PRELIMINARY_INPUTS)
+
+    return Snapshot(
+        patient_key=sample.patient_key,
+        sample_id=sample.logical_id,
+        drawn_at=t,
+        specimen=sample.specimen,
+        pao2=sample.value,
+        fio2=fio2.value,
+        fio2_source=fio2.source,
+        barometric_pressure=pb,
+        pressure_source=pb_source,
+        temperature_c=temp,
+        temperature_source=temp_source,
+        paco2=lab["paco2"],
+        ph=lab["ph"],
+        sao2=lab["sao2"],
+        haemoglobin=lab["haemoglobin"],
+        peep=nearby["peep"],
+        mean_airway_pressure=nearby["mean_airway_pressure"],
+        spo2=nearby["spo2"],
+        age_years=age,
+        location=sample.location,
+        preliminary=preliminary,
+        inputs=tuple(inputs),
+        flags=frozenset(flags),
+    )
+
+
+# --- which samples a reading can affect -------------------------------------------------------
+
+
+def context_window(settings: PairingSettings) -> tuple[timedelta, timedelta]:
+    """How far (before, after) the draw time ``t`` the caller must fetch readings for
+    ``pair``: the longest look-back of any rule (the longest FiO2 staleness plus the
+    steady-state window, so the value a recent change replaced is seen), and the
+    longest look-ahead (after-draw grace, same-sample and SpO2 windows)."""
+    staleness = max(settings.fio2_staleness, settings.ventilator_staleness)
+    before = max(staleness + settings.steady_state,  # the value a recent change replaced
+                 settings.temperature_window, settings.ventilator_window,
+                 settings.spo2_window, settings.same_sample_window)
+    after = max(settings.charted_after_grace, settings.same_sample_window, settings.spo2_window)
+    return before, after
+
+
+def influence_window(kind: Kind, settings: PairingSettings) -> tuple[timedelta, timedelta]:
+    """For a reading of ``kind`` effective at ``x``: ``(before, after)`` such that only
+    samples drawn in ``[x - before, x + after]`` can pair differently when the reading
+    arrives late, is corrected or is withdrawn. The pipeline re-pairs those samples.
+
+    - PaCO2, pH, SaO2, Hb, barometric pressure: the same-sample window either side.
+      A panel member joins its PaO2 by ``panel_id`` whatever the times, so the caller
+      also re-pairs the samples of the reading's own panel.
+    - FiO2: ``charted_after_grace`` before (charted after the draw); after, the
+      longest staleness plus ``steady_state`` (it stays in effect that long, and a
+      change from it within that time raises FIO2_NOT_STEADY).
+    - O2 device: the same after (room air counts as a FiO2 of 0.21); nothing before.
+    - O2 flow: nothing before, the longest staleness after.
+    - Body temperature: the same-sample window before, the temperature window after.
+    - PEEP, mean airway pressure: nothing before, the ventilator window after.
+    - SpO2: the SpO2 window either side.
+    - PaO2: (0, 0): a PaO2 is its own sample and pairs with no other.
+    A reading's ``birth_date`` can change the age of any sample of the patient; the
+    pipeline treats a new birth date as a reason to re-pair all of them.
+    """
+    staleness = max(settings.fio2_staleness, settings.ventilator_staleness)
+    same = settings.same_sample_window
+    windows: dict[Kind, tuple[timedelta, timedelta]] = {
+        Kind.PAO2: (timedelta(0), timedelta(0)),
+        Kind.PACO2: (same, same),
+        Kind.PH: (same, same),
+        Kind.SAO2: (same, same),
+        Kind.HAEMOGLOBIN: (same, same),
+        Kind.BAROMETRIC_PRESSURE: (same, same),
+        Kind.FIO2: (settings.charted_after_grace, staleness + settings.steady_state),
+        Kind.O2_DEVICE: (timedelta(0), staleness + settings.steady_state),
+        Kind.O2_FLOW: (timedelta(0), staleness),
+        Kind.BODY_TEMPERATURE: (same, max(same, settings.temperature_window)),
+        Kind.PEEP: (timedelta(0), settings.ventilator_window),
+        Kind.MEAN_AIRWAY_PRESSURE: (timedelta(0), settings.ventilator_window),
+        Kind.SPO2: (settings.spo2_window, settings.spo2_window),
+    }
+    return windows[Kind(kind)]
