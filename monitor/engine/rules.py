@@ -16,8 +16,10 @@ Windows are measured back from the derivation's draw time, not from ``now``, so 
 replay of a feed judges each sample exactly as the live service did. History entries
 drawn after the derivation are ignored.
 
-Pure: no I/O and no clock; the caller passes ``now``. The trend helpers here are small
-and private; ``monitor.engine.trends`` may take them over.
+Pure: no I/O and no clock; the caller passes ``now``. Comparisons across samples use
+``monitor.engine.trends`` (best P/F, A-a change at comparable FiO2, FiO2 escalation),
+so trend rules only compare trendable gases: arterial, reliable, not on an estimated
+FiO2.
 """
 
 from __future__ import annotations
@@ -27,6 +29,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
+from monitor.engine import trends
 from monitor.engine.errors import InvalidInput
 from monitor.engine.model import (
     Derivation,
@@ -291,8 +294,8 @@ class RuleOutcome:
 
 
 def _is_gas(d: Derivation) -> bool:
-    """A reliable arterial gas: the only kind rules 1-4 judge or compare with."""
-    return d.specimen is Specimen.ARTERIAL and not d.estimated and not d.unreliable
+    """An arterial gas (not an SpO2 estimate), reliable or not: one was drawn."""
+    return d.specimen is Specimen.ARTERIAL and not d.estimated
 
 
 def _is_preliminary(*ds: Derivation) -> bool:
@@ -317,28 +320,12 @@ def _prior(
     ]
 
 
-def _best_pf(gases: Sequence[Derivation]) -> Derivation | None:
-    with_pf = [g for g in gases if g.pf_ratio is not None]
-    return max(with_pf, key=lambda g: (g.pf_ratio, g.drawn_at), default=None)
-
-
-def _fio2_rise(
-    points: Sequence[FiO2Point], d: Derivation, window: timedelta
-) -> tuple[float, FiO2Point, FiO2Point] | None:
-    """(rise, lowest point, current point) of FiO2 in effect over the window ending at
-    the draw; the point in effect at the window's start counts too."""
-    end = d.drawn_at
-    known = sorted((p for p in points if p.at <= end), key=lambda p: p.at)
+def _fio2_points(points: Sequence[FiO2Point], d: Derivation) -> list[tuple[datetime, float]]:
+    """FiO2-in-effect points up to the draw, with the derivation's own FiO2 at the draw."""
+    known = [(p.at, p.fio2) for p in points if p.at <= d.drawn_at]
     if d.fio2 is not None:
-        known.append(FiO2Point(end, d.fio2, d.fio2_source))
-    if not known:
-        return None
-    current = known[-1]
-    start = end - window
-    before = [p for p in known if p.at < start]
-    in_window = [p for p in known if p.at >= start] + before[-1:]
-    lowest = min(in_window, key=lambda p: (p.fio2, p.at))
-    return current.fio2 - lowest.fio2, lowest, current
+        known.append((d.drawn_at, d.fio2))
+    return sorted(known)
 
 
 def _at(t: datetime) -> str:
@@ -402,17 +389,24 @@ def _band(rule: OxygenationBandRule, d: Derivation, h: float) -> RuleOutcome:
 
 def _pf_fall(rule: PfFallRule, d: Derivation, history: PatientHistory, h: float) -> RuleOutcome:
     label = f"P/F fall >= {rule.fall_fraction * 100:g} %"
-    prior = [g for g in _prior(history.derivations, d, rule.window) if _is_gas(g)]
-    best = _best_pf(prior)
-    if d.pf_ratio is None or best is None or best.pf_ratio is None:
+    if not trends.is_trendable(d):
+        return _outcome(rule, d, label=label, reason="not trendable (FiO2 estimated)")
+    prior = [
+        g
+        for g in _prior(history.derivations, d, rule.window)
+        if trends.is_trendable(g) and g.pf_ratio is not None
+    ]
+    found = trends.best_pf(prior, d.drawn_at, rule.window)
+    if d.pf_ratio is None or found is None:
         return _outcome(rule, d, label=label, reason="no P/F to compare with")
-    if len([g for g in prior if g.pf_ratio is not None]) + 1 < rule.min_gases:
+    if len(prior) + 1 < rule.min_gases:
         return _outcome(rule, d, label=label, reason=f"fewer than {rule.min_gases} gases")
-    fall = (best.pf_ratio - d.pf_ratio) / best.pf_ratio
+    best_value, best = found
+    fall = (best_value - d.pf_ratio) / best_value
     numbers: dict[str, object] = {
         "pf": _r(d.pf_ratio),
         "pf_at": _at(d.drawn_at),
-        "best_pf": _r(best.pf_ratio),
+        "best_pf": _r(best_value),
         "best_pf_at": _at(best.drawn_at),
         "change_percent": _r(-fall * 100.0),
     }
@@ -445,19 +439,19 @@ def _aa_room_air(rule: AaRoomAirRule, d: Derivation, h: float) -> RuleOutcome:
 
 def _aa_rise(rule: AaRiseRule, d: Derivation, history: PatientHistory, h: float) -> RuleOutcome:
     label = f"A-a rise >= {rule.rise:g} mmHg"
-    prior = [g for g in _prior(history.derivations, d, rule.window) if _is_gas(g)]
-    previous = max(prior, key=lambda g: g.drawn_at, default=None)
-    if previous is None or previous.aa_gradient is None or d.aa_gradient is None:
-        return _outcome(rule, d, label=label, reason="no previous A-a to compare with")
-    if previous.fio2 is None or d.fio2 is None:
-        return _outcome(rule, d, label=label, reason="FiO2 unknown")
-    if abs(d.fio2 - previous.fio2) > rule.fio2_tolerance + 1e-9:
-        return _outcome(rule, d, label=label, reason="FiO2 not comparable with the previous gas")
-    rise = d.aa_gradient - previous.aa_gradient
+    found = trends.aa_change_vs_previous(
+        d, _prior(history.derivations, d, rule.window), rule.window, rule.fio2_tolerance
+    )
+    if found is None:
+        return _outcome(
+            rule, d, label=label,
+            reason="no previous trendable gas with an A-a at a comparable FiO2",
+        )
+    rise, previous = found
     numbers: dict[str, object] = {
-        "aa_gradient": _r(d.aa_gradient),
+        "aa_gradient": _r(d.aa_gradient or 0.0),
         "aa_at": _at(d.drawn_at),
-        "previous_aa": _r(previous.aa_gradient),
+        "previous_aa": _r(previous.aa_gradient or 0.0),
         "previous_aa_at": _at(previous.drawn_at),
         "aa_rise": _r(rise),
         "fio2": d.fio2,
@@ -473,15 +467,19 @@ def _o2_escalation(
     rule: OxygenEscalationRule, d: Derivation, history: PatientHistory, h: float
 ) -> RuleOutcome:
     label = f"FiO2 up >= {rule.rise:.2f} in {rule.window.total_seconds() / 3600:g} h"
-    found = _fio2_rise(history.fio2_points, d, rule.window)
-    if found is None:
+    points = _fio2_points(history.fio2_points, d)
+    if not points:
         return _outcome(rule, d, label=label, reason="FiO2 in effect unknown")
-    rise, lowest, current = found
+    rise = trends.fio2_escalation(points, d.drawn_at, rule.window)
+    current_at, current = points[-1]
+    lowest = current - rise
+    # When the lowest value was set: the latest point at that value in or before the window.
+    lowest_at = max((at for at, v in points if abs(v - lowest) < 1e-9), default=current_at)
     numbers: dict[str, object] = {
-        "fio2": current.fio2,
-        "fio2_at": _at(current.at),
-        "fio2_lowest": lowest.fio2,
-        "fio2_lowest_at": _at(lowest.at),
+        "fio2": current,
+        "fio2_at": _at(current_at),
+        "fio2_lowest": round(lowest, 2),
+        "fio2_lowest_at": _at(lowest_at),
         "fio2_rise": round(rise, 2),
     }
     # Sub-percent float noise must not decide a threshold given in hundredths.

@@ -349,7 +349,7 @@ def test_aa_rise_needs_comparable_fio2_within_005(previous_fio2, judged):
     outcome = only(RISE, gas(aa_gradient=130.0), rise_history(fio2=previous_fio2))
     assert outcome.fired is judged
     if not judged:
-        assert "comparable" in outcome.reason
+        assert "comparable FiO2" in outcome.reason
 
 
 @pytest.mark.parametrize(("hours", "judged"), [(11.9, True), (12.0, True), (12.1, False)])
@@ -366,6 +366,27 @@ def test_aa_rise_compares_with_the_latest_previous_gas():
     outcome = only(RISE, gas(aa_gradient=130.0), history)
     assert outcome.numbers["previous_aa"] == 115.0
     assert not outcome.fired
+
+
+def test_aa_rise_skips_a_gas_at_another_fio2_for_the_latest_comparable_one():
+    history = PatientHistory(derivations=[
+        gas(T0 - timedelta(hours=6), aa_gradient=90.0, fio2=0.5),
+        gas(T0 - timedelta(hours=2), aa_gradient=200.0, fio2=0.8),
+    ])
+    outcome = only(RISE, gas(aa_gradient=115.0, fio2=0.5), history)
+    assert outcome.numbers["previous_aa"] == 90.0
+    assert outcome.fired  # +25 mmHg at the same FiO2
+
+
+def test_trend_rules_do_not_compare_gases_on_an_estimated_fio2():
+    # Device-and-flow FiO2 scatters by 0.04-0.15 (reference sheet section 8, Wettstein 2005).
+    estimated = frozenset({QualityFlag.ESTIMATED_FIO2})
+    history = PatientHistory(derivations=[
+        gas(T0 - timedelta(hours=3), pf_ratio=450.0, aa_gradient=40.0, flags=estimated),
+    ])
+    assert not only(FALL, gas(pf_ratio=200.0, aa_gradient=100.0), history).fired
+    assert not only(RISE, gas(pf_ratio=200.0, aa_gradient=100.0), history).fired
+    assert not only(FALL, gas(pf_ratio=200.0, flags=estimated), fall_history()).fired
 
 
 # --- rule 5: oxygen escalation ---------------------------------------------------------
