@@ -41,11 +41,13 @@ def pv1(unit: str = "ICU-North", room: str = "4", bed: str = "2") -> str:
 
 
 def obr(filler: str = "F-20260315-0001", *, collected: str = "202603150830",
-        specimen_source: str = "") -> str:
+        specimen_source: str = "", timing: str = "") -> str:
     fields = {1: "1", 2: "P-7781", 3: filler, 4: "24336-0^Gas panel - Arterial blood^LN",
               7: collected}
     if specimen_source:
         fields[15] = specimen_source
+    if timing:  # OBR-27 quantity/timing, required in v2.3
+        fields[27] = timing
     return segment("OBR", fields)
 
 
@@ -89,7 +91,8 @@ ABG_251 = abg()
 #: The same gas in v2.3 with kPa and the specimen named in OBR-15 (no SPM in v2.3).
 ABG_KPA_23 = message(
     msh("HGH0002", version="2.3", msg_type="ORU^R01"), pid("HM100871", birth="19710203"),
-    pv1("Ward-5B", "12", "A"), obr("F-20260316-0042", specimen_source="BLDA&Arterial blood"),
+    pv1("Ward-5B", "12", "A"), obr("F-20260316-0042", specimen_source="BLDA&Arterial blood",
+                                timing="^^^202603160915^^R"),
     obx(1, "2703-7", "9.1", "kPa", text="PO2 arterial"),
     obx(2, "2019-8", "5.9", "kPa", text="PCO2 arterial"),
 )

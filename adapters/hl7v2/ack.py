@@ -145,8 +145,8 @@ def build_ack(
         raise ValueError(f"ack_code must be one of {sorted(ACK_CODES)}, not {ack_code!r}")
     h = recover_header(message)
     sep, comp = h.field_sep, h.encoding_chars[0]
-    msg_type = f"ACK{comp}{h.trigger}{comp}ACK" if h.trigger else "ACK"
-    if h.version.startswith("2.3") and h.trigger:
+    msg_type = f"ACK{comp}{h.trigger}{comp}ACK"  # MSH-9.3, the structure, names ACK
+    if h.version == "2.3" and h.trigger:
         msg_type = f"ACK{comp}{h.trigger}"  # MSH-9.3 (message structure) exists from v2.3.1 on
     msh = sep.join([
         "MSH", h.encoding_chars, escape_text(h.receiving_application, h),
