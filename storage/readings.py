@@ -160,7 +160,9 @@ def _update_current(
             .where(readings.c.id == sa.bindparam("b_id"))
             .values(
                 is_current=False,
-                superseded_at=sa.func.coalesce(readings.c.superseded_at, sa.bindparam("b_at", type_=UTCDateTime)),
+                superseded_at=sa.func.coalesce(
+                    readings.c.superseded_at, sa.bindparam("b_at", type_=UTCDateTime)
+                ),
             ),
             losers,
         )

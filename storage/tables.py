@@ -291,6 +291,7 @@ outbox = sa.Table(
     sa.Column("status", sa.String, nullable=False),
     sa.Column("attempts", sa.Integer, nullable=False),
     sa.Column("next_attempt_at", UTCDateTime, nullable=False),
+    sa.Column("last_attempt_at", UTCDateTime, nullable=True),
     sa.Column("last_error", sa.Text, nullable=True),
     sa.Column("sent_at", UTCDateTime, nullable=True),
     sa.UniqueConstraint("idempotency_key", "channel"),

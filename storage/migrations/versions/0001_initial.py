@@ -250,6 +250,7 @@ def upgrade() -> None:
         sa.Column("status", sa.String(), nullable=False),
         sa.Column("attempts", sa.Integer(), nullable=False),
         sa.Column("next_attempt_at", TIME, nullable=False),
+        sa.Column("last_attempt_at", TIME, nullable=True),
         sa.Column("last_error", sa.Text(), nullable=True),
         sa.Column("sent_at", TIME, nullable=True),
         sa.PrimaryKeyConstraint("id", name="pk_outbox"),

@@ -1,0 +1,120 @@
+"""Opening the database and Alembic migrations, on both engines."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+import sqlalchemy as sa
+from alembic.autogenerate import compare_metadata
+from alembic.migration import MigrationContext
+
+from storage.db import open_database, upgrade
+from storage.tables import metadata
+
+EXPECTED_TABLES = {
+    "patients",
+    "readings",
+    "quarantine",
+    "source_cursors",
+    "derivations",
+    "derivation_inputs",
+    "alerts",
+    "alert_events",
+    "outbox",
+}
+
+
+def _schema(url: str) -> tuple[set[str], str | None, dict[str, list[str]]]:
+    engine = sa.create_engine(url)
+    try:
+        inspector = sa.inspect(engine)
+        tables = set(inspector.get_table_names())
+        indexes = {t: sorted(i["name"] or "" for i in inspector.get_indexes(t)) for t in tables}
+        with engine.connect() as conn:
+            revision = MigrationContext.configure(conn).get_current_revision()
+        return tables, revision, indexes
+    finally:
+        engine.dispose()
+
+
+def test_upgrade_from_empty_creates_every_table(db_url: str) -> None:
+    assert _schema(db_url)[0] == set()
+    upgrade(db_url)
+    tables, revision, _ = _schema(db_url)
+    assert tables == EXPECTED_TABLES | {"alembic_version"}
+    assert revision == "0001"
+
+
+def test_second_upgrade_changes_nothing(db_url: str) -> None:
+    upgrade(db_url)
+    first = _schema(db_url)
+    upgrade(db_url)
+    assert _schema(db_url) == first
+
+
+def test_migrated_schema_matches_the_tables_module(db_url: str) -> None:
+    upgrade(db_url)
+    engine = sa.create_engine(db_url)
+    try:
+        with engine.connect() as conn:
+            context = MigrationContext.configure(conn, opts={"compare_type": True})
+            differences = compare_metadata(context, metadata)
+    finally:
+        engine.dispose()
+    assert differences == []
+
+
+def test_open_database_defaults_to_gasgap_db_in_the_working_directory(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.chdir(tmp_path)
+    db = open_database()
+    try:
+        assert db.dialect_name == "sqlite"
+        assert (tmp_path / "gasgap.db").exists()
+        with db.begin(read_only=True) as conn:
+            assert conn.execute(sa.text("select count(*) from readings")).scalar_one() == 0
+    finally:
+        db.dispose()
+
+
+def test_sqlite_connections_use_wal_foreign_keys_and_a_busy_timeout(sqlite_url: str) -> None:
+    db = open_database(sqlite_url)
+    try:
+        with db.begin() as conn:
+            pragma = {
+                name: conn.exec_driver_sql(f"PRAGMA {name}").scalar()
+                for name in ("journal_mode", "foreign_keys", "busy_timeout", "synchronous")
+            }
+    finally:
+        db.dispose()
+    # synchronous=1 is NORMAL (SQLite documentation, "PRAGMA synchronous").
+    assert pragma == {"journal_mode": "wal", "foreign_keys": 1, "busy_timeout": 10000,
+                      "synchronous": 1}
+
+
+def test_in_memory_sqlite_keeps_one_database_across_transactions() -> None:
+    db = open_database("sqlite://")
+    try:
+        with db.begin() as conn:
+            conn.execute(sa.text("insert into quarantine (source, received_at, reason, "
+                                 "reason_key, raw_text, payload_size, truncated) values "
+                                 "('replay', '2026-03-14 06:00:00', 'x', 'x', 'x', 1, 0)"))
+        with db.begin(read_only=True) as conn:
+            assert conn.execute(sa.text("select count(*) from quarantine")).scalar_one() == 1
+    finally:
+        db.dispose()
+
+
+def test_rollback_on_error_leaves_nothing_behind(db_url: str) -> None:
+    db = open_database(db_url)
+    try:
+        with pytest.raises(RuntimeError), db.begin() as conn:
+            conn.execute(sa.text("insert into source_cursors (source, updated_at) "
+                                 "values ('fhir-poll', CURRENT_TIMESTAMP)"))
+            raise RuntimeError("step failed")
+        with db.begin(read_only=True) as conn:
+            assert conn.execute(sa.text("select count(*) from source_cursors")).scalar_one() == 0
+    finally:
+        db.dispose()
