@@ -203,11 +203,14 @@ class FhirPoller:
             )
             if next_url and urlsplit(next_url)[:2] != self._origin:
                 raise FhirSourceError(
-                    f"next link {next_url!r} leaves {self.base_url}: refusing to send credentials there"
+                    f"next link to {urlsplit(next_url).netloc!r} leaves {self.base_url}: "
+                    "refusing to send credentials there"
                 )
 
     def _get_json(self, url: str, params: dict[str, str] | None) -> dict[str, Any]:
         attempt = 0
+        # Messages and logs name the path only: a query may carry patient ids (_id=...).
+        where = urlsplit(url).path
         while True:
             problem: str
             wait: float | None = None
@@ -219,15 +222,15 @@ class FhirPoller:
                 problem = f"could not connect ({type(exc).__name__}: {exc})"
             else:
                 if response.status_code == 200:
-                    return _decode_bundle(url, response.content)
+                    return _decode_bundle(where, response.content)
                 problem = f"HTTP {response.status_code}{_outcome(response.content)}"
                 if response.status_code not in _RETRY_STATUS:
-                    raise FhirSourceError(f"GET {url}: {problem}")
+                    raise FhirSourceError(f"GET {where}: {problem}")
                 wait = _retry_after(response.headers.get("Retry-After"))
             if attempt >= self.max_retries:
-                raise FhirSourceError(f"GET {url}: {problem}; gave up after {self.max_retries} retries")
+                raise FhirSourceError(f"GET {where}: {problem}; gave up after {self.max_retries} retries")
             delay = min(_MAX_BACKOFF_S, wait if wait is not None else 2.0**attempt)
-            log.warning("GET %s: %s; retry %d in %.1f s", url, problem, attempt + 1, delay)
+            log.warning("GET %s: %s; retry %d in %.1f s", where, problem, attempt + 1, delay)
             self._sleep(delay)
             attempt += 1
 
