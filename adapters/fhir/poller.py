@@ -235,13 +235,13 @@ class FhirPoller:
             attempt += 1
 
 
-def _decode_bundle(url: str, body: bytes) -> dict[str, Any]:
+def _decode_bundle(where: str, body: bytes) -> dict[str, Any]:
     try:
         data = orjson.loads(body)
     except orjson.JSONDecodeError as exc:
-        raise FhirSourceError(f"GET {url}: the answer is not JSON: {exc}") from exc
+        raise FhirSourceError(f"GET {where}: the answer is not JSON: {exc}") from exc
     if not isinstance(data, dict) or data.get("resourceType") != "Bundle":
-        raise FhirSourceError(f"GET {url}: expected a Bundle, got {str(data)[:80]!r}")
+        raise FhirSourceError(f"GET {where}: expected a Bundle, got {str(data)[:80]!r}")
     return data
 
 
