@@ -37,7 +37,7 @@ def reading(
     code_value: str | None = None,
     panel_id: str | None = None,
     from_ventilator: bool = False,
-    birth_date: "date | None" = None,
+    birth_date: date | None = None,
     location: Location | None = None,
 ) -> Reading:
     """One invented reading. The logical id defaults to kind + time, which is unique
