@@ -126,7 +126,9 @@ class EmailChannel:
     def _connect(self) -> smtplib.SMTP:
         o = self.options
         if o.ssl:
-            return smtplib.SMTP_SSL(o.host, o.port, timeout=o.timeout_s, context=self._tls_context())
+            return smtplib.SMTP_SSL(
+                o.host, o.port, timeout=o.timeout_s, context=self._tls_context()
+            )
         return smtplib.SMTP(o.host, o.port, timeout=o.timeout_s)
 
     def _transmit(self, msg: EmailMessage) -> dict[str, tuple[int, bytes]]:

@@ -85,7 +85,8 @@ def _instant(value: datetime) -> str:
 
 def _narrative(n: Notification) -> dict[str, str]:
     paragraphs = "".join(f"<p>{html.escape(line)}</p>" for line in render.text_lines(n))
-    return {"status": "generated", "div": f'<div xmlns="http://www.w3.org/1999/xhtml">{paragraphs}</div>'}
+    div = f'<div xmlns="http://www.w3.org/1999/xhtml">{paragraphs}</div>'
+    return {"status": "generated", "div": div}
 
 
 def flag_status(event: str) -> str:
@@ -101,7 +102,11 @@ def build_flag(n: Notification, options: FhirOptions) -> Flag:
         "identifier": [{"system": options.alert_identifier_system, "value": n.alert_id}],
         "status": flag_status(n.event),
         "category": [
-            {"coding": [{"system": FLAG_CATEGORY_SYSTEM, "code": "clinical", "display": "Clinical"}]}
+            {
+                "coding": [
+                    {"system": FLAG_CATEGORY_SYSTEM, "code": "clinical", "display": "Clinical"}
+                ]
+            }
         ],
         "code": {"text": f"{n.summary} {n.advisory}"},
         "subject": {

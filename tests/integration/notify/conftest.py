@@ -194,7 +194,8 @@ class Recorder:
             return self.refuse_with
         content = envelope.original_content or b""
         self.envelopes.append(envelope)
-        self.messages.append(message_from_bytes(content, policy=policy.default))  # type: ignore[arg-type]
+        parsed = message_from_bytes(content, policy=policy.default)
+        self.messages.append(parsed)  # type: ignore[arg-type]
         return "250 Message accepted for delivery"
 
     def keys(self) -> Counter[str]:
