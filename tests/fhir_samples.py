@@ -30,7 +30,9 @@ def patient(pid: str = "hg-pat-1", mrn: str = "HG100001", birth: str = "1961-04-
     }
 
 
-def encounter(eid: str = "hg-enc-1", pid: str = "hg-pat-1", where: str = "ICU-North, Room 4, Bed 2") -> Resource:
+def encounter(
+    eid: str = "hg-enc-1", pid: str = "hg-pat-1", where: str = "ICU-North, Room 4, Bed 2"
+) -> Resource:
     return {
         "resourceType": "Encounter",
         "id": eid,
@@ -38,9 +40,17 @@ def encounter(eid: str = "hg-enc-1", pid: str = "hg-pat-1", where: str = "ICU-No
         "class": {"system": "http://terminology.hl7.org/CodeSystem/v3-ActCode", "code": "IMP"},
         "subject": {"reference": f"Patient/{pid}"},
         "location": [
-            {"location": {"reference": "Location/ward-5b-1-1", "display": "Ward-5B, Room 1, Bed 1"},
-             "status": "completed"},
-            {"location": {"reference": "Location/icu-north-4-2", "display": where}, "status": "active"},
+            {
+                "location": {
+                    "reference": "Location/ward-5b-1-1",
+                    "display": "Ward-5B, Room 1, Bed 1",
+                },
+                "status": "completed",
+            },
+            {
+                "location": {"reference": "Location/icu-north-4-2", "display": where},
+                "status": "active",
+            },
         ],
     }
 
@@ -63,13 +73,23 @@ def quantity_obs(
         "id": oid,
         "status": status,
         "category": [
-            {"coding": [{"system": "http://terminology.hl7.org/CodeSystem/observation-category",
-                         "code": "laboratory"}]}
+            {
+                "coding": [
+                    {
+                        "system": "http://terminology.hl7.org/CodeSystem/observation-category",
+                        "code": "laboratory",
+                    }
+                ]
+            }
         ],
         "code": {"coding": [{"system": LOINC, "code": code}]},
         "subject": {"reference": f"Patient/{pid}"},
         "effectiveDateTime": when,
-        "valueQuantity": {"value": value, "unit": unit, **({"system": UCUM, "code": unit} if ucum else {})},
+        "valueQuantity": {
+            "value": value,
+            "unit": unit,
+            **({"system": UCUM, "code": unit} if ucum else {}),
+        },
     }
     if eid:
         obs["encounter"] = {"reference": f"Encounter/{eid}"}
@@ -106,14 +126,22 @@ def gas_panel_with_components(oid: str = "hg-gas-2", pid: str = "hg-pat-1") -> R
         "subject": {"reference": f"Patient/{pid}"},
         "effectiveDateTime": "2026-11-30T09:00:00Z",
         "component": [
-            {"code": {"coding": [{"system": LOINC, "code": "2703-7"}]},
-             "valueQuantity": {"value": 68, "unit": "mmHg", "system": UCUM, "code": "mm[Hg]"}},
-            {"code": {"coding": [{"system": LOINC, "code": "2019-8"}]},
-             "valueQuantity": {"value": 5.6, "unit": "kPa", "system": UCUM, "code": "kPa"}},
-            {"code": {"coding": [{"system": LOINC, "code": "3150-0"}]},
-             "valueQuantity": {"value": 40, "unit": "%", "system": UCUM, "code": "%"}},
-            {"code": {"coding": [{"system": LOINC, "code": "99999-9"}]},
-             "valueQuantity": {"value": 1, "unit": "1"}},
+            {
+                "code": {"coding": [{"system": LOINC, "code": "2703-7"}]},
+                "valueQuantity": {"value": 68, "unit": "mmHg", "system": UCUM, "code": "mm[Hg]"},
+            },
+            {
+                "code": {"coding": [{"system": LOINC, "code": "2019-8"}]},
+                "valueQuantity": {"value": 5.6, "unit": "kPa", "system": UCUM, "code": "kPa"},
+            },
+            {
+                "code": {"coding": [{"system": LOINC, "code": "3150-0"}]},
+                "valueQuantity": {"value": 40, "unit": "%", "system": UCUM, "code": "%"},
+            },
+            {
+                "code": {"coding": [{"system": LOINC, "code": "99999-9"}]},
+                "valueQuantity": {"value": 1, "unit": "1"},
+            },
         ],
     }
 
@@ -126,16 +154,26 @@ def spo2_with_flow(oid: str = "hg-spo2-1", pid: str = "hg-pat-1") -> Resource:
         "id": oid,
         "status": "final",
         "category": [
-            {"coding": [{"system": "http://terminology.hl7.org/CodeSystem/observation-category",
-                         "code": "vital-signs"}]}
+            {
+                "coding": [
+                    {
+                        "system": "http://terminology.hl7.org/CodeSystem/observation-category",
+                        "code": "vital-signs",
+                    }
+                ]
+            }
         ],
-        "code": {"coding": [{"system": LOINC, "code": "2708-6"}, {"system": LOINC, "code": "59408-5"}]},
+        "code": {
+            "coding": [{"system": LOINC, "code": "2708-6"}, {"system": LOINC, "code": "59408-5"}]
+        },
         "subject": {"reference": f"Patient/{pid}"},
         "effectiveDateTime": "2026-11-30T08:10:00+01:00",
         "valueQuantity": {"value": 93, "unit": "%", "system": UCUM, "code": "%"},
         "component": [
-            {"code": {"coding": [{"system": LOINC, "code": "3151-8"}]},
-             "valueQuantity": {"value": 4, "unit": "L/min", "system": UCUM, "code": "L/min"}}
+            {
+                "code": {"coding": [{"system": LOINC, "code": "3151-8"}]},
+                "valueQuantity": {"value": 4, "unit": "L/min", "system": UCUM, "code": "L/min"},
+            }
         ],
     }
 

@@ -20,7 +20,9 @@ import orjson
 from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, Rejection
 
 
-def bundle_entries(bundle: dict[str, Any], skipped: Counter[str]) -> Iterator[tuple[dict[str, Any], str | None]]:
+def bundle_entries(
+    bundle: dict[str, Any], skipped: Counter[str]
+) -> Iterator[tuple[dict[str, Any], str | None]]:
     """(resource, fullUrl) of each entry gasgap should read; the rest counted in ``skipped``."""
     for entry in bundle.get("entry") or []:
         if not isinstance(entry, dict):
@@ -48,7 +50,9 @@ def read_bundle(builder: FhirReadingBuilder, bundle: dict[str, Any]) -> FhirBatc
         return builder.read(bundle)
     entries = list(bundle_entries(bundle, batch.skipped))
     builder.note_panels(res for res, _ in entries)
-    context_first = sorted(entries, key=lambda e: 0 if e[0].get("resourceType") in ("Patient", "Encounter") else 1)
+    context_first = sorted(
+        entries, key=lambda e: 0 if e[0].get("resourceType") in ("Patient", "Encounter") else 1
+    )
     for resource, full_url in context_first:
         if resource.get("resourceType") == "Bundle":
             batch.extend(read_bundle(builder, resource))
@@ -57,7 +61,9 @@ def read_bundle(builder: FhirReadingBuilder, bundle: dict[str, Any]) -> FhirBatc
     return batch
 
 
-def read_bundle_bytes(builder: FhirReadingBuilder, body: bytes, source: str = "Bundle") -> FhirBatch:
+def read_bundle_bytes(
+    builder: FhirReadingBuilder, body: bytes, source: str = "Bundle"
+) -> FhirBatch:
     """Decode JSON (orjson) and read it; invalid JSON is one rejection, not an exception."""
     try:
         data = orjson.loads(body)
@@ -111,7 +117,9 @@ def read_ndjson(builder: FhirReadingBuilder, path: str | Path) -> FhirBatch:
     name = Path(path).name
     for number, item in iter_ndjson(path):
         if isinstance(item, bytes):
-            batch.rejections.append(Rejection(f"{name}:{number}", ndjson_line_reason(number, item), item))
+            batch.rejections.append(
+                Rejection(f"{name}:{number}", ndjson_line_reason(number, item), item)
+            )
             continue
         before = len(batch.rejections)
         builder.note_panels([item])

@@ -216,7 +216,11 @@ class FhirReadingBuilder:
         self.patient_id_system = patient_id_system
         self.strict = strict
         if received_at_fn is None:
-            received_at_fn = (lambda: received_at) if received_at else (lambda: datetime.now(UTC))
+            fixed = received_at
+
+            def received_at_fn() -> datetime:
+                return fixed or datetime.now(UTC)
+
         self._received_at_fn = received_at_fn
         self.patients: dict[str, PatientContext] = {}
         self.encounters: dict[str, EncounterContext] = {}
@@ -243,12 +247,17 @@ class FhirReadingBuilder:
     # --- reading -----------------------------------------------------------------
 
     def read(
-        self, resource: dict[str, Any], *, full_url: str | None = None, into: FhirBatch | None = None
+        self,
+        resource: dict[str, Any],
+        *,
+        full_url: str | None = None,
+        into: FhirBatch | None = None,
     ) -> FhirBatch:
         """Read one resource; return (or add to ``into``) what came of it."""
         batch = into if into is not None else FhirBatch()
         rtype = resource.get("resourceType") if isinstance(resource, dict) else None
-        label = f"{rtype or 'resource'}/{resource.get('id', '?') if isinstance(resource, dict) else '?'}"
+        rid = resource.get("id", "?") if isinstance(resource, dict) else "?"
+        label = f"{rtype or 'resource'}/{rid}"
         if rtype not in ("Observation", "Patient", "Encounter"):
             batch.skipped[f"resource {rtype or 'without resourceType'}"] += 1
             return batch
@@ -268,7 +277,9 @@ class FhirReadingBuilder:
         except Rejected as exc:
             batch.rejections.append(Rejection(label, str(exc), canonical_json(resource)))
         except ValidationError as exc:
-            batch.rejections.append(Rejection(label, f"{label} {_pydantic_reason(exc)}", canonical_json(resource)))
+            batch.rejections.append(
+                Rejection(label, f"{label} {_pydantic_reason(exc)}", canonical_json(resource))
+            )
         return batch
 
     def read_all(self, resources: Iterable[dict[str, Any]]) -> FhirBatch:
@@ -276,7 +287,9 @@ class FhirReadingBuilder:
         items = list(resources)
         batch = FhirBatch()
         self.note_panels(items)
-        for res in sorted(items, key=lambda x: 0 if x.get("resourceType") in ("Patient", "Encounter") else 1):
+        for res in sorted(
+            items, key=lambda x: 0 if x.get("resourceType") in ("Patient", "Encounter") else 1
+        ):
             self.read(res, into=batch)
         return batch
 
@@ -284,7 +297,9 @@ class FhirReadingBuilder:
         pat = r.Patient.model_validate(resource)
         label = f"Patient/{pat.id}"
         ids = [i for i in pat.identifier if i.value]
-        chosen = next((i for i in ids if self.patient_id_system and i.system == self.patient_id_system), None)
+        chosen = next(
+            (i for i in ids if self.patient_id_system and i.system == self.patient_id_system), None
+        )
         chosen = chosen or (ids[0] if ids else None)
         if chosen is None or not chosen.value:
             raise Rejected(f"{label} identifier is missing: gasgap needs one to key the patient")
@@ -315,7 +330,9 @@ class FhirReadingBuilder:
             if key:
                 self.encounters[key] = ctx
 
-    def _read_observation(self, resource: dict[str, Any], full_url: str | None, batch: FhirBatch) -> None:
+    def _read_observation(
+        self, resource: dict[str, Any], full_url: str | None, batch: FhirBatch
+    ) -> None:
         obs = r.Observation.model_validate(resource)
         obs_id = obs.id or (full_url.rsplit(":", 1)[-1].rsplit("/", 1)[-1] if full_url else None)
         if not obs_id:
@@ -342,10 +359,16 @@ class FhirReadingBuilder:
             return
         effective = self._effective(obs, label)
         patient = self._patient(obs, label)
-        encounter = self.encounters.get(reference_key(obs.encounter.reference) or "") if obs.encounter else None
+        encounter = (
+            self.encounters.get(reference_key(obs.encounter.reference) or "")
+            if obs.encounter
+            else None
+        )
         logical = f"fhir:{self.source_system}:{label}"
-        version = f"/_history/{obs.meta.versionId}" if obs.meta and obs.meta.versionId else (
-            f"/_content/{content_hash(resource)}"
+        version = (
+            f"/_history/{obs.meta.versionId}"
+            if obs.meta and obs.meta.versionId
+            else (f"/_content/{content_hash(resource)}")
         )
         panel_id = self.panel_of.get(label) or (obs_id if obs.component else None)
         received = self._received_at_fn()
@@ -383,13 +406,17 @@ class FhirReadingBuilder:
             except Rejected as exc:
                 batch.rejections.append(Rejection(where, str(exc), canonical_json(resource)))
             except InvalidReading as exc:
-                batch.rejections.append(Rejection(where, f"{where} {exc}", canonical_json(resource)))
+                batch.rejections.append(
+                    Rejection(where, f"{where} {exc}", canonical_json(resource))
+                )
 
     # --- pieces ------------------------------------------------------------------
 
     @staticmethod
     def _items(obs: r.Observation) -> list[_Item]:
-        items = [_Item("", "", obs.code, obs.valueQuantity, obs.valueCodeableConcept, obs.valueString)]
+        items = [
+            _Item("", "", obs.code, obs.valueQuantity, obs.valueCodeableConcept, obs.valueString)
+        ]
         for n, comp in enumerate(obs.component):
             items.append(
                 _Item(
@@ -440,7 +467,11 @@ class FhirReadingBuilder:
         if key and key in self.patients:
             return self.patients[key]
         ident = subject.identifier
-        if ident and ident.value and (self.patient_id_system is None or ident.system == self.patient_id_system):
+        if (
+            ident
+            and ident.value
+            and (self.patient_id_system is None or ident.system == self.patient_id_system)
+        ):
             return PatientContext(ident.value)
         if key and not key.startswith("#"):
             return PatientContext(key)
@@ -453,22 +484,23 @@ class FhirReadingBuilder:
         if kind is Kind.O2_DEVICE:
             return self._device(item, status, where)
         if item.quantity is not None and item.quantity.value is not None:
-            q = item.quantity
+            q, number = item.quantity, item.quantity.value
             unit_text = q.code if q.code and (q.system in (None, UCUM)) else q.unit
             field_name = "code" if unit_text == q.code and q.code else "unit"
             try:
-                value = to_canonical(kind, q.value, unit_text)
+                value = to_canonical(kind, number, unit_text)
             except InvalidReading:
                 if field_name == "code" and q.unit and q.unit != q.code:
                     try:
-                        value = to_canonical(kind, q.value, q.unit)
-                        return kind, value, None, _num(q.value), q.unit
+                        value = to_canonical(kind, number, q.unit)
+                        return kind, value, None, _num(number), q.unit
                     except InvalidReading:
                         pass
                 raise Rejected(
-                    f"{where} valueQuantity.{field_name} {unit_text!r} is not a unit gasgap knows for {kind}"
+                    f"{where} valueQuantity.{field_name} {unit_text!r} "
+                    f"is not a unit gasgap knows for {kind}"
                 ) from None
-            return kind, value, None, _num(q.value), unit_text or ""
+            return kind, value, None, _num(number), unit_text or ""
         if item.text is not None:
             try:
                 number, unit = parse_number(item.text)
@@ -481,13 +513,21 @@ class FhirReadingBuilder:
             return kind, None, None, "", ""
         raise Rejected(f"{where} value[x] is missing (a {obs.status} {kind} needs a value)")
 
-    def _device(self, item: _Item, status: Status, where: str) -> tuple[Kind, float | None, str | None, str, str]:
+    def _device(
+        self, item: _Item, status: Status, where: str
+    ) -> tuple[Kind, float | None, str | None, str, str]:
         concept, text = item.concept, item.text
         if concept is not None:
             for coding in concept.coding:
                 device = self.codes.device(coding.system, coding.code, coding.display)
                 if device:
-                    return Kind.O2_DEVICE, None, device.value, coding.code or coding.display or "", ""
+                    return (
+                        Kind.O2_DEVICE,
+                        None,
+                        device.value,
+                        coding.code or coding.display or "",
+                        "",
+                    )
             if concept.text:
                 text = concept.text
         if text:

@@ -142,7 +142,10 @@ class FhirPoller:
         Raises FhirSourceError when the server cannot be read; nothing of a failed
         poll is returned, so the caller's watermark stays where it was.
         """
-        params: dict[str, str] = {"code": ",".join(self.search_codes()), "_count": str(self.page_size)}
+        params: dict[str, str] = {
+            "code": ",".join(self.search_codes()),
+            "_count": str(self.page_size),
+        }
         if since is not None:
             params["_lastUpdated"] = "ge" + since.astimezone(UTC).isoformat().replace("+00:00", "Z")
         if self.include_panels:
@@ -164,7 +167,10 @@ class FhirPoller:
         result.skipped.update(batch.skipped)
         log.info(
             "FHIR poll of %s: %d pages, %d readings, %d rejected",
-            self.base_url, result.pages, len(result.readings), len(result.rejections),
+            self.base_url,
+            result.pages,
+            len(result.readings),
+            len(result.rejections),
         )
         return result
 
@@ -177,7 +183,7 @@ class FhirPoller:
                 ("subject", "Patient", self.builder.patients),
                 ("encounter", "Encounter", self.builder.encounters),
             ):
-                key = reference_key(((resource.get(field_name) or {}).get("reference")))
+                key = reference_key((resource.get(field_name) or {}).get("reference"))
                 if key and key.startswith(f"{rtype}/") and key not in cache:
                     wanted[rtype].add(key.split("/", 1)[1])
         for rtype, ids in wanted.items():
@@ -198,7 +204,11 @@ class FhirPoller:
             params = None  # a next link carries its own query
             yield page
             next_url = next(
-                (link.get("url") for link in page.get("link") or [] if link.get("relation") == "next"),
+                (
+                    link.get("url")
+                    for link in page.get("link") or []
+                    if link.get("relation") == "next"
+                ),
                 None,
             )
             if next_url and urlsplit(next_url)[:2] != self._origin:
@@ -228,7 +238,9 @@ class FhirPoller:
                     raise FhirSourceError(f"GET {where}: {problem}")
                 wait = _retry_after(response.headers.get("Retry-After"))
             if attempt >= self.max_retries:
-                raise FhirSourceError(f"GET {where}: {problem}; gave up after {self.max_retries} retries")
+                raise FhirSourceError(
+                    f"GET {where}: {problem}; gave up after {self.max_retries} retries"
+                )
             delay = min(_MAX_BACKOFF_S, wait if wait is not None else 2.0**attempt)
             log.warning("GET %s: %s; retry %d in %.1f s", where, problem, attempt + 1, delay)
             self._sleep(delay)
@@ -269,7 +281,9 @@ def _retry_after(value: str | None) -> float | None:
     return max(0.0, (when - datetime.now(UTC)).total_seconds())
 
 
-def _later(current: datetime | None, resource: dict[str, Any], skipped: Counter[str]) -> datetime | None:
+def _later(
+    current: datetime | None, resource: dict[str, Any], skipped: Counter[str]
+) -> datetime | None:
     """The later of ``current`` and the resource's meta.lastUpdated."""
     stamp = (resource.get("meta") or {}).get("lastUpdated")
     if not stamp:

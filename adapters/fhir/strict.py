@@ -12,6 +12,7 @@ from datetime import datetime
 from typing import Any
 
 from fhir.resources.R4B import get_fhir_model_class
+from fhir.resources.R4B.observation import Observation
 from pydantic import ValidationError
 
 
@@ -53,7 +54,7 @@ class OracleValue:
 
 def oracle_observation(resource: dict[str, Any]) -> OracleValue:
     """Parse an Observation with fhir.resources and pick out gasgap's fields."""
-    obs = get_fhir_model_class("Observation").model_validate(resource)
+    obs = Observation.model_validate(resource)
     q = obs.valueQuantity
     effective = obs.effectiveDateTime
     if effective is None and obs.effectivePeriod is not None:

@@ -58,7 +58,8 @@ def parse_notification(body: bytes, content_type: str | None) -> HookDelivery:
     media = (content_type or "application/fhir+json").split(";", 1)[0].strip().lower()
     if media not in _JSON_TYPES:
         raise HookPayloadError(
-            f"content type {content_type!r} is not FHIR JSON: subscribe with payload application/fhir+json"
+            f"content type {content_type!r} is not FHIR JSON: "
+            "subscribe with payload application/fhir+json"
         )
     try:
         data = orjson.loads(body)

@@ -89,7 +89,9 @@ def write_gas(client: httpx.Client, ids: dict[str, str]) -> None:
     put(client, s.venous_po2(f"vbg-{t}", pid=pid))
 
 
-def test_poll_reads_gas_with_canonical_values_and_context(fhir_server: str, ward: dict[str, str], poller: Callable[..., FhirPoller]) -> None:
+def test_poll_reads_gas_with_canonical_values_and_context(
+    fhir_server: str, ward: dict[str, str], poller: Callable[..., FhirPoller]
+) -> None:
     start = datetime.now(UTC) - timedelta(seconds=5)
     with httpx.Client(base_url=fhir_server, timeout=10) as client:
         write_gas(client, ward)
@@ -113,7 +115,9 @@ def test_poll_reads_gas_with_canonical_values_and_context(fhir_server: str, ward
     assert batch.watermark is not None and batch.watermark >= start
 
 
-def test_paging_follows_next_links(fhir_server: str, ward: dict[str, str], poller: Callable[..., FhirPoller]) -> None:
+def test_paging_follows_next_links(
+    fhir_server: str, ward: dict[str, str], poller: Callable[..., FhirPoller]
+) -> None:
     start = datetime.now(UTC) - timedelta(seconds=5)
     with httpx.Client(base_url=fhir_server, timeout=10) as client:
         write_gas(client, ward)
@@ -126,7 +130,9 @@ def test_paging_follows_next_links(fhir_server: str, ward: dict[str, str], polle
     assert len(mine(small, ward["mrn"])) == 4
 
 
-def test_second_poll_brings_only_updates_as_new_deliveries(fhir_server: str, ward: dict[str, str], poller: Callable[..., FhirPoller]) -> None:
+def test_second_poll_brings_only_updates_as_new_deliveries(
+    fhir_server: str, ward: dict[str, str], poller: Callable[..., FhirPoller]
+) -> None:
     start = datetime.now(UTC) - timedelta(seconds=5)
     src = poller(fhir_server)
     with httpx.Client(base_url=fhir_server, timeout=10) as client:
@@ -141,8 +147,14 @@ def test_second_poll_brings_only_updates_as_new_deliveries(fhir_server: str, war
 
         t = ward["tag"]
         withdrawn = s.quantity_obs(
-            f"pao2-{t}", "2703-7", 10.5, "kPa", pid=ward["pid"], eid=ward["eid"],
-            when="2026-11-30T08:15:00+01:00", status="entered-in-error",
+            f"pao2-{t}",
+            "2703-7",
+            10.5,
+            "kPa",
+            pid=ward["pid"],
+            eid=ward["eid"],
+            when="2026-11-30T08:15:00+01:00",
+            status="entered-in-error",
         )
         put(client, withdrawn)
         third = src.poll(first.watermark)
@@ -156,7 +168,9 @@ def test_second_poll_brings_only_updates_as_new_deliveries(fhir_server: str, war
     assert new_ids == {after[0].delivery_id}
 
 
-def test_poll_of_a_quiet_server_keeps_the_watermark(fhir_server: str, poller: Callable[..., FhirPoller]) -> None:
+def test_poll_of_a_quiet_server_keeps_the_watermark(
+    fhir_server: str, poller: Callable[..., FhirPoller]
+) -> None:
     future = datetime.now(UTC) + timedelta(days=1)
     batch = poller(fhir_server).poll(future)
     assert batch.readings == [] and batch.watermark == future

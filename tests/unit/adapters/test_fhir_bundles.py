@@ -22,7 +22,10 @@ RECEIVED = datetime(2026, 11, 30, 9, 0, tzinfo=UTC)
 @pytest.fixture
 def builder() -> FhirReadingBuilder:
     return FhirReadingBuilder(
-        CodeTable.load(), source_system=s.SOURCE, patient_id_system=s.MRN_SYSTEM, received_at=RECEIVED
+        CodeTable.load(),
+        source_system=s.SOURCE,
+        patient_id_system=s.MRN_SYSTEM,
+        received_at=RECEIVED,
     )
 
 
@@ -36,7 +39,9 @@ def stream() -> list[dict]:
 
 
 @pytest.mark.parametrize("kind", ["searchset", "collection", "transaction", "batch"])
-def test_each_bundle_type_gives_readings_with_patient_context(builder: FhirReadingBuilder, kind: str) -> None:
+def test_each_bundle_type_gives_readings_with_patient_context(
+    builder: FhirReadingBuilder, kind: str
+) -> None:
     batch = read_bundle(builder, s.bundle(kind, stream()))
     assert [r.kind for r in batch.readings] == [Kind.PAO2, Kind.FIO2]
     assert {r.patient_key for r in batch.readings} == {"HG100001"}
@@ -52,7 +57,10 @@ def test_transaction_deletes_are_counted_and_ignored(builder: FhirReadingBuilder
 def test_searchset_outcome_entries_are_not_read(builder: FhirReadingBuilder) -> None:
     bundle = s.bundle("searchset", stream())
     bundle["entry"].append(
-        {"resource": {"resourceType": "OperationOutcome", "issue": []}, "search": {"mode": "outcome"}}
+        {
+            "resource": {"resourceType": "OperationOutcome", "issue": []},
+            "search": {"mode": "outcome"},
+        }
     )
     batch = read_bundle(builder, bundle)
     assert batch.skipped["search outcome entry"] == 1 and len(batch.readings) == 2
@@ -61,16 +69,25 @@ def test_searchset_outcome_entries_are_not_read(builder: FhirReadingBuilder) -> 
 def test_post_entry_without_id_takes_the_uuid_of_its_full_url(builder: FhirReadingBuilder) -> None:
     obs = s.quantity_obs("x", "2703-7", 9.8, "kPa")
     del obs["id"]
-    bundle = {"resourceType": "Bundle", "type": "transaction", "entry": [
-        {"fullUrl": "urn:uuid:5a1d7c1e-0000-4000-8000-000000000001", "resource": obs,
-         "request": {"method": "POST", "url": "Observation"}},
-    ]}
+    bundle = {
+        "resourceType": "Bundle",
+        "type": "transaction",
+        "entry": [
+            {
+                "fullUrl": "urn:uuid:5a1d7c1e-0000-4000-8000-000000000001",
+                "resource": obs,
+                "request": {"method": "POST", "url": "Observation"},
+            },
+        ],
+    }
     batch = read_bundle(builder, bundle)
     assert batch.readings[0].logical_id.endswith("Observation/5a1d7c1e-0000-4000-8000-000000000001")
 
 
 def test_invalid_bundle_json_is_one_rejection(builder: FhirReadingBuilder) -> None:
-    batch = read_bundle_bytes(builder, b'{"resourceType": "Bundle", "entry": [', source="upload.json")
+    batch = read_bundle_bytes(
+        builder, b'{"resourceType": "Bundle", "entry": [', source="upload.json"
+    )
     assert batch.rejections[0].reason.startswith("upload.json: invalid JSON:")
 
 
@@ -96,9 +113,13 @@ def test_ndjson_bad_line_is_rejected_by_number_and_the_rest_go_on(
     assert batch.rejections[0].source == "Observation.ndjson:17"
 
 
-def test_ndjson_rejection_of_a_resource_names_its_line(builder: FhirReadingBuilder, tmp_path: Path) -> None:
+def test_ndjson_rejection_of_a_resource_names_its_line(
+    builder: FhirReadingBuilder, tmp_path: Path
+) -> None:
     path = tmp_path / "o.ndjson"
-    write_ndjson(path, [orjson.dumps(s.quantity_obs("o1", "2703-7", 9, "furlongs", ucum=False)), b"[1, 2]"])
+    write_ndjson(
+        path, [orjson.dumps(s.quantity_obs("o1", "2703-7", 9, "furlongs", ucum=False)), b"[1, 2]"]
+    )
     reasons = [r.reason for r in read_ndjson(builder, path).rejections]
     assert reasons[0].startswith("line 1: Observation/o1 valueQuantity.unit 'furlongs'")
     assert reasons[1] == "line 2: not a JSON object (a FHIR resource)"

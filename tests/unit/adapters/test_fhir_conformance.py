@@ -43,7 +43,12 @@ def observations(draw: st.DrawFn) -> dict:
     status = draw(st.sampled_from(["final", "preliminary", "amended", "corrected"]))
     obs = s.quantity_obs(
         draw(st.from_regex(r"[a-z0-9]{1,20}", fullmatch=True)),
-        code, value, unit, status=status, when=when.isoformat(), eid=None,
+        code,
+        value,
+        unit,
+        status=status,
+        when=when.isoformat(),
+        eid=None,
         version=draw(st.none() | st.integers(1, 99).map(str)),
     )
     if draw(st.booleans()):
@@ -57,7 +62,9 @@ def test_lean_and_strict_paths_read_the_same_values(obs: dict) -> None:
     assert validation_problem(obs) is None  # the generator makes valid FHIR
     oracle = oracle_observation(obs)
     lean = FhirReadingBuilder(CODES, source_system="h", received_at=RECEIVED).read(obs)
-    strict = FhirReadingBuilder(CODES, source_system="h", received_at=RECEIVED, strict=True).read(obs)
+    strict = FhirReadingBuilder(CODES, source_system="h", received_at=RECEIVED, strict=True).read(
+        obs
+    )
     assert not lean.rejections and not strict.rejections
     assert lean.readings == strict.readings
     (reading,) = lean.readings
@@ -69,14 +76,19 @@ def test_lean_and_strict_paths_read_the_same_values(obs: dict) -> None:
     assert reading.patient_key == oracle.subject
 
 
-@pytest.mark.parametrize(("code", "unit", "pint_unit", "value"), [
-    (q[0], q[1], q[2], v) for q in QUANTITIES if q[2] for v in (q[3][0], sum(q[3]) / 2)
-])
+@pytest.mark.parametrize(
+    ("code", "unit", "pint_unit", "value"),
+    [(q[0], q[1], q[2], v) for q in QUANTITIES if q[2] for v in (q[3][0], sum(q[3]) / 2)],
+)
 def test_pressures_match_pint(code: str, unit: str, pint_unit: str, value: float) -> None:
     obs = s.quantity_obs("p1", code, value, unit, eid=None)
-    (reading,) = FhirReadingBuilder(CODES, source_system="h", received_at=RECEIVED).read(obs).readings
+    (reading,) = (
+        FhirReadingBuilder(CODES, source_system="h", received_at=RECEIVED).read(obs).readings
+    )
     assert reading.kind in (Kind.PAO2, Kind.PACO2)
-    assert reading.value == pytest.approx(UREG.Quantity(value, pint_unit).to("mmHg").magnitude, rel=1e-9)
+    assert reading.value == pytest.approx(
+        UREG.Quantity(value, pint_unit).to("mmHg").magnitude, rel=1e-9
+    )
 
 
 def test_strict_validation_names_what_is_wrong() -> None:
@@ -84,4 +96,7 @@ def test_strict_validation_names_what_is_wrong() -> None:
     obs["valueQuantity"]["value"] = {"not": "a number"}
     problem = validation_problem(obs)
     assert problem is not None and "valueQuantity" in problem
-    assert validation_problem({"resourceType": "Teapot"}) == "resourceType 'Teapot' is not a FHIR resource type"
+    assert (
+        validation_problem({"resourceType": "Teapot"})
+        == "resourceType 'Teapot' is not a FHIR resource type"
+    )

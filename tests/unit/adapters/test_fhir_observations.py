@@ -29,7 +29,9 @@ def codes() -> CodeTable:
 
 @pytest.fixture
 def builder(codes: CodeTable) -> FhirReadingBuilder:
-    b = FhirReadingBuilder(codes, source_system=s.SOURCE, patient_id_system=s.MRN_SYSTEM, received_at=RECEIVED)
+    b = FhirReadingBuilder(
+        codes, source_system=s.SOURCE, patient_id_system=s.MRN_SYSTEM, received_at=RECEIVED
+    )
     b.read(s.patient())
     b.read(s.encounter())
     return b
@@ -55,7 +57,9 @@ def test_fio2_charted_as_percent_becomes_a_fraction(builder: FhirReadingBuilder)
     assert one(builder, s.quantity_obs("o1", "3150-0", 40, "%")).value == pytest.approx(0.40)
 
 
-def test_patient_key_is_the_identifier_in_the_configured_system(builder: FhirReadingBuilder) -> None:
+def test_patient_key_is_the_identifier_in_the_configured_system(
+    builder: FhirReadingBuilder,
+) -> None:
     reading = one(builder, s.quantity_obs("o1", "2019-8", 40, "mm[Hg]"))
     assert reading.patient_key == "HG100001"  # the MRN, not the first identifier
     assert reading.birth_date is not None and reading.birth_date.isoformat() == "1961-04-12"
@@ -66,7 +70,9 @@ def test_patient_key_is_the_identifier_in_the_configured_system(builder: FhirRea
 def test_unknown_patient_falls_back_to_the_subject_reference(codes: CodeTable) -> None:
     b = FhirReadingBuilder(codes, source_system=s.SOURCE, received_at=RECEIVED)
     obs = s.quantity_obs("o1", "2019-8", 40, "mm[Hg]", pid="hg-unknown")
-    obs["subject"]["reference"] = "https://ehr.hollowmere.invalid/fhir/Patient/hg-unknown/_history/3"
+    obs["subject"]["reference"] = (
+        "https://ehr.hollowmere.invalid/fhir/Patient/hg-unknown/_history/3"
+    )
     assert one(b, obs).patient_key == "Patient/hg-unknown"
 
 
@@ -97,11 +103,16 @@ def test_identity_follows_the_contract(builder: FhirReadingBuilder) -> None:
 def test_status_maps_as_the_reference_sheet_says(
     builder: FhirReadingBuilder, fhir_status: str, expected: Status
 ) -> None:
-    assert one(builder, s.quantity_obs("o1", "2703-7", 9.0, "kPa", status=fhir_status)).status is expected
+    assert (
+        one(builder, s.quantity_obs("o1", "2703-7", 9.0, "kPa", status=fhir_status)).status
+        is expected
+    )
 
 
 @pytest.mark.parametrize("fhir_status", ["registered", "unknown"])
-def test_registered_and_unknown_are_skipped_with_a_count(builder: FhirReadingBuilder, fhir_status: str) -> None:
+def test_registered_and_unknown_are_skipped_with_a_count(
+    builder: FhirReadingBuilder, fhir_status: str
+) -> None:
     batch = builder.read(s.quantity_obs("o1", "2703-7", 9.0, "kPa", status=fhir_status))
     assert batch.readings == [] and batch.rejections == []
     assert batch.skipped[f"status {fhir_status}"] == 1
@@ -116,9 +127,15 @@ def test_entered_in_error_without_value_retracts(builder: FhirReadingBuilder) ->
 
 @pytest.mark.parametrize(
     ("when", "why"),
-    [("2026-11-30", "no time of day"), ("2026-11-30T08:15:00", "no UTC offset"), ("yesterday", "no time")],
+    [
+        ("2026-11-30", "no time of day"),
+        ("2026-11-30T08:15:00", "no UTC offset"),
+        ("yesterday", "no time"),
+    ],
 )
-def test_time_without_offset_is_rejected_with_the_field(builder: FhirReadingBuilder, when: str, why: str) -> None:
+def test_time_without_offset_is_rejected_with_the_field(
+    builder: FhirReadingBuilder, when: str, why: str
+) -> None:
     batch = builder.read(s.quantity_obs("o1", "2703-7", 9.0, "kPa", when=when))
     assert batch.readings == []
     assert "Observation/o1 effectiveDateTime" in batch.rejections[0].reason
@@ -132,7 +149,9 @@ def test_effective_period_start_is_used_and_made_utc(builder: FhirReadingBuilder
     assert one(builder, obs).effective_at == datetime(2026, 12, 1, 4, 30, tzinfo=UTC)
 
 
-def test_unknown_unit_is_rejected_naming_resource_field_and_kind(builder: FhirReadingBuilder) -> None:
+def test_unknown_unit_is_rejected_naming_resource_field_and_kind(
+    builder: FhirReadingBuilder,
+) -> None:
     obs = s.quantity_obs("abc", "2703-7", 9.0, "furlongs", ucum=False)
     batch = builder.read(obs)
     assert batch.rejections[0].reason == (
@@ -192,14 +211,18 @@ def test_ventilator_setting_is_marked(builder: FhirReadingBuilder) -> None:
     assert one(builder, s.quantity_obs("o2", "3150-0", 30, "%")).from_ventilator is False
 
 
-def test_gas_panel_with_components_reads_each_and_skips_unknown_codes(builder: FhirReadingBuilder) -> None:
+def test_gas_panel_with_components_reads_each_and_skips_unknown_codes(
+    builder: FhirReadingBuilder,
+) -> None:
     batch = builder.read(s.gas_panel_with_components())
     kinds = [r.kind for r in batch.readings]
     assert kinds == [Kind.PAO2, Kind.PACO2, Kind.FIO2]
     assert batch.readings[1].value == pytest.approx(UREG.Quantity(5.6, "kPa").to("mmHg").magnitude)
     assert batch.skipped_codes == {"http://loinc.org|99999-9": 1}
     assert [r.logical_id.rsplit("#", 1)[-1] for r in batch.readings] == [
-        "component-0", "component-1", "component-2"
+        "component-0",
+        "component-1",
+        "component-2",
     ]
 
 
@@ -219,7 +242,9 @@ def test_venous_specimen_overrides_the_arterial_code(builder: FhirReadingBuilder
 
 def test_contained_capillary_specimen_overrides(builder: FhirReadingBuilder) -> None:
     obs = s.quantity_obs("o1", "2703-7", 8.0, "kPa")
-    obs["contained"] = [{"resourceType": "Specimen", "id": "sp", "type": {"text": "Capillary blood"}}]
+    obs["contained"] = [
+        {"resourceType": "Specimen", "id": "sp", "type": {"text": "Capillary blood"}}
+    ]
     obs["specimen"] = {"reference": "#sp"}
     assert one(builder, obs).specimen is Specimen.CAPILLARY
 

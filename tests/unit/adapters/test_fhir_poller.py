@@ -27,7 +27,9 @@ def searchset(resources: list[dict], next_url: str | None = None) -> dict:
     return bundle
 
 
-def make(handler: Callable[[httpx.Request], httpx.Response], **kw: object) -> tuple[FhirPoller, list[float]]:
+def make(
+    handler: Callable[[httpx.Request], httpx.Response], **kw: object
+) -> tuple[FhirPoller, list[float]]:
     slept: list[float] = []
     poller = FhirPoller(
         BASE,
@@ -77,7 +79,9 @@ def test_search_asks_for_known_codes_since_the_watermark() -> None:
 
 def test_paging_follows_next_and_fetches_context_once() -> None:
     pages = {
-        "1": searchset([s.quantity_obs("o1", "2703-7", 10, "kPa")], next_url=f"{BASE}/Observation?page=2"),
+        "1": searchset(
+            [s.quantity_obs("o1", "2703-7", 10, "kPa")], next_url=f"{BASE}/Observation?page=2"
+        ),
         "2": searchset([s.quantity_obs("o2", "3150-0", 40, "%")]),
     }
     calls: list[str] = []
@@ -98,7 +102,10 @@ def test_paging_follows_next_and_fetches_context_once() -> None:
 
 
 def test_429_waits_as_retry_after_says_then_succeeds() -> None:
-    answers = [httpx.Response(429, headers={"Retry-After": "7"}), httpx.Response(200, json=searchset([]))]
+    answers = [
+        httpx.Response(429, headers={"Retry-After": "7"}),
+        httpx.Response(200, json=searchset([])),
+    ]
     poller, slept = make(lambda request: answers.pop(0))
     with poller:
         poller.poll(None)
@@ -130,10 +137,17 @@ def test_timeouts_are_retried() -> None:
 
 
 def test_client_errors_are_not_retried_and_carry_the_outcome() -> None:
-    outcome = {"resourceType": "OperationOutcome", "issue": [{"severity": "error", "code": "invalid",
-                                                              "diagnostics": "Unknown parameter _revinclude"}]}
+    outcome = {
+        "resourceType": "OperationOutcome",
+        "issue": [
+            {"severity": "error", "code": "invalid", "diagnostics": "Unknown parameter _revinclude"}
+        ],
+    }
     poller, slept = make(lambda request: httpx.Response(400, json=outcome))
-    with poller, pytest.raises(FhirSourceError, match="HTTP 400 \\(Unknown parameter _revinclude\\)"):
+    with (
+        poller,
+        pytest.raises(FhirSourceError, match="HTTP 400 \\(Unknown parameter _revinclude\\)"),
+    ):
         poller.poll(None)
     assert slept == []
 

@@ -21,7 +21,9 @@ def test_empty_body_is_a_ping(body: bytes) -> None:
 
 
 def test_a_resource_payload_is_read_like_any_other() -> None:
-    delivery = parse_notification(orjson.dumps(s.device_obs()), "application/fhir+json; charset=utf-8")
+    delivery = parse_notification(
+        orjson.dumps(s.device_obs()), "application/fhir+json; charset=utf-8"
+    )
     assert delivery.kind is HookKind.RESOURCES
     builder = FhirReadingBuilder(
         CodeTable.load(), source_system=s.SOURCE, received_at=datetime(2026, 11, 30, tzinfo=UTC)
@@ -31,8 +33,13 @@ def test_a_resource_payload_is_read_like_any_other() -> None:
 
 
 def notification_bundle(note_type: str, resources: list[dict]) -> dict:
-    status = {"resourceType": "SubscriptionStatus", "id": "st", "status": "active", "type": note_type,
-              "subscription": {"reference": "Subscription/gasgap-gas"}}
+    status = {
+        "resourceType": "SubscriptionStatus",
+        "id": "st",
+        "status": "active",
+        "type": note_type,
+        "subscription": {"reference": "Subscription/gasgap-gas"},
+    }
     bundle = s.bundle("history", [status, *resources])
     bundle["type"] = "subscription-notification"
     return bundle
@@ -52,7 +59,9 @@ def test_id_only_notification_is_a_ping() -> None:
 
 
 def test_heartbeat_is_neither_ping_nor_data() -> None:
-    delivery = parse_notification(orjson.dumps(notification_bundle("heartbeat", [])), "application/json")
+    delivery = parse_notification(
+        orjson.dumps(notification_bundle("heartbeat", [])), "application/json"
+    )
     assert delivery.kind is HookKind.HEARTBEAT and delivery.resources == ()
 
 
@@ -64,6 +73,8 @@ def test_heartbeat_is_neither_ping_nor_data() -> None:
         (b'{"id": "x"}', None, "no resourceType"),
     ],
 )
-def test_unreadable_deliveries_raise_with_a_reason(body: bytes, ctype: str | None, why: str) -> None:
+def test_unreadable_deliveries_raise_with_a_reason(
+    body: bytes, ctype: str | None, why: str
+) -> None:
     with pytest.raises(HookPayloadError, match=why):
         parse_notification(body, ctype)
