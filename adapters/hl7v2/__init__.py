@@ -8,10 +8,12 @@
 """
 
 from adapters.hl7v2.ack import Hl7Error, build_ack
+from adapters.hl7v2.files import iter_hl7_file
 from adapters.hl7v2.framing import MessageTooLarge, MllpFramer, frame
+from adapters.hl7v2.mllp import AckDecision, MllpListener
 from adapters.hl7v2.parse import ParsedMessage, Rejection, parse_oru
 
 __all__ = [
-    "Hl7Error", "MessageTooLarge", "MllpFramer", "ParsedMessage", "Rejection",
-    "build_ack", "frame", "parse_oru",
+    "AckDecision", "Hl7Error", "MessageTooLarge", "MllpFramer", "MllpListener",
+    "ParsedMessage", "Rejection", "build_ack", "frame", "iter_hl7_file", "parse_oru",
 ]

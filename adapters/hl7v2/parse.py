@@ -394,9 +394,27 @@ def parse_oru(
     ctx = _Context(codes, source_system, site_tz, received_at.astimezone(UTC), control_id,
                    patient_id_system, oximetry, seg)
     result = ParsedMessage(control_id, message_type, version)
+    taken: list[tuple[str, Reading]] = []
     for order in _orders(segments):
-        _read_order(ctx, order, result)
+        _read_order(ctx, order, result, taken)
+    _drop_ambiguous(taken, result)
     return result
+
+
+def _drop_ambiguous(taken: list[tuple[str, Reading]], out: ParsedMessage) -> None:
+    """Two OBXs naming the same result (order, code, sub-id) in one message: neither
+    can be trusted over the other, so both are rejected."""
+    where_by_id: dict[str, list[str]] = {}
+    for where, reading in taken:
+        where_by_id.setdefault(reading.logical_id, []).append(where)
+    for where, reading in taken:
+        places = where_by_id[reading.logical_id]
+        if len(places) == 1:
+            out.readings.append(reading)
+        else:
+            others = ", ".join(p for p in places if p != where)
+            out.rejected.append(Rejection(
+                f"{where}-3", f"same OBR-3, OBX-3 and OBX-4 as {others}: ambiguous result"))
 
 
 def _is_oximetry(seg: _Segments, obx: hl7.Segment, codes: CodeTable) -> bool:
@@ -404,7 +422,9 @@ def _is_oximetry(seg: _Segments, obx: hl7.Segment, codes: CodeTable) -> bool:
     return entry is not None and entry.oximetry
 
 
-def _lookup(seg: _Segments, obx: hl7.Segment, codes: CodeTable) -> tuple[CodeEntry | None, str, str]:
+def _lookup(
+    seg: _Segments, obx: hl7.Segment, codes: CodeTable
+) -> tuple[CodeEntry | None, str, str]:
     """The code table entry for OBX-3 (primary coding, then the alternate one)."""
     code, system = seg.get(obx, 3, 1), seg.get(obx, 3, 3)
     entry = codes.lookup(system or None, code) if code else None
@@ -427,7 +447,9 @@ class _OrderFacts:
     encounter_id: str | None
 
 
-def _read_order(ctx: _Context, order: _Order, out: ParsedMessage) -> None:
+def _read_order(
+    ctx: _Context, order: _Order, out: ParsedMessage, taken: list[tuple[str, Reading]]
+) -> None:
     try:
         facts = _order_facts(ctx, order, out)
     except ValueError as exc:
@@ -444,7 +466,7 @@ def _read_order(ctx: _Context, order: _Order, out: ParsedMessage) -> None:
             out.rejected.append(Rejection(f"{where}-5", str(exc)))
         else:
             if reading is not None:
-                out.readings.append(reading)
+                taken.append((where, reading))
 
 
 def _order_facts(ctx: _Context, order: _Order, out: ParsedMessage) -> _OrderFacts:
@@ -550,7 +572,7 @@ def _read_obx(
     return Reading(
         patient_key=facts.patient_key, kind=kind, value=value, effective_at=effective,
         received_at=ctx.received_at, source_system=ctx.source_system, logical_id=logical_id,
-        delivery_id=f"{logical_id}@{ctx.control_id}:{seg.get(obx, 1)}", status=status,
+        delivery_id=f"{logical_id}@{ctx.control_id}:{seg.get(obx, 1) or where}", status=status,
         specimen=specimen, original_value=original_value, original_unit=original_unit,
         code=code, code_system=normalise_system(system) if system else "",
         code_value=code_value, panel_id=facts.filler_order, from_ventilator=entry.ventilator,
@@ -581,7 +603,8 @@ def _value(
         raise _Bad(f"{where}-5", f"no value")
     if kind is Kind.O2_DEVICE:
         if value_type not in _CODED_TYPES | {"ST", "TX"}:
-            raise _Bad(f"{where}-2", f"value type {value_type or 'empty'} cannot carry an O2 device")
+            raise _Bad(f"{where}-2",
+                       f"value type {value_type or 'empty'} cannot carry an O2 device")
         code = first if value_type in _CODED_TYPES else ""
         text = (comps[1][0] if len(comps) > 1 else "") if value_type in _CODED_TYPES else first
         system = comps[2][0] if value_type in _CODED_TYPES and len(comps) > 2 else None

@@ -180,7 +180,7 @@ def test_a_50_mb_message_is_refused_and_the_connection_stays_usable(serve) -> No
     assert len(store.readings) == 5
 
 
-def test_an_exception_in_the_callback_is_ae_and_the_listener_lives_on(serve) -> None:  # noqa: ANN001
+def test_a_callback_exception_is_ae_and_the_listener_lives_on(serve) -> None:  # noqa: ANN001
     calls: list[int] = []
 
     def failing(raw: bytes) -> AckDecision:

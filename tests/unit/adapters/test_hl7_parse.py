@@ -140,6 +140,19 @@ def test_the_sub_id_separates_two_results_with_the_same_code() -> None:
     assert len(ids) == 2
 
 
+def test_two_obx_for_the_same_result_in_one_message_are_both_rejected() -> None:
+    result = parse(single_obx(s.obx(1, "2703-7", "70", "mm[Hg]"),
+                              s.obx(2, "2703-7", "50", "mm[Hg]"),
+                              s.obx(3, "2019-8", "41", "mm[Hg]")))
+    assert [r.kind for r in result.readings] == [Kind.PACO2]
+    assert [r.where for r in result.rejected] == ["OBX[1]-3", "OBX[2]-3"]
+
+
+def test_an_empty_set_id_falls_back_to_the_obx_position_for_the_delivery_id() -> None:
+    reading = one(single_obx(s.obx(1, "2703-7", "70", "mm[Hg]").replace("OBX|1|", "OBX||")))
+    assert reading.delivery_id.endswith("@HGH0100:OBX[1]")
+
+
 # --- statuses (reference sheet section 11, HL7 Table 0085) --------------------------------
 
 
