@@ -12,12 +12,16 @@ Patient data here is invented (Hollowmere General Hospital).
 
 import importlib.util
 import json
+import shutil
 import socket
+import ssl
+import subprocess
 import threading
 import time
 from collections import Counter
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, replace
+from pathlib import Path
 from datetime import UTC, datetime
 from email import message_from_bytes, policy
 from email.message import EmailMessage
@@ -230,10 +234,20 @@ class SmtpPeer:
             self.controller = None
 
 
-def _smtp_peer(auth: bool) -> SmtpPeer:
+def _smtp_peer(auth: bool, tls_context: ssl.SSLContext | None = None) -> SmtpPeer:
     recorder = Recorder()
 
     def make(port: int) -> Controller:
+        if tls_context is not None:  # STARTTLS required, then AUTH (aiosmtpd's default)
+            return Controller(
+                recorder,
+                hostname=LOOPBACK,
+                port=port,
+                tls_context=tls_context,
+                require_starttls=True,
+                authenticator=_authenticator,
+                auth_required=auth,
+            )
         if not auth:
             return Controller(recorder, hostname=LOOPBACK, port=port)
         return Controller(
@@ -266,6 +280,34 @@ ALLOW_AUTH_WITHOUT_TLS = pytest.mark.filterwarnings(
 @pytest.fixture
 def smtp_auth_server() -> Iterator[SmtpPeer]:
     peer = _smtp_peer(auth=True)
+    peer.up()
+    yield peer
+    peer.down()
+
+
+@pytest.fixture(scope="session")
+def loopback_certificate(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A throw-away self-signed certificate for 127.0.0.1 (key beside it as key.pem)."""
+    openssl = shutil.which("openssl")
+    if openssl is None:
+        service_missing("openssl command", "needed to make a test certificate")
+    directory = tmp_path_factory.mktemp("tls")
+    cert, key = directory / "cert.pem", directory / "key.pem"
+    subprocess.run(
+        [str(openssl), "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "1",
+         "-subj", "/CN=127.0.0.1", "-addext", "subjectAltName=IP:127.0.0.1",
+         "-keyout", str(key), "-out", str(cert)],
+        check=True, capture_output=True, timeout=60,
+    )  # fmt: skip
+    return cert
+
+
+@pytest.fixture
+def smtp_tls_server(loopback_certificate: Path) -> Iterator[SmtpPeer]:
+    """SMTP on loopback that requires STARTTLS and then AUTH."""
+    context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+    context.load_cert_chain(loopback_certificate, loopback_certificate.parent / "key.pem")
+    peer = _smtp_peer(auth=True, tls_context=context)
     peer.up()
     yield peer
     peer.down()

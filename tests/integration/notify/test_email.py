@@ -3,6 +3,7 @@
 import smtplib
 from email.headerregistry import HeaderRegistry
 from html.parser import HTMLParser
+from pathlib import Path
 
 import pytest
 
@@ -183,3 +184,33 @@ def test_email_options_refuse_starttls_with_ssl_naming_the_alias() -> None:
 def test_email_options_refuse_a_recipient_that_is_not_an_address() -> None:
     with pytest.raises(ChannelConfigError, match="option to"):
         build_channel("icu-north-mail", email_options(25, to=["charge nurse"]))
+
+
+def test_email_upgrades_with_starttls_then_logs_in(
+    smtp_tls_server: SmtpPeer, loopback_certificate: Path
+) -> None:
+    channel = mail(
+        smtp_tls_server.port,
+        starttls=True,
+        ca_file=str(loopback_certificate),
+        user=SMTP_USER,
+        password_env="HGH_SMTP_PASSWORD",
+    )
+    assert channel.send(make_notification()).ok
+    assert len(smtp_tls_server.recorder.messages) == 1
+
+
+def test_email_starttls_with_an_untrusted_certificate_is_dead(smtp_tls_server: SmtpPeer) -> None:
+    # Without ca_file the system trust store is used, which does not know our test
+    # certificate: a configuration problem that retrying cannot fix.
+    channel = mail(
+        smtp_tls_server.port, starttls=True, user=SMTP_USER, password_env="HGH_SMTP_PASSWORD"
+    )
+    result = channel.send(make_notification())
+    assert not result.ok and not result.retryable
+    assert smtp_tls_server.recorder.messages == []
+
+
+def test_email_to_a_server_requiring_starttls_without_it_is_dead(smtp_tls_server: SmtpPeer) -> None:
+    result = mail(smtp_tls_server.port).send(make_notification())
+    assert not result.ok and not result.retryable  # 530 must issue STARTTLS first

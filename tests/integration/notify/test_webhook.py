@@ -162,3 +162,24 @@ def test_webhook_missing_secret_variable_is_named_in_the_error(
 def test_webhook_rejects_unknown_options_naming_the_alias(http_receiver: HttpReceiver) -> None:
     with pytest.raises(ChannelConfigError, match='"icu-north-hook".*option secret'):
         webhook(http_receiver, secret="inline secrets are not allowed")
+
+
+def test_webhook_logs_name_the_display_key_but_never_the_patient_key(
+    http_receiver: HttpReceiver, caplog: pytest.LogCaptureFixture
+) -> None:
+    http_receiver.script = [503]
+    channel = webhook(http_receiver)
+    with caplog.at_level("INFO", logger="gasgap.notify.icu-north-hook"):
+        channel.send(make_notification())
+        channel.send(make_notification())
+    channel.close()
+    records = [
+        r
+        for r in caplog.records
+        if r.name == "gasgap.notify.icu-north-hook" and "flag for" in r.getMessage()
+    ]
+    assert [r.levelname for r in records] == ["WARNING", "INFO"]
+    assert all("HGH bed ICU-N-1" in r.getMessage() for r in records)
+    assert not any("hgh-pt-0001" in r.getMessage() for r in records)
+    assert not any("alert-0001" in r.getMessage() for r in records)
+    assert all(r.args for r in records)  # lazy %s arguments
