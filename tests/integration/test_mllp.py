@@ -231,3 +231,30 @@ def test_an_idle_connection_is_closed_after_the_read_timeout(serve) -> None:  # 
     running = serve(Store(), read_timeout=0.2)
     with connect(running.port) as sock:
         assert sock.recv(10) == b""  # closed by the listener, not by us
+
+
+def test_mllp_over_tls_with_a_self_signed_certificate(serve, tmp_path) -> None:  # noqa: ANN001
+    import shutil
+    import ssl
+    import subprocess
+
+    from tests.conftest import service_missing
+
+    if shutil.which("openssl") is None:
+        service_missing("openssl", "needed to make a throwaway test certificate")
+    cert, key = tmp_path / "cert.pem", tmp_path / "key.pem"
+    subprocess.run(
+        ["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "1",
+         "-subj", "/CN=127.0.0.1", "-addext", "subjectAltName=IP:127.0.0.1",
+         "-keyout", str(key), "-out", str(cert)],
+        check=True, capture_output=True, timeout=60,
+    )
+    server_ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+    server_ctx.load_cert_chain(cert, key)
+    client_ctx = ssl.create_default_context(cafile=str(cert))
+    running = serve(Store(), ssl=server_ctx)
+    with connect(running.port) as raw_sock, client_ctx.wrap_socket(
+        raw_sock, server_hostname="127.0.0.1"
+    ) as sock:
+        sock.sendall(VT + s.ABG_251.encode() + FS + CR)
+        assert validated(read_ack(sock, bytearray())).msa.msa_1.to_er7() == "AA"  # type: ignore[arg-type]

@@ -143,3 +143,22 @@ def test_an_oversized_message_in_a_file_is_skipped(tmp_path: Path) -> None:
     path = tmp_path / "feed.hl7"
     path.write_bytes(M1 + b"MSH|^~\\&|X\r" + b"OBX|1\r" * 5000 + M2)
     assert list(iter_hl7_file(path, max_message_bytes=len(M1) + 10)) == [M1, M2]
+
+
+@given(st.lists(st.integers(min_value=0, max_value=6000), max_size=10))
+def test_an_oversized_frame_between_good_ones_loses_neither_neighbour(cuts: list[int]) -> None:
+    big = b"MSH|^~\\&|BIG\r" + b"NTE|" * 1000
+    stream = wrapped(M1) + wrapped(big) + wrapped(M2)
+    points = sorted({min(c, len(stream)) for c in cuts})
+    pieces = [stream[a:b] for a, b in zip([0, *points], [*points, len(stream)], strict=True)]
+    framer = MllpFramer(max_message_bytes=len(M1) + len(M2))
+    got: list[bytes] = []
+    refused = 0
+    for piece in pieces:
+        try:
+            got += framer.feed(piece)
+        except MessageTooLarge as exc:
+            refused += 1
+            got += exc.messages
+            got += framer.feed(b"")
+    assert got == [M1, M2] and refused == 1
