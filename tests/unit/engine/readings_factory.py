@@ -5,6 +5,7 @@ the sample most tests pair.
 """
 
 from datetime import UTC, date, datetime, timedelta
+from typing import Any
 
 from monitor.engine.model import Kind, Location, Reading, Specimen, Status
 
@@ -68,31 +69,38 @@ def pao2(
     *,
     specimen: Specimen = Specimen.ARTERIAL,
     panel_id: str | None = "ABG-1",
-    **kw: object,
+    **kw: Any,
 ) -> Reading:
     """The sample: an arterial PaO2 (mmHg) in panel ABG-1 by default."""
     kw.setdefault("logical_id", f"pao2-{panel_id or at.isoformat()}")
     kw.setdefault("location", ICU_NORTH)
-    return reading(Kind.PAO2, value, at, specimen=specimen, panel_id=panel_id, **kw)  # type: ignore[arg-type]
+    return reading(Kind.PAO2, value, at, specimen=specimen, panel_id=panel_id, **kw)
 
 
-def lab(kind: Kind, value: float, at: datetime = T0, *, panel_id: str | None = "ABG-1",
-        specimen: Specimen = Specimen.ARTERIAL, **kw: object) -> Reading:
+def lab(
+    kind: Kind,
+    value: float,
+    at: datetime = T0,
+    *,
+    panel_id: str | None = "ABG-1",
+    specimen: Specimen = Specimen.ARTERIAL,
+    **kw: Any,
+) -> Reading:
     """A same-panel blood-gas result (PaCO2, pH, SaO2, Hb ...)."""
     kw.setdefault("logical_id", f"{kind.value}-{panel_id or at.isoformat()}")
-    return reading(kind, value, at, panel_id=panel_id, specimen=specimen, **kw)  # type: ignore[arg-type]
+    return reading(kind, value, at, panel_id=panel_id, specimen=specimen, **kw)
 
 
-def fio2(value: float, at: datetime, **kw: object) -> Reading:
+def fio2(value: float, at: datetime, **kw: Any) -> Reading:
     """A charted FiO2 (fraction)."""
-    return reading(Kind.FIO2, value, at, **kw)  # type: ignore[arg-type]
+    return reading(Kind.FIO2, value, at, **kw)
 
 
-def device(code: str, at: datetime, **kw: object) -> Reading:
+def device(code: str, at: datetime, **kw: Any) -> Reading:
     """A charted O2 device (coded value of monitor.engine.model.O2Device)."""
-    return reading(Kind.O2_DEVICE, None, at, code_value=code, **kw)  # type: ignore[arg-type]
+    return reading(Kind.O2_DEVICE, None, at, code_value=code, **kw)
 
 
-def flow(value: float, at: datetime, **kw: object) -> Reading:
+def flow(value: float, at: datetime, **kw: Any) -> Reading:
     """A charted O2 flow (L/min)."""
-    return reading(Kind.O2_FLOW, value, at, **kw)  # type: ignore[arg-type]
+    return reading(Kind.O2_FLOW, value, at, **kw)
