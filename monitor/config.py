@@ -17,15 +17,13 @@ This module is the shell: it may use pydantic and tomllib; the engine's settings
 produces are the engine's own frozen dataclasses.
 """
 
-from __future__ import annotations
-
 import os
 import re
 import tomllib
 from collections.abc import Mapping
 from datetime import timedelta
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any, Literal
+from typing import TYPE_CHECKING, Annotated, Any, Literal, Self
 from urllib.parse import urlsplit
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
@@ -154,7 +152,7 @@ class OxygenationBandEntry(_RuleEntry):
     high: float = Field(default=100, gt=0, le=1000)
 
     @pydantic.model_validator(mode="after")
-    def _falling(self) -> OxygenationBandEntry:
+    def _falling(self) -> Self:
         if not self.low > self.medium > self.high:
             raise ValueError(
                 f"thresholds must fall from low to medium to high, got "
@@ -229,7 +227,7 @@ class SfLowEntry(_RuleEntry):
     priority: PriorityWord = "low"
 
     @pydantic.model_validator(mode="after")
-    def _apart_within_window(self) -> SfLowEntry:
+    def _apart_within_window(self) -> Self:
         if self.min_apart_min >= self.window_hours * 60:
             raise ValueError("min_apart_min must be shorter than window_hours")
         return self
@@ -299,7 +297,7 @@ class MllpSource(_Section):
     tls_client_ca: Path | None = None
 
     @pydantic.model_validator(mode="after")
-    def _cert_and_key(self) -> MllpSource:
+    def _cert_and_key(self) -> Self:
         if (self.tls_cert is None) != (self.tls_key is None):
             raise ValueError("tls_cert and tls_key must be given together")
         return self
@@ -359,7 +357,7 @@ class SourcesSection(_Section):
     files: list[FileSource] = Field(default_factory=list)
 
     @pydantic.model_validator(mode="after")
-    def _unique_names(self) -> SourcesSection:
+    def _unique_names(self) -> Self:
         names = [s.name for s in self.fhir] + [f.name for f in self.files]
         repeated = sorted({n for n in names if names.count(n) > 1})
         if repeated:
@@ -423,7 +421,7 @@ class SiteConfig(_Section):
     logging: LoggingSection = Field(default_factory=LoggingSection)
 
     @pydantic.model_validator(mode="after")
-    def _cross_checks(self) -> SiteConfig:
+    def _cross_checks(self) -> Self:
         problems: list[str] = []
         ids = [r.id for r in self.rules]
         for i, rule_id in enumerate(ids):
@@ -465,7 +463,7 @@ class SiteConfig(_Section):
             hysteresis=self.alerts.hysteresis,
         )
 
-    def to_pairing_settings(self) -> PairingSettings:
+    def to_pairing_settings(self) -> "PairingSettings":
         from monitor.engine.pairing import PairingSettings
 
         p = self.pairing
@@ -482,7 +480,7 @@ class SiteConfig(_Section):
             site_elevation_m=self.site.elevation_m,
         )
 
-    def to_derivation_settings(self) -> DerivationSettings:
+    def to_derivation_settings(self) -> "DerivationSettings":
         from monitor.engine import physiology
         from monitor.engine.derive import DerivationSettings
 
@@ -502,7 +500,7 @@ class SiteConfig(_Section):
         spans += [getattr(r, "window", timedelta(0)) for r in self.to_rule_set().enabled]
         return max(spans)
 
-    def to_pipeline_settings(self) -> PipelineSettings:
+    def to_pipeline_settings(self) -> "PipelineSettings":
         from monitor.pipeline import PipelineSettings, Routing
 
         return PipelineSettings(

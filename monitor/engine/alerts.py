@@ -30,8 +30,6 @@ id), and by whom (acknowledgements). The functions are pure: the caller passes `
 and stores the returned alert and events together with the notifications.
 """
 
-from __future__ import annotations
-
 import hashlib
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace

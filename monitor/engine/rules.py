@@ -22,8 +22,6 @@ so trend rules only compare trendable gases: arterial, reliable, not on an estim
 FiO2.
 """
 
-from __future__ import annotations
-
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field

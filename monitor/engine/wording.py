@@ -10,8 +10,6 @@ configured IANA name; UTC by default): "06:10" for the day of ``now``, with the 
 otherwise. Pure: nothing here reads a clock or a setting.
 """
 
-from __future__ import annotations
-
 import hashlib
 import html
 from collections.abc import Mapping

@@ -6,8 +6,6 @@ reference sheet section 5), S/F 235 (Rice et al., Chest 2007, section 6); the ot
 rule and timing defaults are common practice, no source.
 """
 
-from __future__ import annotations
-
 import tomllib
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -145,7 +143,8 @@ def test_a_bad_file_reports_the_key(tmp_path):
         ({"site": {"elevaton_m": 1600}}, "site.elevaton_m: unknown key"),
         ({"colour": "teal"}, "colour: unknown key"),
         ({"rules": [{"type": "pf_fall", "fall_pct": 20}]}, "rules[0].fall_pct: unknown key"),
-        ({"channels": {"log": {"type": "log", "colour": "red"}}}, "channels.log.colour: unknown key"),
+        ({"channels": {"log": {"type": "log", "colour": "red"}}},
+         "channels.log.colour: unknown key"),
     ],
 )
 def test_unknown_keys_are_refused(raw, expected):

@@ -6,8 +6,6 @@ escalated; retracted; 60 min cooldown; 30 min escalation) is the issue's design:
 common practice, no source.
 """
 
-from __future__ import annotations
-
 from datetime import UTC, datetime, timedelta
 
 import pytest

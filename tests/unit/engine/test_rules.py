@@ -10,8 +10,6 @@ Provenance of the thresholds (reference sheet /work/shared/reference/clinical-re
   two S/F readings 15 min apart: common practice, no source (the issue's numbers).
 """
 
-from __future__ import annotations
-
 from dataclasses import replace
 from datetime import UTC, datetime, timedelta
 

@@ -3,8 +3,6 @@
 All data invented (Hollowmere General Hospital, MRN system urn:oid:2.999.1.1.1).
 """
 
-from __future__ import annotations
-
 from dataclasses import replace
 from datetime import UTC, datetime, timedelta
 from zoneinfo import ZoneInfo
