@@ -29,7 +29,11 @@ is refused, because pairing needs the minute; every time becomes UTC.
 
 Specimen (safety first): the code's own specimen (LOINC 2703-7 is arterial) and the
 order's specimen source (OBR-15 or SPM-4) are combined so that any sign of a
-non-arterial sample wins over a sign of an arterial one.
+non-arterial sample wins over a sign of an arterial one. In the same spirit, 2708-6
+("O2 saturation in arterial blood") is read as SpO2 when any OBX of the message is a
+pulse-oximetry code (59408-5, 59417-6) or its OBX-18 names an oximeter (reference
+sheet S11): message-wide rather than per order, so an oximeter value sent in one order
+beside a pulse-oximetry code in another is never taken for an arterial SaO2.
 """
 
 import re
