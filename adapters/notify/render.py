@@ -19,6 +19,7 @@ from datetime import date, datetime
 from enum import Enum
 from typing import Any
 
+from adapters.notify.base import log_ref
 from monitor.engine.model import Notification, Priority
 
 #: CDS Hooks card attribute ``summary``: "One-sentence, <140-character summary message"
@@ -208,7 +209,9 @@ def text_lines(n: Notification) -> list[str]:
     if n.numbers:
         lines.append("Key numbers:")
         lines.extend(f"- {number_line(k, v)}" for k, v in n.numbers.items())
-    lines.append(f"Reference: {n.alert_id} / {n.idempotency_key}")
+    # A digest, not the raw ids: they may be built from the patient key. The same
+    # digest is in the log lines, so staff and operators can match the two.
+    lines.append(f"Reference: {log_ref(n)}")
     lines.append(n.advisory)
     return lines
 

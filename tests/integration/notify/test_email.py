@@ -56,6 +56,7 @@ def test_email_arrives_with_plain_and_html_parts_and_the_advisory(smtp_server: S
     assert plain is not None and html is not None
     assert ADVISORY in plain.get_content()
     assert "A-a gradient 48 mmHg" in plain.get_content()
+    assert "hgh-pt-0001" not in msg.as_string()  # the display key only, never the patient key
     assert "Medium priority" in str(msg["Subject"])
     assert "HGH bed ICU-N-1" in str(msg["Subject"])
     assert msg["To"] == "charge-nurse.icu-north@hollowmere-general.example"

@@ -4,9 +4,10 @@ import hashlib
 import hmac
 import uuid
 
+import httpx
 import pytest
 
-from adapters.notify import ChannelConfigError, build_channel
+from adapters.notify import ChannelConfigError, DeliveryFailed, build_channel, map_http_errors
 from adapters.notify.webhook import WebhookChannel
 from monitor.engine.model import ADVISORY, Priority
 from tests.integration.notify.conftest import HttpReceiver, make_notification
@@ -183,3 +184,22 @@ def test_webhook_logs_name_the_display_key_but_never_the_patient_key(
     assert not any("hgh-pt-0001" in r.getMessage() for r in records)
     assert not any("alert-0001" in r.getMessage() for r in records)
     assert all(r.args for r in records)  # lazy %s arguments
+
+
+@pytest.mark.parametrize(
+    ("error", "retryable"),
+    [
+        (httpx.ConnectError("refused"), True),
+        (httpx.ReadTimeout("slow"), True),
+        (httpx.RemoteProtocolError("garbled"), True),
+        (httpx.UnsupportedProtocol("gopher://"), False),
+        (httpx.InvalidURL("no host"), False),
+    ],
+)
+def test_map_http_errors_translates_each_library_error(
+    error: Exception, retryable: bool
+) -> None:
+    with pytest.raises(DeliveryFailed) as caught, map_http_errors("webhook test"):
+        raise error
+    assert caught.value.retryable is retryable
+    assert caught.value.__cause__ is error
