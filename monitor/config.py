@@ -382,13 +382,25 @@ class DatabaseSection(_Section):
 
 
 class HttpSection(_Section):
-    """The unit board and API. Tokens are named by environment variable."""
+    """The unit board and API. Tokens and passwords are named by environment variable:
+    ``board_token_env`` (board link token), ``board_user`` + ``board_password_env`` (board
+    basic auth), ``api_token_env`` (API bearer token), ``hook_secret_env`` (the FHIR
+    subscription hook's shared secret)."""
 
     host: str = "127.0.0.1"
     port: int = Field(default=8080, ge=1, le=65535)
     board_token_env: EnvName | None = None
+    board_user: str | None = Field(default=None, min_length=1)
+    board_password_env: EnvName | None = None
     api_token_env: EnvName | None = None
+    hook_secret_env: EnvName | None = None
     max_request_bytes: int = Field(default=1_048_576, ge=1024, le=64 * 1_048_576)
+
+    @pydantic.model_validator(mode="after")
+    def _user_and_password(self) -> Self:
+        if (self.board_user is None) != (self.board_password_env is None):
+            raise ValueError("board_user and board_password_env must be given together")
+        return self
 
 
 class LoggingSection(_Section):

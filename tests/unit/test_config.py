@@ -251,6 +251,15 @@ def test_env_names_must_look_like_env_names():
     assert problems[0].startswith("http.api_token_env: must match")
 
 
+def test_board_basic_auth_needs_user_and_password_variable():
+    assert problems_of({"http": {"board_user": "charge"}}) == [
+        "http: board_user and board_password_env must be given together"
+    ]
+    config = validate_config({"http": {"board_user": "charge",
+                                       "board_password_env": "GASGAP_BOARD_PASSWORD"}})
+    assert config.http.board_password_env == "GASGAP_BOARD_PASSWORD"
+
+
 def test_site_config_is_frozen():
     config = default_config()
     with pytest.raises(Exception):  # pydantic's ValidationError for a frozen model
