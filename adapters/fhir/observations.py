@@ -157,6 +157,44 @@ def location_from_text(text: str) -> Location:
     return Location(padded[0], padded[1], padded[2])
 
 
+_PHYSICAL_TYPE_FIELD = {"wa": "unit", "ro": "room", "bd": "bed"}
+
+
+def encounter_location(enc: r.Encounter) -> Location | None:
+    """Where the patient is now, from Encounter.location.
+
+    Sources list the hierarchy as several entries (ward; room; bed) or one display
+    ("ICU-North, Room 4, Bed 2"). Entries no longer or not yet in force (status
+    completed or planned) are passed over unless nothing else is left; the rest are
+    merged, the most specific first. ``physicalType`` (wa/ro/bd) says which level an
+    entry names; a reference without display gives its id.
+    """
+    current = [e for e in enc.location if e.status not in ("completed", "planned")]
+    entries = current or enc.location[-1:]
+    parsed: list[Location] = []
+    for entry in entries:
+        text = entry.location.display or (entry.location.reference or "").rsplit("/", 1)[-1]
+        if not text:
+            continue
+        level = next(
+            (
+                _PHYSICAL_TYPE_FIELD[c.code]
+                for c in (entry.physicalType.coding if entry.physicalType else [])
+                if c.code in _PHYSICAL_TYPE_FIELD
+            ),
+            None,
+        )
+        parsed.append(Location(**{level: text}) if level else location_from_text(text))
+    if not parsed:
+        return None
+    parsed.sort(key=lambda loc: (loc.bed is not None, loc.room is not None), reverse=True)
+    merged = {"unit": None, "room": None, "bed": None}
+    for loc in parsed:
+        for name in merged:
+            merged[name] = merged[name] or getattr(loc, name)
+    return Location(**merged)
+
+
 def _specimen_override(obs: r.Observation) -> Specimen | None:
     """Non-arterial specimen named by Observation.specimen (display, or a contained
     Specimen's type), which wins over the code table's specimen."""
@@ -252,8 +290,13 @@ class FhirReadingBuilder:
         *,
         full_url: str | None = None,
         into: FhirBatch | None = None,
+        received_at: datetime | None = None,
     ) -> FhirBatch:
-        """Read one resource; return (or add to ``into``) what came of it."""
+        """Read one resource; return (or add to ``into``) what came of it.
+
+        ``received_at`` overrides the builder's clock for this resource (replay passes
+        the recorded arrival time).
+        """
         batch = into if into is not None else FhirBatch()
         rtype = resource.get("resourceType") if isinstance(resource, dict) else None
         rid = resource.get("id", "?") if isinstance(resource, dict) else "?"
@@ -273,7 +316,7 @@ class FhirReadingBuilder:
             elif rtype == "Encounter":
                 self._read_encounter(resource, full_url)
             else:
-                self._read_observation(resource, full_url, batch)
+                self._read_observation(resource, full_url, batch, received_at)
         except Rejected as exc:
             batch.rejections.append(Rejection(label, str(exc), canonical_json(resource)))
         except ValidationError as exc:
@@ -316,22 +359,17 @@ class FhirReadingBuilder:
 
     def _read_encounter(self, resource: dict[str, Any], full_url: str | None) -> None:
         enc = r.Encounter.model_validate(resource)
-        where = next((loc for loc in enc.location if loc.status == "active"), None)
-        where = where or (enc.location[-1] if enc.location else None)
-        location = None
-        if where is not None:
-            ref = where.location
-            if ref.display:
-                location = location_from_text(ref.display)
-            elif ref.reference:
-                location = Location(unit=ref.reference.rsplit("/", 1)[-1])
-        ctx = EncounterContext(enc.id or (full_url or ""), location)
+        ctx = EncounterContext(enc.id or (full_url or ""), encounter_location(enc))
         for key in (f"Encounter/{enc.id}" if enc.id else None, full_url):
             if key:
                 self.encounters[key] = ctx
 
     def _read_observation(
-        self, resource: dict[str, Any], full_url: str | None, batch: FhirBatch
+        self,
+        resource: dict[str, Any],
+        full_url: str | None,
+        batch: FhirBatch,
+        received_at: datetime | None = None,
     ) -> None:
         obs = r.Observation.model_validate(resource)
         obs_id = obs.id or (full_url.rsplit(":", 1)[-1].rsplit("/", 1)[-1] if full_url else None)
@@ -371,7 +409,7 @@ class FhirReadingBuilder:
             else (f"/_content/{content_hash(resource)}")
         )
         panel_id = self.panel_of.get(label) or (obs_id if obs.component else None)
-        received = self._received_at_fn()
+        received = received_at or self._received_at_fn()
         override = _specimen_override(obs)
         for item, entry, coding in known:
             where = f"{label}{item.where}"

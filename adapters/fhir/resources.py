@@ -104,6 +104,7 @@ class Patient(_Element):
 class EncounterLocation(_Element):
     location: Reference
     status: str | None = None
+    physicalType: CodeableConcept | None = None
     period: Period | None = None
 
 

@@ -291,3 +291,60 @@ def test_strict_mode_rejects_what_fhir_resources_refuses(codes: CodeTable) -> No
 )
 def test_location_from_display_text(text: str, expected: Location) -> None:
     assert location_from_text(text) == expected
+
+
+def enc_with(locations: list[dict]) -> dict:
+    enc = s.encounter()
+    enc["location"] = locations
+    return enc
+
+
+@pytest.mark.parametrize(
+    ("locations", "expected"),
+    [
+        # the hierarchy as separate entries, the ward one marked active
+        (
+            [
+                {"location": {"display": "Ward-5B"}, "status": "active"},
+                {"location": {"display": "Ward-5B room 12 bed 1"}},
+            ],
+            Location("Ward-5B", "12", "1"),
+        ),
+        # physicalType (R4 Encounter.location.physicalType: wa / ro / bd) names the level
+        (
+            [
+                {
+                    "location": {"display": "ICU-North"},
+                    "physicalType": {"coding": [{"code": "wa"}]},
+                },
+                {"location": {"display": "7"}, "physicalType": {"coding": [{"code": "ro"}]}},
+                {"location": {"display": "B"}, "physicalType": {"coding": [{"code": "bd"}]}},
+            ],
+            Location("ICU-North", "7", "B"),
+        ),
+        # a completed stay elsewhere is passed over; a bare reference gives its id
+        (
+            [
+                {"location": {"display": "Ward-5B, Room 1, Bed 1"}, "status": "completed"},
+                {"location": {"reference": "Location/icu-north"}, "status": "active"},
+            ],
+            Location("icu-north", None, None),
+        ),
+        # only a completed entry: the last one still says where the patient was
+        ([{"location": {"display": "Ward-5B"}, "status": "completed"}], Location("Ward-5B")),
+        ([], None),
+    ],
+)
+def test_encounter_location_merges_the_current_entries(
+    codes: CodeTable, locations: list[dict], expected: Location | None
+) -> None:
+    b = FhirReadingBuilder(codes, source_system=s.SOURCE, received_at=RECEIVED)
+    b.read(enc_with(locations))
+    assert one(b, s.quantity_obs("o1", "2019-8", 40, "mm[Hg]")).location == expected
+
+
+def test_received_at_can_be_given_per_resource(builder: FhirReadingBuilder) -> None:
+    recorded = datetime(2026, 11, 29, 23, 0, tzinfo=UTC)
+    batch = builder.read(s.quantity_obs("o1", "2019-8", 40, "mm[Hg]"), received_at=recorded)
+    assert batch.readings[0].received_at == recorded
+    assert one(builder, s.quantity_obs("o2", "2019-8", 40, "mm[Hg]")).received_at == RECEIVED
