@@ -14,6 +14,8 @@ from dataclasses import replace
 from datetime import UTC, datetime, timedelta
 
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 
 from monitor.engine import physiology
 from monitor.engine.errors import InvalidInput
@@ -483,3 +485,36 @@ def test_rules_are_frozen_values():
     with pytest.raises(AttributeError):
         BAND.low = 250.0  # type: ignore[misc]
     assert replace(BAND, low=280.0).low == 280.0
+
+
+# --- properties ------------------------------------------------------------------------
+
+pf_values = st.floats(min_value=5.0, max_value=3800.0, allow_nan=False)
+
+
+@given(pf_values, pf_values)
+def test_a_lower_pf_never_gives_a_lower_band_priority(a, b):
+    low, high = sorted((a, b))
+
+    def rank(pf: float) -> int:
+        outcome = only(BAND, gas(pf_ratio=pf))
+        return outcome.priority.rank if outcome.priority else 0
+
+    assert rank(low) >= rank(high)
+
+
+@given(pf_values, st.floats(min_value=0.0, max_value=0.99), st.floats(min_value=5, max_value=800))
+def test_an_outcome_is_never_both_fired_and_cleared(pf, hysteresis, aa):
+    rules = RuleSet(rules=default_rules().rules, hysteresis=hysteresis)
+    history = PatientHistory(derivations=[gas(T0 - timedelta(hours=3), pf_ratio=400.0,
+                                              aa_gradient=60.0)])
+    for outcome in evaluate(rules, gas(pf_ratio=pf, aa_gradient=aa), history, NOW):
+        assert not (outcome.fired and outcome.cleared)
+        assert (outcome.priority is not None) is outcome.fired
+
+
+@given(pf_values, st.sampled_from([QualityFlag.PAO2_ABOVE_ALVEOLAR, QualityFlag.NOT_ARTERIAL]))
+def test_nothing_fires_on_unreliable_data_whatever_the_numbers(pf, flag):
+    d = gas(pf_ratio=pf, aa_gradient=400.0, fio2=1.0, flags=frozenset({flag}))
+    history = PatientHistory(fio2_points=[FiO2Point(T0 - timedelta(hours=1), 0.21)])
+    assert not any(o.fired for o in evaluate(default_rules(), d, history, NOW))
