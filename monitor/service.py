@@ -1,0 +1,345 @@
+"""The composition root: one running gasgap service, built from one site configuration.
+
+``build_service(config)`` makes every part once: the database, the pipeline, the
+notification channels and the outbox dispatcher, the FHIR pollers, the scheduled jobs,
+the MLLP listener and the HTTP application. Tests pass fakes (``clock``, ``channels``,
+``db``) through it. ``run(config_path)`` serves until SIGTERM or SIGINT, then stops in
+order: no new HTTP requests or MLLP connections, the messages and jobs in hand are
+finished (an ACK is only sent after its message is committed), then the scheduler and
+the database are closed, and the process exits 0.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import logging
+import signal
+import ssl
+from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+import uvicorn
+from fastapi import FastAPI
+
+from adapters.codes import CodeTable
+from adapters.fhir.poller import BasicAuth, BearerAuth, FhirPoller, PollBatch
+from adapters.fhir.subscription import HookDelivery, read_delivery
+from adapters.hl7v2 import Hl7Error
+from adapters.hl7v2.mllp import AckDecision, MllpListener
+from adapters.notify import Channel, build_channel
+from monitor.config import ConfigError, SiteConfig, load_config, secret
+from monitor.delivery import OutboxDispatcher
+from monitor.engine.model import Reading
+from monitor.engine.wording import patient_display
+from monitor.ingest import SourceContext, inbound_from_hl7
+from monitor.logs import IdentifierGuard, setup_logging
+from monitor.metrics import Metrics
+from monitor.pipeline import BatchReport, Inbound, Pipeline, Rejected
+from monitor.scheduling import (
+    DISPATCH_EVERY,
+    ESCALATION_EVERY,
+    RETENTION_EVERY,
+    Job,
+    PollJob,
+    Scheduler,
+)
+from monitor.web.app import WebContext, create_app
+from monitor.web.security import WebSecurity
+from storage.db import Database, open_database
+
+log = logging.getLogger("gasgap.service")
+Clock = Callable[[], datetime]
+DISPATCH_JOB = "outbox"
+
+
+def wall_clock() -> datetime:
+    return datetime.now(UTC)
+
+
+class _Secrets(Mapping[str, str]):
+    """Environment variables as the channels read them, falling back to the secrets file
+    (through ``monitor.config.secret``, the one place that reads them)."""
+
+    def __init__(self, secrets_file: Path | None) -> None:
+        self._file = secrets_file
+
+    def __getitem__(self, name: str) -> str:
+        try:
+            return secret(name, secrets_file=self._file)
+        except ConfigError:
+            raise KeyError(name) from None
+
+    def get(self, name: str, default: Any = None) -> Any:
+        try:
+            return self[name]
+        except KeyError:
+            return default
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(())
+
+    def __len__(self) -> int:
+        return 0
+
+
+def _optional_secret(env_name: str | None, secrets_file: Path | None) -> str | None:
+    return None if env_name is None else secret(env_name, secrets_file=secrets_file)
+
+
+def web_security(config: SiteConfig, secrets_file: Path | None) -> WebSecurity:
+    """The HTTP side's secrets, read once. Keys this configuration version does not have
+    yet (hook secret, board basic auth) are read when present."""
+    http = config.http
+    return WebSecurity(
+        api_token=_optional_secret(http.api_token_env, secrets_file),
+        board_token=_optional_secret(http.board_token_env, secrets_file),
+        board_user=getattr(http, "board_user", None),
+        board_password=_optional_secret(getattr(http, "board_password_env", None), secrets_file),
+        hook_secret=_optional_secret(getattr(http, "hook_secret_env", None), secrets_file),
+        max_body_bytes=http.max_request_bytes,
+        secure_cookies=getattr(http, "secure_cookies", http.host not in ("127.0.0.1", "localhost", "::1")),
+    )
+
+
+def database_url(config: SiteConfig, secrets_file: Path | None) -> str:
+    if config.database.url_env:
+        return secret(config.database.url_env, secrets_file=secrets_file)
+    return config.database.url
+
+
+@dataclass
+class Service:
+    """Every part of one running service."""
+
+    config: SiteConfig
+    db: Database
+    pipeline: Pipeline
+    clock: Clock
+    metrics: Metrics
+    guard: IdentifierGuard
+    context: SourceContext
+    dispatcher: OutboxDispatcher
+    scheduler: Scheduler
+    app: FastAPI
+    pollers: dict[str, FhirPoller] = field(default_factory=dict)
+    listener: MllpListener | None = None
+
+    # --- the one way in ------------------------------------------------------------------
+
+    def accept(self, source: str, inbound: Inbound) -> BatchReport:
+        """Give ``inbound`` to the pipeline (one transaction), count it, and wake the
+        outbox when the batch queued notifications."""
+        self._register(inbound.readings)
+        report = self.pipeline.accept(inbound, now=self.clock())
+        self.metrics.count_inbound(source, inbound.readings, report.quarantined)
+        drawn = {r.logical_id: r.effective_at for r in inbound.readings}
+        self.metrics.count_report(
+            source, duplicates=report.duplicates, derivations=report.derivations,
+            events=report.alert_events, drawn_at=drawn,
+        )
+        if report.notifications:
+            self.scheduler.trigger(DISPATCH_JOB)
+        return report
+
+    def _register(self, readings: list[Reading]) -> None:
+        mode = self.config.site.display_key
+        for key, location in {(r.patient_key, r.location) for r in readings}:
+            self.guard.register(key, patient_display(key, location, mode))
+
+    def on_hl7(self, raw: bytes) -> AckDecision:
+        """The MLLP callback: AA only once the message is committed. A message refused as
+        a whole is quarantined, then answered AE/AR with the reason."""
+        source = self.context.hl7_source
+        try:
+            inbound = inbound_from_hl7(raw, received_at=self.clock(), context=self.context)
+        except Hl7Error as exc:
+            self.pipeline.quarantine(Rejected(f"hl7:{source}", raw, str(exc)), now=self.clock())
+            self.metrics.quarantined.labels(source=source).inc()
+            raise
+        report = self.accept(source, inbound)
+        if report.quarantined and not report.stored and not report.duplicates:
+            return AckDecision("AE", f"{report.quarantined} result(s) refused; kept for review")
+        return AckDecision("AA")
+
+    def hook_reader(self, source: str) -> Callable[[HookDelivery], BatchReport]:
+        poller = self.pollers[source]
+
+        def read(delivery: HookDelivery) -> BatchReport:
+            batch = read_delivery(poller.builder, delivery)
+            return self.accept(source, _fhir_inbound(source, batch))
+
+        return read
+
+    # --- running ------------------------------------------------------------------------
+
+    async def serve(self, stop: asyncio.Event) -> None:
+        """Serve until ``stop`` is set, then shut down in order."""
+        http = self.config.http
+        server = _QuietServer(uvicorn.Config(
+            self.app, host=http.host, port=http.port, log_config=None, access_log=False,
+            lifespan="off", server_header=False, timeout_graceful_shutdown=10,
+        ))
+        if self.listener is not None:
+            await self.listener.start()
+        self.scheduler.start()
+        web = asyncio.create_task(server.serve(), name="http")
+        while not server.started and not web.done():
+            await asyncio.sleep(0.05)
+        if web.done():  # could not bind, most likely
+            await self._stop_parts()
+            web.result()
+            raise RuntimeError(f"HTTP server on {http.host}:{http.port} did not start")
+        log.info("gasgap serving: HTTP on %s:%s%s", http.host, http.port,
+                 f", MLLP on {self.listener._host}:{self.listener.port}" if self.listener else "")
+        waiter = asyncio.create_task(stop.wait())
+        await asyncio.wait({web, waiter}, return_when=asyncio.FIRST_COMPLETED)
+        log.info("gasgap stopping: finishing the work in hand")
+        server.should_exit = True
+        if self.listener is not None:
+            await self.listener.stop()
+        await web
+        waiter.cancel()
+        await self._stop_parts()
+        log.info("gasgap stopped")
+
+    async def _stop_parts(self) -> None:
+        await asyncio.to_thread(self.scheduler.shutdown)
+        self.dispatcher.close()
+        for poller in self.pollers.values():
+            poller.close()
+        self.db.dispose()
+
+
+class _QuietServer(uvicorn.Server):
+    """uvicorn without its own signal handling: the service owns SIGTERM and SIGINT."""
+
+    @contextlib.contextmanager
+    def capture_signals(self) -> Iterator[None]:
+        yield
+
+
+def _fhir_inbound(source: str, batch: Any) -> Inbound:
+    return Inbound(
+        readings=list(batch.readings),
+        rejected=[Rejected(f"fhir:{source}", r.raw, r.reason) for r in batch.rejections],
+        skipped_codes=batch.skipped_codes,
+        ignored=sum(batch.skipped.values()),
+    )
+
+
+def _poll_inbound(source: str) -> Callable[[PollBatch], Inbound]:
+    return lambda batch: _fhir_inbound(source, batch)
+
+
+def _mllp_ssl(config: SiteConfig) -> ssl.SSLContext | None:
+    mllp = config.sources.mllp
+    if mllp is None or mllp.tls_cert is None or mllp.tls_key is None:
+        return None
+    context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+    context.load_cert_chain(mllp.tls_cert, mllp.tls_key)
+    if mllp.tls_client_ca is not None:
+        context.load_verify_locations(mllp.tls_client_ca)
+        context.verify_mode = ssl.CERT_REQUIRED
+    return context
+
+
+def _fhir_auth(source: Any, secrets_file: Path | None) -> BearerAuth | BasicAuth | None:
+    auth = source.auth
+    if auth.type == "bearer":
+        return BearerAuth(secret(auth.token_env, secrets_file=secrets_file))
+    if auth.type == "basic":
+        return BasicAuth(auth.user, secret(auth.password_env, secrets_file=secrets_file))
+    return None
+
+
+def build_service(
+    config: SiteConfig,
+    *,
+    clock: Clock | None = None,
+    channels: Mapping[str, Channel] | None = None,
+    db: Database | None = None,
+    secrets_file: Path | None = None,
+    guard: IdentifierGuard | None = None,
+    codes: CodeTable | None = None,
+) -> Service:
+    """Build every part of the service from ``config`` (nothing starts yet)."""
+    clock = clock or wall_clock
+    db = db or open_database(database_url(config, secrets_file))
+    metrics = Metrics()
+    guard = guard or IdentifierGuard()
+    context = SourceContext(
+        codes=codes or CodeTable.load(), site_tz=config.zone(),
+        patient_id_system=config.site.patient_id_system,
+    )
+    pipeline = Pipeline(db, config.to_pipeline_settings())
+    if channels is None:
+        environ = _Secrets(secrets_file)
+        channels = {alias: build_channel(alias, config.channel_options(alias), environ=environ)
+                    for alias in config.channels}
+    dispatcher = OutboxDispatcher(db, channels, clock=clock, metrics=metrics)
+    pollers = {
+        s.name: FhirPoller(
+            s.base_url, codes=context.codes, auth=_fhir_auth(s, secrets_file),
+            source_system=s.name, patient_id_system=config.site.patient_id_system, clock=clock,
+        )
+        for s in config.sources.fhir if s.enabled
+    }
+    service_ref: dict[str, Service] = {}
+
+    def accept_from(source: str) -> Callable[[Inbound], BatchReport]:
+        return lambda inbound: service_ref["s"].accept(source, inbound)
+
+    jobs = [
+        Job(f"poll:{s.name}", timedelta(seconds=s.poll_seconds),
+            PollJob(s.name, pollers[s.name], db=db, every=timedelta(seconds=s.poll_seconds),
+                    accept=accept_from(s.name), to_inbound=_poll_inbound(s.name), clock=clock,
+                    metrics=metrics),
+            lock=f"poll:{s.name}", run_at_start=True)
+        for s in config.sources.fhir if s.enabled
+    ]
+    jobs.append(Job(DISPATCH_JOB, DISPATCH_EVERY, dispatcher.drain, lock="outbox"))
+    jobs.append(Job("escalation", ESCALATION_EVERY,
+                    lambda: pipeline.escalate_due(now=clock()), lock="escalation"))
+    jobs.append(Job("retention", RETENTION_EVERY, lambda: pipeline.purge(now=clock()),
+                    lock="retention", run_at_start=config.retention_days is not None))
+    scheduler = Scheduler(db, jobs, metrics=metrics)
+    ctx = WebContext(
+        db=db, pipeline=pipeline, clock=clock, site_name=config.site.name,
+        display_mode=config.site.display_key, site_tz=config.zone(), metrics=metrics,
+        guard=guard,
+        poll_now={name: (lambda name=name: scheduler.trigger(f"poll:{name}")) for name in pollers},
+    )
+    app = create_app(config, db, pipeline, clock=clock,
+                     security=web_security(config, secrets_file), context=ctx)
+    service = Service(config, db, pipeline, clock, metrics, guard, context, dispatcher,
+                      scheduler, app, pollers)
+    service_ref["s"] = service
+    ctx.hook_sources = {name: service.hook_reader(name) for name in pollers}
+    mllp = config.sources.mllp
+    if mllp is not None and mllp.enabled:
+        service.listener = MllpListener(
+            service.on_hl7, host=mllp.host, port=mllp.port,
+            max_message_bytes=mllp.max_message_bytes, ssl=_mllp_ssl(config),
+        )
+    return service
+
+
+def run(config_path: Path, *, secrets_file: Path | None = None) -> int:
+    """Serve the site configured in ``config_path`` until SIGTERM/SIGINT; exit code."""
+    config = load_config(config_path)
+    guard = setup_logging(config.logging.level, json_lines=config.logging.format == "json")
+    service = build_service(config, secrets_file=secrets_file, guard=guard)
+
+    async def main() -> None:
+        stop = asyncio.Event()
+        loop = asyncio.get_running_loop()
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            loop.add_signal_handler(sig, stop.set)
+        await service.serve(stop)
+
+    asyncio.run(main())
+    return 0

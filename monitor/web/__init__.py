@@ -1,0 +1,1 @@
+"""The HTTP side: unit board, JSON API, FHIR subscription hook, health and metrics."""

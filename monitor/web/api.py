@@ -1,0 +1,174 @@
+"""The JSON API: patients, their derivations, flags, and acknowledging a flag.
+
+Every route wants the API token (``Authorization: Bearer ...``). Every response carries
+the advisory sentence. Patient keys travel in paths percent-encoded (they may hold
+``|`` and ``/``).
+"""
+
+from __future__ import annotations
+
+import logging
+from datetime import UTC, datetime
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, HTTPException, Query, Request
+from pydantic import BaseModel, Field, field_validator
+
+from monitor.engine.errors import MonitorError
+from monitor.engine.model import ADVISORY, Alert, AlertEvent, Derivation
+from monitor.web.board import display_for
+from monitor.web.security import require_api_token
+from storage import alerts as alerts_store
+from storage import board as board_store
+from storage.derivations import current_derivations
+
+log = logging.getLogger("gasgap.api")
+router = APIRouter(prefix="/api", tags=["api"], dependencies=[Depends(require_api_token)])
+
+
+class AcknowledgeBody(BaseModel):
+    """Who acknowledges: a person's name or staff id, as the site records it."""
+
+    by: str = Field(min_length=1, max_length=80)
+
+    @field_validator("by")
+    @classmethod
+    def _not_blank(cls, value: str) -> str:
+        cleaned = " ".join(value.split())
+        if not cleaned:
+            raise ValueError("by must name the person acknowledging, not be blank")
+        return cleaned
+
+
+def _iso(value: datetime | None) -> str | None:
+    return None if value is None else value.astimezone(UTC).isoformat()
+
+
+def alert_json(alert: Alert) -> dict[str, Any]:
+    return {
+        "id": alert.alert_id,
+        "patient_key": alert.patient_key,
+        "rule": alert.rule,
+        "priority": alert.priority.value,
+        "state": alert.state.value,
+        "open": alert.state.is_open,
+        "raised_at": _iso(alert.raised_at),
+        "updated_at": _iso(alert.updated_at),
+        "sample_id": alert.sample_id,
+        "summary": alert.summary,
+        "unit": alert.location.unit if alert.location else None,
+        "location": alert.location.label() if alert.location else None,
+        "acknowledged_by": alert.acknowledged_by,
+        "acknowledged_at": _iso(alert.acknowledged_at),
+        "closed_at": _iso(alert.closed_at),
+        "preliminary": alert.preliminary,
+        "estimated": alert.estimated,
+    }
+
+
+def event_json(event: AlertEvent) -> dict[str, Any]:
+    return {
+        "event": event.event, "at": _iso(event.at), "priority": event.priority.value,
+        "state": event.state.value, "sample_id": event.sample_id, "by": event.by,
+        "note": event.note,
+    }
+
+
+_DERIVED = (
+    "pao2", "fio2", "paco2", "barometric_pressure", "water_vapour_pressure", "inspired_po2",
+    "alveolar_po2", "aa_gradient", "aa_gradient_expected", "arterial_alveolar_ratio",
+    "pf_ratio", "pf_ratio_adjusted", "berlin_band", "sf_ratio", "oxygenation_index",
+    "oxygen_saturation_index", "arterial_o2_content", "peep", "spo2", "age_years",
+)
+
+
+def derivation_json(d: Derivation) -> dict[str, Any]:
+    out: dict[str, Any] = {
+        "sample_id": d.sample_id, "drawn_at": _iso(d.drawn_at), "specimen": d.specimen.value,
+        "equation": d.equation, "fio2_source": d.fio2_source.value,
+        "estimated": d.estimated, "preliminary": d.preliminary, "unreliable": d.unreliable,
+        "flags": sorted(f.value for f in d.flags),
+        "inputs": [
+            {"role": i.role, "value": i.value, "reason": i.reason, "reading_id": i.reading_id,
+             "at": _iso(i.at)} for i in d.inputs
+        ],
+        "units": "pressures in mmHg, FiO2 as a fraction, saturations in %",
+    }
+    out.update({name: getattr(d, name) for name in _DERIVED})
+    return out
+
+
+@router.get("/patients", summary="Patients, optionally of one unit")
+def list_patients(request: Request, unit: str | None = None) -> dict[str, Any]:
+    ctx = request.app.state.ctx
+    with ctx.db.begin(read_only=True) as conn:
+        cards = board_store.patients_in_unit(conn, unit)
+    return {
+        "patients": [
+            {
+                "patient_key": c.patient_key,
+                "display": display_for(c.patient_key, c.display_key, c.location, ctx.display_mode),
+                "unit": c.location.unit if c.location else None,
+                "location": c.location.label() if c.location else None,
+            }
+            for c in cards
+        ],
+        "advisory": ADVISORY,
+    }
+
+
+@router.get("/patients/{patient_key:path}/derivations", summary="A patient's derived indices")
+def patient_derivations(
+    request: Request, patient_key: str, since: datetime | None = None,
+    include_estimated: bool = True,
+) -> dict[str, Any]:
+    ctx = request.app.state.ctx
+    if since is not None and since.tzinfo is None:
+        raise HTTPException(422, "since must carry a time zone (e.g. 2026-03-15T08:00:00Z)")
+    with ctx.db.begin(read_only=True) as conn:
+        rows = current_derivations(conn, patient_key, since=since,
+                                   include_estimated=include_estimated)
+    return {"patient_key": patient_key, "derivations": [derivation_json(r.derivation) for r in rows],
+            "advisory": ADVISORY}
+
+
+@router.get("/flags", summary="Open flags, or every flag changed since a time")
+def list_flags(
+    request: Request,
+    unit: str | None = None,
+    since: Annotated[datetime | None, Query(description="flags changed at or after")] = None,
+) -> dict[str, Any]:
+    ctx = request.app.state.ctx
+    if since is not None and since.tzinfo is None:
+        raise HTTPException(422, "since must carry a time zone (e.g. 2026-03-15T08:00:00Z)")
+    with ctx.db.begin(read_only=True) as conn:
+        if since is None:
+            found = alerts_store.open_alerts(conn, unit=unit)
+        else:
+            found = alerts_store.recent_alerts(conn, since, unit=unit)
+    return {"flags": [alert_json(a) for a in found], "advisory": ADVISORY}
+
+
+@router.get("/flags/{alert_id}", summary="One flag and its audit trail")
+def get_flag(request: Request, alert_id: str) -> dict[str, Any]:
+    ctx = request.app.state.ctx
+    with ctx.db.begin(read_only=True) as conn:
+        alert = alerts_store.get_alert(conn, alert_id)
+        if alert is None:
+            raise HTTPException(404, f"no flag with id {alert_id!r}")
+        events = alerts_store.alert_events(conn, alert_id=alert_id)
+    return {"flag": alert_json(alert), "events": [event_json(e) for e in events],
+            "advisory": ADVISORY}
+
+
+@router.post("/flags/{alert_id}/acknowledge", summary="Record who has seen a flag")
+def acknowledge(request: Request, alert_id: str, body: AcknowledgeBody) -> dict[str, Any]:
+    ctx = request.app.state.ctx
+    try:
+        alert = ctx.pipeline.acknowledge(alert_id, body.by, now=ctx.clock())
+    except LookupError as exc:
+        raise HTTPException(404, str(exc)) from None
+    except MonitorError as exc:
+        raise HTTPException(409, f"flag {alert_id!r} cannot be acknowledged: {exc}") from None
+    log.info("flag acknowledged through the API")
+    return {"flag": alert_json(alert), "advisory": ADVISORY}

@@ -1,0 +1,157 @@
+"""The HTTP application: unit board, JSON API, health, metrics and the FHIR hook.
+
+``create_app`` builds it from what the composition root (``monitor.service``) already
+made; routers are included explicitly, nothing registers itself by import. OpenAPI is
+served at ``/openapi.json`` (and ``/docs``) for the JSON API.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta, tzinfo
+from pathlib import Path
+from typing import Any
+
+from fastapi import FastAPI, Request, Response
+from fastapi.responses import JSONResponse, RedirectResponse
+from fastapi.staticfiles import StaticFiles
+
+from monitor.engine.model import ADVISORY
+from monitor.logs import IdentifierGuard
+from monitor.metrics import Metrics
+from monitor.web import api, board, hooks
+from monitor.web.security import BodyLimit, WebSecurity
+from storage import board as board_store
+from storage import outbox as outbox_store
+from storage.cursors import all_cursors
+from storage.db import Database
+
+log = logging.getLogger("gasgap.http")
+STATIC_DIR = Path(__file__).resolve().parent / "static"
+
+Clock = Callable[[], datetime]
+HookReader = Callable[[str, bytes, str | None], Any]
+
+
+@dataclass
+class WebContext:
+    """What the routes need, built once by the service (or a test)."""
+
+    db: Database
+    pipeline: Any
+    clock: Clock = field(default=lambda: datetime.now(UTC))
+    site_name: str = "gasgap"
+    display_mode: str = "mrn-last4"
+    site_tz: tzinfo = UTC
+    #: A closed flag stays on the board this long after it closed.
+    recent_window: timedelta = timedelta(hours=12)
+    refresh_seconds: int = 60
+    metrics: Metrics = field(default_factory=Metrics)
+    guard: IdentifierGuard | None = None
+    #: Source name -> function that polls it now (the hook's ping), returning at once.
+    poll_now: dict[str, Callable[[], None]] = field(default_factory=dict)
+    #: Source name -> function turning a hook delivery into a pipeline Inbound.
+    hook_sources: dict[str, Callable[[Any], Any]] = field(default_factory=dict)
+    #: Called with (source, inbound, report) after the hook's batch is committed.
+    on_batch: Callable[[str, Any, Any], None] | None = None
+
+
+def create_app(
+    config: Any,
+    db: Database,
+    pipeline: Any,
+    *,
+    clock: Clock | None = None,
+    security: WebSecurity | None = None,
+    context: WebContext | None = None,
+) -> FastAPI:
+    """The FastAPI application. ``context`` carries the service's parts; without one a
+    minimal context is made from ``config`` (tests of single routes)."""
+    ctx = context or WebContext(db=db, pipeline=pipeline)
+    if clock is not None:
+        ctx.clock = clock
+    security = security or WebSecurity()
+    app = FastAPI(
+        title="gasgap",
+        description="Oxygenation indices and advisory flags. " + ADVISORY,
+        version="1",
+        openapi_url="/openapi.json",
+        docs_url="/docs",
+        redoc_url=None,
+    )
+    app.state.ctx = ctx
+    app.state.config = config
+    app.state.security = security
+    app.include_router(api.router)
+    app.include_router(board.router)
+    app.include_router(hooks.router)
+    app.add_api_route("/health", health, methods=["GET"], tags=["operations"])
+    app.add_api_route("/metrics", metrics, methods=["GET"], tags=["operations"])
+    app.add_api_route("/", home, methods=["GET"], include_in_schema=False)
+    app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
+    app.middleware("http")(log_requests)
+    app.add_middleware(BodyLimit, max_bytes=security.max_body_bytes)
+    return app
+
+
+async def home() -> RedirectResponse:
+    return RedirectResponse("/board", status_code=303)
+
+
+def health(request: Request) -> JSONResponse:
+    """Database reachable, each source's last success, the outbox backlog; 503 when the
+    database does not answer."""
+    ctx: WebContext = request.app.state.ctx
+    try:
+        with ctx.db.begin(read_only=True) as conn:
+            board_store.ping(conn)
+            cursors = all_cursors(conn)
+            backlog = outbox_store.backlog(conn)
+    except Exception as exc:  # any database failure is "unhealthy", reported by type
+        log.warning("health: database unreachable (%s)", type(exc).__name__)
+        return JSONResponse(
+            {"status": "unavailable", "database": f"unreachable: {type(exc).__name__}"},
+            status_code=503,
+        )
+    ctx.metrics.outbox_backlog.set(backlog)
+    sources = {
+        c.source: {
+            "last_success_at": _iso(c.last_success_at),
+            "last_error_at": _iso(c.last_error_at),
+            "failing": c.failing,
+            "watermark": c.watermark,
+        }
+        for c in cursors
+    }
+    return JSONResponse(
+        {"status": "ok", "database": "reachable", "sources": sources, "outbox_backlog": backlog,
+         "checked_at": _iso(ctx.clock())}
+    )
+
+
+def metrics(request: Request) -> Response:
+    ctx: WebContext = request.app.state.ctx
+    from monitor.metrics import CONTENT_TYPE
+
+    return Response(ctx.metrics.exposition(), media_type=CONTENT_TYPE)
+
+
+async def log_requests(request: Request, call_next: Callable[[Request], Awaitable[Response]]) -> Response:
+    """One line per request with the route template, never the concrete path (which may
+    hold a patient key or a token)."""
+    started = time.perf_counter()
+    response = await call_next(request)
+    route = request.scope.get("route")
+    template = getattr(route, "path", None) or "(unrouted)"
+    log.info(
+        "%s %s -> %d in %.0f ms", request.method, template, response.status_code,
+        (time.perf_counter() - started) * 1000,
+    )
+    return response
+
+
+def _iso(value: datetime | None) -> str | None:
+    return None if value is None else value.astimezone(UTC).isoformat()

@@ -1,0 +1,96 @@
+"""Read queries for the unit board, the JSON API and the health check.
+
+Everything here reads; nothing writes. Callers open a read-only transaction
+(``db.begin(read_only=True)``) so the board never queues behind the pipeline on SQLite.
+Queries that the other storage modules already offer (open and recent alerts, audit
+events, current derivations, cursors) are used from there, not repeated.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import dataclass
+from datetime import datetime
+
+import sqlalchemy as sa
+from sqlalchemy.engine import Connection
+
+from monitor.engine.model import Alert, Location
+from storage.serialize import row_to_alert, row_to_location
+from storage.tables import alerts, derivations, outbox, patients
+
+
+@dataclass(frozen=True)
+class PatientCard:
+    """What the board knows of a patient apart from numbers."""
+
+    patient_key: str
+    display_key: str | None
+    location: Location | None
+
+
+def ping(conn: Connection) -> None:
+    """Raise if the database does not answer."""
+    conn.execute(sa.select(sa.literal(1))).scalar_one()
+
+
+def patient_cards(conn: Connection, patient_keys: Iterable[str]) -> dict[str, PatientCard]:
+    """The stored display key and location of each patient asked for (missing ones left out)."""
+    keys = sorted(set(patient_keys))
+    found: dict[str, PatientCard] = {}
+    for start in range(0, len(keys), 500):
+        query = sa.select(patients).where(patients.c.patient_key.in_(keys[start : start + 500]))
+        for row in conn.execute(query):
+            m = row._mapping
+            found[m["patient_key"]] = PatientCard(
+                m["patient_key"], m["display_key"], row_to_location(m)
+            )
+    return found
+
+
+def known_units(conn: Connection) -> list[str]:
+    """Units named by any patient, alert or derivation, sorted."""
+    query = sa.union(
+        sa.select(patients.c.location_unit.label("unit")),
+        sa.select(alerts.c.location_unit.label("unit")),
+    )
+    return sorted(u for u in conn.execute(query).scalars() if u)
+
+
+def patients_in_unit(conn: Connection, unit: str | None = None, limit: int = 500) -> list[PatientCard]:
+    """Patients whose latest known location is ``unit`` (all patients when None)."""
+    query = sa.select(patients).order_by(patients.c.patient_key).limit(limit)
+    if unit is not None:
+        query = query.where(patients.c.location_unit == unit)
+    return [
+        PatientCard(r._mapping["patient_key"], r._mapping["display_key"], row_to_location(r._mapping))
+        for r in conn.execute(query)
+    ]
+
+
+def patients_with_derivations_since(
+    conn: Connection, since: datetime, unit: str | None = None
+) -> list[str]:
+    """Patients with a current derivation drawn at or after ``since`` (optionally in a unit)."""
+    query = sa.select(derivations.c.patient_key).distinct().where(
+        derivations.c.is_current, derivations.c.drawn_at >= since
+    )
+    if unit is not None:
+        query = query.where(derivations.c.location_unit == unit)
+    return sorted(conn.execute(query).scalars())
+
+
+def outbox_waiting(conn: Connection) -> dict[str, int]:
+    """Outbox rows by status (pending, sent, dead ...)."""
+    query = sa.select(outbox.c.status, sa.func.count()).group_by(outbox.c.status)
+    return {status: int(n) for status, n in conn.execute(query)}
+
+
+def patient_alerts(conn: Connection, patient_key: str) -> list[Alert]:
+    """Every flag of the patient, the latest raised first."""
+    query = (
+        sa.select(alerts)
+        .where(alerts.c.patient_key == patient_key)
+        .order_by(alerts.c.raised_at.desc(), alerts.c.alert_id)
+    )
+    return [row_to_alert(row._mapping) for row in conn.execute(query)]
