@@ -123,8 +123,9 @@ def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
         flags.add(QualityFlag.NOT_ARTERIAL)
     pb = s.barometric_pressure
     fio2 = s.fio2
-    ph2o = notes.attempt("water vapour pressure",
-                         lambda: physiology.water_vapour_pressure(s.temperature_c))
+    ph2o = notes.attempt(
+        "water vapour pressure", lambda: physiology.water_vapour_pressure(s.temperature_c)
+    )
 
     pio2 = None
     if fio2 is not None and ph2o is not None:
@@ -138,38 +139,53 @@ def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
     if arterial:
         paco2 = s.paco2
         if fio2 is not None and paco2 is not None and ph2o is not None:
-            alveolar = notes.attempt("alveolar PO2", lambda: physiology.alveolar_po2(
-                fio2, paco2, pb, ph2o, settings.rq, settings.equation))
+            alveolar = notes.attempt(
+                "alveolar PO2",
+                lambda: physiology.alveolar_po2(
+                    fio2, paco2, pb, ph2o, settings.rq, settings.equation
+                ),
+            )
         if alveolar is not None:
             pao2_alv = alveolar
             aa = notes.attempt("A-a gradient", lambda: physiology.aa_gradient(pao2_alv, s.pao2))
             a_over_a = notes.attempt(
-                "a/A ratio", lambda: physiology.arterial_alveolar_ratio(s.pao2, pao2_alv))
+                "a/A ratio", lambda: physiology.arterial_alveolar_ratio(s.pao2, pao2_alv)
+            )
             if s.pao2 > alveolar + settings.unreliable_margin_mmhg:
                 flags.add(QualityFlag.PAO2_ABOVE_ALVEOLAR)
         if fio2 is not None and abs(fio2 - physiology.ROOM_AIR_FIO2) <= 1e-9:
             age = s.age_years
             if age is not None:
-                aa_expected = notes.attempt("age-expected A-a", lambda: (
-                    physiology.expected_aa_gradient(age, settings.age_normal)))
+                aa_expected = notes.attempt(
+                    "age-expected A-a",
+                    lambda: physiology.expected_aa_gradient(age, settings.age_normal),
+                )
         if fio2 is not None:
             pf = notes.attempt("P/F", lambda: physiology.pf_ratio(s.pao2, fio2))
-            mean_airway = s.mean_airway_pressure
-            if mean_airway is not None:
-                oi = notes.attempt("oxygenation index",
-                                   lambda: physiology.oxygenation_index(fio2, mean_airway, s.pao2))
+            map_for_oi = s.mean_airway_pressure
+            if map_for_oi is not None:
+                oi = notes.attempt(
+                    "oxygenation index",
+                    lambda: physiology.oxygenation_index(fio2, map_for_oi, s.pao2),
+                )
         if pf is not None:
             ratio = pf
             pf_adjusted = notes.attempt(
-                "altitude-adjusted P/F", lambda: physiology.pf_ratio_altitude_adjusted(ratio, pb))
+                "altitude-adjusted P/F", lambda: physiology.pf_ratio_altitude_adjusted(ratio, pb)
+            )
             if QualityFlag.ESTIMATED_FIO2 not in flags:
-                band = notes.attempt("Berlin band",
-                                     lambda: physiology.berlin_band(ratio, s.peep, pb))
+                band = notes.attempt(
+                    "Berlin band", lambda: physiology.berlin_band(ratio, s.peep, pb)
+                )
                 berlin = None if band is None else band.value
         hb, sao2 = s.haemoglobin, s.sao2
         if hb is not None and sao2 is not None:
-            cao2 = notes.attempt("arterial O2 content", lambda: physiology.arterial_o2_content(
-                hb, sao2, s.pao2, settings.hb_bound_per_g, settings.dissolved))
+            cao2 = notes.attempt(
+                "arterial O2 content",
+                lambda: physiology.arterial_o2_content(
+                    hb, sao2, s.pao2, settings.hb_bound_per_g, settings.dissolved
+                ),
+            )
 
     sf = osi = None
     spo2 = s.spo2
@@ -178,10 +194,12 @@ def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
             flags.add(QualityFlag.SPO2_ABOVE_97)
         if fio2 is not None:
             sf = notes.attempt("S/F", lambda: physiology.sf_ratio(spo2, fio2))
-            mean_airway = s.mean_airway_pressure
-            if mean_airway is not None:
-                osi = notes.attempt("oxygen saturation index", lambda: (
-                    physiology.oxygen_saturation_index(fio2, mean_airway, spo2)))
+            map_for_osi = s.mean_airway_pressure
+            if map_for_osi is not None:
+                osi = notes.attempt(
+                    "oxygen saturation index",
+                    lambda: physiology.oxygen_saturation_index(fio2, map_for_osi, spo2),
+                )
 
     return Derivation(
         patient_key=s.patient_key,
@@ -225,8 +243,9 @@ def _spo2_derivation(
     value = spo2.value
     if value is None or value > physiology.SPO2_RATIO_LIMIT:
         return None
-    fio2 = fio2_in_effect(spo2.patient_key, spo2.effective_at, context, pairing_settings,
-                          panel_id=spo2.panel_id)
+    fio2 = fio2_in_effect(
+        spo2.patient_key, spo2.effective_at, context, pairing_settings, panel_id=spo2.panel_id
+    )
     if fio2.value is None:
         return None
     notes = _Notes()
@@ -238,8 +257,7 @@ def _spo2_derivation(
         pao2 = imputed
         pf = notes.attempt("imputed P/F", lambda: physiology.pf_ratio(pao2, fio2_value))
     inputs = (
-        InputUsed("spo2", value, "SpO2 recorded between gases", spo2.logical_id,
-                  spo2.effective_at),
+        InputUsed("spo2", value, "SpO2 recorded between gases", spo2.logical_id, spo2.effective_at),
         *fio2.inputs,
         *notes.items,
     )

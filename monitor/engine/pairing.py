@@ -278,8 +278,9 @@ def _choose_fio2(
     if with_gas:
         r = min(with_gas, key=lambda x: (abs(x.effective_at - at), _order(x)))
         why = "reported with the gas (same panel)"
-        return FiO2InEffect(r.value, FiO2Source.WITH_GAS, frozenset(flags),
-                            (_used("fio2", r, why),), (r,))
+        return FiO2InEffect(
+            r.value, FiO2Source.WITH_GAS, frozenset(flags), (_used("fio2", r, why),), (r,)
+        )
     before = [r for r in charted if r.effective_at <= at]
     last_fio2 = before[-1] if before else None
     last_device = next((d for d in reversed(devices) if d.effective_at <= at), None)
@@ -291,19 +292,30 @@ def _choose_fio2(
         if not superseded:
             setting = " (ventilator setting)" if last_fio2.from_ventilator else ""
             why = _when("charted", last_fio2, at) + setting + ", no later change before the draw"
-            return FiO2InEffect(last_fio2.value, FiO2Source.CHARTED, frozenset(flags),
-                                (_used("fio2", last_fio2, why),), (last_fio2,))
+            return FiO2InEffect(
+                last_fio2.value,
+                FiO2Source.CHARTED,
+                frozenset(flags),
+                (_used("fio2", last_fio2, why),),
+                (last_fio2,),
+            )
     if room_air is not None:
         why = _when("room air charted", room_air, at)
-        return FiO2InEffect(physiology.ROOM_AIR_FIO2, FiO2Source.ROOM_AIR, frozenset(flags),
-                            (_used("fio2", room_air, why, physiology.ROOM_AIR_FIO2),), (room_air,))
+        return FiO2InEffect(
+            physiology.ROOM_AIR_FIO2,
+            FiO2Source.ROOM_AIR,
+            frozenset(flags),
+            (_used("fio2", room_air, why, physiology.ROOM_AIR_FIO2),),
+            (room_air,),
+        )
     after = [r for r in charted if at < r.effective_at <= at + settings.charted_after_grace]
     if after:
         r = after[0]
         why = _when("charted", r, at) + ": nothing valid at or before the draw"
         flags.add(QualityFlag.FIO2_CHARTED_AFTER_DRAW)
-        return FiO2InEffect(r.value, FiO2Source.CHARTED_AFTER, frozenset(flags),
-                            (_used("fio2", r, why),), (r,))
+        return FiO2InEffect(
+            r.value, FiO2Source.CHARTED_AFTER, frozenset(flags), (_used("fio2", r, why),), (r,)
+        )
     notes: list[InputUsed] = []
     if device_fresh and last_device is not None:
         flows = [f for f in _of(readings, Kind.O2_FLOW) if _fresh(f, at, settings)]
@@ -319,14 +331,25 @@ def _choose_fio2(
             inputs = [_used("o2_device", last_device, _when("device charted", last_device, at))]
             if flow is not None:
                 inputs.append(_used("o2_flow", flow, _when("flow charted", flow, at)))
-            inputs.append(InputUsed("fio2", value, "estimated from device and flow "
-                                    "(rule of thumb, reference sheet section 8)", None, at))
+            inputs.append(
+                InputUsed(
+                    "fio2",
+                    value,
+                    "estimated from device and flow (rule of thumb, reference sheet section 8)",
+                    None,
+                    at,
+                )
+            )
             flags.add(QualityFlag.ESTIMATED_FIO2)
-            return FiO2InEffect(value, FiO2Source.DEVICE_ESTIMATE, frozenset(flags),
-                                tuple(inputs), used)
+            return FiO2InEffect(
+                value, FiO2Source.DEVICE_ESTIMATE, frozenset(flags), tuple(inputs), used
+            )
     flags.add(QualityFlag.FIO2_UNKNOWN)
-    notes.append(InputUsed("fio2", None, "no FiO2, room air or device charted within its "
-                           "staleness limit", None, at))
+    notes.append(
+        InputUsed(
+            "fio2", None, "no FiO2, room air or device charted within its staleness limit", None, at
+        )
+    )
     return FiO2InEffect(None, FiO2Source.UNKNOWN, frozenset(flags), tuple(notes), ())
 
 
@@ -362,13 +385,16 @@ def _pressure(
         return pb, PressureSource.SITE_SETTING, note, None, None
     if settings.site_elevation_m is not None:
         pb = physiology.barometric_pressure_at_elevation(settings.site_elevation_m)
-        why = (f"standard atmosphere at the site elevation {settings.site_elevation_m:g} m "
-               "(yearly average; weather moves it 10-20 mmHg)")
+        why = (
+            f"standard atmosphere at the site elevation {settings.site_elevation_m:g} m "
+            "(yearly average; weather moves it 10-20 mmHg)"
+        )
         note = InputUsed("barometric_pressure", pb, why, None, t)
         return pb, PressureSource.STANDARD_ATMOSPHERE, note, QualityFlag.ESTIMATED_PRESSURE, None
     pb = physiology.STANDARD_PRESSURE_MMHG
-    note = InputUsed("barometric_pressure", pb, "no measured or site pressure: default 760 mmHg",
-                     None, t)
+    note = InputUsed(
+        "barometric_pressure", pb, "no measured or site pressure: default 760 mmHg", None, t
+    )
     return pb, PressureSource.DEFAULT, note, QualityFlag.DEFAULT_PRESSURE, None
 
 
@@ -381,14 +407,19 @@ def _temperature(
         r, why = found
         return float(r.value or 0.0), TemperatureSource.WITH_SAMPLE, _used("temperature", r, why), r
     temps = _of(readings, Kind.BODY_TEMPERATURE)
-    r = _latest_in(temps, t - settings.temperature_window, t)
-    if r is not None:
-        why = _when("charted", r, t)
-        return float(r.value or 0.0), TemperatureSource.CHARTED, _used("temperature", r, why), r
+    charted = _latest_in(temps, t - settings.temperature_window, t)
+    if charted is not None:
+        why = _when("charted", charted, t)
+        used = _used("temperature", charted, why)
+        return float(charted.value or 0.0), TemperatureSource.CHARTED, used, charted
     limit = _span(settings.temperature_window)
-    note = InputUsed("temperature", physiology.DEFAULT_TEMPERATURE_C,
-                     f"none with the sample or charted within {limit} before: default 37 C",
-                     None, t)
+    note = InputUsed(
+        "temperature",
+        physiology.DEFAULT_TEMPERATURE_C,
+        f"none with the sample or charted within {limit} before: default 37 C",
+        None,
+        t,
+    )
     return physiology.DEFAULT_TEMPERATURE_C, TemperatureSource.DEFAULT, note, None
 
 
@@ -413,17 +444,16 @@ def _completed_years(born: date, on: date) -> int:
     return on.year - born.year - ((on.month, on.day) < (born.month, born.day))
 
 
-def _age(
-    sample: Reading, readings: Sequence[Reading]
-) -> tuple[float | None, InputUsed | None]:
+def _age(sample: Reading, readings: Sequence[Reading]) -> tuple[float | None, InputUsed | None]:
     """Completed years at the draw, from the sample's birth date or, failing that, the
     last-received reading of the patient that carries one."""
     t = sample.effective_at
     carrier = sample if sample.birth_date is not None else None
     if carrier is None:
         dated = [r for r in readings if r.birth_date is not None]
-        carrier = max(dated, key=lambda r: (r.received_at, r.logical_id, r.delivery_id),
-                      default=None)
+        carrier = max(
+            dated, key=lambda r: (r.received_at, r.logical_id, r.delivery_id), default=None
+        )
     if carrier is None or carrier.birth_date is None:
         return None, None
     born = carrier.birth_date
@@ -460,14 +490,18 @@ def pair(sample: Reading, context: Sequence[Reading], settings: PairingSettings)
     if sample.kind is not Kind.PAO2 or sample.value is None or sample.status is Status.RETRACTED:
         raise InvalidInput("sample", sample.logical_id, "must be a PaO2 reading with a value")
     t = sample.effective_at
-    readings = [r for r in current_readings(context, sample.patient_key)
-                if r.logical_id != sample.logical_id]
+    readings = [
+        r
+        for r in current_readings(context, sample.patient_key)
+        if r.logical_id != sample.logical_id
+    ]
     flags: set[QualityFlag] = set()
     used: list[Reading] = [sample]
     specimen_note = "" if sample.specimen is Specimen.ARTERIAL else ": not arterial, no A-a or P/F"
     inputs: list[InputUsed] = [
-        _used("pao2", sample,
-              f"the sample, {sample.specimen} blood drawn {_clock(t)}{specimen_note}")
+        _used(
+            "pao2", sample, f"the sample, {sample.specimen} blood drawn {_clock(t)}{specimen_note}"
+        )
     ]
     if sample.specimen is not Specimen.ARTERIAL:
         flags.add(QualityFlag.NOT_ARTERIAL)
@@ -502,9 +536,16 @@ def pair(sample: Reading, context: Sequence[Reading], settings: PairingSettings)
     nearby: dict[str, float | None] = {}
     for role, found_near in (
         ("peep", _latest_before("peep", Kind.PEEP, readings, t, settings.ventilator_window)),
-        ("mean_airway_pressure", _latest_before("mean_airway_pressure",
-                                                Kind.MEAN_AIRWAY_PRESSURE, readings, t,
-                                                settings.ventilator_window)),
+        (
+            "mean_airway_pressure",
+            _latest_before(
+                "mean_airway_pressure",
+                Kind.MEAN_AIRWAY_PRESSURE,
+                readings,
+                t,
+                settings.ventilator_window,
+            ),
+        ),
         ("spo2", _nearest_spo2(readings, t, settings)),
     ):
         nearby[role] = None if found_near is None else found_near[0].value
@@ -558,9 +599,13 @@ def context_window(settings: PairingSettings) -> tuple[timedelta, timedelta]:
     steady-state window, so the value a recent change replaced is seen), and the
     longest look-ahead (after-draw grace, same-sample and SpO2 windows)."""
     staleness = max(settings.fio2_staleness, settings.ventilator_staleness)
-    before = max(staleness + settings.steady_state,  # the value a recent change replaced
-                 settings.temperature_window, settings.ventilator_window,
-                 settings.spo2_window, settings.same_sample_window)
+    before = max(
+        staleness + settings.steady_state,  # the value a recent change replaced
+        settings.temperature_window,
+        settings.ventilator_window,
+        settings.spo2_window,
+        settings.same_sample_window,
+    )
     after = max(settings.charted_after_grace, settings.same_sample_window, settings.spo2_window)
     return before, after
 

@@ -8,6 +8,7 @@ room air that lowers PAO2 by 0.21 x 0.12 = 0.025 mmHg, hence the tolerances belo
 """
 
 from dataclasses import replace
+
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -87,8 +88,9 @@ def test_half_oxygen_aa_gradient_and_ratios() -> None:
     d = derive(snapshot(fio2=0.5, pao2=150.0), DEFAULTS)
     assert d.aa_gradient == pytest.approx(161.5, abs=0.07)
     assert d.pf_ratio == pytest.approx(300.0)
-    simplified = derive(snapshot(fio2=0.5, pao2=150.0),
-                        DerivationSettings(equation=physiology.Equation.SIMPLIFIED))
+    simplified = derive(
+        snapshot(fio2=0.5, pao2=150.0), DerivationSettings(equation=physiology.Equation.SIMPLIFIED)
+    )
     assert simplified.arterial_alveolar_ratio == pytest.approx(0.489, abs=0.001)
 
 
@@ -110,8 +112,11 @@ def test_altitude_adjusted_pf_at_hollowmere() -> None:
     # Reference sheet section 5 (Berlin, altitude): 1600 m, PB 626.5 (ISA), P/F 150 ->
     # 150 x 760 / PB = 182.0. PEEP 8 puts it in the moderate band.
     site = PairingSettings(site_elevation_m=1600.0)
-    context = [lab(Kind.PACO2, 40.0), fio2(0.5, T0 - minutes(30), from_ventilator=True),
-               reading(Kind.PEEP, 8.0, T0 - minutes(20))]
+    context = [
+        lab(Kind.PACO2, 40.0),
+        fio2(0.5, T0 - minutes(30), from_ventilator=True),
+        reading(Kind.PEEP, 8.0, T0 - minutes(20)),
+    ]
     d = derive(pair(pao2(75.0), context, site), DEFAULTS)
     assert d.pf_ratio == pytest.approx(150.0)
     assert d.pf_ratio_adjusted == pytest.approx(182.0, abs=0.05)
@@ -146,8 +151,10 @@ def test_arterial_oxygen_content() -> None:
     d = derive(snapshot(pao2=100.0, haemoglobin=15.0, sao2=98.0, fio2=0.3), DEFAULTS)
     assert d.arterial_o2_content == pytest.approx(19.998, abs=0.0005)
     # Same table, k 1.39: 20.733.
-    k139 = derive(snapshot(pao2=100.0, haemoglobin=15.0, sao2=98.0, fio2=0.3),
-                  DerivationSettings(hb_bound_per_g=1.39))
+    k139 = derive(
+        snapshot(pao2=100.0, haemoglobin=15.0, sao2=98.0, fio2=0.3),
+        DerivationSettings(hb_bound_per_g=1.39),
+    )
     assert k139.arterial_o2_content == pytest.approx(20.733, abs=0.0005)
 
 
@@ -173,9 +180,18 @@ def test_age_expected_aa_on_room_air(
 
 
 def test_every_index_equals_physiology_for_the_same_inputs() -> None:
-    snap = snapshot(fio2=0.45, pao2=82.0, paco2=48.0, barometric_pressure=626.51,
-                    temperature_c=38.4, peep=10.0, mean_airway_pressure=18.0, spo2=93.0,
-                    haemoglobin=11.2, sao2=94.0)
+    snap = snapshot(
+        fio2=0.45,
+        pao2=82.0,
+        paco2=48.0,
+        barometric_pressure=626.51,
+        temperature_c=38.4,
+        peep=10.0,
+        mean_airway_pressure=18.0,
+        spo2=93.0,
+        haemoglobin=11.2,
+        sao2=94.0,
+    )
     rules = DerivationSettings(rq=0.85, hb_bound_per_g=1.36, dissolved=0.0031)
     d = derive(snap, rules)
     ph2o = physiology.water_vapour_pressure(38.4)
@@ -235,8 +251,15 @@ def test_missing_paco2_gives_no_alveolar_values_but_keeps_pf() -> None:
 
 
 def test_unknown_fio2_gives_nothing_that_needs_it() -> None:
-    d = derive(snapshot(fio2=None, fio2_source=FiO2Source.UNKNOWN,
-                        flags=frozenset({FLAG.FIO2_UNKNOWN}), spo2=93.0), DEFAULTS)
+    d = derive(
+        snapshot(
+            fio2=None,
+            fio2_source=FiO2Source.UNKNOWN,
+            flags=frozenset({FLAG.FIO2_UNKNOWN}),
+            spo2=93.0,
+        ),
+        DEFAULTS,
+    )
     assert (d.inspired_po2, d.alveolar_po2, d.pf_ratio, d.sf_ratio) == (None, None, None, None)
     assert FLAG.FIO2_UNKNOWN in d.flags
 
@@ -256,8 +279,13 @@ def test_no_berlin_band_without_peep_of_5(peep: float | None) -> None:
 
 def test_no_berlin_band_from_an_estimated_fio2() -> None:
     # Reference sheet section 8: do not compute Berlin categories from estimated FiO2.
-    snap = snapshot(fio2=0.5, pao2=90.0, peep=8.0, fio2_source=FiO2Source.DEVICE_ESTIMATE,
-                    flags=frozenset({FLAG.ESTIMATED_FIO2}))
+    snap = snapshot(
+        fio2=0.5,
+        pao2=90.0,
+        peep=8.0,
+        fio2_source=FiO2Source.DEVICE_ESTIMATE,
+        flags=frozenset({FLAG.ESTIMATED_FIO2}),
+    )
     d = derive(snap, DEFAULTS)
     assert d.berlin_band is None and d.pf_ratio == pytest.approx(180.0)
 
@@ -282,16 +310,27 @@ def test_a_negative_alveolar_po2_does_not_escape_as_an_error() -> None:
 
 @pytest.mark.parametrize("specimen", [Specimen.VENOUS, Specimen.CAPILLARY, Specimen.UNKNOWN])
 def test_a_venous_po2_never_yields_alveolar_based_values(specimen: Specimen) -> None:
-    context = [lab(Kind.PACO2, 46.0, specimen=specimen), fio2(0.4, T0 - minutes(30)),
-               reading(Kind.PEEP, 8.0, T0 - minutes(10)),
-               reading(Kind.MEAN_AIRWAY_PRESSURE, 14.0, T0 - minutes(10)),
-               lab(Kind.HAEMOGLOBIN, 12.0, specimen=specimen),
-               lab(Kind.SAO2, 75.0, specimen=specimen)]
+    context = [
+        lab(Kind.PACO2, 46.0, specimen=specimen),
+        fio2(0.4, T0 - minutes(30)),
+        reading(Kind.PEEP, 8.0, T0 - minutes(10)),
+        reading(Kind.MEAN_AIRWAY_PRESSURE, 14.0, T0 - minutes(10)),
+        lab(Kind.HAEMOGLOBIN, 12.0, specimen=specimen),
+        lab(Kind.SAO2, 75.0, specimen=specimen),
+    ]
     d = derive(pair(pao2(40.0, specimen=specimen), context, PairingSettings()), DEFAULTS)
     assert FLAG.NOT_ARTERIAL in d.flags and d.unreliable
-    for name in ("alveolar_po2", "aa_gradient", "aa_gradient_expected",
-                 "arterial_alveolar_ratio", "pf_ratio", "pf_ratio_adjusted", "berlin_band",
-                 "oxygenation_index", "arterial_o2_content"):
+    for name in (
+        "alveolar_po2",
+        "aa_gradient",
+        "aa_gradient_expected",
+        "arterial_alveolar_ratio",
+        "pf_ratio",
+        "pf_ratio_adjusted",
+        "berlin_band",
+        "oxygenation_index",
+        "arterial_o2_content",
+    ):
         assert getattr(d, name) is None, name
 
 
@@ -330,9 +369,11 @@ def test_spo2_series_worked_example() -> None:
 
 def test_spo2_series_limits() -> None:
     # SpO2 97: S/F but no imputation (Brown 2016: <= 96 %); 98: nothing (Rice 2007: <= 97 %).
-    readings = [reading(Kind.SPO2, 97.0, T0 + minutes(10), logical_id="s97"),
-                reading(Kind.SPO2, 98.0, T0 + minutes(20), logical_id="s98"),
-                reading(Kind.SPO2, 96.0, T0 + minutes(30), logical_id="s96")]
+    readings = [
+        reading(Kind.SPO2, 97.0, T0 + minutes(10), logical_id="s97"),
+        reading(Kind.SPO2, 98.0, T0 + minutes(20), logical_id="s98"),
+        reading(Kind.SPO2, 96.0, T0 + minutes(30), logical_id="s96"),
+    ]
     series = derive_spo2_series(readings, [fio2(0.4, T0)], DEFAULTS, PairingSettings())
     assert [d.sample_id for d in series] == ["s97", "s96"]
     assert series[0].sf_ratio == pytest.approx(242.5) and series[0].pao2 is None
@@ -341,8 +382,10 @@ def test_spo2_series_limits() -> None:
 
 
 def test_spo2_series_uses_the_same_fio2_priority() -> None:
-    readings = [reading(Kind.SPO2, 93.0, T0, logical_id="s1"),
-                reading(Kind.SPO2, 93.0, T0 + hours(3), logical_id="s2")]
+    readings = [
+        reading(Kind.SPO2, 93.0, T0, logical_id="s1"),
+        reading(Kind.SPO2, 93.0, T0 + hours(3), logical_id="s2"),
+    ]
     context = [device("nasal_cannula", T0 - minutes(10)), flow(2.0, T0 - minutes(10))]
     series = derive_spo2_series(readings, context, DEFAULTS, PairingSettings())
     # s1: estimated 0.28 from the cannula; s2: the device is stale by then, so nothing.
@@ -372,11 +415,24 @@ _paco2s = st.one_of(st.none(), st.floats(15.0, 120.0))
     peep=st.one_of(st.none(), st.floats(0.0, 20.0)),
 )
 def test_a_non_arterial_sample_never_yields_aa_or_pf(
-    specimen: Specimen, fio2_value: float | None, paco2: float | None, pao2_value: float,
-    pb: float, peep: float | None,
+    specimen: Specimen,
+    fio2_value: float | None,
+    paco2: float | None,
+    pao2_value: float,
+    pb: float,
+    peep: float | None,
 ) -> None:
-    d = derive(snapshot(specimen=specimen, fio2=fio2_value, paco2=paco2, pao2=pao2_value,
-                        barometric_pressure=pb, peep=peep), DEFAULTS)
+    d = derive(
+        snapshot(
+            specimen=specimen,
+            fio2=fio2_value,
+            paco2=paco2,
+            pao2=pao2_value,
+            barometric_pressure=pb,
+            peep=peep,
+        ),
+        DEFAULTS,
+    )
     assert d.aa_gradient is None and d.pf_ratio is None and d.alveolar_po2 is None
 
 
@@ -389,11 +445,16 @@ def test_a_non_arterial_sample_never_yields_aa_or_pf(
     equation=st.sampled_from(list(physiology.Equation)),
 )
 def test_alveolar_po2_is_missing_exactly_when_fio2_or_paco2_is(
-    fio2_value: float | None, paco2: float | None, pb: float, temperature: float,
+    fio2_value: float | None,
+    paco2: float | None,
+    pb: float,
+    temperature: float,
     equation: physiology.Equation,
 ) -> None:
-    d = derive(snapshot(fio2=fio2_value, paco2=paco2, barometric_pressure=pb,
-                        temperature_c=temperature), DerivationSettings(equation=equation))
+    d = derive(
+        snapshot(fio2=fio2_value, paco2=paco2, barometric_pressure=pb, temperature_c=temperature),
+        DerivationSettings(equation=equation),
+    )
     assert (d.alveolar_po2 is None) is (fio2_value is None or paco2 is None)
 
 
@@ -401,11 +462,17 @@ def test_alveolar_po2_is_missing_exactly_when_fio2_or_paco2_is(
 @given(data=st.data())
 def test_reordering_the_readings_gives_the_same_derivation(data: st.DataObject) -> None:
     context = [
-        lab(Kind.PACO2, 41.0), lab(Kind.PH, 7.36), lab(Kind.SAO2, 95.0),
-        lab(Kind.HAEMOGLOBIN, 12.5), fio2(0.35, T0 - minutes(50)), fio2(0.45, T0 - minutes(12)),
-        device("room_air", T0 - hours(3)), reading(Kind.PEEP, 8.0, T0 - minutes(30)),
+        lab(Kind.PACO2, 41.0),
+        lab(Kind.PH, 7.36),
+        lab(Kind.SAO2, 95.0),
+        lab(Kind.HAEMOGLOBIN, 12.5),
+        fio2(0.35, T0 - minutes(50)),
+        fio2(0.45, T0 - minutes(12)),
+        device("room_air", T0 - hours(3)),
+        reading(Kind.PEEP, 8.0, T0 - minutes(30)),
         reading(Kind.MEAN_AIRWAY_PRESSURE, 13.0, T0 - minutes(30)),
-        reading(Kind.SPO2, 94.0, T0 - minutes(4)), reading(Kind.SPO2, 95.0, T0 + minutes(4)),
+        reading(Kind.SPO2, 94.0, T0 - minutes(4)),
+        reading(Kind.SPO2, 95.0, T0 + minutes(4)),
         reading(Kind.BODY_TEMPERATURE, 38.2, T0 - hours(1)),
         lab(Kind.PACO2, 52.0, panel_id=None, specimen=Specimen.VENOUS, logical_id="vbg"),
     ]

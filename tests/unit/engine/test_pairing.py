@@ -54,88 +54,238 @@ FLAG = QualityFlag
 
 FIO2_CASES = [
     # id, context, expected value, expected source, flags that must be present
-    ("with the gas beats charted", [fio2(0.5, T0, panel_id="ABG-1"), fio2(0.4, T0 - minutes(8))],
-     0.5, FiO2Source.WITH_GAS, set()),
+    (
+        "with the gas beats charted",
+        [fio2(0.5, T0, panel_id="ABG-1"), fio2(0.4, T0 - minutes(8))],
+        0.5,
+        FiO2Source.WITH_GAS,
+        set(),
+    ),
     ("charted 8 min before", [fio2(0.4, T0 - minutes(8))], 0.4, FiO2Source.CHARTED, set()),
     ("charted exactly at the draw", [fio2(0.4, T0)], 0.4, FiO2Source.CHARTED, set()),
-    ("charted exactly 2 h before is still in effect", [fio2(0.4, T0 - hours(2))],
-     0.4, FiO2Source.CHARTED, set()),
-    ("charted 2 h 1 min before is stale", [fio2(0.4, T0 - hours(2) - minutes(1))],
-     None, FiO2Source.UNKNOWN, {FLAG.FIO2_UNKNOWN}),
-    ("ventilator setting 3 h before is in effect",
-     [fio2(0.4, T0 - hours(3), from_ventilator=True)], 0.4, FiO2Source.CHARTED, set()),
-    ("ventilator setting exactly 4 h before is in effect",
-     [fio2(0.4, T0 - hours(4), from_ventilator=True)], 0.4, FiO2Source.CHARTED, set()),
-    ("ventilator setting 4 h 1 min before is stale",
-     [fio2(0.4, T0 - hours(4) - minutes(1), from_ventilator=True)],
-     None, FiO2Source.UNKNOWN, {FLAG.FIO2_UNKNOWN}),
-    ("the latest charting wins", [fio2(0.6, T0 - minutes(90)), fio2(0.4, T0 - minutes(30))],
-     0.4, FiO2Source.CHARTED, set()),
-    ("a stale latest charting is not replaced by an older ventilator value",
-     [fio2(0.6, T0 - hours(3.5), from_ventilator=True), fio2(0.4, T0 - hours(3))],
-     None, FiO2Source.UNKNOWN, {FLAG.FIO2_UNKNOWN}),
-    ("charted 5 min after, nothing before", [fio2(0.5, T0 + minutes(5))],
-     0.5, FiO2Source.CHARTED_AFTER, {FLAG.FIO2_CHARTED_AFTER_DRAW}),
-    ("charted exactly 10 min after, nothing before", [fio2(0.5, T0 + minutes(10))],
-     0.5, FiO2Source.CHARTED_AFTER, {FLAG.FIO2_CHARTED_AFTER_DRAW}),
-    ("charted 11 min after is not used", [fio2(0.5, T0 + minutes(11))],
-     None, FiO2Source.UNKNOWN, {FLAG.FIO2_UNKNOWN}),
-    ("charted after is ignored when a valid value precedes the draw",
-     [fio2(0.4, T0 - minutes(30)), fio2(0.5, T0 + minutes(5))], 0.4, FiO2Source.CHARTED, set()),
-    ("charted after is used when the value before is stale",
-     [fio2(0.4, T0 - hours(3)), fio2(0.5, T0 + minutes(5))],
-     0.5, FiO2Source.CHARTED_AFTER, {FLAG.FIO2_CHARTED_AFTER_DRAW}),
-    ("room air charted 1 h before", [device("room_air", T0 - hours(1))],
-     0.21, FiO2Source.ROOM_AIR, set()),
-    ("room air charted exactly 2 h before", [device("room_air", T0 - hours(2))],
-     0.21, FiO2Source.ROOM_AIR, set()),
-    ("room air charted 2 h 1 min before is stale",
-     [device("room_air", T0 - hours(2) - minutes(1))], None, FiO2Source.UNKNOWN,
-     {FLAG.FIO2_UNKNOWN}),
-    ("room air charted after the last FiO2 supersedes it",
-     [fio2(0.4, T0 - minutes(60)), device("room_air", T0 - minutes(30))],
-     0.21, FiO2Source.ROOM_AIR, set()),
-    ("a FiO2 charted after room air supersedes it",
-     [device("room_air", T0 - minutes(60)), fio2(0.3, T0 - minutes(30))],
-     0.3, FiO2Source.CHARTED, set()),
-    ("room air before the draw beats a value charted after",
-     [device("room_air", T0 - minutes(60)), fio2(0.4, T0 + minutes(5))],
-     0.21, FiO2Source.ROOM_AIR, set()),
+    (
+        "charted exactly 2 h before is still in effect",
+        [fio2(0.4, T0 - hours(2))],
+        0.4,
+        FiO2Source.CHARTED,
+        set(),
+    ),
+    (
+        "charted 2 h 1 min before is stale",
+        [fio2(0.4, T0 - hours(2) - minutes(1))],
+        None,
+        FiO2Source.UNKNOWN,
+        {FLAG.FIO2_UNKNOWN},
+    ),
+    (
+        "ventilator setting 3 h before is in effect",
+        [fio2(0.4, T0 - hours(3), from_ventilator=True)],
+        0.4,
+        FiO2Source.CHARTED,
+        set(),
+    ),
+    (
+        "ventilator setting exactly 4 h before is in effect",
+        [fio2(0.4, T0 - hours(4), from_ventilator=True)],
+        0.4,
+        FiO2Source.CHARTED,
+        set(),
+    ),
+    (
+        "ventilator setting 4 h 1 min before is stale",
+        [fio2(0.4, T0 - hours(4) - minutes(1), from_ventilator=True)],
+        None,
+        FiO2Source.UNKNOWN,
+        {FLAG.FIO2_UNKNOWN},
+    ),
+    (
+        "the latest charting wins",
+        [fio2(0.6, T0 - minutes(90)), fio2(0.4, T0 - minutes(30))],
+        0.4,
+        FiO2Source.CHARTED,
+        set(),
+    ),
+    (
+        "a stale latest charting is not replaced by an older ventilator value",
+        [fio2(0.6, T0 - hours(3.5), from_ventilator=True), fio2(0.4, T0 - hours(3))],
+        None,
+        FiO2Source.UNKNOWN,
+        {FLAG.FIO2_UNKNOWN},
+    ),
+    (
+        "charted 5 min after, nothing before",
+        [fio2(0.5, T0 + minutes(5))],
+        0.5,
+        FiO2Source.CHARTED_AFTER,
+        {FLAG.FIO2_CHARTED_AFTER_DRAW},
+    ),
+    (
+        "charted exactly 10 min after, nothing before",
+        [fio2(0.5, T0 + minutes(10))],
+        0.5,
+        FiO2Source.CHARTED_AFTER,
+        {FLAG.FIO2_CHARTED_AFTER_DRAW},
+    ),
+    (
+        "charted 11 min after is not used",
+        [fio2(0.5, T0 + minutes(11))],
+        None,
+        FiO2Source.UNKNOWN,
+        {FLAG.FIO2_UNKNOWN},
+    ),
+    (
+        "charted after is ignored when a valid value precedes the draw",
+        [fio2(0.4, T0 - minutes(30)), fio2(0.5, T0 + minutes(5))],
+        0.4,
+        FiO2Source.CHARTED,
+        set(),
+    ),
+    (
+        "charted after is used when the value before is stale",
+        [fio2(0.4, T0 - hours(3)), fio2(0.5, T0 + minutes(5))],
+        0.5,
+        FiO2Source.CHARTED_AFTER,
+        {FLAG.FIO2_CHARTED_AFTER_DRAW},
+    ),
+    (
+        "room air charted 1 h before",
+        [device("room_air", T0 - hours(1))],
+        0.21,
+        FiO2Source.ROOM_AIR,
+        set(),
+    ),
+    (
+        "room air charted exactly 2 h before",
+        [device("room_air", T0 - hours(2))],
+        0.21,
+        FiO2Source.ROOM_AIR,
+        set(),
+    ),
+    (
+        "room air charted 2 h 1 min before is stale",
+        [device("room_air", T0 - hours(2) - minutes(1))],
+        None,
+        FiO2Source.UNKNOWN,
+        {FLAG.FIO2_UNKNOWN},
+    ),
+    (
+        "room air charted after the last FiO2 supersedes it",
+        [fio2(0.4, T0 - minutes(60)), device("room_air", T0 - minutes(30))],
+        0.21,
+        FiO2Source.ROOM_AIR,
+        set(),
+    ),
+    (
+        "a FiO2 charted after room air supersedes it",
+        [device("room_air", T0 - minutes(60)), fio2(0.3, T0 - minutes(30))],
+        0.3,
+        FiO2Source.CHARTED,
+        set(),
+    ),
+    (
+        "room air before the draw beats a value charted after",
+        [device("room_air", T0 - minutes(60)), fio2(0.4, T0 + minutes(5))],
+        0.21,
+        FiO2Source.ROOM_AIR,
+        set(),
+    ),
     # 2 L/min nasal cannula: 28 % (reference sheet section 8, teaching table [C]).
-    ("nasal cannula 2 L/min is estimated",
-     [device("nasal_cannula", T0 - minutes(30)), flow(2.0, T0 - minutes(30))],
-     0.28, FiO2Source.DEVICE_ESTIMATE, {FLAG.ESTIMATED_FIO2}),
+    (
+        "nasal cannula 2 L/min is estimated",
+        [device("nasal_cannula", T0 - minutes(30)), flow(2.0, T0 - minutes(30))],
+        0.28,
+        FiO2Source.DEVICE_ESTIMATE,
+        {FLAG.ESTIMATED_FIO2},
+    ),
     # Reservoir mask 10-15 L/min: ~0.60-0.90 (section 8 [C]); 15 L/min is the top.
-    ("reservoir mask 15 L/min is estimated",
-     [device("reservoir_mask", T0 - minutes(30)), flow(15.0, T0 - minutes(40))],
-     0.90, FiO2Source.DEVICE_ESTIMATE, {FLAG.ESTIMATED_FIO2}),
-    ("a value charted after the draw beats a device estimate",
-     [device("nasal_cannula", T0 - minutes(30)), flow(2.0, T0 - minutes(30)),
-      fio2(0.35, T0 + minutes(5))],
-     0.35, FiO2Source.CHARTED_AFTER, {FLAG.FIO2_CHARTED_AFTER_DRAW}),
-    ("a device without a flow cannot be estimated", [device("nasal_cannula", T0 - minutes(30))],
-     None, FiO2Source.UNKNOWN, {FLAG.FIO2_UNKNOWN}),
-    ("a device with a set FiO2 is never estimated",
-     [device("high_flow_nasal", T0 - minutes(30)), flow(40.0, T0 - minutes(30))],
-     None, FiO2Source.UNKNOWN, {FLAG.FIO2_UNKNOWN}),
-    ("a stale flow is not used",
-     [device("nasal_cannula", T0 - minutes(30)), flow(2.0, T0 - hours(2) - minutes(1))],
-     None, FiO2Source.UNKNOWN, {FLAG.FIO2_UNKNOWN}),
+    (
+        "reservoir mask 15 L/min is estimated",
+        [device("reservoir_mask", T0 - minutes(30)), flow(15.0, T0 - minutes(40))],
+        0.90,
+        FiO2Source.DEVICE_ESTIMATE,
+        {FLAG.ESTIMATED_FIO2},
+    ),
+    (
+        "a value charted after the draw beats a device estimate",
+        [
+            device("nasal_cannula", T0 - minutes(30)),
+            flow(2.0, T0 - minutes(30)),
+            fio2(0.35, T0 + minutes(5)),
+        ],
+        0.35,
+        FiO2Source.CHARTED_AFTER,
+        {FLAG.FIO2_CHARTED_AFTER_DRAW},
+    ),
+    (
+        "a device without a flow cannot be estimated",
+        [device("nasal_cannula", T0 - minutes(30))],
+        None,
+        FiO2Source.UNKNOWN,
+        {FLAG.FIO2_UNKNOWN},
+    ),
+    (
+        "a device with a set FiO2 is never estimated",
+        [device("high_flow_nasal", T0 - minutes(30)), flow(40.0, T0 - minutes(30))],
+        None,
+        FiO2Source.UNKNOWN,
+        {FLAG.FIO2_UNKNOWN},
+    ),
+    (
+        "a stale flow is not used",
+        [device("nasal_cannula", T0 - minutes(30)), flow(2.0, T0 - hours(2) - minutes(1))],
+        None,
+        FiO2Source.UNKNOWN,
+        {FLAG.FIO2_UNKNOWN},
+    ),
     ("nothing charted", [], None, FiO2Source.UNKNOWN, {FLAG.FIO2_UNKNOWN}),
-    ("another patient's FiO2 is ignored", [fio2(0.4, T0 - minutes(8), patient_key=OTHER_PATIENT)],
-     None, FiO2Source.UNKNOWN, {FLAG.FIO2_UNKNOWN}),
-    ("a retracted FiO2 is never used",
-     [fio2(0.6, T0 - minutes(60)),
-      fio2(0.4, T0 - minutes(30), status=Status.RETRACTED)], 0.6, FiO2Source.CHARTED, set()),
-    ("a corrected FiO2 replaces its earlier version",
-     [fio2(0.4, T0 - minutes(30), logical_id="f1", delivery_id="f1#1"),
-      fio2(0.45, T0 - minutes(30), logical_id="f1", delivery_id="f1#2",
-           received_at=T0 + hours(1))], 0.45, FiO2Source.CHARTED, set()),
-    ("a withdrawn FiO2 (retracted later version) is not used",
-     [fio2(0.4, T0 - minutes(30), logical_id="f1", delivery_id="f1#1"),
-      reading(Kind.FIO2, None, T0 - minutes(30), logical_id="f1", delivery_id="f1#2",
-              status=Status.RETRACTED, received_at=T0 + hours(1))],
-     None, FiO2Source.UNKNOWN, {FLAG.FIO2_UNKNOWN}),
+    (
+        "another patient's FiO2 is ignored",
+        [fio2(0.4, T0 - minutes(8), patient_key=OTHER_PATIENT)],
+        None,
+        FiO2Source.UNKNOWN,
+        {FLAG.FIO2_UNKNOWN},
+    ),
+    (
+        "a retracted FiO2 is never used",
+        [fio2(0.6, T0 - minutes(60)), fio2(0.4, T0 - minutes(30), status=Status.RETRACTED)],
+        0.6,
+        FiO2Source.CHARTED,
+        set(),
+    ),
+    (
+        "a corrected FiO2 replaces its earlier version",
+        [
+            fio2(0.4, T0 - minutes(30), logical_id="f1", delivery_id="f1#1"),
+            fio2(
+                0.45,
+                T0 - minutes(30),
+                logical_id="f1",
+                delivery_id="f1#2",
+                received_at=T0 + hours(1),
+            ),
+        ],
+        0.45,
+        FiO2Source.CHARTED,
+        set(),
+    ),
+    (
+        "a withdrawn FiO2 (retracted later version) is not used",
+        [
+            fio2(0.4, T0 - minutes(30), logical_id="f1", delivery_id="f1#1"),
+            reading(
+                Kind.FIO2,
+                None,
+                T0 - minutes(30),
+                logical_id="f1",
+                delivery_id="f1#2",
+                status=Status.RETRACTED,
+                received_at=T0 + hours(1),
+            ),
+        ],
+        None,
+        FiO2Source.UNKNOWN,
+        {FLAG.FIO2_UNKNOWN},
+    ),
 ]
 
 
@@ -176,22 +326,39 @@ def test_fio2_in_effect_is_callable_on_its_own_for_spo2_pairing() -> None:
 
 STEADY_CASES = [
     ("changed 10 min before", [fio2(0.4, T0 - minutes(60)), fio2(0.6, T0 - minutes(10))], True),
-    ("changed exactly 15 min before is steady",
-     [fio2(0.4, T0 - minutes(60)), fio2(0.6, T0 - minutes(15))], False),
+    (
+        "changed exactly 15 min before is steady",
+        [fio2(0.4, T0 - minutes(60)), fio2(0.6, T0 - minutes(15))],
+        False,
+    ),
     ("changed 14 min before", [fio2(0.4, T0 - minutes(60)), fio2(0.6, T0 - minutes(14))], True),
     ("same value re-charted", [fio2(0.6, T0 - minutes(60)), fio2(0.6, T0 - minutes(5))], False),
     ("a first value is not a change", [fio2(0.6, T0 - minutes(5))], False),
-    ("room air then oxygen", [device("room_air", T0 - minutes(60)), fio2(0.4, T0 - minutes(5))],
-     True),
-    ("oxygen then room air", [fio2(0.4, T0 - minutes(60)), device("room_air", T0 - minutes(5))],
-     True),
-    ("the value replaced was already stale",
-     [fio2(0.4, T0 - hours(3)), fio2(0.6, T0 - minutes(5))], False),
-    ("a change after the draw does not count",
-     [fio2(0.4, T0 - minutes(60)), fio2(0.6, T0 + minutes(5))], False),
-    ("with the gas, after a change 5 min before",
-     [fio2(0.4, T0 - minutes(60)), fio2(0.6, T0 - minutes(5)), fio2(0.6, T0, panel_id="ABG-1")],
-     True),
+    (
+        "room air then oxygen",
+        [device("room_air", T0 - minutes(60)), fio2(0.4, T0 - minutes(5))],
+        True,
+    ),
+    (
+        "oxygen then room air",
+        [fio2(0.4, T0 - minutes(60)), device("room_air", T0 - minutes(5))],
+        True,
+    ),
+    (
+        "the value replaced was already stale",
+        [fio2(0.4, T0 - hours(3)), fio2(0.6, T0 - minutes(5))],
+        False,
+    ),
+    (
+        "a change after the draw does not count",
+        [fio2(0.4, T0 - minutes(60)), fio2(0.6, T0 + minutes(5))],
+        False,
+    ),
+    (
+        "with the gas, after a change 5 min before",
+        [fio2(0.4, T0 - minutes(60)), fio2(0.6, T0 - minutes(5)), fio2(0.6, T0, panel_id="ABG-1")],
+        True,
+    ),
 ]
 
 
@@ -221,8 +388,16 @@ ART, VEN, UNK = Specimen.ARTERIAL, Specimen.VENOUS, Specimen.UNKNOWN
         (minutes(1), None, UNK, True),  # specimen not stated: accepted
         (minutes(1), "ABG-0", ART, False),  # another panel never joins by time
     ],
-    ids=["same panel 5 min", "1 min", "2 min", "-2 min", "2 min 1 s", "venous", "unknown",
-         "other panel"],
+    ids=[
+        "same panel 5 min",
+        "1 min",
+        "2 min",
+        "-2 min",
+        "2 min 1 s",
+        "venous",
+        "unknown",
+        "other panel",
+    ],
 )
 def test_same_sample_rule(
     kind: Kind, offset: timedelta, panel: str | None, specimen: Specimen, joins: bool
@@ -259,20 +434,47 @@ def test_a_retracted_paco2_is_never_used() -> None:
 # --- barometric pressure ---------------------------------------------------------------------
 
 PRESSURE_CASES = [
-    ("measured with the sample", [reading(Kind.BAROMETRIC_PRESSURE, 630.0, panel_id="ABG-1")],
-     {"site_barometric_pressure": 640.0, "site_elevation_m": 1600.0},
-     630.0, PressureSource.MEASURED, set()),
-    ("measured within 2 min without panel",
-     [reading(Kind.BAROMETRIC_PRESSURE, 631.0, T0 + minutes(2))], {},
-     631.0, PressureSource.MEASURED, set()),
-    ("site setting beats elevation", [], {"site_barometric_pressure": 640.0,
-                                          "site_elevation_m": 1600.0},
-     640.0, PressureSource.SITE_SETTING, set()),
+    (
+        "measured with the sample",
+        [reading(Kind.BAROMETRIC_PRESSURE, 630.0, panel_id="ABG-1")],
+        {"site_barometric_pressure": 640.0, "site_elevation_m": 1600.0},
+        630.0,
+        PressureSource.MEASURED,
+        set(),
+    ),
+    (
+        "measured within 2 min without panel",
+        [reading(Kind.BAROMETRIC_PRESSURE, 631.0, T0 + minutes(2))],
+        {},
+        631.0,
+        PressureSource.MEASURED,
+        set(),
+    ),
+    (
+        "site setting beats elevation",
+        [],
+        {"site_barometric_pressure": 640.0, "site_elevation_m": 1600.0},
+        640.0,
+        PressureSource.SITE_SETTING,
+        set(),
+    ),
     # ISA at 1600 m: 626.51 mmHg (reference sheet section 3 [COMP], fluids and ambiance).
-    ("standard atmosphere at 1600 m", [], {"site_elevation_m": 1600.0},
-     626.51, PressureSource.STANDARD_ATMOSPHERE, {FLAG.ESTIMATED_PRESSURE}),
-    ("nothing known: 760", [reading(Kind.BAROMETRIC_PRESSURE, 630.0, T0 + minutes(3))], {},
-     760.0, PressureSource.DEFAULT, {FLAG.DEFAULT_PRESSURE}),
+    (
+        "standard atmosphere at 1600 m",
+        [],
+        {"site_elevation_m": 1600.0},
+        626.51,
+        PressureSource.STANDARD_ATMOSPHERE,
+        {FLAG.ESTIMATED_PRESSURE},
+    ),
+    (
+        "nothing known: 760",
+        [reading(Kind.BAROMETRIC_PRESSURE, 630.0, T0 + minutes(3))],
+        {},
+        760.0,
+        PressureSource.DEFAULT,
+        {FLAG.DEFAULT_PRESSURE},
+    ),
 ]
 
 
@@ -282,7 +484,10 @@ PRESSURE_CASES = [
     ids=[c[0] for c in PRESSURE_CASES],
 )
 def test_barometric_pressure_source(
-    context: list[Reading], kw: dict[str, float], pb: float, source: PressureSource,
+    context: list[Reading],
+    kw: dict[str, float],
+    pb: float,
+    source: PressureSource,
     flags: set[QualityFlag],
 ) -> None:
     snap = pair(pao2(), context, PairingSettings(**kw))  # type: ignore[arg-type]
@@ -294,23 +499,54 @@ def test_barometric_pressure_source(
 # --- temperature ------------------------------------------------------------------------------
 
 TEMPERATURE_CASES = [
-    ("with the sample", [reading(Kind.BODY_TEMPERATURE, 38.5, T0 + minutes(6), panel_id="ABG-1"),
-                         reading(Kind.BODY_TEMPERATURE, 37.5, T0 - hours(1))],
-     38.5, TemperatureSource.WITH_SAMPLE),
-    ("within 2 min after, no panel", [reading(Kind.BODY_TEMPERATURE, 38.1, T0 + minutes(2))],
-     38.1, TemperatureSource.WITH_SAMPLE),
-    ("charted 3 h before", [reading(Kind.BODY_TEMPERATURE, 38.9, T0 - hours(3))],
-     38.9, TemperatureSource.CHARTED),
-    ("charted exactly 4 h before", [reading(Kind.BODY_TEMPERATURE, 38.9, T0 - hours(4))],
-     38.9, TemperatureSource.CHARTED),
-    ("charted 4 h 1 min before", [reading(Kind.BODY_TEMPERATURE, 38.9,
-                                          T0 - hours(4) - minutes(1))],
-     37.0, TemperatureSource.DEFAULT),
-    ("charted 5 min after the draw", [reading(Kind.BODY_TEMPERATURE, 38.9, T0 + minutes(5))],
-     37.0, TemperatureSource.DEFAULT),
-    ("the latest charted wins", [reading(Kind.BODY_TEMPERATURE, 38.9, T0 - hours(3)),
-                                 reading(Kind.BODY_TEMPERATURE, 36.4, T0 - hours(1))],
-     36.4, TemperatureSource.CHARTED),
+    (
+        "with the sample",
+        [
+            reading(Kind.BODY_TEMPERATURE, 38.5, T0 + minutes(6), panel_id="ABG-1"),
+            reading(Kind.BODY_TEMPERATURE, 37.5, T0 - hours(1)),
+        ],
+        38.5,
+        TemperatureSource.WITH_SAMPLE,
+    ),
+    (
+        "within 2 min after, no panel",
+        [reading(Kind.BODY_TEMPERATURE, 38.1, T0 + minutes(2))],
+        38.1,
+        TemperatureSource.WITH_SAMPLE,
+    ),
+    (
+        "charted 3 h before",
+        [reading(Kind.BODY_TEMPERATURE, 38.9, T0 - hours(3))],
+        38.9,
+        TemperatureSource.CHARTED,
+    ),
+    (
+        "charted exactly 4 h before",
+        [reading(Kind.BODY_TEMPERATURE, 38.9, T0 - hours(4))],
+        38.9,
+        TemperatureSource.CHARTED,
+    ),
+    (
+        "charted 4 h 1 min before",
+        [reading(Kind.BODY_TEMPERATURE, 38.9, T0 - hours(4) - minutes(1))],
+        37.0,
+        TemperatureSource.DEFAULT,
+    ),
+    (
+        "charted 5 min after the draw",
+        [reading(Kind.BODY_TEMPERATURE, 38.9, T0 + minutes(5))],
+        37.0,
+        TemperatureSource.DEFAULT,
+    ),
+    (
+        "the latest charted wins",
+        [
+            reading(Kind.BODY_TEMPERATURE, 38.9, T0 - hours(3)),
+            reading(Kind.BODY_TEMPERATURE, 36.4, T0 - hours(1)),
+        ],
+        36.4,
+        TemperatureSource.CHARTED,
+    ),
 ]
 
 
@@ -405,8 +641,7 @@ def test_the_age_reason_does_not_repeat_the_birth_date() -> None:
         ([], Status.PRELIMINARY, True),
         ([lab(Kind.PACO2, 40.0, status=Status.CORRECTED)], Status.FINAL, False),
         # A preliminary reading that is not used does not make the sample preliminary.
-        ([lab(Kind.PACO2, 40.0, panel_id="ABG-0", status=Status.PRELIMINARY)], Status.FINAL,
-         False),
+        ([lab(Kind.PACO2, 40.0, panel_id="ABG-0", status=Status.PRELIMINARY)], Status.FINAL, False),
     ],
     ids=["paco2", "fio2", "the sample", "corrected is final", "unused"],
 )
@@ -477,13 +712,18 @@ _KINDS = [*_NUMERIC, Kind.O2_DEVICE]
 
 
 @st.composite
-def _reading(draw: st.DrawFn, index: int, offset: st.SearchStrategy[int] | None = None,
-             panels: tuple[str | None, ...] = (None, "ABG-1", "ABG-0"),
-             kind: Kind | None = None) -> Reading:
+def _reading(
+    draw: st.DrawFn,
+    index: int,
+    offset: st.SearchStrategy[int] | None = None,
+    panels: tuple[str | None, ...] = (None, "ABG-1", "ABG-0"),
+    kind: Kind | None = None,
+) -> Reading:
     kind = kind or draw(st.sampled_from(_KINDS))
     seconds = draw(offset if offset is not None else st.integers(-5 * 3600, 20 * 60))
-    status = draw(st.sampled_from([Status.FINAL, Status.FINAL, Status.PRELIMINARY,
-                                   Status.RETRACTED]))
+    status = draw(
+        st.sampled_from([Status.FINAL, Status.FINAL, Status.PRELIMINARY, Status.RETRACTED])
+    )
     code = None
     value: float | None = None
     if kind is Kind.O2_DEVICE:
@@ -492,8 +732,13 @@ def _reading(draw: st.DrawFn, index: int, offset: st.SearchStrategy[int] | None 
         low, high = _NUMERIC[kind]
         value = round(draw(st.floats(low, high)), 2)
     return reading(
-        kind, value, T0 + timedelta(seconds=seconds), logical_id=f"r{index}",
-        status=status, code_value=code, panel_id=draw(st.sampled_from(panels)),
+        kind,
+        value,
+        T0 + timedelta(seconds=seconds),
+        logical_id=f"r{index}",
+        status=status,
+        code_value=code,
+        panel_id=draw(st.sampled_from(panels)),
         specimen=draw(st.sampled_from(list(Specimen))),
         from_ventilator=draw(st.booleans()),
     )

@@ -79,7 +79,9 @@ def test_theil_sen_refuses_a_value_that_is_not_finite() -> None:
 
 
 _series = st.lists(
-    st.tuples(st.integers(0, 24 * 60), st.floats(-500.0, 500.0)), min_size=2, max_size=15,
+    st.tuples(st.integers(0, 24 * 60), st.floats(-500.0, 500.0)),
+    min_size=2,
+    max_size=15,
     unique_by=lambda p: p[0],
 )
 
@@ -94,8 +96,12 @@ def test_theil_sen_matches_scipy(raw: list[tuple[int, float]]) -> None:
 
 
 @settings(max_examples=200, deadline=None)
-@given(slope=st.floats(-50.0, 50.0), n=st.integers(5, 12), bad=st.floats(-1e4, 1e4),
-       where=st.integers(0, 11))
+@given(
+    slope=st.floats(-50.0, 50.0),
+    n=st.integers(5, 12),
+    bad=st.floats(-1e4, 1e4),
+    where=st.integers(0, 11),
+)
 def test_theil_sen_is_robust_to_one_bad_sample(
     slope: float, n: int, bad: float, where: int
 ) -> None:
@@ -167,16 +173,23 @@ def test_aa_change_uses_the_latest_previous_gas_at_a_comparable_fio2() -> None:
 
 def test_aa_change_fio2_tolerance_edge() -> None:
     current = gas(NOW, aa_gradient=180.0, fio2=0.5)
-    assert aa_change_vs_previous(current, [gas(NOW - hours(1), aa_gradient=150.0, fio2=0.56)]) \
-        is None
-    assert aa_change_vs_previous(current, [gas(NOW - hours(1), aa_gradient=150.0, fio2=0.55)]) \
+    assert (
+        aa_change_vs_previous(current, [gas(NOW - hours(1), aa_gradient=150.0, fio2=0.56)]) is None
+    )
+    assert (
+        aa_change_vs_previous(current, [gas(NOW - hours(1), aa_gradient=150.0, fio2=0.55)])
         is not None
+    )
 
 
 def test_aa_change_ignores_the_current_sample_and_unreliable_ones() -> None:
     current = gas(NOW, aa_gradient=180.0, fio2=0.5)
-    unreliable = gas(NOW - hours(1), aa_gradient=10.0, fio2=0.5,
-                     flags=frozenset({QualityFlag.PAO2_ABOVE_ALVEOLAR}))
+    unreliable = gas(
+        NOW - hours(1),
+        aa_gradient=10.0,
+        fio2=0.5,
+        flags=frozenset({QualityFlag.PAO2_ABOVE_ALVEOLAR}),
+    )
     assert aa_change_vs_previous(current, [current, unreliable]) is None
 
 
