@@ -34,6 +34,7 @@ from adapters.fhir.observations import (
     FhirReadingBuilder,
     Rejected,
     Rejection,
+    content_hash,
     fhir_instant,
     reference_key,
 )
@@ -151,10 +152,22 @@ class FhirPoller:
         if self.include_panels:
             params["_revinclude"] = "Observation:has-member"
         result = PollBatch(watermark=since)
-        found: list[tuple[dict[str, Any], str | None]] = []
+        unique: dict[tuple[object, ...], tuple[dict[str, Any], str | None]] = {}
         for page in self._pages(f"{self.base_url}/Observation", params):
             result.pages += 1
-            found.extend(bundle_entries(page, result.skipped))
+            for resource, full_url in bundle_entries(page, result.skipped):
+                # offset paging over a changing result set can repeat an entry
+                meta = resource.get("meta") or {}
+                version = meta.get("versionId") if resource.get("id") else None
+                key: tuple[object, ...] = (
+                    resource.get("resourceType"),
+                    resource.get("id"),
+                    version or content_hash(resource),
+                )
+                if key in unique:
+                    result.skipped["repeated search entry"] += 1
+                unique[key] = (resource, full_url)
+        found = list(unique.values())
         for resource, _ in found:
             result.watermark = _later(result.watermark, resource, result.skipped)
         self._fetch_context(found)

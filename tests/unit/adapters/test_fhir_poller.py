@@ -206,3 +206,16 @@ def test_a_page_that_is_not_a_bundle_is_a_source_error() -> None:
     poller, _ = make(lambda request: httpx.Response(200, content=b"<html>maintenance</html>"))
     with poller, pytest.raises(FhirSourceError, match="not JSON"):
         poller.poll(None)
+
+
+def test_an_entry_repeated_across_pages_is_read_once() -> None:
+    obs = s.quantity_obs("o1", "2703-7", 10, "kPa", version="2")
+    pages = {
+        "1": searchset([obs], next_url=f"{BASE}/Observation?page=2"),
+        "2": searchset([obs]),  # the result set shifted under offset paging
+    }
+    poller, _ = make(serve(pages))
+    with poller:
+        batch = poller.poll(None)
+    assert len(batch.readings) == 1
+    assert batch.skipped["repeated search entry"] == 1
