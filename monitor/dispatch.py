@@ -136,7 +136,5 @@ def plan(
         return Plan(Outcome.DEAD, attempts, result.detail)
     if attempts >= policy.max_attempts:
         return Plan(Outcome.DEAD, attempts, f"gave up after {attempts} attempts: {result.detail}")
-    when = next_attempt(
-        attempts, now, policy.base, policy.cap, jitter=policy.jitter, rng=rng
-    )
+    when = next_attempt(attempts, now, policy.base, policy.cap, jitter=policy.jitter, rng=rng)
     return Plan(Outcome.RETRY, attempts, result.detail, when)

@@ -19,7 +19,6 @@ Exception tree (both root in the engine's ``MonitorError``)::
 
 import hashlib
 import smtplib
-import socket
 import ssl
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
@@ -175,7 +174,7 @@ def map_smtp_errors(what: str) -> Iterator[None]:
         raise DeliveryFailed(f"{what}: {_first_line(exc)}", retryable=True) from exc
     except ssl.SSLCertVerificationError as exc:
         raise DeliveryFailed(f"{what}: {_first_line(exc)}", retryable=False) from exc
-    except (TimeoutError, socket.timeout) as exc:
+    except TimeoutError as exc:
         raise DeliveryFailed(f"{what}: timed out", retryable=True) from exc
     except OSError as exc:  # refused, reset, unreachable, TLS handshake: the network
         raise DeliveryFailed(f"{what}: {_first_line(exc)}", retryable=True) from exc
@@ -197,9 +196,7 @@ def map_fhir_model_errors(what: str) -> Iterator[None]:
 M = TypeVar("M", bound=pydantic.BaseModel)
 
 
-def parse_options(
-    alias: str, model: type[M], options: Mapping[str, object]
-) -> M:
+def parse_options(alias: str, model: type[M], options: Mapping[str, object]) -> M:
     """Check one channel's options against its pydantic model; errors name the alias."""
     try:
         return model.model_validate(dict(options))

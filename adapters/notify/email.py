@@ -101,9 +101,10 @@ class EmailChannel:
         self.alias = alias
         self.options = parse_options(alias, EmailOptions, options)
         self._password = read_secret(alias, self.options.password_env, env)
-        self._domain = self.options.message_id_domain or parseaddr(
-            self.options.from_addr
-        )[1].rpartition("@")[2]
+        self._domain = (
+            self.options.message_id_domain
+            or parseaddr(self.options.from_addr)[1].rpartition("@")[2]
+        )
         self._log = logging.getLogger(f"gasgap.notify.{alias}")
 
     def message(self, notification: Notification) -> EmailMessage:

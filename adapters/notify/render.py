@@ -243,6 +243,6 @@ def html_body(n: Notification) -> str:
         paragraphs.append("<ul>" + "".join(bullets) + "</ul>")
     title = html.escape(subject_line(n))
     return (
-        "<!DOCTYPE html>\n<html><head><meta charset=\"utf-8\">"
+        '<!DOCTYPE html>\n<html><head><meta charset="utf-8">'
         f"<title>{title}</title></head>\n<body>\n" + "\n".join(paragraphs) + "\n</body></html>\n"
     )

@@ -196,9 +196,7 @@ def test_webhook_logs_name_the_display_key_but_never_the_patient_key(
         (httpx.InvalidURL("no host"), False),
     ],
 )
-def test_map_http_errors_translates_each_library_error(
-    error: Exception, retryable: bool
-) -> None:
+def test_map_http_errors_translates_each_library_error(error: Exception, retryable: bool) -> None:
     with pytest.raises(DeliveryFailed) as caught, map_http_errors("webhook test"):
         raise error
     assert caught.value.retryable is retryable
