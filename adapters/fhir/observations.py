@@ -267,9 +267,10 @@ class FhirReadingBuilder:
     # --- context -----------------------------------------------------------------
 
     def remember(self, resource: dict[str, Any], full_url: str | None = None) -> None:
-        """Take a Patient or Encounter as context only (e.g. from the poller's fetch)."""
-        batch = FhirBatch()
-        self.read(resource, full_url=full_url, into=batch)
+        """Take a Patient or Encounter as context only (e.g. from the poller's fetch);
+        anything else is ignored."""
+        if resource.get("resourceType") in ("Patient", "Encounter"):
+            self.read(resource, full_url=full_url)
 
     def note_panels(self, resources: Iterable[dict[str, Any]]) -> None:
         """Remember which panel each member Observation belongs to (``hasMember``), so
