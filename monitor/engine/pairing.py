@@ -325,21 +325,18 @@ def _choose_fio2(
                 str(last_device.code_value), flow.value if flow is not None else None
             )
         except (InvalidInput, ValueError) as exc:
-            notes.append(_used("fio2", last_device, f"not estimated from the device: {exc}", "-"))
+            notes.append(_used("fio2", last_device, f"not estimated from the device: {exc}"))
         else:
             used = (last_device,) if flow is None else (last_device, flow)
             inputs = [_used("o2_device", last_device, _when("device charted", last_device, at))]
             if flow is not None:
                 inputs.append(_used("o2_flow", flow, _when("flow charted", flow, at)))
-            inputs.append(
-                InputUsed(
-                    "fio2",
-                    value,
-                    "estimated from device and flow (rule of thumb, reference sheet section 8)",
-                    None,
-                    at,
-                )
+            given = f" at {flow.value:g} L/min" if flow is not None else ""
+            why = (
+                f"estimated from {last_device.code_value}{given}: a rule of thumb, "
+                "uncertain by 0.1 or more"
             )
+            inputs.append(InputUsed("fio2", value, why, None, at))
             flags.add(QualityFlag.ESTIMATED_FIO2)
             return FiO2InEffect(
                 value, FiO2Source.DEVICE_ESTIMATE, frozenset(flags), tuple(inputs), used

@@ -806,3 +806,13 @@ def test_a_fio2_just_older_than_the_staleness_still_marks_a_recent_change() -> N
     before, after = influence_window(Kind.FIO2, SETTINGS)
     assert T0 - after <= old.effective_at <= T0 + before
     assert context_window(SETTINGS)[0] >= T0 - old.effective_at
+
+
+def test_an_estimated_fio2_names_device_flow_and_uncertainty() -> None:
+    context = [device("nasal_cannula", T0 - minutes(30)), flow(2.0, T0 - minutes(25))]
+    snap = pair(pao2(), context, SETTINGS)
+    roles = {i.role: i for i in snap.inputs}
+    assert roles["o2_device"].value == "nasal_cannula"
+    assert roles["o2_flow"].value == 2.0
+    assert "nasal_cannula at 2 L/min" in roles["fio2"].reason
+    assert "rule of thumb" in roles["fio2"].reason
