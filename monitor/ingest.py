@@ -1,0 +1,289 @@
+"""From outside input to ``Inbound`` units for the pipeline: HL7 messages, FHIR
+resources, and files of either, streamed.
+
+Each unit carries its record time (when the source sent it: MSH-7 for HL7 v2,
+``meta.lastUpdated`` for FHIR), which replay uses to play a feed in the order it was
+sent, and ingest uses to stamp when it was received.
+"""
+
+from __future__ import annotations
+
+import heapq
+import logging
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, tzinfo
+from pathlib import Path
+from typing import Any
+
+from adapters.codes import CodeTable
+from adapters.fhir.bundles import bundle_entries, iter_ndjson, ndjson_line_reason
+from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, fhir_instant
+from adapters.hl7v2 import Hl7Error, parse_oru
+from adapters.hl7v2.files import iter_hl7_file
+from adapters.hl7v2.parse import parse_dtm
+from monitor.pipeline import BatchReport, Inbound, Pipeline, Rejected
+
+log = logging.getLogger("gasgap.ingest")
+
+#: Default source names: part of every reading's identity, so the same result read
+#: from a file, over MLLP or by replay is recognised as the same result.
+HL7_SOURCE = "lab"
+FHIR_SOURCE = "ehr"
+
+HL7_SUFFIXES = {".hl7", ".hl7v2", ".txt", ".oru"}
+NDJSON_SUFFIXES = {".ndjson", ".jsonl"}
+JSON_SUFFIXES = {".json"}
+
+
+@dataclass(frozen=True, slots=True)
+class SourceContext:
+    """What an adapter needs to know about the site to read its input."""
+
+    codes: CodeTable = field(default_factory=CodeTable.load)
+    site_tz: tzinfo = UTC
+    patient_id_system: str | None = None
+    hl7_source: str = HL7_SOURCE
+    fhir_source: str = FHIR_SOURCE
+    strict_fhir: bool = False
+
+
+@dataclass(slots=True)
+class Unit:
+    """One unit of input read from somewhere, and when its source sent it."""
+
+    inbound: Inbound
+    record_time: datetime | None
+    origin: str
+
+
+class FileKindError(ValueError):
+    """A path whose kind (HL7 or FHIR) cannot be told from its name or content."""
+
+
+# --- HL7 v2 --------------------------------------------------------------------------------
+
+
+def hl7_record_time(raw: bytes, site_tz: tzinfo) -> datetime | None:
+    """MSH-7 (date/time of message), or None when it is missing or unreadable."""
+    try:
+        first = raw.split(b"\r", 1)[0].split(b"\n", 1)[0].decode("latin-1")
+        if not first.startswith("MSH") or len(first) < 4:
+            return None
+        fields = first.split(first[3])
+        return parse_dtm(fields[6].split("^")[0], site_tz) if len(fields) > 6 else None
+    except (ValueError, IndexError):
+        return None
+
+
+def inbound_from_hl7(
+    raw: bytes, *, received_at: datetime, context: SourceContext, source: str | None = None
+) -> Inbound:
+    """One HL7 v2 message as an Inbound unit.
+
+    Raises ``Hl7Error`` when the message as a whole is refused (the MLLP listener turns
+    it into AE/AR); a refused OBX becomes a rejection with the reason and the message,
+    while the rest of the message is taken.
+    """
+    name = source or context.hl7_source
+    parsed = parse_oru(
+        raw, received_at=received_at, codes=context.codes, source_system=name,
+        site_tz=context.site_tz, patient_id_system=context.patient_id_system,
+    )
+    rejected = [
+        Rejected(f"hl7:{name}", raw, f"message {parsed.control_id} {r}") for r in parsed.rejected
+    ]
+    return Inbound(
+        readings=list(parsed.readings), rejected=rejected,
+        skipped_codes=parsed.skipped_codes, ignored=sum(parsed.ignored.values()),
+    )
+
+
+def hl7_units(path: Path, context: SourceContext, received_at: Callable[[], datetime]) -> Iterator[Unit]:
+    for raw in iter_hl7_file(path):
+        record_time = hl7_record_time(raw, context.site_tz)
+        try:
+            inbound = inbound_from_hl7(
+                raw, received_at=record_time or received_at(), context=context
+            )
+        except Hl7Error as exc:
+            inbound = Inbound(rejected=[Rejected(f"hl7:{context.hl7_source}", raw, str(exc))])
+        yield Unit(inbound, record_time, f"{path.name}")
+
+
+# --- FHIR ----------------------------------------------------------------------------------
+
+
+def _inbound_from_fhir(batch: FhirBatch, source: str) -> Inbound:
+    return Inbound(
+        readings=list(batch.readings),
+        rejected=[Rejected(f"fhir:{source}", r.raw, r.reason) for r in batch.rejections],
+        skipped_codes=batch.skipped_codes,
+        ignored=sum(batch.skipped.values()),
+    )
+
+
+def fhir_record_time(resource: dict[str, Any]) -> datetime | None:
+    updated = (resource.get("meta") or {}).get("lastUpdated")
+    if not isinstance(updated, str):
+        return None
+    try:
+        return fhir_instant(updated, "meta.lastUpdated")
+    except ValueError:
+        return None
+
+
+def fhir_builder(context: SourceContext, received_at: Callable[[], datetime]) -> FhirReadingBuilder:
+    return FhirReadingBuilder(
+        context.codes, source_system=context.fhir_source,
+        patient_id_system=context.patient_id_system, received_at_fn=received_at,
+        strict=context.strict_fhir,
+    )
+
+
+def ndjson_units(
+    path: Path, context: SourceContext, received_at: Callable[[], datetime],
+    builder: FhirReadingBuilder | None = None,
+) -> Iterator[Unit]:
+    builder = builder or fhir_builder(context, received_at)
+    for number, item in iter_ndjson(path):
+        if isinstance(item, bytes):
+            reason = f"{path.name} {ndjson_line_reason(number, item)}"
+            yield Unit(Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", item, reason)]),
+                       None, path.name)
+            continue
+        record_time = fhir_record_time(item)
+        builder.note_panels([item])
+        batch = builder.read(item, received_at=record_time or received_at())
+        for i, rej in enumerate(batch.rejections):
+            batch.rejections[i] = type(rej)(rej.source, f"{path.name} line {number}: {rej.reason}", rej.raw)
+        yield Unit(_inbound_from_fhir(batch, context.fhir_source), record_time, path.name)
+
+
+def json_units(path: Path, context: SourceContext, received_at: Callable[[], datetime]) -> Iterator[Unit]:
+    import orjson
+
+    raw = path.read_bytes()
+    try:
+        data = orjson.loads(raw)
+    except orjson.JSONDecodeError as exc:
+        reason = f"{path.name}: invalid JSON: {exc}"
+        yield Unit(Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw, reason)]), None, path.name)
+        return
+    builder = fhir_builder(context, received_at)
+    if isinstance(data, dict) and data.get("resourceType") == "Bundle":
+        batch = FhirBatch()
+        entries = list(bundle_entries(data, batch.skipped))
+        builder.note_panels(e for e, _ in entries)
+        for resource, full_url in sorted(
+            entries, key=lambda e: 0 if e[0].get("resourceType") in ("Patient", "Encounter") else 1
+        ):
+            builder.read(resource, full_url=full_url, into=batch)
+        yield Unit(_inbound_from_fhir(batch, context.fhir_source), fhir_record_time(data), path.name)
+    elif isinstance(data, dict):
+        yield Unit(_inbound_from_fhir(builder.read_all([data]), context.fhir_source),
+                   fhir_record_time(data), path.name)
+    else:
+        reason = f"{path.name}: not a FHIR resource or Bundle (a JSON object)"
+        yield Unit(Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw, reason)]), None, path.name)
+
+
+# --- files of either kind -------------------------------------------------------------------
+
+
+def file_kind(path: Path) -> str:
+    """``hl7``, ``ndjson`` or ``json``: by suffix, else by the first bytes."""
+    suffix = path.suffix.lower()
+    if suffix in HL7_SUFFIXES:
+        return "hl7"
+    if suffix in NDJSON_SUFFIXES:
+        return "ndjson"
+    if suffix in JSON_SUFFIXES:
+        return "json"
+    with open(path, "rb") as fh:
+        head = fh.read(64).lstrip(b"\x0b\xef\xbb\xbf \r\n\t")
+    if head.startswith(b"MSH"):
+        return "hl7"
+    if head.startswith(b"{"):
+        return "ndjson" if b"\n{" in path.read_bytes()[:1_000_000] else "json"
+    raise FileKindError(f"{path}: neither HL7 v2 (MSH...) nor FHIR JSON; name it .hl7 or .ndjson")
+
+
+def file_units(
+    path: Path, context: SourceContext, received_at: Callable[[], datetime] | None = None
+) -> Iterator[Unit]:
+    """The units of one file, streamed in file order."""
+    clock = received_at or (lambda: datetime.now(UTC))
+    kind = file_kind(path)
+    if kind == "hl7":
+        return hl7_units(path, context, clock)
+    if kind == "ndjson":
+        return ndjson_units(path, context, clock)
+    return json_units(path, context, clock)
+
+
+def _timed(units: Iterator[Unit], index: int) -> Iterator[tuple[datetime, int, int, Unit]]:
+    """Key each unit by record time; a unit without one keeps the time of the one before
+    it in its file, so it stays where the file put it."""
+    last = datetime.min.replace(tzinfo=UTC)
+    for seq, unit in enumerate(units):
+        if unit.record_time is not None and unit.record_time > last:
+            last = unit.record_time
+        yield last, index, seq, unit
+
+
+def merged_units(
+    paths: Sequence[Path], context: SourceContext, received_at: Callable[[], datetime] | None = None
+) -> Iterator[Unit]:
+    """The units of several files in order of record time, streamed: a k-way merge that
+    holds one unit of each file at a time (each file is expected in its own send order,
+    as recorded feeds are)."""
+    streams = [_timed(file_units(p, context, received_at), i) for i, p in enumerate(paths)]
+    for _, _, _, unit in heapq.merge(*streams, key=lambda t: (t[0], t[1], t[2])):
+        yield unit
+
+
+def count_bytes(paths: Iterable[Path]) -> int:
+    return sum(p.stat().st_size for p in paths)
+
+
+def ingest_files(
+    paths: Iterable[Path],
+    pipeline: Pipeline,
+    context: SourceContext,
+    *,
+    now: Callable[[], datetime],
+    batch_size: int = 200,
+    progress: bool = False,
+) -> BatchReport:
+    """Load files through the pipeline in order of record time, in batches (one
+    transaction a batch). A batch is judged at the record time of its last unit (the
+    wall clock when the source gave none), so flags carry the time the data arrived."""
+    report = BatchReport()
+    files = list(paths)
+    bar = _progress(files, enabled=progress)
+    pending = Inbound()
+    at: datetime | None = None
+    try:
+        for unit in merged_units(files, context, now):
+            pending.extend(unit.inbound)
+            at = unit.record_time or at
+            if len(pending.readings) + len(pending.rejected) >= batch_size:
+                report.merge(pipeline.accept(pending, now=at or now()))
+                pending = Inbound()
+            if bar is not None:
+                bar.update(1)
+        if pending.readings or pending.rejected or pending.skipped_codes or pending.ignored:
+            report.merge(pipeline.accept(pending, now=at or now()))
+    finally:
+        if bar is not None:
+            bar.close()
+    return report
+
+
+def _progress(files: list[Path], *, enabled: bool) -> Any:
+    if not enabled:
+        return None
+    from tqdm import tqdm
+
+    return tqdm(desc="ingest", unit=" units", dynamic_ncols=True, leave=False)
