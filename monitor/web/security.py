@@ -135,32 +135,28 @@ class BodyLimit:
             await _too_large(send, self.max_bytes)
             return
         seen = 0
-        started = False
+        refused = False
 
         async def counting_receive() -> Message:
-            nonlocal seen
+            # Over the limit: answer 413 here and now, then tell the application the
+            # client went away, so whatever it does next reaches no one.
+            nonlocal seen, refused
+            if refused:
+                return {"type": "http.disconnect"}
             message = await receive()
             if message["type"] == "http.request":
                 seen += len(message.get("body", b""))
                 if seen > self.max_bytes:
-                    raise _BodyTooLarge()
+                    refused = True
+                    await _too_large(send, self.max_bytes)
+                    return {"type": "http.disconnect"}
             return message
 
-        async def tracking_send(message: Message) -> None:
-            nonlocal started
-            if message["type"] == "http.response.start":
-                started = True
-            await send(message)
+        async def guarded_send(message: Message) -> None:
+            if not refused:
+                await send(message)
 
-        try:
-            await self.app(scope, counting_receive, tracking_send)
-        except _BodyTooLarge:
-            if not started:
-                await _too_large(send, self.max_bytes)
-
-
-class _BodyTooLarge(Exception):
-    pass
+        await self.app(scope, counting_receive, guarded_send)
 
 
 def _content_length(scope: Scope) -> int | None:
