@@ -112,6 +112,115 @@ def _constants(settings: DerivationSettings, ph2o: float | None) -> dict[str, fl
     return constants
 
 
+def _is_room_air(fio2: float | None) -> bool:
+    return fio2 is not None and abs(fio2 - physiology.ROOM_AIR_FIO2) <= 1e-9
+
+
+@dataclass(frozen=True, slots=True)
+class _Alveolar:
+    alveolar_po2: float | None = None
+    aa_gradient: float | None = None
+    aa_gradient_expected: float | None = None
+    arterial_alveolar_ratio: float | None = None
+
+
+def _alveolar(
+    s: Snapshot, settings: DerivationSettings, ph2o: float | None, notes: _Notes
+) -> _Alveolar:
+    """PAO2 and what is built on it, for an arterial sample."""
+    fio2, paco2, pb = s.fio2, s.paco2, s.barometric_pressure
+    if fio2 is None or paco2 is None or ph2o is None:
+        return _Alveolar()
+    alveolar = notes.attempt(
+        "alveolar PO2",
+        lambda: physiology.alveolar_po2(fio2, paco2, pb, ph2o, settings.rq, settings.equation),
+    )
+    if alveolar is None:
+        return _Alveolar()
+    age = s.age_years
+    expected = None
+    if _is_room_air(fio2) and age is not None:
+        expected = notes.attempt(
+            "age-expected A-a", lambda: physiology.expected_aa_gradient(age, settings.age_normal)
+        )
+    return _Alveolar(
+        alveolar_po2=alveolar,
+        aa_gradient=notes.attempt("A-a gradient", lambda: physiology.aa_gradient(alveolar, s.pao2)),
+        aa_gradient_expected=expected,
+        arterial_alveolar_ratio=notes.attempt(
+            "a/A ratio", lambda: physiology.arterial_alveolar_ratio(s.pao2, alveolar)
+        ),
+    )
+
+
+@dataclass(frozen=True, slots=True)
+class _Ratios:
+    pf_ratio: float | None = None
+    pf_ratio_adjusted: float | None = None
+    berlin_band: str | None = None
+    oxygenation_index: float | None = None
+
+
+def _ratios(s: Snapshot, flags: set[QualityFlag], notes: _Notes) -> _Ratios:
+    """P/F, its altitude adjustment, the Berlin band and OI, for an arterial sample."""
+    fio2, pb, mean_airway = s.fio2, s.barometric_pressure, s.mean_airway_pressure
+    if fio2 is None:
+        return _Ratios()
+    oi = None
+    if mean_airway is not None:
+        oi = notes.attempt(
+            "oxygenation index", lambda: physiology.oxygenation_index(fio2, mean_airway, s.pao2)
+        )
+    pf = notes.attempt("P/F", lambda: physiology.pf_ratio(s.pao2, fio2))
+    if pf is None:
+        return _Ratios(oxygenation_index=oi)
+    band = None
+    if QualityFlag.ESTIMATED_FIO2 not in flags:  # reference sheet section 8
+        band = notes.attempt("Berlin band", lambda: physiology.berlin_band(pf, s.peep, pb))
+    return _Ratios(
+        pf_ratio=pf,
+        pf_ratio_adjusted=notes.attempt(
+            "altitude-adjusted P/F", lambda: physiology.pf_ratio_altitude_adjusted(pf, pb)
+        ),
+        berlin_band=None if band is None else band.value,
+        oxygenation_index=oi,
+    )
+
+
+def _saturation(
+    s: Snapshot, flags: set[QualityFlag], notes: _Notes
+) -> tuple[float | None, float | None]:
+    """S/F and OSI: from SpO2, not the sample's PO2, so given for any specimen."""
+    spo2, fio2, mean_airway = s.spo2, s.fio2, s.mean_airway_pressure
+    if spo2 is None:
+        return None, None
+    if spo2 > physiology.SPO2_RATIO_LIMIT:
+        flags.add(QualityFlag.SPO2_ABOVE_97)
+    if fio2 is None:
+        return None, None
+    sf = notes.attempt("S/F", lambda: physiology.sf_ratio(spo2, fio2))
+    osi = None
+    if mean_airway is not None:
+        osi = notes.attempt(
+            "oxygen saturation index",
+            lambda: physiology.oxygen_saturation_index(fio2, mean_airway, spo2),
+        )
+    return sf, osi
+
+
+def _content(s: Snapshot, settings: DerivationSettings, notes: _Notes) -> float | None:
+    """CaO2 (mL O2/dL), for an arterial sample with Hb and SaO2."""
+    hb, sao2 = s.haemoglobin, s.sao2
+    if hb is None or sao2 is None:
+        return None
+    return notes.attempt(
+        "arterial O2 content",
+        lambda: physiology.arterial_o2_content(
+            hb, sao2, s.pao2, settings.hb_bound_per_g, settings.dissolved
+        ),
+    )
+
+
 def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
     """The indices of one paired sample (pressures mmHg, FiO2 fraction, SpO2 %, MAP and
     PEEP cmH2O, Hb g/dL, CaO2 mL/dL). See the module docstring for which apply when."""
@@ -121,85 +230,24 @@ def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
     arterial = s.specimen is Specimen.ARTERIAL and QualityFlag.NOT_ARTERIAL not in flags
     if not arterial:
         flags.add(QualityFlag.NOT_ARTERIAL)
-    pb = s.barometric_pressure
-    fio2 = s.fio2
+    if s.paco2 is None:
+        flags.add(QualityFlag.PACO2_MISSING)
+    if s.fio2 is not None and not _is_room_air(s.fio2):
+        flags.add(QualityFlag.NOT_ON_ROOM_AIR)
+    pb, fio2 = s.barometric_pressure, s.fio2
     ph2o = notes.attempt(
         "water vapour pressure", lambda: physiology.water_vapour_pressure(s.temperature_c)
     )
-
     pio2 = None
     if fio2 is not None and ph2o is not None:
         pio2 = notes.attempt("inspired PO2", lambda: physiology.inspired_po2(fio2, pb, ph2o))
-    if s.paco2 is None:
-        flags.add(QualityFlag.PACO2_MISSING)
-    if fio2 is not None and abs(fio2 - physiology.ROOM_AIR_FIO2) > 1e-9:
-        flags.add(QualityFlag.NOT_ON_ROOM_AIR)
-
-    alveolar = aa = aa_expected = a_over_a = pf = pf_adjusted = berlin = oi = cao2 = None
-    if arterial:
-        paco2 = s.paco2
-        if fio2 is not None and paco2 is not None and ph2o is not None:
-            alveolar = notes.attempt(
-                "alveolar PO2",
-                lambda: physiology.alveolar_po2(
-                    fio2, paco2, pb, ph2o, settings.rq, settings.equation
-                ),
-            )
-        if alveolar is not None:
-            pao2_alv = alveolar
-            aa = notes.attempt("A-a gradient", lambda: physiology.aa_gradient(pao2_alv, s.pao2))
-            a_over_a = notes.attempt(
-                "a/A ratio", lambda: physiology.arterial_alveolar_ratio(s.pao2, pao2_alv)
-            )
-            if s.pao2 > alveolar + settings.unreliable_margin_mmhg:
-                flags.add(QualityFlag.PAO2_ABOVE_ALVEOLAR)
-        if fio2 is not None and abs(fio2 - physiology.ROOM_AIR_FIO2) <= 1e-9:
-            age = s.age_years
-            if age is not None:
-                aa_expected = notes.attempt(
-                    "age-expected A-a",
-                    lambda: physiology.expected_aa_gradient(age, settings.age_normal),
-                )
-        if fio2 is not None:
-            pf = notes.attempt("P/F", lambda: physiology.pf_ratio(s.pao2, fio2))
-            map_for_oi = s.mean_airway_pressure
-            if map_for_oi is not None:
-                oi = notes.attempt(
-                    "oxygenation index",
-                    lambda: physiology.oxygenation_index(fio2, map_for_oi, s.pao2),
-                )
-        if pf is not None:
-            ratio = pf
-            pf_adjusted = notes.attempt(
-                "altitude-adjusted P/F", lambda: physiology.pf_ratio_altitude_adjusted(ratio, pb)
-            )
-            if QualityFlag.ESTIMATED_FIO2 not in flags:
-                band = notes.attempt(
-                    "Berlin band", lambda: physiology.berlin_band(ratio, s.peep, pb)
-                )
-                berlin = None if band is None else band.value
-        hb, sao2 = s.haemoglobin, s.sao2
-        if hb is not None and sao2 is not None:
-            cao2 = notes.attempt(
-                "arterial O2 content",
-                lambda: physiology.arterial_o2_content(
-                    hb, sao2, s.pao2, settings.hb_bound_per_g, settings.dissolved
-                ),
-            )
-
-    sf = osi = None
-    spo2 = s.spo2
-    if spo2 is not None:
-        if spo2 > physiology.SPO2_RATIO_LIMIT:
-            flags.add(QualityFlag.SPO2_ABOVE_97)
-        if fio2 is not None:
-            sf = notes.attempt("S/F", lambda: physiology.sf_ratio(spo2, fio2))
-            map_for_osi = s.mean_airway_pressure
-            if map_for_osi is not None:
-                osi = notes.attempt(
-                    "oxygen saturation index",
-                    lambda: physiology.oxygen_saturation_index(fio2, map_for_osi, spo2),
-                )
+    alv = _alveolar(s, settings, ph2o, notes) if arterial else _Alveolar()
+    margin = settings.unreliable_margin_mmhg
+    if alv.alveolar_po2 is not None and s.pao2 > alv.alveolar_po2 + margin:
+        flags.add(QualityFlag.PAO2_ABOVE_ALVEOLAR)
+    ratios = _ratios(s, flags, notes) if arterial else _Ratios()
+    cao2 = _content(s, settings, notes) if arterial else None
+    sf, osi = _saturation(s, flags, notes)
 
     return Derivation(
         patient_key=s.patient_key,
@@ -214,19 +262,19 @@ def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
         barometric_pressure=pb,
         water_vapour_pressure=ph2o,
         inspired_po2=pio2,
-        alveolar_po2=alveolar,
-        aa_gradient=aa,
-        aa_gradient_expected=aa_expected,
-        arterial_alveolar_ratio=a_over_a,
-        pf_ratio=pf,
-        pf_ratio_adjusted=pf_adjusted,
-        berlin_band=berlin,
+        alveolar_po2=alv.alveolar_po2,
+        aa_gradient=alv.aa_gradient,
+        aa_gradient_expected=alv.aa_gradient_expected,
+        arterial_alveolar_ratio=alv.arterial_alveolar_ratio,
+        pf_ratio=ratios.pf_ratio,
+        pf_ratio_adjusted=ratios.pf_ratio_adjusted,
+        berlin_band=ratios.berlin_band,
         sf_ratio=sf,
-        oxygenation_index=oi,
+        oxygenation_index=ratios.oxygenation_index,
         oxygen_saturation_index=osi,
         arterial_o2_content=cao2,
         peep=s.peep,
-        spo2=spo2,
+        spo2=s.spo2,
         age_years=s.age_years,
         location=s.location,
         estimated=False,
