@@ -126,6 +126,7 @@ def flag_view(alert: Alert, now: datetime, tz: tzinfo) -> FlagView:
     word, css, shape = PRIORITY_LOOK[alert.priority]
     if alert.state.is_open:
         age = age_words(alert.raised_at, now)
+        age = age if age == "just now" else f"{age} ago"
     else:
         age = f"closed {age_words(alert.closed_at or alert.updated_at, now)} ago"
     return FlagView(alert, word, css, shape, age, alert.state.value,
@@ -232,7 +233,7 @@ def _trace(series: list[Derivation], start: datetime, end: datetime, width: int,
 
 def small_trace(series: list[Derivation], now: datetime) -> Trace | None:
     """The last 24 h of P/F, small enough for a board row."""
-    return _trace(series, now - timedelta(hours=24), now, 180, 56, 4)
+    return _trace(series, now - timedelta(hours=24), now, 200, 72, 5)
 
 
 def full_plot(series: list[Derivation], now: datetime, tz: tzinfo | None = None) -> Trace | None:
