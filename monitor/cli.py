@@ -212,7 +212,26 @@ def build_parser() -> _Parser:
     parser = _Parser(prog="gasgap", description="Blood-gas oxygenation indices. " + ADVISORY)
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
     _add_calc(sub)
+    for register in _command_modules():
+        register(sub)
     return parser
+
+
+def _command_modules() -> list[Callable[[argparse._SubParsersAction[_Parser]], None]]:
+    """The other commands, each registered by the module that runs it."""
+    from monitor.cli_records import add_record_commands
+    from monitor.cli_serve import add_serve_commands
+
+    found: list[Callable[[argparse._SubParsersAction[_Parser]], None]] = [
+        add_record_commands, add_serve_commands,
+    ]
+    try:
+        from monitor.cli_replay import add_replay_command
+    except ImportError:  # replay lands with its own module
+        pass
+    else:
+        found.append(add_replay_command)
+    return found
 
 
 def main(argv: Sequence[str] | None = None) -> int:
