@@ -17,7 +17,11 @@ $(VENV)/.installed: pyproject.toml constraints.txt
 demo: $(VENV)/.installed
 	$(PY) -m monitor.demo
 
-test: $(VENV)/.installed
+# The FHIR test server runs from its own virtualenv, never the project's.
+.fhir-venv/bin/sekmet:
+	PYTHON=$(PYTHON) bash scripts/fhir-test-server.sh install
+
+test: $(VENV)/.installed .fhir-venv/bin/sekmet
 	$(PY) -m pytest $(PYTEST_ARGS)
 
 bench: $(VENV)/.installed
