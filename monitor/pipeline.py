@@ -354,14 +354,22 @@ class Pipeline:
         report: BatchReport,
     ) -> None:
         history = self._history(conn, derivation, context)
-        outcomes = rules.evaluate(self.settings.rules, derivation, history, max(now, derivation.drawn_at))
-        for outcome in outcomes:
-            open_alert = next(
-                (a for a in alerts_store.open_alerts(conn, derivation.patient_key)
-                 if a.rule == outcome.rule_id),
-                None,
+        outcomes = rules.evaluate(
+            self.settings.rules, derivation, history, max(now, derivation.drawn_at)
+        )
+        deciding = [o for o in outcomes if o.fired or o.cleared]
+        if not deciding:
+            return
+        open_by_rule = {a.rule: a for a in alerts_store.open_alerts(conn, derivation.patient_key)}
+        for outcome in deciding:
+            open_alert = open_by_rule.get(outcome.rule_id)
+            if outcome.cleared and open_alert is None:
+                continue  # nothing open to resolve
+            last_closed = (
+                alerts_store.last_closed_alert(conn, derivation.patient_key, outcome.rule_id)
+                if open_alert is None
+                else None
             )
-            last_closed = alerts_store.last_closed_alert(conn, derivation.patient_key, outcome.rule_id)
             decision = alerts.apply_outcome(
                 open_alert, last_closed, outcome, derivation, now, self.settings.alerts
             )
