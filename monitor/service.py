@@ -145,6 +145,14 @@ class Service:
             self.scheduler.trigger(DISPATCH_JOB)
         return report
 
+    def escalate(self) -> int:
+        """The escalation job: escalate what is due, count it, wake the outbox."""
+        events = self.pipeline.escalate_due(now=self.clock())
+        self.metrics.count_report("escalation", duplicates=0, derivations=0, events=events)
+        if events:
+            self.scheduler.trigger(DISPATCH_JOB)
+        return len(events)
+
     def _register(self, readings: list[Reading]) -> None:
         mode = self.config.site.display_key
         for key, location in {(r.patient_key, r.location) for r in readings}:
@@ -302,8 +310,8 @@ def build_service(
         for s in config.sources.fhir if s.enabled
     ]
     jobs.append(Job(DISPATCH_JOB, DISPATCH_EVERY, dispatcher.drain, lock="outbox"))
-    jobs.append(Job("escalation", ESCALATION_EVERY,
-                    lambda: pipeline.escalate_due(now=clock()), lock="escalation"))
+    jobs.append(Job("escalation", ESCALATION_EVERY, lambda: service_ref["s"].escalate(),
+                    lock="escalation"))
     jobs.append(Job("retention", RETENTION_EVERY, lambda: pipeline.purge(now=clock()),
                     lock="retention", run_at_start=config.retention_days is not None))
     scheduler = Scheduler(db, jobs, metrics=metrics)

@@ -121,6 +121,14 @@ def test_board_shows_flags_acknowledges_and_escapes(board: Running) -> None:
             assert page.evaluate("window.gasgapPwned") is None
             assert page.locator("svg.plot polyline").count() == 1
 
+            page.goto(board.base + "/board/unit/ICU-North")
+            page.locator("a.patient", has_text="HM700101").click()
+            page.wait_for_load_state()
+            trail = page.inner_text("table.audit")
+            assert "acknowledged" in trail and "Mara Quenby" in trail
+            assert page.locator("table.series tbody tr").count() == 2
+            page.screenshot(path=str(ARTIFACTS / "board-patient.png"), full_page=True)
+
             narrow = browser.new_page(viewport={"width": 390, "height": 844})
             narrow.context.add_cookies(page.context.cookies())
             narrow.goto(board.base + "/board/unit/ICU-North")
