@@ -16,6 +16,8 @@ from datetime import UTC, datetime, tzinfo
 from pathlib import Path
 from typing import Any
 
+import orjson
+
 from adapters.codes import CodeTable
 from adapters.fhir.bundles import bundle_entries, iter_ndjson, ndjson_line_reason
 from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, fhir_instant
@@ -30,6 +32,9 @@ log = logging.getLogger("gasgap.ingest")
 #: from a file, over MLLP or by replay is recognised as the same result.
 HL7_SOURCE = "lab"
 FHIR_SOURCE = "ehr"
+
+#: FHIR resources gasgap reads; any other type in a feed file is kept in quarantine.
+TAKEN_RESOURCES = ("Observation", "Patient", "Encounter")
 
 HL7_SUFFIXES = {".hl7", ".hl7v2", ".txt", ".oru"}
 NDJSON_SUFFIXES = {".ndjson", ".jsonl"}
@@ -100,15 +105,24 @@ def inbound_from_hl7(
 
 
 def hl7_units(path: Path, context: SourceContext, received_at: Callable[[], datetime]) -> Iterator[Unit]:
-    for raw in iter_hl7_file(path):
+    oversized: list[tuple[int, bytes]] = []
+    source = f"hl7:{context.hl7_source}"
+    for raw in iter_hl7_file(path, on_oversized=lambda at, head: oversized.append((at, head))):
+        while oversized:
+            at, head = oversized.pop(0)
+            reason = f"{path.name} byte {at}: message over the size limit, not read"
+            yield Unit(Inbound(rejected=[Rejected(source, head, reason)]), None, path.name)
         record_time = hl7_record_time(raw, context.site_tz)
         try:
             inbound = inbound_from_hl7(
                 raw, received_at=record_time or received_at(), context=context
             )
         except Hl7Error as exc:
-            inbound = Inbound(rejected=[Rejected(f"hl7:{context.hl7_source}", raw, str(exc))])
+            inbound = Inbound(rejected=[Rejected(source, raw, f"{path.name}: {exc}")])
         yield Unit(inbound, record_time, f"{path.name}")
+    for at, head in oversized:
+        reason = f"{path.name} byte {at}: message over the size limit, not read"
+        yield Unit(Inbound(rejected=[Rejected(source, head, reason)]), None, path.name)
 
 
 # --- FHIR ----------------------------------------------------------------------------------
@@ -152,6 +166,14 @@ def ndjson_units(
             yield Unit(Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", item, reason)]),
                        None, path.name)
             continue
+        rtype = item.get("resourceType")
+        if rtype not in TAKEN_RESOURCES:
+            reason = (f"{path.name} line {number}: resourceType {rtype!r} is not taken "
+                      f"(only {', '.join(TAKEN_RESOURCES)})")
+            raw_line = orjson.dumps(item)
+            yield Unit(Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw_line, reason)]),
+                       None, path.name)
+            continue
         record_time = fhir_record_time(item)
         builder.note_panels([item])
         batch = builder.read(item, received_at=record_time or received_at())
@@ -161,8 +183,6 @@ def ndjson_units(
 
 
 def json_units(path: Path, context: SourceContext, received_at: Callable[[], datetime]) -> Iterator[Unit]:
-    import orjson
-
     raw = path.read_bytes()
     try:
         data = orjson.loads(raw)

@@ -357,12 +357,22 @@ class Pipeline:
         outcomes = rules.evaluate(
             self.settings.rules, derivation, history, max(now, derivation.drawn_at)
         )
-        deciding = [o for o in outcomes if o.fired or o.cleared]
-        if not deciding:
-            return
         open_by_rule = {a.rule: a for a in alerts_store.open_alerts(conn, derivation.patient_key)}
-        for outcome in deciding:
+        for outcome in outcomes:
             open_alert = open_by_rule.get(outcome.rule_id)
+            if open_alert is not None and open_alert.sample_id == derivation.sample_id and not (
+                outcome.fired and outcome.priority is open_alert.priority
+            ):
+                # The sample this flag stands on was derived anew (a correction, a late
+                # input) and no longer says what the flag says: take the flag back, and
+                # let the new values raise whatever they support.
+                decision = alerts.retract(
+                    open_alert, now, "the result behind this flag changed", derivation.sample_id
+                )
+                self._apply(conn, decision, derivation, outcome.numbers, now, report)
+                open_alert = None
+            if not (outcome.fired or outcome.cleared):
+                continue
             if outcome.cleared and open_alert is None:
                 continue  # nothing open to resolve
             last_closed = (

@@ -9,7 +9,7 @@ them with a reason instead of this reader silently gluing them onto a neighbour.
 
 import logging
 import re
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 from adapters.hl7v2.framing import END_BLOCK, START_BLOCK
@@ -21,22 +21,38 @@ _LINE_END = re.compile(rb"\r\n|\r|\n|" + re.escape(START_BLOCK) + b"|" + re.esca
 _ENVELOPE = (b"FHS", b"BHS", b"BTS", b"FTS")
 
 
-def iter_hl7_file(path: Path, *, max_message_bytes: int = 10_000_000) -> Iterator[bytes]:
+#: How much of an oversized message is handed to ``on_oversized`` (its first lines),
+#: enough to recognise it in quarantine without holding it all.
+OVERSIZED_HEAD_BYTES = 64 * 1024
+
+
+def iter_hl7_file(
+    path: Path,
+    *,
+    max_message_bytes: int = 10_000_000,
+    on_oversized: Callable[[int, bytes], None] | None = None,
+) -> Iterator[bytes]:
     """Each message in ``path``, as bytes with CR between segments (and a final CR).
 
     A message longer than ``max_message_bytes`` is skipped with a warning naming the
-    file and byte offset (no content is logged).
+    file and byte offset (no content is logged); ``on_oversized(offset, head)`` is told
+    of it with the message's first ``OVERSIZED_HEAD_BYTES``, so the caller can keep it
+    in quarantine.
     """
     current: list[bytes] = []
     size = 0
     oversized_at: int | None = None
+    head = b""
     offset = 0
 
     def flush() -> Iterator[bytes]:
-        nonlocal current, size, oversized_at
+        nonlocal current, size, oversized_at, head
         if oversized_at is not None:
             log.warning("%s: message at byte %d is over %d bytes, skipped",
                         path, oversized_at, max_message_bytes)
+            if on_oversized is not None:
+                on_oversized(oversized_at, head)
+            head = b""
         elif current:
             yield b"\r".join(current) + b"\r"
         current, size, oversized_at = [], 0, None
@@ -54,6 +70,7 @@ def iter_hl7_file(path: Path, *, max_message_bytes: int = 10_000_000) -> Iterato
         size += len(line) + 1
         if size > max_message_bytes:
             oversized_at = offset
+            head = (b"\r".join(current) + b"\r" + line)[:OVERSIZED_HEAD_BYTES]
             current = []
             continue
         current.append(line)
