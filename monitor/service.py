@@ -91,15 +91,15 @@ def _optional_secret(env_name: str | None, secrets_file: Path | None) -> str | N
 
 
 def web_security(config: SiteConfig, secrets_file: Path | None) -> WebSecurity:
-    """The HTTP side's secrets, read once. Keys this configuration version does not have
-    yet (hook secret, board basic auth) are read when present."""
+    """The HTTP side's secrets, read once. Cookies are marked Secure unless the service
+    listens on loopback only (then a TLS proxy in front is the only way in)."""
     http = config.http
     return WebSecurity(
         api_token=_optional_secret(http.api_token_env, secrets_file),
         board_token=_optional_secret(http.board_token_env, secrets_file),
-        board_user=getattr(http, "board_user", None),
-        board_password=_optional_secret(getattr(http, "board_password_env", None), secrets_file),
-        hook_secret=_optional_secret(getattr(http, "hook_secret_env", None), secrets_file),
+        board_user=http.board_user,
+        board_password=_optional_secret(http.board_password_env, secrets_file),
+        hook_secret=_optional_secret(http.hook_secret_env, secrets_file),
         max_body_bytes=http.max_request_bytes,
         secure_cookies=getattr(http, "secure_cookies", http.host not in ("127.0.0.1", "localhost", "::1")),
     )
