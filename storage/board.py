@@ -10,14 +10,13 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 from dataclasses import dataclass
-from datetime import datetime
 
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection
 
 from monitor.engine.model import Alert, Location
 from storage.serialize import row_to_alert, row_to_location
-from storage.tables import alerts, derivations, outbox, patients
+from storage.tables import alerts, patients
 
 
 @dataclass(frozen=True)
@@ -66,24 +65,6 @@ def patients_in_unit(conn: Connection, unit: str | None = None, limit: int = 500
         PatientCard(r._mapping["patient_key"], r._mapping["display_key"], row_to_location(r._mapping))
         for r in conn.execute(query)
     ]
-
-
-def patients_with_derivations_since(
-    conn: Connection, since: datetime, unit: str | None = None
-) -> list[str]:
-    """Patients with a current derivation drawn at or after ``since`` (optionally in a unit)."""
-    query = sa.select(derivations.c.patient_key).distinct().where(
-        derivations.c.is_current, derivations.c.drawn_at >= since
-    )
-    if unit is not None:
-        query = query.where(derivations.c.location_unit == unit)
-    return sorted(conn.execute(query).scalars())
-
-
-def outbox_waiting(conn: Connection) -> dict[str, int]:
-    """Outbox rows by status (pending, sent, dead ...)."""
-    query = sa.select(outbox.c.status, sa.func.count()).group_by(outbox.c.status)
-    return {status: int(n) for status, n in conn.execute(query)}
 
 
 def patient_alerts(conn: Connection, patient_key: str) -> list[Alert]:

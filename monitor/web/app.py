@@ -33,7 +33,6 @@ log = logging.getLogger("gasgap.http")
 STATIC_DIR = Path(__file__).resolve().parent / "static"
 
 Clock = Callable[[], datetime]
-HookReader = Callable[[str, bytes, str | None], Any]
 
 
 @dataclass
