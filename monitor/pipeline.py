@@ -12,6 +12,7 @@ time, so windows, cooldowns and escalations behave the same in both.
 from __future__ import annotations
 
 import logging
+import re
 from collections import Counter
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -99,9 +100,18 @@ class BatchReport:
         self.notifications += other.notifications
 
 
+_WHERE = re.compile(r"^(message \S+ )?[\w.\-/\[\]#]+( (line|byte) \d+)?$")
+
+
 def _reason_key(reason: str) -> str:
-    """The first clause of a reason, so "top reasons" group alike failures."""
-    return reason.split(":", 1)[0].strip()[:80]
+    """What went wrong, without where: "top reasons" group alike failures. Leading
+    location clauses ("feed.ndjson line 17", "message C2 OBX[1]-5") are dropped, then
+    numbers and quoted values are blanked."""
+    parts = [p.strip() for p in reason.split(": ")]
+    while len(parts) > 1 and _WHERE.match(parts[0]):
+        parts.pop(0)
+    key = re.sub(r"'[^']*'|(?<![\w^-])\d+(\.\d+)?", "…", ": ".join(parts[:2]))
+    return key[:80]
 
 
 
