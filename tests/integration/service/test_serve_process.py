@@ -253,3 +253,45 @@ def test_config_check_and_db_upgrade_commands(tmp_path: Path) -> None:
                              "--json"], cwd=REPO, capture_output=True, text=True, timeout=60)
     assert listed.returncode == 0, listed.stderr
     assert '"flags": []' in listed.stdout
+
+
+def test_sigterm_during_a_message_finishes_it_before_exiting(tmp_path: Path) -> None:
+    """A message in hand when SIGTERM comes is committed and acknowledged, or (if it had
+    not been started) not acknowledged at all, so the sender resends: never an AA for
+    something not stored."""
+    import socket
+
+    from monitor.engine.model import AlertState
+    from storage.alerts import open_alerts
+    from storage.db import open_database
+
+    with webhook_receiver() as (url, _received):
+        http_port, mllp_port = free_port(), free_port()
+        config = tmp_path / "site.toml"
+        config.write_text(site_toml(db_url=f"sqlite:///{tmp_path}/gasgap.db",
+                                    http_port=http_port, mllp_port=mllp_port, webhook_url=url))
+        with running_service(config, http_port, tmp_path / "service.log") as running:
+            gas = hollowmere_gas("HGH9301", "HM930001", "F-9301")
+            with socket.create_connection(("127.0.0.1", mllp_port), timeout=30) as sock:
+                sock.sendall(b"\x0b" + gas.encode() + b"\x1c\x0d")
+                time.sleep(0.05)
+                code = running.stop(timeout=15)
+                data = b""
+                while True:
+                    try:
+                        chunk = sock.recv(65536)
+                    except (ConnectionResetError, TimeoutError):
+                        break
+                    if not chunk:
+                        break
+                    data += chunk
+            assert code == 0, running.log_text()[-2000:]
+    db = open_database(f"sqlite:///{tmp_path}/gasgap.db")
+    try:
+        with db.begin(read_only=True) as conn:
+            stored = [a for a in open_alerts(conn) if a.patient_key.endswith("HM930001")]
+    finally:
+        db.dispose()
+    if data:
+        assert ack_code(data.strip(b"\x0b\x1c\x0d").decode()) == "AA"
+        assert [a.state for a in stored] == [AlertState.RAISED]
