@@ -24,9 +24,9 @@ from typing import TYPE_CHECKING, Any
 
 from monitor.engine import rules as rules_mod
 from monitor.engine.model import ADVISORY, Derivation
-from storage import board
 from storage import derivations as derivations_store
 from storage import outbox as outbox_store
+from storage import readings as readings_store
 
 if TYPE_CHECKING:
     from monitor.replay import ReplayEvent, ReplayResult
@@ -246,7 +246,7 @@ def collect(result: ReplayResult) -> ReportData:
     for e in result.events:
         by_patient[e.patient].append(e)
     with result.db.begin(read_only=True) as conn:
-        patients = board.patients_with_derivations_since(conn, datetime(1900, 1, 1, tzinfo=UTC))
+        patients = readings_store.patient_keys(conn)
         for patient in sorted(set(patients) | set(by_patient)):
             stored = derivations_store.current_derivations(conn, patient, include_retracted=True)
             series = PatientSeries(
