@@ -253,14 +253,16 @@ def collect(result: ReplayResult) -> ReportData:
                 patient, [(s.derivation, s.retracted) for s in stored], by_patient.get(patient, [])
             )
             data.series.append(series)
-            live = [d for d, retracted in series.derivations if not retracted]
-            gases = [d for d in live if not d.estimated]
-            estimates = [d for d in live if d.estimated]
             for e in series.events:
                 if e.event != "raised":
                     continue
                 spec = specs.get(e.rule)
-                pool = estimates if isinstance(spec, rules_mod.SfLowRule) else gases
+                # the gases of the flag's own kind (gases, or SpO2 estimates), not
+                # withdrawn, plus the raising sample itself even if it was withdrawn later
+                raising = next((d for d, _ in series.derivations if d.sample_id == e.sample_id), None)
+                estimated = raising.estimated if raising is not None else False
+                pool = [d for d, retracted in series.derivations
+                        if d.estimated == estimated and (not retracted or d.sample_id == e.sample_id)]
                 worst = _final_priority(series.events, e.alert_id)
                 data.time_to_flag.append(TimeToFlag(
                     patient, e.rule, worst, e.at,
