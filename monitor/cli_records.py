@@ -40,6 +40,16 @@ def add_record_commands(sub: Any) -> None:
                          help="include S/F estimates from SpO2 between gases")
     patient.set_defaults(run=_run_patient)
 
+    box = sub.add_parser(
+        "outbox", help="notifications waiting to be sent; send them now",
+        description="Show the outbox by status and channel, or (with `send`) deliver what "
+        "is due through the configured channels once, as the service's dispatcher does.",
+    )
+    _add_target(box)
+    box.add_argument("--json", action="store_true", help="one JSON object")
+    box.add_argument("action", nargs="?", choices=["show", "send"], default="show")
+    box.set_defaults(run=_run_outbox)
+
 
 def _add_target(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--db", dest="db_url", help="database URL (default sqlite:///gasgap.db)")
@@ -107,6 +117,44 @@ def _run_ingest(args: argparse.Namespace) -> int:
         print(f"  skipped code {code} x {count}")
     print(f"derivations {report.derivations}, flag events {len(report.alert_events)}, "
           f"notifications queued {report.notifications}")
+    return 0
+
+
+def _run_outbox(args: argparse.Namespace) -> int:
+    from collections import Counter
+
+    from storage.outbox import outbox_items
+
+    config, db = _setup(args)
+    sent = None
+    if args.action == "send":
+        from adapters.notify import build_channel
+        from monitor.delivery import OutboxDispatcher
+
+        channels = {a: build_channel(a, config.channel_options(a)) for a in config.channels}
+        dispatcher = OutboxDispatcher(db, channels, clock=lambda: datetime.now(UTC))
+        try:
+            sent = dispatcher.drain()
+        finally:
+            dispatcher.close()
+    with db.begin(read_only=True) as conn:
+        items = outbox_items(conn)
+    db.dispose()
+    counts = Counter((i.channel, i.status.value) for i in items)
+    summary: dict[str, Any] = {
+        "by_channel": {f"{c}/{s}": n for (c, s), n in sorted(counts.items())},
+    }
+    if sent is not None:
+        summary["this_round"] = {"claimed": sent.claimed, "sent": sent.sent,
+                                 "retrying": sent.retrying, "dead": sent.dead}
+    if args.json:
+        print(json.dumps(summary, indent=2))
+        return 0
+    for key, n in summary["by_channel"].items():
+        print(f"{key:40} {n}")
+    if sent is not None:
+        print(f"this round: claimed {sent.claimed}, sent {sent.sent}, "
+              f"retrying {sent.retrying}, dead {sent.dead}")
     return 0
 
 

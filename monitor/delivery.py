@@ -72,7 +72,12 @@ class OutboxDispatcher:
         return report
 
     def drain(self, max_rounds: int = 20) -> RoundReport:
-        """Rounds until nothing is due (or ``max_rounds``), for a scheduled run."""
+        """Rounds until nothing is due (or ``max_rounds``), for a scheduled run.
+
+        A round hands out at most one item per patient and channel (order per patient
+        is kept by the claim), so a short round does not mean the outbox is empty: only
+        a round that claims nothing, or one whose every item failed, ends the drain.
+        """
         total = RoundReport()
         for _ in range(max_rounds):
             one = self.run_once()
@@ -80,7 +85,7 @@ class OutboxDispatcher:
             total.sent += one.sent
             total.retrying += one.retrying
             total.dead += one.dead
-            if one.claimed < self.batch_size:
+            if one.claimed == 0 or one.sent == 0:
                 break
         return total
 
