@@ -317,16 +317,21 @@ def plot_patient(series: PatientSeries, path: Path, tz: tzinfo) -> None:
 
     line(ax_pf, gases, "pf_ratio", marker="o", color="#555555", label="P/F measured")
     line(ax_pf, gases, "pf_ratio_adjusted", marker="s", color="#2a6f97", label="P/F altitude-adjusted")
-    withdrawn = [(d.drawn_at.astimezone(tz), d.pf_ratio) for d, r in gases if r and d.pf_ratio]
-    if withdrawn:
-        ax_pf.scatter([t for t, _ in withdrawn], [v for _, v in withdrawn], marker="x",
-                      s=70, color="#b23a48", label="withdrawn result", zorder=4)
+    def crossed(ax: Any, attr: str) -> None:  # withdrawn results stay visible, crossed out
+        pts = [(d.drawn_at.astimezone(tz), getattr(d, attr)) for d, r in gases
+               if r and getattr(d, attr) is not None]
+        if pts:
+            ax.scatter([t for t, _ in pts], [v for _, v in pts], marker="x", s=70,
+                       color="#b23a48", label="withdrawn result", zorder=4)
+
+    crossed(ax_pf, "pf_ratio")
     line(ax_pf, estimates, "sf_ratio", linestyle="none", marker=".", color="#a0a0a0",
          label="S/F (estimate)", alpha=0.6)
     ax_pf.set_ylabel("ratio (mmHg)")
     line(ax_aa, gases, "aa_gradient", marker="o", color="#7b4f9d", label="A–a gradient")
-    line(ax_aa, gases, "aa_gradient_expected", linestyle="--", color="#b8a3c9",
-         label="age-expected (room air)")
+    line(ax_aa, gases, "aa_gradient_expected", linestyle="--", marker="_", markersize=14,
+         color="#9b7fb5", label="age-expected (room air)")
+    crossed(ax_aa, "aa_gradient")
     ax_aa.set_ylabel("A–a (mmHg)")
     line(ax_fio2, gases, "fio2", marker="o", color="#3c8d5a", label="FiO2 at gas")
     line(ax_fio2, estimates, "fio2", linestyle="none", marker=".", color="#9cc9a8",
