@@ -38,6 +38,8 @@ from monitor.engine.model import ADVISORY, AlertEvent, AlertState, Priority
 from monitor.ingest import SourceContext, Unit, file_kind, merged_units
 from monitor.pipeline import Pipeline, PipelineSettings
 from storage import derivations as derivations_store
+from storage import outbox as outbox_store
+from storage import readings as readings_store
 from storage.db import Database, open_database
 
 #: How often the live service looks for flags to escalate (monitor.scheduling).
@@ -93,6 +95,7 @@ class ReplayCounts:
     ignored: int = 0
     derivations: int = 0
     retracted_derivations: int = 0
+    #: Notifications captured in the outbox (one per channel), read from it at the end.
     notifications: int = 0
     events: Counter[str] = field(default_factory=Counter)
     #: Each flag counted once, at the highest priority it reached: (rule, priority).
@@ -252,6 +255,15 @@ def replay(
         raise ValueError(f"replay speed {speed!r}: must be a positive number")
     db = open_database(db_url)
     try:
+        with db.begin(read_only=True) as conn:
+            held = readings_store.count_readings(conn)["total"]
+        if held:
+            # a replay shows what the service would have done from nothing; on top of
+            # other data its counts, flags and outbox would mix with what was there
+            raise ValueError(
+                f"replay database {db.url.split('@')[-1]}: already holds {held} readings; "
+                "name a new or empty database"
+            )
         return _run(files, db, settings, context, speed, progress, label, sleep)
     except BaseException:
         db.dispose()
@@ -302,6 +314,9 @@ def _run(
             bar.close()
     recorder.finish()
     counts.patient_days = len(patient_days)
+    with db.begin(read_only=True) as conn:
+        # escalations notify too (escalate_due does not count them): read the outbox
+        counts.notifications = outbox_store.backlog(conn)
     events = _with_sample_times(db, recorder.events)
     return ReplayResult(db=db, settings=settings, counts=counts, events=events, label=label)
 
@@ -327,7 +342,6 @@ def _accept(
     counts.ignored += report.ignored
     counts.derivations += report.derivations
     counts.retracted_derivations += report.retracted_derivations
-    counts.notifications += report.notifications
     recorder.note(report.alert_events)
 
 

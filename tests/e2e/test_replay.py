@@ -196,3 +196,37 @@ def test_kept_database(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> No
     out = capsys.readouterr().out
     assert ADVISORY in out
     assert (tmp_path / "kept.db").stat().st_size > 0
+
+
+def test_same_flags_on_both_databases(db_url: str) -> None:
+    # The lab feed alone, kept in SQLite or PostgreSQL: the same flag events.
+    config = load_config(EXAMPLE)
+    lab = [FEED_DIR / "feed-lab.hl7"]
+    memory = replay(lab, config.to_pipeline_settings(), context_for(config))
+    kept = replay(lab, config.to_pipeline_settings(), context_for(config), db_url=db_url)
+    try:
+        assert memory.as_json() == kept.as_json()
+        assert memory.events
+    finally:
+        memory.close()
+        kept.close()
+
+
+def test_deliver_sends_what_was_captured(capsys: pytest.CaptureFixture[str]) -> None:
+    # site-strict.toml routes everything to its log channel only: nothing leaves the host.
+    strict = ROOT / "fixtures" / "site-strict.toml"
+    assert gasgap(["replay", str(FEED_DIR / "feed-lab.hl7"), "--config", str(strict),
+                   "--deliver", "--json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    captured = data["counts"]["notifications_captured"]
+    assert captured > 0
+    assert data["delivered"] == captured
+
+
+def test_a_database_that_holds_data_is_refused(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    url = f"sqlite:///{tmp_path / 'used.db'}"
+    late = str(FEED_DIR / "feed-late.hl7")
+    assert gasgap(["replay", late, "--db", url]) == 0
+    capsys.readouterr()
+    assert gasgap(["replay", late, "--db", url]) == 2
+    assert "already holds" in capsys.readouterr().err
