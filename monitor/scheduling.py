@@ -72,10 +72,12 @@ class Scheduler:
             job_defaults={"coalesce": True, "max_instances": 1, "misfire_grace_time": None},
         )
         for job in jobs:
+            # APScheduler 3 adds a job *paused* when given next_run_time=None, so the
+            # argument is passed only to run at start; otherwise the interval decides.
+            first = {"next_run_time": datetime.now(UTC)} if job.run_at_start else {}
             self._scheduler.add_job(
                 self._runner(job), "interval", seconds=job.every.total_seconds(), id=job.name,
-                name=job.name,
-                next_run_time=datetime.now(UTC) if job.run_at_start else None,
+                name=job.name, **first,
             )
 
     def _runner(self, job: Job) -> Callable[[], None]:
