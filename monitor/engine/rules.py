@@ -348,7 +348,10 @@ def _outcome(
     numbers: dict[str, object] | None = None,
     used: Sequence[Derivation] = (),
     reason: str = "",
+    estimated: bool | None = None,
 ) -> RuleOutcome:
+    if estimated is None:
+        estimated = d.estimated or QualityFlag.ESTIMATED_FROM_SPO2 in d.flags
     return RuleOutcome(
         rule_id=rule.rule_id,
         patient_key=d.patient_key,
@@ -359,7 +362,7 @@ def _outcome(
         label=label,
         numbers=numbers or {},
         preliminary=_is_preliminary(d, *used),
-        estimated=d.estimated or QualityFlag.ESTIMATED_FROM_SPO2 in d.flags,
+        estimated=estimated,
         reason=reason,
     )
 
@@ -482,9 +485,13 @@ def _o2_escalation(
     }
     # Sub-percent float noise must not decide a threshold given in hundredths.
     fired = rise >= rule.rise - 1e-9
+    # What is estimated here is the FiO2, not the patient's oxygenation: the flag is
+    # marked estimated only when the FiO2 in effect came from device and flow, even
+    # when the rule was judged on an SpO2 reading between gases.
     return _outcome(
         rule, d, fired=fired, cleared=rise < rule.rise * (1.0 - h) - 1e-9,
         priority=rule.priority, label=label, numbers=numbers,
+        estimated=QualityFlag.ESTIMATED_FIO2 in d.flags,
     )
 
 

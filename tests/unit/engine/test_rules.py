@@ -417,6 +417,18 @@ def test_oxygen_escalation_ignores_changes_before_the_window():
     assert not outcome.fired and outcome.cleared
 
 
+def test_oxygen_escalation_is_marked_estimated_only_when_the_fio2_was():
+    # Judged on an SpO2 reading between gases, but with a charted FiO2: the rise itself
+    # is measured, so the flag is not "estimated"; from device and flow it is.
+    history = PatientHistory(fio2_points=[FiO2Point(T0 - timedelta(hours=5), 0.40)])
+    charted = replace(spo2_estimate(T0, 200.0), fio2=0.75)
+    assert only(ESC, charted, history).fired
+    assert only(ESC, charted, history).estimated is False
+    from_device = replace(charted, fio2_source=FiO2Source.DEVICE_ESTIMATE,
+                          flags=charted.flags | {QualityFlag.ESTIMATED_FIO2})
+    assert only(ESC, from_device, history).estimated is True
+
+
 def test_oxygen_escalation_without_any_fio2_cannot_judge():
     outcome = only(ESC, gas(fio2=None, fio2_source=FiO2Source.UNKNOWN))
     assert not outcome.fired and outcome.reason
