@@ -34,6 +34,8 @@ from alembic.config import Config
 from sqlalchemy.engine import Connection, Engine
 from sqlalchemy.pool import StaticPool
 
+from storage.locks import advisory_lock
+
 DEFAULT_URL = "sqlite:///gasgap.db"
 #: How long a SQLite writer waits for another writer before giving up (milliseconds).
 SQLITE_BUSY_TIMEOUT_MS = 10_000
@@ -135,10 +137,12 @@ def alembic_config(url: str | None = None) -> Config:
 def upgrade_engine(engine: Engine) -> None:
     """Run the migrations to head over one of ``engine``'s connections."""
     config = alembic_config()
-    with engine.connect() as conn:
+    with engine.connect() as conn, conn.begin():
+        # Several processes starting at once against one PostgreSQL: one migrates, the
+        # others wait here and then find the schema at head. (SQLite: BEGIN IMMEDIATE.)
+        advisory_lock(conn, "schema-migration")
         config.attributes["connection"] = conn
         command.upgrade(config, "head")
-        conn.commit()
 
 
 def upgrade(url: str) -> None:

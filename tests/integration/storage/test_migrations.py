@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import threading
 from pathlib import Path
 
 import pytest
@@ -90,8 +91,12 @@ def test_sqlite_connections_use_wal_foreign_keys_and_a_busy_timeout(sqlite_url: 
     finally:
         db.dispose()
     # synchronous=1 is NORMAL (SQLite documentation, "PRAGMA synchronous").
-    assert pragma == {"journal_mode": "wal", "foreign_keys": 1, "busy_timeout": 10000,
-                      "synchronous": 1}
+    assert pragma == {
+        "journal_mode": "wal",
+        "foreign_keys": 1,
+        "busy_timeout": 10000,
+        "synchronous": 1,
+    }
 
 
 def test_in_memory_sqlite_keeps_one_database_across_transactions() -> None:
@@ -118,3 +123,23 @@ def test_rollback_on_error_leaves_nothing_behind(db_url: str) -> None:
             assert conn.execute(sa.text("select count(*) from source_cursors")).scalar_one() == 0
     finally:
         db.dispose()
+
+
+def test_processes_starting_together_migrate_once(db_url: str) -> None:
+    errors: list[BaseException] = []
+
+    def start() -> None:
+        try:
+            upgrade(db_url)
+        except BaseException as exc:  # reported to the main thread below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=start, daemon=True) for _ in range(3)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(timeout=120)
+    assert not any(t.is_alive() for t in threads), "a migration is stuck waiting"
+    assert errors == []
+    tables, revision, _ = _schema(db_url)
+    assert tables == EXPECTED_TABLES | {"alembic_version"} and revision == "0001"

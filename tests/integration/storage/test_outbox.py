@@ -175,11 +175,12 @@ def test_concurrent_senders_deliver_each_item_once_in_patient_order(database: Da
         except BaseException as exc:  # reported to the main thread below
             errors.append(exc)
 
-    threads = [threading.Thread(target=sender) for _ in range(4)]
+    threads = [threading.Thread(target=sender, daemon=True) for _ in range(4)]
     for t in threads:
         t.start()
     for t in threads:
         t.join(timeout=120)
+    assert not any(t.is_alive() for t in threads), "a sender is stuck"
     assert errors == []
     ids = [s[0] for s in sent]
     assert len(ids) == 24 and len(set(ids)) == 24
