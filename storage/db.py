@@ -148,9 +148,13 @@ def upgrade_engine(engine: Engine) -> None:
 def upgrade(url: str) -> None:
     """Bring the database at ``url`` to the newest schema (a no-op if it is there).
 
-    For ``sqlite://`` (in memory) this would migrate a database nobody else sees: use
-    ``open_database("sqlite://")``, which migrates its own engine.
+    An in-memory ``sqlite://`` URL is refused: the migrated database would vanish with
+    this call's engine. ``open_database("sqlite://")`` migrates its own engine instead.
     """
+    if is_memory_sqlite(url):
+        raise ValueError(
+            f"database url for upgrade must name a file or server, not {url!r} (in memory)"
+        )
     engine = create_engine(url)
     try:
         upgrade_engine(engine)

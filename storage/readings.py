@@ -6,11 +6,16 @@ kept as history, and exactly one of them is *current*: the one received last
 (``received_at``); on a tie, the stronger status (retracted > corrected > final >
 preliminary), then the greater delivery id. Choosing by those fields, not by the order
 rows happen to arrive in, makes the current set the same however a batch is split,
-repeated or reordered (a property test checks this).
+repeated or reordered (a property test checks this). A delivery id is trusted to name
+one transmission: if it comes again with different content, the first is kept.
+
+Retracted results stay stored (their current row has status ``retracted`` and no
+value) but the time-window queries leave them out, so pairing never uses them.
 """
 
 from __future__ import annotations
 
+from collections import Counter
 from collections.abc import Collection, Iterable
 from dataclasses import dataclass, field
 from datetime import date, datetime
@@ -77,10 +82,23 @@ def store_readings(conn: Connection, batch: Iterable[Reading]) -> StoreResult:
     logical_ids = sorted({r.logical_id for r in unique.values()})
     # Two processes storing deliveries of one result would both pick a current row.
     advisory_locks(conn, (f"reading:{lid}" for lid in logical_ids))
-    before = _current_rows(conn, logical_ids)
-    inserted = _insert_new(conn, list(unique.values()))
-    new = [r for r in unique.values() if r.delivery_id in inserted]
-    superseded, retracted = _choose_current(conn, {r.logical_id for r in new}, before)
+    # Every stored delivery of these results, read once under the locks: with the rows
+    # this call inserts, they are all the rows the choice of current rows can see.
+    known: dict[str, list[Any]] = {}
+    for row in _rows_for(conn, logical_ids, current_only=False):
+        known.setdefault(row.logical_id, []).append(row)
+    before = {lid: row for lid, rows in known.items() for row in rows if row.is_current}
+    # A result seen for the first time, in one delivery, is current from the start
+    # (the common case): no update needed afterwards.
+    deliveries = Counter(r.logical_id for r in unique.values())
+    first = {lid for lid, n in deliveries.items() if n == 1 and lid not in known}
+    inserted = _insert_new(conn, list(unique.values()), first)
+    stored = {row.delivery_id for row in inserted}
+    new = [r for r in unique.values() if r.delivery_id in stored]
+    by_logical: dict[str, list[Any]] = {}
+    for row in inserted:
+        by_logical.setdefault(row.logical_id, known.get(row.logical_id, [])[:]).append(row)
+    superseded, retracted = _choose_current(conn, by_logical, before)
     return StoreResult(
         stored=len(new),
         duplicates=given - len(new),
@@ -90,16 +108,21 @@ def store_readings(conn: Connection, batch: Iterable[Reading]) -> StoreResult:
     )
 
 
-def _insert_new(conn: Connection, batch: list[Reading]) -> set[str]:
-    rows = [reading_to_row(r) | {"is_current": False, "superseded_at": None} for r in batch]
+def _insert_new(conn: Connection, batch: list[Reading], current: set[str]) -> list[Any]:
+    """Insert the deliveries not stored yet; returns the inserted rows. Those of results
+    in ``current`` are inserted as current, the rest wait for ``_choose_current``."""
+    rows = [
+        reading_to_row(r) | {"is_current": r.logical_id in current, "superseded_at": None}
+        for r in batch
+    ]
     statement = (
         insert_for(conn, readings)
         .on_conflict_do_nothing(index_elements=["delivery_id"])
-        .returning(readings.c.delivery_id)
+        .returning(*readings.c)
     )
-    inserted: set[str] = set()
+    inserted: list[Any] = []
     for part in chunks(rows):
-        inserted.update(conn.execute(statement, part).scalars())
+        inserted.extend(conn.execute(statement, part))
     return inserted
 
 
@@ -113,16 +136,11 @@ def _rows_for(conn: Connection, logical_ids: Collection[str], *, current_only: b
     return found
 
 
-def _current_rows(conn: Connection, logical_ids: Collection[str]) -> dict[str, Any]:
-    return {row.logical_id: row for row in _rows_for(conn, logical_ids, current_only=True)}
-
-
 def _choose_current(
-    conn: Connection, logical_ids: set[str], before: dict[str, Any]
+    conn: Connection, by_logical: dict[str, list[Any]], before: dict[str, Any]
 ) -> tuple[list[str], list[str]]:
-    by_logical: dict[str, list[Any]] = {}
-    for row in _rows_for(conn, logical_ids, current_only=False):
-        by_logical.setdefault(row.logical_id, []).append(row)
+    """Make the winning delivery of each result current; ``by_logical``: every row of
+    each result that got a new delivery, ``before``: the current rows before it."""
     losers: list[dict[str, Any]] = []
     winners: list[dict[str, Any]] = []
     superseded: list[str] = []
@@ -130,7 +148,8 @@ def _choose_current(
     for lid in sorted(by_logical):
         rows = by_logical[lid]
         winner = max(rows, key=_precedence)
-        winners.append({"b_id": winner.id})
+        if not (winner.is_current and winner.superseded_at is None):
+            winners.append({"b_id": winner.id})
         losers.extend(
             {"b_id": row.id, "b_at": winner.received_at}
             for row in rows
@@ -183,16 +202,26 @@ def readings_for_patient(
     kinds: Collection[Kind] | None = None,
 ) -> list[Reading]:
     """Current, not retracted readings with ``start <= effective_at <= end``, oldest first."""
-    query = (
-        sa.select(readings)
-        .where(readings.c.patient_key == patient_key)
-        .where(readings.c.effective_at >= start, readings.c.effective_at <= end)
-        .where(readings.c.is_current, readings.c.status != Status.RETRACTED.value)
-        .order_by(readings.c.effective_at, readings.c.id)
+    params = {"key": patient_key, "start": start, "end": end}
+    if kinds is None:
+        rows = conn.execute(_PATIENT_WINDOW, params)
+    else:
+        query = _PATIENT_WINDOW.where(readings.c.kind.in_([Kind(k).value for k in kinds]))
+        rows = conn.execute(query, params)
+    return [row_to_reading(row._mapping) for row in rows]
+
+
+#: Built once: the pipeline reads each patient's window for every unit it takes.
+_PATIENT_WINDOW = (
+    sa.select(readings)
+    .where(readings.c.patient_key == sa.bindparam("key"))
+    .where(
+        readings.c.effective_at >= sa.bindparam("start", type_=UTCDateTime),
+        readings.c.effective_at <= sa.bindparam("end", type_=UTCDateTime),
     )
-    if kinds is not None:
-        query = query.where(readings.c.kind.in_([Kind(k).value for k in kinds]))
-    return [row_to_reading(row._mapping) for row in conn.execute(query)]
+    .where(readings.c.is_current, readings.c.status != Status.RETRACTED.value)
+    .order_by(readings.c.effective_at, readings.c.id)
+)
 
 
 def latest_reading(
@@ -282,24 +311,40 @@ def upsert_patient(
         **location_to_row(location),
         "updated_at": at,
     }
-    statement = insert_for(conn, patients).values(values)
-    excluded = statement.excluded
-    keep = {
-        name: sa.func.coalesce(excluded[name], patients.c[name])
-        for name in ("display_key", "birth_date")
-    }
-    if location is not None:
-        keep.update({name: excluded[name] for name in location_to_row(location)})
-    statement = statement.on_conflict_do_update(
-        index_elements=["patient_key"],
-        set_={**keep, "updated_at": excluded.updated_at},
-        where=patients.c.updated_at <= excluded.updated_at,
-    )
-    conn.execute(statement)
+    conn.execute(_upsert_statement(conn, with_location=location is not None), values)
+
+
+#: Built upsert statements by (dialect, location given): the pipeline upserts the
+#: patient of nearly every unit, and building the statement cost more than running it.
+_UPSERTS: dict[tuple[str, bool], Any] = {}
+
+
+def _upsert_statement(conn: Connection, *, with_location: bool) -> Any:
+    key = (conn.dialect.name, with_location)
+    statement = _UPSERTS.get(key)
+    if statement is None:
+        insert = insert_for(conn, patients)
+        excluded = insert.excluded
+        keep = {
+            name: sa.func.coalesce(excluded[name], patients.c[name])
+            for name in ("display_key", "birth_date")
+        }
+        if with_location:
+            keep.update({name: excluded[name] for name in location_to_row(None)})
+        statement = insert.on_conflict_do_update(
+            index_elements=["patient_key"],
+            set_={**keep, "updated_at": excluded.updated_at},
+            where=patients.c.updated_at <= excluded.updated_at,
+        )
+        _UPSERTS[key] = statement
+    return statement
+
+
+_GET_PATIENT = sa.select(patients).where(patients.c.patient_key == sa.bindparam("key"))
 
 
 def get_patient(conn: Connection, patient_key: str) -> Patient | None:
-    row = conn.execute(sa.select(patients).where(patients.c.patient_key == patient_key)).first()
+    row = conn.execute(_GET_PATIENT, {"key": patient_key}).first()
     if row is None:
         return None
     m = row._mapping

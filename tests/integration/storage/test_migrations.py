@@ -143,3 +143,8 @@ def test_processes_starting_together_migrate_once(db_url: str) -> None:
     assert errors == []
     tables, revision, _ = _schema(db_url)
     assert tables == EXPECTED_TABLES | {"alembic_version"} and revision == "0001"
+
+
+def test_upgrade_refuses_an_in_memory_url() -> None:
+    with pytest.raises(ValueError, match="in memory"):
+        upgrade("sqlite://")
