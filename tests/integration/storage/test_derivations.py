@@ -36,7 +36,8 @@ def test_a_derivation_round_trips_field_for_field(database: Database) -> None:
         [stored] = current_derivations(conn, original.patient_key)
     assert (saved.version, saved.changed) == (1, True)
     assert stored.derivation == original
-    assert (stored.id, stored.version, stored.retracted, stored.current) == (saved.id, 1, False, True)
+    assert (stored.id, stored.version) == (saved.id, 1)
+    assert (stored.retracted, stored.current) == (False, True)
     assert stored.created_at == T0 and stored.reason == "new gas"
 
 
