@@ -158,25 +158,41 @@ class Pipeline:
         derivations, alert changes and their notifications written. When this returns
         all of it is committed.
         """
+        with self.db.begin() as conn:
+            return self._accept_in(conn, inbound, now)
+
+    def accept_many(self, units: Sequence[tuple[Inbound, datetime]]) -> list[BatchReport]:
+        """``accept`` for several units in one transaction, each judged at its own ``now``.
+
+        The same as calling ``accept(inbound, now=now)`` for each pair in order, except
+        that everything is committed together (or, if any unit fails, none of it): for
+        replay and bulk loads, where a commit per unit costs more than the unit. Returns
+        one report per unit, in order. The transaction holds every patient lock its
+        units take until it commits, so keep batches short where other processes write
+        to the same PostgreSQL.
+        """
+        with self.db.begin() as conn:
+            return [self._accept_in(conn, inbound, now) for inbound, now in units]
+
+    def _accept_in(self, conn: Connection, inbound: Inbound, now: datetime) -> BatchReport:
         report = BatchReport(
             read=len(inbound.readings) + len(inbound.rejected),
             ignored=inbound.ignored,
             skipped_codes=Counter(inbound.skipped_codes),
         )
-        with self.db.begin() as conn:
-            for rejected in inbound.rejected:
-                self._quarantine(conn, rejected, now, report)
-            if inbound.readings:
-                result = store_readings(conn, inbound.readings)
-                report.stored += result.stored
-                report.duplicates += result.duplicates
-                new_birth_dates = self._note_patients(conn, result.new)
-                for patient_key, readings in sorted(_by_patient(result.new).items()):
-                    patient_lock(conn, patient_key)
-                    self._follow_up(
-                        conn, patient_key, readings, result.retracted, now, report,
-                        new_birth_date=patient_key in new_birth_dates,
-                    )
+        for rejected in inbound.rejected:
+            self._quarantine(conn, rejected, now, report)
+        if inbound.readings:
+            result = store_readings(conn, inbound.readings)
+            report.stored += result.stored
+            report.duplicates += result.duplicates
+            new_birth_dates = self._note_patients(conn, result.new)
+            for patient_key, readings in sorted(_by_patient(result.new).items()):
+                patient_lock(conn, patient_key)
+                self._follow_up(
+                    conn, patient_key, readings, result.retracted, now, report,
+                    new_birth_date=patient_key in new_birth_dates,
+                )
         return report
 
     def quarantine(self, rejected: Rejected, *, now: datetime) -> None:
@@ -316,14 +332,7 @@ class Pipeline:
         self, conn: Connection, patient_key: str, *, since: datetime
     ) -> tuple[datetime | None, datetime | None]:
         """Draw time of the newest current gas derivation and of the newest estimate."""
-        current = [
-            s.derivation
-            for s in derivations_store.current_derivations(conn, patient_key, since=since)
-            if not s.retracted
-        ]
-        gas = max((d.drawn_at for d in current if not d.estimated), default=None)
-        estimate = max((d.drawn_at for d in current if d.estimated), default=None)
-        return gas, estimate
+        return derivations_store.latest_drawn(conn, patient_key, since=since)
 
     def _withdraw(
         self,

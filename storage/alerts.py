@@ -73,6 +73,9 @@ def open_alerts(
     conn: Connection, patient_key: str | None = None, unit: str | None = None
 ) -> list[Alert]:
     """Open alerts, highest priority first, then oldest raised first."""
+    if patient_key is not None and unit is None:  # the pipeline's question, built once
+        rows = conn.execute(_OPEN_FOR_PATIENT, {"key": patient_key})
+        return [row_to_alert(row._mapping) for row in rows]
     query = sa.select(alerts).where(_is_open())
     if patient_key is not None:
         query = query.where(alerts.c.patient_key == patient_key)
@@ -80,6 +83,13 @@ def open_alerts(
         query = query.where(alerts.c.location_unit == unit)
     query = query.order_by(_PRIORITY_ORDER.desc(), alerts.c.raised_at, alerts.c.alert_id)
     return [row_to_alert(row._mapping) for row in conn.execute(query)]
+
+
+_OPEN_FOR_PATIENT = (
+    sa.select(alerts)
+    .where(_is_open(), alerts.c.patient_key == sa.bindparam("key"))
+    .order_by(_PRIORITY_ORDER.desc(), alerts.c.raised_at, alerts.c.alert_id)
+)
 
 
 def last_closed_alert(conn: Connection, patient_key: str, rule: str) -> Alert | None:

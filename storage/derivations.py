@@ -20,8 +20,9 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Connection
 
 from monitor.engine.model import Derivation
+from storage.db import chunks
 from storage.serialize import derivation_to_row, row_to_derivation
-from storage.tables import derivation_inputs, derivations
+from storage.tables import UTCDateTime, derivation_inputs, derivations
 
 
 @dataclass(frozen=True)
@@ -55,6 +56,24 @@ def _stored(row: Any) -> StoredDerivation:
     )
 
 
+#: Every version of one sample (id, number, state, fingerprint): a sample has few, and
+#: one statement then gives both the current version and the highest number. Built
+#: once: the pipeline saves a derivation for nearly every reading, and building the
+#: statement each time cost more than running it.
+_d = derivations
+_VERSIONS = sa.select(
+    _d.c.id, _d.c.version, _d.c.is_current, _d.c.retracted, _d.c.fingerprint
+).where(_d.c.patient_key == sa.bindparam("pk"), _d.c.sample_id == sa.bindparam("sid"))
+#: PostgreSQL: lock them, so two processes cannot both write the next version.
+_VERSIONS_LOCKED = _VERSIONS.with_for_update()
+_MAX_VERSION = sa.select(sa.func.max(_d.c.version)).where(
+    _d.c.patient_key == sa.bindparam("pk"), _d.c.sample_id == sa.bindparam("sid")
+)
+_DEMOTE = sa.update(_d).where(_d.c.id == sa.bindparam("b_id")).values(is_current=False)
+_INSERT_VERSION = sa.insert(_d).returning(_d.c.id)
+_INSERT_LINKS = sa.insert(derivation_inputs)
+
+
 def _current_row(conn: Connection, patient_key: str, sample_id: str) -> Any:
     d = derivations
     query = (
@@ -65,29 +84,25 @@ def _current_row(conn: Connection, patient_key: str, sample_id: str) -> Any:
     return conn.execute(query).first()
 
 
-def _next_version(conn: Connection, patient_key: str, sample_id: str) -> int:
-    d = derivations
-    query = sa.select(sa.func.max(d.c.version)).where(
-        d.c.patient_key == patient_key, d.c.sample_id == sample_id
-    )
-    return int(conn.execute(query).scalar_one() or 0) + 1
+def _write_version(
+    conn: Connection, row: dict[str, Any], current_id: int | None, max_version: int | None
+) -> SavedDerivation:
+    """Insert ``row`` as the new current version, demoting ``current_id`` first.
 
-
-def _write_version(conn: Connection, row: dict[str, Any], current: Any) -> SavedDerivation:
-    """Insert ``row`` as the new current version, demoting ``current`` first."""
-    if current is not None:
-        conn.execute(
-            sa.update(derivations).where(derivations.c.id == current.id).values(is_current=False)
-        )
-    version = _next_version(conn, row["patient_key"], row["sample_id"])
+    ``max_version``: the sample's highest version so far, when the caller read it in
+    the same transaction (None: read it here)."""
+    if current_id is not None:
+        conn.execute(_DEMOTE, {"b_id": current_id})
+    if max_version is None:
+        pk = {"pk": row["patient_key"], "sid": row["sample_id"]}
+        max_version = int(conn.execute(_MAX_VERSION, pk).scalar_one() or 0)
+    version = max_version + 1
     new_id = conn.execute(
-        sa.insert(derivations)
-        .values(**row, version=version, is_current=True)
-        .returning(derivations.c.id)
+        _INSERT_VERSION, {**row, "version": version, "is_current": True}
     ).scalar_one()
     links = sorted({i["reading_id"] for i in row["inputs"] if i["reading_id"]} | {row["sample_id"]})
     conn.execute(
-        sa.insert(derivation_inputs),
+        _INSERT_LINKS,
         [{"derivation_id": new_id, "reading_logical_id": lid} for lid in links],
     )
     return SavedDerivation(id=int(new_id), version=version, changed=True)
@@ -101,11 +116,16 @@ def save_derivation(
     ``reason`` says why it was (re)derived ("new gas", "FiO2 corrected", ...).
     """
     row = derivation_to_row(derivation)
-    current = _current_row(conn, derivation.patient_key, derivation.sample_id)
+    query = _VERSIONS_LOCKED if conn.dialect.name == "postgresql" else _VERSIONS
+    versions = conn.execute(
+        query, {"pk": derivation.patient_key, "sid": derivation.sample_id}
+    ).all()
+    current = next((v for v in versions if v.is_current), None)
     if current is not None and not current.retracted and current.fingerprint == row["fingerprint"]:
         return SavedDerivation(id=int(current.id), version=int(current.version), changed=False)
     row.update(created_at=at, reason=reason, retracted=False)
-    return _write_version(conn, row, current)
+    max_version = max((int(v.version) for v in versions), default=0)
+    return _write_version(conn, row, None if current is None else int(current.id), max_version)
 
 
 def retract_derivations(
@@ -123,8 +143,41 @@ def retract_derivations(
         skip = ("id", "version", "is_current")
         row = {k: v for k, v in current._mapping.items() if k not in skip}
         row.update(created_at=at, reason=reason, retracted=True)
-        written.append(_write_version(conn, row, current).id)
+        written.append(_write_version(conn, row, int(current.id), None).id)
     return written
+
+
+#: Deserialised derivations by fingerprint. A fingerprint is a digest of everything
+#: ``row_to_derivation`` reads (see ``storage.serialize.fingerprint``), so one
+#: fingerprint always stands for one Derivation, whichever row or database it came
+#: from: the cache cannot go stale. Rules read the last day of a patient's derivations
+#: for every new one; without this, each read decoded the same JSON again. Bounded (it
+#: is emptied when full) so memory stays flat however long the process runs.
+_DECODED: dict[str, Derivation] = {}
+_DECODED_MAX = 4_096
+_STORED_COLUMNS = (
+    derivations.c.id, derivations.c.version, derivations.c.retracted,
+    derivations.c.created_at, derivations.c.is_current, derivations.c.reason,
+    derivations.c.fingerprint,
+)
+
+
+def _decoded(conn: Connection, rows: list[Any]) -> dict[str, Derivation]:
+    """The Derivation for each row's fingerprint, reading in full only rows not seen."""
+    found = {r.fingerprint: _DECODED[r.fingerprint] for r in rows if r.fingerprint in _DECODED}
+    missing = sorted({r.id for r in rows if r.fingerprint not in found})
+    for part in chunks(missing):
+        for row in conn.execute(sa.select(derivations).where(derivations.c.id.in_(part))):
+            m = row._mapping
+            found[m["fingerprint"]] = row_to_derivation(m)
+    if len(_DECODED) + len(found) > _DECODED_MAX:
+        _DECODED.clear()
+    _DECODED.update(found)
+    return found
+
+
+#: Built queries by shape (which bounds and filters): see ``current_derivations``.
+_CURRENT_QUERIES: dict[tuple[bool, bool, bool, bool], Any] = {}
 
 
 def current_derivations(
@@ -136,18 +189,56 @@ def current_derivations(
     include_retracted: bool = False,
 ) -> list[StoredDerivation]:
     """The patient's current derivations, drawn in [since, until], oldest draw first."""
-    d = derivations
-    query = sa.select(d).where(d.c.patient_key == patient_key, d.c.is_current)
+    shape = (since is not None, until is not None, include_estimated, include_retracted)
+    query = _CURRENT_QUERIES.get(shape)
+    if query is None:
+        d = derivations
+        query = sa.select(*_STORED_COLUMNS).where(
+            d.c.patient_key == sa.bindparam("key"), d.c.is_current
+        )
+        if since is not None:
+            query = query.where(d.c.drawn_at >= sa.bindparam("since", type_=UTCDateTime))
+        if until is not None:
+            query = query.where(d.c.drawn_at <= sa.bindparam("until", type_=UTCDateTime))
+        if not include_estimated:
+            query = query.where(sa.not_(d.c.estimated))
+        if not include_retracted:
+            query = query.where(sa.not_(d.c.retracted))
+        query = query.order_by(d.c.drawn_at, d.c.id)
+        _CURRENT_QUERIES[shape] = query
+    params: dict[str, Any] = {"key": patient_key}
     if since is not None:
-        query = query.where(d.c.drawn_at >= since)
+        params["since"] = since
     if until is not None:
-        query = query.where(d.c.drawn_at <= until)
-    if not include_estimated:
-        query = query.where(sa.not_(d.c.estimated))
-    if not include_retracted:
-        query = query.where(sa.not_(d.c.retracted))
-    query = query.order_by(d.c.drawn_at, d.c.id)
-    return [_stored(row) for row in conn.execute(query)]
+        params["until"] = until
+    rows = conn.execute(query, params).all()
+    decoded = _decoded(conn, rows)
+    return [
+        StoredDerivation(
+            id=r.id, version=r.version, derivation=decoded[r.fingerprint],
+            retracted=bool(r.retracted), created_at=r.created_at, current=bool(r.is_current),
+            reason=r.reason,
+        )
+        for r in rows
+    ]
+
+
+def latest_drawn(
+    conn: Connection, patient_key: str, *, since: datetime
+) -> tuple[datetime | None, datetime | None]:
+    """Draw time of the patient's newest current, not retracted gas derivation and of
+    the newest estimate (SpO2-based), each drawn at or after ``since`` (None: none)."""
+    rows = conn.execute(_LATEST_DRAWN, {"key": patient_key, "since": since})
+    newest = {bool(estimated): at for estimated, at in rows}
+    return newest.get(False), newest.get(True)
+
+
+_LATEST_DRAWN = (
+    sa.select(_d.c.estimated, sa.func.max(_d.c.drawn_at))
+    .where(_d.c.patient_key == sa.bindparam("key"), _d.c.is_current, sa.not_(_d.c.retracted))
+    .where(_d.c.drawn_at >= sa.bindparam("since", type_=UTCDateTime))
+    .group_by(_d.c.estimated)
+)
 
 
 def derivation_history(
