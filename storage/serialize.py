@@ -45,6 +45,7 @@ def location_to_row(location: Location | None) -> dict[str, str | None]:
 
 
 def row_to_location(row: Row) -> Location | None:
+    """The stored location; one with no unit, room or bed comes back as None."""
     unit, room, bed = row["location_unit"], row["location_room"], row["location_bed"]
     if unit is None and room is None and bed is None:
         return None
@@ -165,11 +166,19 @@ def inputs_to_json(inputs: tuple[InputUsed, ...]) -> list[dict[str, Any]]:
     ]
 
 
+def _json_number(value: Any) -> Any:
+    # PostgreSQL's JSONB keeps numbers as decimals and prints 1e16 as 10000000000000000,
+    # which JSON reads back as an int; the model's numbers here are floats.
+    if isinstance(value, int) and not isinstance(value, bool):
+        return float(value)
+    return value
+
+
 def json_to_inputs(data: list[dict[str, Any]]) -> tuple[InputUsed, ...]:
     return tuple(
         InputUsed(
             role=d["role"],
-            value=d["value"],
+            value=_json_number(d["value"]),
             reason=d["reason"],
             reading_id=d["reading_id"],
             at=json_to_time(d["at"]),
@@ -201,12 +210,23 @@ def derivation_to_row(derivation: Derivation) -> dict[str, Any]:
     return row
 
 
+def _canonical(value: Any) -> Any:
+    # -0.0 + 0.0 is 0.0: the two zeros are equal, and SQLite drops the sign anyway.
+    if isinstance(value, float):
+        return value + 0.0
+    if isinstance(value, Mapping):
+        return {k: _canonical(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_canonical(v) for v in value]
+    return value
+
+
 def fingerprint(row: Mapping[str, Any]) -> str:
     """A digest of a derivation's content: equal digests mean nothing worth a version.
 
     Floats are hashed by ``repr``, which is exact, so any change in a value counts.
     """
-    content = {k: v for k, v in row.items() if k != "fingerprint"}
+    content = {k: _canonical(v) for k, v in row.items() if k != "fingerprint"}
     text = json.dumps(content, sort_keys=True, default=_json_default, allow_nan=False)
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
@@ -224,7 +244,7 @@ def row_to_derivation(row: Row) -> Derivation:
         location=row_to_location(row),
         estimated=bool(row["estimated"]),
         preliminary=bool(row["preliminary"]),
-        constants=dict(row["constants"]),
+        constants={k: _json_number(v) for k, v in row["constants"].items()},
         inputs=json_to_inputs(row["inputs"]),
         flags=frozenset(QualityFlag(f) for f in row["flags"]),
     )

@@ -188,3 +188,16 @@ def test_concurrent_senders_deliver_each_item_once_in_patient_order(database: Da
     for _, key, event in sent:
         per_patient[key].append(event)
     assert all(events == ["raised", "escalated", "resolved"] for events in per_patient.values())
+
+
+def test_a_rolled_back_alert_change_leaves_no_notification(database: Database) -> None:
+    from storage.alerts import get_alert, save_alert
+    from tests.integration.storage import alert
+
+    with pytest.raises(RuntimeError), database.begin() as conn:
+        save_alert(conn, alert())
+        enqueue(conn, notification(), [WEBHOOK], at=T0)
+        raise RuntimeError("the step failed after queueing")
+    with database.begin(read_only=True) as conn:
+        assert get_alert(conn, "A-1") is None
+        assert outbox_items(conn) == [] and backlog(conn) == 0
