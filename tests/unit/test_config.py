@@ -48,7 +48,7 @@ def test_example_files_load_and_convert(path):
     config = load_config(path)
     assert check_config(path) == []
     assert config.site.elevation_m == 1600
-    assert config.site.timezone == "America/Denver"
+    assert config.site.timezone == "Etc/GMT-2"
     config.to_rule_set()
     config.to_alert_settings()
     config.to_pairing_settings()
@@ -113,7 +113,7 @@ def test_pipeline_settings_carry_routes_zone_and_history():
     settings = load_config(EXAMPLE).to_pipeline_settings()
     assert isinstance(settings, pipeline.PipelineSettings)
     assert settings.routing.by_unit["Ward-5B"] == ["ward-5b-mail", "log"]
-    assert str(settings.site_tz) == "America/Denver"
+    assert str(settings.site_tz) == "Etc/GMT-2"
     assert settings.history == timedelta(hours=24)
     assert settings.retention == timedelta(days=400)
 

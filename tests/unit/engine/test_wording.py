@@ -91,9 +91,8 @@ def test_what_changed_says_the_fall_with_its_time():
 
 
 def test_times_are_written_in_the_site_zone():
-    # Hollowmere's zone is set to America/Denver in the example config (UTC-7 on 4 March,
-    # before the US change to daylight time): 06:10 UTC is 23:10 the evening before,
-    # so the date is written too.
+    # A site at UTC-7 (America/Denver on 4 March, before the US change to daylight
+    # time): 06:10 UTC is 23:10 the evening before, so the date is written too.
     assert "was 290 at 2026-03-03 23:10" in what_changed(NUMBERS, NOW, ZoneInfo("America/Denver"))
 
 
