@@ -276,25 +276,28 @@ def ingest_files(
     batch_size: int = 200,
     progress: bool = False,
 ) -> BatchReport:
-    """Load files through the pipeline in order of record time, in batches (one
-    transaction a batch). A batch is judged at the record time of its last unit (the
-    wall clock when the source gave none), so flags carry the time the data arrived."""
+    """Load files through the pipeline in order of record time, several units to a
+    transaction. Each unit is judged at its own record time (the wall clock when the
+    source gave none), exactly as the live service and replay judge it, so ingesting a
+    feed raises the same flags a replay of it shows."""
     report = BatchReport()
     files = list(paths)
     bar = _progress(files, enabled=progress)
-    pending = Inbound()
-    at: datetime | None = None
+    pending: list[tuple[Inbound, datetime]] = []
+    size = 0
     try:
         for unit in merged_units(files, context, now):
-            pending.extend(unit.inbound)
-            at = unit.record_time or at
-            if len(pending.readings) + len(pending.rejected) >= batch_size:
-                report.merge(pipeline.accept(pending, now=at or now()))
-                pending = Inbound()
+            pending.append((unit.inbound, unit.record_time or now()))
+            size += len(unit.inbound.readings) + len(unit.inbound.rejected)
+            if size >= batch_size:
+                for one in pipeline.accept_many(pending):
+                    report.merge(one)
+                pending, size = [], 0
             if bar is not None:
                 bar.update(1)
-        if pending.readings or pending.rejected or pending.skipped_codes or pending.ignored:
-            report.merge(pipeline.accept(pending, now=at or now()))
+        if pending:
+            for one in pipeline.accept_many(pending):
+                report.merge(one)
     finally:
         if bar is not None:
             bar.close()

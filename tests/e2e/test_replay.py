@@ -74,13 +74,12 @@ def test_ingest_one_unit_per_transaction_gives_the_same_flags(
     assert ingested and ingested == replayed
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "gasgap ingest judges 200 readings per transaction: a withdrawn result arriving in the "
-    "same batch as the result never raises (HGH-1010), and a late gas batched with a newer "
-    "one raises a medium band (HGH-1011); live and replay judge each unit on its own"))
 def test_ingest_default_batches_give_the_same_flags(
     example_replay: ReplayResult, tmp_path: Path
 ) -> None:
+    # ingest puts many units in one transaction but judges each at its own record
+    # time, so a withdrawal batched with its result, or a late gas batched with a newer
+    # one, still gives what live and replay give.
     config = load_config(EXAMPLE)
     db = open_database(f"sqlite:///{tmp_path / 'ingest.db'}")
     try:
