@@ -322,11 +322,28 @@ class Pipeline:
 
         # The rules judge the present: a sample drawn before the newest one of its kind
         # already judged (a late arrival) is derived and kept, but raises nothing itself.
-        for derivation in sorted(changed, key=lambda d: (d.drawn_at, d.sample_id)):
-            latest = latest_estimate if derivation.estimated else latest_gas
-            if latest is not None and derivation.drawn_at < latest:
-                continue
-            self._judge(conn, derivation, context, now, report)
+        judged = [
+            d for d in sorted(changed, key=lambda d: (d.drawn_at, d.sample_id))
+            if not (
+                (latest := latest_estimate if d.estimated else latest_gas) is not None
+                and d.drawn_at < latest
+            )
+        ]
+        if not judged:
+            return
+        # The stored derivations every judgement below may look back on, read once
+        # (judging changes flags, never derivations, so each judgement's own window
+        # is a slice of this).
+        stored = [
+            s.derivation
+            for s in derivations_store.current_derivations(
+                conn, patient_key, since=judged[0].drawn_at - self.settings.history,
+                until=judged[-1].drawn_at,
+            )
+            if not s.retracted
+        ]
+        for derivation in judged:
+            self._judge(conn, derivation, context, stored, now, report)
 
     def _latest_drawn(
         self, conn: Connection, patient_key: str, *, since: datetime
@@ -369,10 +386,11 @@ class Pipeline:
         conn: Connection,
         derivation: Derivation,
         context: Sequence[Reading],
+        stored: Sequence[Derivation],
         now: datetime,
         report: BatchReport,
     ) -> None:
-        history = self._history(conn, derivation, context)
+        history = self._history(derivation, context, stored)
         outcomes = rules.evaluate(
             self.settings.rules, derivation, history, max(now, derivation.drawn_at)
         )
@@ -405,16 +423,13 @@ class Pipeline:
             self._apply(conn, decision, derivation, outcome.numbers, now, report)
 
     def _history(
-        self, conn: Connection, derivation: Derivation, context: Sequence[Reading]
+        self, derivation: Derivation, context: Sequence[Reading], loaded: Sequence[Derivation]
     ) -> rules.PatientHistory:
+        """The patient's history as the rules see it for ``derivation``: current, not
+        retracted derivations drawn in the history window up to its draw (from
+        ``loaded``, oldest first), and the FiO2 points charted or used."""
         since = derivation.drawn_at - self.settings.history
-        stored = [
-            s.derivation
-            for s in derivations_store.current_derivations(
-                conn, derivation.patient_key, since=since, until=derivation.drawn_at
-            )
-            if not s.retracted
-        ]
+        stored = [d for d in loaded if since <= d.drawn_at <= derivation.drawn_at]
         points = [
             rules.FiO2Point(r.effective_at, r.value, FiO2Source.CHARTED, r.logical_id)
             for r in context

@@ -150,11 +150,13 @@ def retract_derivations(
 #: Deserialised derivations by fingerprint. A fingerprint is a digest of everything
 #: ``row_to_derivation`` reads (see ``storage.serialize.fingerprint``), so one
 #: fingerprint always stands for one Derivation, whichever row or database it came
-#: from: the cache cannot go stale. Rules read the last day of a patient's derivations
+#: from: the cache cannot go stale. (The fingerprint counts -0.0 and 0.0 as one value,
+#: as the version check does; a zero may come back with another row's sign.) Rules read the last day of a patient's derivations
 #: for every new one; without this, each read decoded the same JSON again. Bounded (it
 #: is emptied when full) so memory stays flat however long the process runs.
 _DECODED: dict[str, Derivation] = {}
 _DECODED_MAX = 4_096
+_BY_IDS = sa.select(derivations).where(derivations.c.id.in_(sa.bindparam("ids", expanding=True)))
 _STORED_COLUMNS = (
     derivations.c.id, derivations.c.version, derivations.c.retracted,
     derivations.c.created_at, derivations.c.is_current, derivations.c.reason,
@@ -167,7 +169,7 @@ def _decoded(conn: Connection, rows: list[Any]) -> dict[str, Derivation]:
     found = {r.fingerprint: _DECODED[r.fingerprint] for r in rows if r.fingerprint in _DECODED}
     missing = sorted({r.id for r in rows if r.fingerprint not in found})
     for part in chunks(missing):
-        for row in conn.execute(sa.select(derivations).where(derivations.c.id.in_(part))):
+        for row in conn.execute(_BY_IDS, {"ids": part}):
             m = row._mapping
             found[m["fingerprint"]] = row_to_derivation(m)
     if len(_DECODED) + len(found) > _DECODED_MAX:

@@ -108,6 +108,15 @@ def store_readings(conn: Connection, batch: Iterable[Reading]) -> StoreResult:
     )
 
 
+#: Built statements, by dialect (the pipeline stores readings for every unit, and
+#: building a statement cost more than running it).
+_INSERTS: dict[str, Any] = {}
+_ROWS_FOR = sa.select(readings).where(
+    readings.c.logical_id.in_(sa.bindparam("ids", expanding=True))
+)
+_CURRENT_ROWS_FOR = _ROWS_FOR.where(readings.c.is_current)
+
+
 def _insert_new(conn: Connection, batch: list[Reading], current: set[str]) -> list[Any]:
     """Insert the deliveries not stored yet; returns the inserted rows. Those of results
     in ``current`` are inserted as current, the rest wait for ``_choose_current``."""
@@ -115,11 +124,14 @@ def _insert_new(conn: Connection, batch: list[Reading], current: set[str]) -> li
         reading_to_row(r) | {"is_current": r.logical_id in current, "superseded_at": None}
         for r in batch
     ]
-    statement = (
-        insert_for(conn, readings)
-        .on_conflict_do_nothing(index_elements=["delivery_id"])
-        .returning(*readings.c)
-    )
+    statement = _INSERTS.get(conn.dialect.name)
+    if statement is None:
+        statement = (
+            insert_for(conn, readings)
+            .on_conflict_do_nothing(index_elements=["delivery_id"])
+            .returning(*readings.c)
+        )
+        _INSERTS[conn.dialect.name] = statement
     inserted: list[Any] = []
     for part in chunks(rows):
         inserted.extend(conn.execute(statement, part))
@@ -127,12 +139,10 @@ def _insert_new(conn: Connection, batch: list[Reading], current: set[str]) -> li
 
 
 def _rows_for(conn: Connection, logical_ids: Collection[str], *, current_only: bool) -> list[Any]:
+    query = _CURRENT_ROWS_FOR if current_only else _ROWS_FOR
     found: list[Any] = []
     for part in chunks(sorted(logical_ids)):
-        query = sa.select(readings).where(readings.c.logical_id.in_(part))
-        if current_only:
-            query = query.where(readings.c.is_current)
-        found.extend(conn.execute(query))
+        found.extend(conn.execute(query, {"ids": part}))
     return found
 
 
@@ -208,7 +218,24 @@ def readings_for_patient(
     else:
         query = _PATIENT_WINDOW.where(readings.c.kind.in_([Kind(k).value for k in kinds]))
         rows = conn.execute(query, params)
-    return [row_to_reading(row._mapping) for row in rows]
+    return [_reading(row) for row in rows]
+
+
+#: Readings made from rows, by the row's every column: the pipeline reads each
+#: patient's window again for every unit, mostly the same rows. Keyed by the whole
+#: row, an entry can never be stale; bounded (emptied when full), so memory stays flat.
+_READ: dict[tuple[Any, ...], Reading] = {}
+_READ_MAX = 8_192
+
+
+def _reading(row: Any) -> Reading:
+    key = tuple(row)
+    reading = _READ.get(key)
+    if reading is None:
+        if len(_READ) >= _READ_MAX:
+            _READ.clear()
+        reading = _READ[key] = row_to_reading(row._mapping)
+    return reading
 
 
 #: Built once: the pipeline reads each patient's window for every unit it takes.
