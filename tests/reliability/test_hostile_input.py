@@ -383,3 +383,33 @@ def test_mutated_hl7_messages_in_a_file_are_quarantined_and_good_ones_stored(
     stored = stored_control_ids(url)
     missing = {c: stored.get(c, 0) for c in good if stored.get(c, 0) != 3}
     assert not missing, (missing, reasons)
+
+
+# --- coverage-guided fuzzing (optional tooling) ------------------------------------------------------
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(180)
+def test_atheris_run_over_the_hl7_and_fhir_readers(tmp_path: Path) -> None:
+    """A bounded libFuzzer run of tests/reliability/fuzz_atheris.py (optional: atheris
+    is not a project dependency, so without it this test is skipped, not failed)."""
+    import importlib.util
+    import subprocess
+    import sys
+
+    if importlib.util.find_spec("atheris") is None:
+        pytest.skip("atheris is not installed (optional fuzzing tool: pip install atheris)")
+    harness = Path(__file__).with_name("fuzz_atheris.py")
+    corpus = tmp_path / "corpus"
+    repo = str(Path(__file__).resolve().parents[2])
+    seeded = subprocess.run([sys.executable, str(harness), "--seeds", str(corpus)], cwd=repo,
+                            capture_output=True, text=True, timeout=60)
+    assert seeded.returncode == 0, seeded.stderr
+    run = subprocess.run(
+        [sys.executable, str(harness), "-runs=40000", "-max_total_time=40", "-seed=20261202",
+         f"-artifact_prefix={tmp_path}/", "-print_final_stats=1", str(corpus)],
+        cwd=repo, capture_output=True, text=True, timeout=150,
+    )
+    crashes = sorted(p.name for p in tmp_path.iterdir() if p.name.startswith(("crash-", "timeout-")))
+    assert run.returncode == 0 and not crashes, (crashes, run.stderr[-4000:])
+    assert "Done" in run.stderr, run.stderr[-2000:]
