@@ -100,7 +100,8 @@ def _gas(n: int, mrn: str) -> bytes:
     """An invented arterial gas (HL7 v2.5.1 ORU^R01) drawn ten minutes ago."""
     drawn = (datetime.now(UTC) - timedelta(minutes=10)).strftime("%Y%m%d%H%M%S+0000")
     segments = [
-        f"MSH|^~\\&|HGH-LAB|HOLLOWMERE|GASGAP|HOLLOWMERE|{drawn}||ORU^R01^ORU_R01|BENCH{n:07d}|P|2.5.1",
+        f"MSH|^~\\&|HGH-LAB|HOLLOWMERE|GASGAP|HOLLOWMERE|{drawn}||ORU^R01^ORU_R01"
+        f"|BENCH{n:07d}|P|2.5.1",
         f"PID|1||{mrn}^^^HGH&2.999.1.1.1&ISO^MR||Bench^Patient{n}||19600101|F",
         f"PV1|1|I|ICU-North^{1 + n % 30}^1",
         f"OBR|1|P-{n}|F-BENCH-{n:07d}|24336-0^Gas panel - Arterial blood^LN|||{drawn}",
@@ -130,7 +131,9 @@ def _wait_healthy(process: subprocess.Popen[bytes], port: int, log: Path) -> Non
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline:
         if process.poll() is not None:
-            raise RuntimeError(f"gasgap serve exited {process.returncode}:\n{log.read_text()[-3000:]}")
+            raise RuntimeError(
+                f"gasgap serve exited {process.returncode}:\n{log.read_text()[-3000:]}"
+            )
         try:
             if httpx.get(f"http://127.0.0.1:{port}/health", timeout=2).status_code == 200:
                 return
@@ -143,7 +146,10 @@ def _wait_healthy(process: subprocess.Popen[bytes], port: int, log: Path) -> Non
 def run(*, gases: int, pace_per_s: float = 20.0) -> dict[str, Any]:
     heading(f"latency: gasgap serve, {gases} gases over MLLP at {pace_per_s:g}/s, "
             "webhook on loopback, SQLite file")
-    with tempfile.TemporaryDirectory(prefix="gasgap-bench-") as tmp, _receiver() as (hook, arrivals):
+    with (
+        tempfile.TemporaryDirectory(prefix="gasgap-bench-") as tmp,
+        _receiver() as (hook, arrivals),
+    ):
         http_port, mllp_port = _free_port(), _free_port()
         config = Path(tmp) / "site.toml"
         config.write_text(_site(f"sqlite:///{tmp}/gasgap.db", http_port, mllp_port, hook))

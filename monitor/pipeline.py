@@ -290,15 +290,26 @@ class Pipeline:
         panels = {r.panel_id for r in new if r.panel_id}
         context = readings_for_patient(conn, patient_key, lo - before, hi + after)
         retracted_here = {r.logical_id for r in new if r.logical_id in set(retracted_ids)}
-        latest_gas, latest_estimate = self._latest_drawn(conn, patient_key, since=lo - self.settings.history)
-
-        self._withdraw(conn, patient_key, retracted_here, now, report)
-
         samples = [
             r for r in context
             if r.kind is Kind.PAO2
             and (r.panel_id in panels or any(s <= r.effective_at <= e for s, e in windows))
         ]
+        spo2s = [
+            r for r in context
+            if r.kind is Kind.SPO2 and any(s <= r.effective_at <= e for s, e in windows)
+        ]
+        # What was judged before this call (read before anything is withdrawn or saved;
+        # only needed when there is something to derive).
+        latest_gas: datetime | None = None
+        latest_estimate: datetime | None = None
+        if samples or spo2s:
+            latest_gas, latest_estimate = self._latest_drawn(
+                conn, patient_key, since=lo - self.settings.history
+            )
+
+        self._withdraw(conn, patient_key, retracted_here, now, report)
+
         changed: list[Derivation] = []
         for sample in samples:
             derivation = derive(pair(sample, context, ps), self.settings.derivation)
@@ -308,10 +319,6 @@ class Pipeline:
             if saved.changed:
                 report.derivations += 1
                 changed.append(derivation)
-        spo2s = [
-            r for r in context
-            if r.kind is Kind.SPO2 and any(s <= r.effective_at <= e for s, e in windows)
-        ]
         for derivation in derive_spo2_series(spo2s, context, self.settings.derivation, ps):
             saved = derivations_store.save_derivation(
                 conn, derivation, at=now, reason="SpO2 between gases"

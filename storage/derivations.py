@@ -151,9 +151,10 @@ def retract_derivations(
 #: ``row_to_derivation`` reads (see ``storage.serialize.fingerprint``), so one
 #: fingerprint always stands for one Derivation, whichever row or database it came
 #: from: the cache cannot go stale. (The fingerprint counts -0.0 and 0.0 as one value,
-#: as the version check does; a zero may come back with another row's sign.) Rules read the last day of a patient's derivations
-#: for every new one; without this, each read decoded the same JSON again. Bounded (it
-#: is emptied when full) so memory stays flat however long the process runs.
+#: as the version check does; a zero may come back with another row's sign.) Rules read
+#: the last day of a patient's derivations for every new one; without this, each read
+#: decoded the same JSON again. Bounded (it is emptied when full) so memory stays flat
+#: however long the process runs.
 _DECODED: dict[str, Derivation] = {}
 _DECODED_MAX = 4_096
 _BY_IDS = sa.select(derivations).where(derivations.c.id.in_(sa.bindparam("ids", expanding=True)))
