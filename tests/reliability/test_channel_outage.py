@@ -125,3 +125,67 @@ def test_notifications_wait_for_a_down_webhook_then_arrive_once_in_order(
         queued[row["patient_key"]].append(row["idempotency_key"])
     assert arrived == queued
     assert all(len(v) >= 2 for v in queued.values()), "each patient has several changes"
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(240)
+def test_gasgap_serve_retries_a_down_webhook_on_its_own_schedule(tmp_path: Path) -> None:
+    """The same outage against the real ``gasgap serve`` process with the site's own
+    backoff (first retry after 22.5-30 s: base 30 s, jitter 25 %), killed and started
+    again while the receiver is down: once the receiver is up, the retry comes from the
+    new process's outbox timer alone (no new message arrives to wake it; before the
+    scheduler fix of this issue it never came), and every notification arrives once,
+    in order per patient."""
+    from tests.reliability.helpers import MllpSession, ServiceProcess, wait_until
+
+    receiver = Receiver()
+    db_url = f"sqlite:///{tmp_path}/gasgap.db"
+    http_port, mllp_port = free_port(), free_port()
+    config = tmp_path / "site.toml"
+    config.write_text(site_toml(db_url=db_url, http_port=http_port, mllp_port=mllp_port,
+                                webhook_url=receiver.url))
+    service = ServiceProcess(config, http_port, tmp_path / "service.log")
+    try:
+        service.start()
+        session = MllpSession(mllp_port)
+        start = minutes_ago(5 * 60)
+        for step, pao2 in enumerate((55, 40)):
+            for i, mrn in enumerate(PATIENTS[:2]):
+                control = f"CS{step}{i}"
+                text = gas(control, mrn, f"F-{control}", pao2=pao2,
+                           drawn=start + timedelta(minutes=60 * step + i), bed=str(i + 1))
+                assert session.send(text) == "AA"
+        session.close()
+        failed = wait_until(lambda: all(r["attempts"] >= 1 for r in outbox_rows(db_url, CHANNEL)
+                                        if r["id"] in _heads(outbox_rows(db_url, CHANNEL))),
+                            timeout=20)
+        assert failed, outbox_rows(db_url, CHANNEL)
+        # A restart in between (SIGKILL): the new process has only the backlog it finds
+        # in the database, and no new message will come to wake its outbox.
+        service.kill()
+        service.start()
+        receiver.start()
+        delivered = wait_until(
+            lambda: all(r["status"] == "sent" for r in outbox_rows(db_url, CHANNEL)),
+            timeout=120, every=1.0)
+        assert delivered, outbox_rows(db_url, CHANNEL)
+        service.stop()
+    finally:
+        service.kill()
+        receiver.stop()
+    rows = outbox_rows(db_url, CHANNEL)
+    keys, _ = receiver.snapshot()
+    assert sorted(keys) == sorted(r["idempotency_key"] for r in rows)
+    assert len(keys) == len(set(keys)) and len(rows) >= 4
+    assert max(r["attempts"] for r in rows) >= 2, "the first sends failed, a retry delivered"
+    for mrn in PATIENTS[:2]:
+        mine = [r["idempotency_key"] for r in rows if r["patient_key"] == mrn]
+        assert [k for k in keys if k in mine] == mine
+
+
+def _heads(rows: list[dict[str, object]]) -> set[object]:
+    """The first pending item of each patient (the one the outbox may try)."""
+    first: dict[object, object] = {}
+    for row in rows:
+        first.setdefault(row["patient_key"], row["id"])
+    return set(first.values())
