@@ -125,6 +125,12 @@ def _require_aware(name: str, value: datetime) -> None:
         raise InvalidReading(name, value, "must be a timezone-aware time")
 
 
+_TEXT_FIELDS = (
+    "patient_key", "source_system", "logical_id", "delivery_id", "original_value",
+    "original_unit", "code", "code_system", "code_value", "panel_id", "encounter_id",
+)
+
+
 @dataclass(frozen=True, slots=True)
 class Reading:
     """One observation, in canonical units, with where it came from.
@@ -166,6 +172,15 @@ class Reading:
             raise InvalidReading("delivery_id", self.delivery_id, "must not be empty")
         _require_aware("effective_at", self.effective_at)
         _require_aware("received_at", self.received_at)
+        for name in _TEXT_FIELDS:
+            text = getattr(self, name)
+            if text and "\x00" in text:
+                # No database keeps a NUL in text (PostgreSQL refuses it): refuse it here,
+                # with the field named, rather than fail a whole batch later.
+                raise InvalidReading(name, text.replace("\x00", "\\0"), "must not contain NUL")
+        if self.location is not None and "\x00" in self.location.label():
+            raise InvalidReading("location", self.location.label().replace("\x00", "\\0"),
+                                 "must not contain NUL")
         if not self.unit:
             object.__setattr__(self, "unit", CANONICAL_UNIT[self.kind])
         if self.kind is Kind.O2_DEVICE:
