@@ -104,7 +104,9 @@ def calculate(gas: GasInput) -> GasResult:
                 v["arterial_alveolar_ratio"] = phys.arterial_alveolar_ratio(gas.pao2, alveolar)
                 f["arterial_alveolar_ratio"] = "PaO2 / PAO2"
                 if gas.pao2 > alveolar + 10.0:
-                    flags.append("PaO2 above alveolar PO2 by > 10 mmHg: FiO2 wrong or air in sample")
+                    flags.append(
+                        "PaO2 above alveolar PO2 by > 10 mmHg: FiO2 wrong or air in sample"
+                    )
         else:
             flags.append("PaCO2 missing: no alveolar PO2")
     else:
@@ -125,9 +127,8 @@ def calculate(gas: GasInput) -> GasResult:
         f["pf_ratio_altitude_adjusted"] = "P/F x 760 / PB (ARDS Network practice)"
         band = phys.berlin_band(pf, gas.peep, pb)
         v["berlin_band"] = None if band is None else band.value
-        f["berlin_band"] = (
-            "Berlin 2012, needs PEEP/CPAP >= 5 cmH2O"
-            + ("; altitude-adjusted ratio" if pb < phys.ALTITUDE_ADJUSTMENT_BELOW_MMHG else "")
+        f["berlin_band"] = "Berlin 2012, needs PEEP/CPAP >= 5 cmH2O" + (
+            "; altitude-adjusted ratio" if pb < phys.ALTITUDE_ADJUSTMENT_BELOW_MMHG else ""
         )
         if gas.mean_airway_pressure is not None:
             v["oxygenation_index"] = phys.oxygenation_index(

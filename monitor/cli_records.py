@@ -17,7 +17,8 @@ EXIT_USAGE = 2
 
 def add_record_commands(sub: Any) -> None:
     ingest = sub.add_parser(
-        "ingest", help="load FHIR NDJSON/Bundle and HL7 v2 files",
+        "ingest",
+        help="load FHIR NDJSON/Bundle and HL7 v2 files",
         description="Load files through the pipeline (stored, derived, judged) in order of "
         "record time. Re-loading a file stores nothing new.",
     )
@@ -28,7 +29,8 @@ def add_record_commands(sub: Any) -> None:
     ingest.set_defaults(run=_run_ingest)
 
     patient = sub.add_parser(
-        "patient", help="one patient's series of derived values",
+        "patient",
+        help="one patient's series of derived values",
         description="The patient's gases with the FiO2 and where it came from, PAO2, A-a, "
         "a/A, P/F and the quality flags. " + ADVISORY,
     )
@@ -36,12 +38,14 @@ def add_record_commands(sub: Any) -> None:
     _add_target(patient)
     patient.add_argument("--json", action="store_true", help="one JSON object")
     patient.add_argument("--plot", type=Path, metavar="FILE", help="write a trend plot (PNG)")
-    patient.add_argument("--estimated", action="store_true",
-                         help="include S/F estimates from SpO2 between gases")
+    patient.add_argument(
+        "--estimated", action="store_true", help="include S/F estimates from SpO2 between gases"
+    )
     patient.set_defaults(run=_run_patient)
 
     box = sub.add_parser(
-        "outbox", help="notifications waiting to be sent; send them now",
+        "outbox",
+        help="notifications waiting to be sent; send them now",
         description="Show the outbox by status and channel, or (with `send`) deliver what "
         "is due through the configured channels once, as the service's dispatcher does.",
     )
@@ -87,7 +91,10 @@ def _run_ingest(args: argparse.Namespace) -> int:
     pipeline = Pipeline(db, config.to_pipeline_settings())
     try:
         report = ingest_files(
-            args.paths, pipeline, context, now=lambda: datetime.now(UTC),
+            args.paths,
+            pipeline,
+            context,
+            now=lambda: datetime.now(UTC),
             progress=not args.no_progress and sys.stderr.isatty(),
         )
     except FileKindError as exc:
@@ -109,14 +116,18 @@ def _run_ingest(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
-    print(f"read {report.read}, stored {report.stored}, duplicates {report.duplicates}, "
-          f"skipped codes {summary['skipped_codes']}, quarantined {report.quarantined}")
+    print(
+        f"read {report.read}, stored {report.stored}, duplicates {report.duplicates}, "
+        f"skipped codes {summary['skipped_codes']}, quarantined {report.quarantined}"
+    )
     for reason, count in report.quarantine_reasons.most_common(5):
         print(f"  quarantined {count} x {reason}")
     for code, count in report.skipped_codes.most_common(5):
         print(f"  skipped code {code} x {count}")
-    print(f"derivations {report.derivations}, flag events {len(report.alert_events)}, "
-          f"notifications queued {report.notifications}")
+    print(
+        f"derivations {report.derivations}, flag events {len(report.alert_events)}, "
+        f"notifications queued {report.notifications}"
+    )
     return 0
 
 
@@ -145,43 +156,82 @@ def _run_outbox(args: argparse.Namespace) -> int:
         "by_channel": {f"{c}/{s}": n for (c, s), n in sorted(counts.items())},
     }
     if sent is not None:
-        summary["this_round"] = {"claimed": sent.claimed, "sent": sent.sent,
-                                 "retrying": sent.retrying, "dead": sent.dead}
+        summary["this_round"] = {
+            "claimed": sent.claimed,
+            "sent": sent.sent,
+            "retrying": sent.retrying,
+            "dead": sent.dead,
+        }
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
     for key, n in summary["by_channel"].items():
         print(f"{key:40} {n}")
     if sent is not None:
-        print(f"this round: claimed {sent.claimed}, sent {sent.sent}, "
-              f"retrying {sent.retrying}, dead {sent.dead}")
+        print(
+            f"this round: claimed {sent.claimed}, sent {sent.sent}, "
+            f"retrying {sent.retrying}, dead {sent.dead}"
+        )
     return 0
 
 
 # --- patient -------------------------------------------------------------------------------
 
 SERIES_KEYS = (
-    "drawn_at", "sample_id", "specimen", "pao2", "fio2", "fio2_source", "paco2",
-    "barometric_pressure", "alveolar_po2", "aa_gradient", "aa_gradient_expected",
-    "arterial_alveolar_ratio", "pf_ratio", "pf_ratio_adjusted", "berlin_band", "sf_ratio",
-    "estimated", "unreliable", "flags", "version",
+    "drawn_at",
+    "sample_id",
+    "specimen",
+    "pao2",
+    "fio2",
+    "fio2_source",
+    "paco2",
+    "barometric_pressure",
+    "alveolar_po2",
+    "aa_gradient",
+    "aa_gradient_expected",
+    "arterial_alveolar_ratio",
+    "pf_ratio",
+    "pf_ratio_adjusted",
+    "berlin_band",
+    "sf_ratio",
+    "estimated",
+    "unreliable",
+    "flags",
+    "version",
 )
 
 
 def series_row(derivation: Derivation, version: int) -> dict[str, Any]:
     d = derivation
     return {
-        "drawn_at": d.drawn_at.isoformat(), "sample_id": d.sample_id, "specimen": d.specimen.value,
-        "pao2": d.pao2, "fio2": d.fio2, "fio2_source": d.fio2_source.value, "paco2": d.paco2,
-        "barometric_pressure": d.barometric_pressure, "alveolar_po2": d.alveolar_po2,
-        "aa_gradient": d.aa_gradient, "aa_gradient_expected": d.aa_gradient_expected,
-        "arterial_alveolar_ratio": d.arterial_alveolar_ratio, "pf_ratio": d.pf_ratio,
-        "pf_ratio_adjusted": d.pf_ratio_adjusted, "berlin_band": d.berlin_band,
-        "sf_ratio": d.sf_ratio, "estimated": d.estimated, "unreliable": d.unreliable,
-        "flags": sorted(f.value for f in d.flags), "version": version,
+        "drawn_at": d.drawn_at.isoformat(),
+        "sample_id": d.sample_id,
+        "specimen": d.specimen.value,
+        "pao2": d.pao2,
+        "fio2": d.fio2,
+        "fio2_source": d.fio2_source.value,
+        "paco2": d.paco2,
+        "barometric_pressure": d.barometric_pressure,
+        "alveolar_po2": d.alveolar_po2,
+        "aa_gradient": d.aa_gradient,
+        "aa_gradient_expected": d.aa_gradient_expected,
+        "arterial_alveolar_ratio": d.arterial_alveolar_ratio,
+        "pf_ratio": d.pf_ratio,
+        "pf_ratio_adjusted": d.pf_ratio_adjusted,
+        "berlin_band": d.berlin_band,
+        "sf_ratio": d.sf_ratio,
+        "estimated": d.estimated,
+        "unreliable": d.unreliable,
+        "flags": sorted(f.value for f in d.flags),
+        "version": version,
         "inputs": [
-            {"role": i.role, "value": i.value, "reason": i.reason, "reading_id": i.reading_id,
-             "at": i.at.isoformat() if i.at else None}
+            {
+                "role": i.role,
+                "value": i.value,
+                "reason": i.reason,
+                "reading_id": i.reading_id,
+                "at": i.at.isoformat() if i.at else None,
+            }
             for i in d.inputs
         ],
     }
@@ -193,7 +243,8 @@ def _run_patient(args: argparse.Namespace) -> int:
     config, db = _setup(args)
     with db.begin(read_only=True) as conn:
         stored = [
-            s for s in current_derivations(conn, args.patient_key)
+            s
+            for s in current_derivations(conn, args.patient_key)
             if not s.retracted and (args.estimated or not s.derivation.estimated)
         ]
     db.dispose()
@@ -203,8 +254,11 @@ def _run_patient(args: argparse.Namespace) -> int:
     if args.plot:
         write_trend_plot([s.derivation for s in stored], args.plot, title=args.patient_key)
     if args.json:
-        print(json.dumps({"patient": args.patient_key, "series": rows, "advisory": ADVISORY},
-                         indent=2))
+        print(
+            json.dumps(
+                {"patient": args.patient_key, "series": rows, "advisory": ADVISORY}, indent=2
+            )
+        )
         return 0
     tz = config.zone()
     print(_table(rows, tz))
@@ -224,8 +278,10 @@ def _fmt(value: Any, digits: int = 0) -> str:
 
 
 def _table(rows: list[dict[str, Any]], tz: Any) -> str:
-    head = (f"{'drawn (site time)':17} {'PaO2':>5} {'FiO2':>5} {'FiO2 from':<30} "
-            f"{'PAO2':>5} {'A-a':>5} {'a/A':>5} {'P/F':>5} {'P/F sl':>6}  flags")
+    head = (
+        f"{'drawn (site time)':17} {'PaO2':>5} {'FiO2':>5} {'FiO2 from':<30} "
+        f"{'PAO2':>5} {'A-a':>5} {'a/A':>5} {'P/F':>5} {'P/F sl':>6}  flags"
+    )
     lines = [head, "-" * len(head)]
     for r in rows:
         when = datetime.fromisoformat(r["drawn_at"]).astimezone(tz).strftime("%Y-%m-%d %H:%M")
@@ -254,21 +310,36 @@ def write_trend_plot(derivations: list[Derivation], path: Path, *, title: str) -
     if gases:
         ax_pf.plot([d.drawn_at for d in gases], [d.pf_ratio for d in gases], "o-", label="P/F")
         adjusted = [d for d in gases if d.pf_ratio_adjusted is not None]
-        ax_pf.plot([d.drawn_at for d in adjusted], [d.pf_ratio_adjusted for d in adjusted], "s--",
-                   label="P/F at sea level (x 760/PB)")
+        ax_pf.plot(
+            [d.drawn_at for d in adjusted],
+            [d.pf_ratio_adjusted for d in adjusted],
+            "s--",
+            label="P/F at sea level (x 760/PB)",
+        )
     if estimates:
-        ax_pf.plot([d.drawn_at for d in estimates], [d.sf_ratio for d in estimates], ".",
-                   alpha=0.5, label="S/F (estimate)")
+        ax_pf.plot(
+            [d.drawn_at for d in estimates],
+            [d.sf_ratio for d in estimates],
+            ".",
+            alpha=0.5,
+            label="S/F (estimate)",
+        )
     for level in (300, 200, 100):
         ax_pf.axhline(level, color="grey", linewidth=0.6, linestyle=":")
     ax_pf.set_ylabel("ratio")
     ax_pf.legend(loc="best", fontsize=8)
     with_aa = [d for d in derivations if d.aa_gradient is not None]
-    ax_aa.plot([d.drawn_at for d in with_aa], [d.aa_gradient for d in with_aa], "o-", color="tab:red")
+    ax_aa.plot(
+        [d.drawn_at for d in with_aa], [d.aa_gradient for d in with_aa], "o-", color="tab:red"
+    )
     ax_aa.set_ylabel("A-a (mmHg)")
     with_fio2 = [d for d in derivations if d.fio2 is not None]
-    ax_fio2.step([d.drawn_at for d in with_fio2], [d.fio2 for d in with_fio2], where="post",
-                 color="tab:green")
+    ax_fio2.step(
+        [d.drawn_at for d in with_fio2],
+        [d.fio2 for d in with_fio2],
+        where="post",
+        color="tab:green",
+    )
     ax_fio2.set_ylabel("FiO2")
     ax_fio2.set_ylim(0.15, 1.05)
     first = min((d.drawn_at for d in derivations), default=datetime.now(UTC))

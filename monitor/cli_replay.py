@@ -39,19 +39,42 @@ def add_replay_command(sub: Any) -> None:
         "pipeline as the service, with the clock at each input's record time. "
         "Notifications are captured in the replay database, not sent. " + ADVISORY,
     )
-    p.add_argument("paths", nargs="+", type=Path, metavar="PATH",
-                   help="HL7 v2 files, FHIR NDJSON or Bundle/resource JSON files")
+    p.add_argument(
+        "paths",
+        nargs="+",
+        type=Path,
+        metavar="PATH",
+        help="HL7 v2 files, FHIR NDJSON or Bundle/resource JSON files",
+    )
     p.add_argument("--config", type=Path, help="site configuration (TOML); default: built-in")
-    p.add_argument("--db", dest="db_url", default="sqlite://",
-                   help="database URL to keep the replay in (default: in memory)")
-    p.add_argument("--report", type=Path, metavar="DIR", help="write the HTML report and plots here")
+    p.add_argument(
+        "--db",
+        dest="db_url",
+        default="sqlite://",
+        help="database URL to keep the replay in (default: in memory)",
+    )
+    p.add_argument(
+        "--report", type=Path, metavar="DIR", help="write the HTML report and plots here"
+    )
     p.add_argument("--json", action="store_true", help="print one JSON object")
-    p.add_argument("--speed", type=_speed, default=None, metavar="max|N",
-                   help="'max' (default) or N times faster than the recorded times")
-    p.add_argument("--compare", type=Path, metavar="OTHER.toml",
-                   help="replay again under this second configuration and compare")
-    p.add_argument("--deliver", action="store_true",
-                   help="after the replay, send the captured notifications via the channels")
+    p.add_argument(
+        "--speed",
+        type=_speed,
+        default=None,
+        metavar="max|N",
+        help="'max' (default) or N times faster than the recorded times",
+    )
+    p.add_argument(
+        "--compare",
+        type=Path,
+        metavar="OTHER.toml",
+        help="replay again under this second configuration and compare",
+    )
+    p.add_argument(
+        "--deliver",
+        action="store_true",
+        help="after the replay, send the captured notifications via the channels",
+    )
     p.add_argument("--secrets-file", type=Path, help="KEY=VALUE secrets file (with --deliver)")
     p.set_defaults(run=run_replay)
 
@@ -85,8 +108,15 @@ def run_replay(args: argparse.Namespace) -> int:
 
     def one(cfg: Any, url: str, label: str) -> Any:
         context = SourceContext(site_tz=cfg.zone(), patient_id_system=cfg.site.patient_id_system)
-        return replay(args.paths, cfg.to_pipeline_settings(), context, db_url=url,
-                      speed=args.speed, progress=progress, label=label)
+        return replay(
+            args.paths,
+            cfg.to_pipeline_settings(),
+            context,
+            db_url=url,
+            speed=args.speed,
+            progress=progress,
+            label=label,
+        )
 
     try:
         first = one(config, args.db_url, str(args.config or "built-in defaults"))
@@ -146,8 +176,9 @@ def flag_table(events: Any) -> str:
     ranks = {"low": 1, "medium": 2, "high": 3}
     flags: dict[str, dict[str, Any]] = {}
     for e in events:
-        f = flags.setdefault(e.alert_id, {"patient": e.patient, "rule": e.rule,
-                                           "priority": e.priority, "events": []})
+        f = flags.setdefault(
+            e.alert_id, {"patient": e.patient, "rule": e.rule, "priority": e.priority, "events": []}
+        )
         if ranks.get(e.priority, 0) > ranks.get(f["priority"], 0):
             f["priority"] = e.priority
         f["events"].append(e.event)
@@ -155,6 +186,7 @@ def flag_table(events: Any) -> str:
         return "no flags"
     rows = sorted(flags.values(), key=lambda f: (f["patient"], f["rule"]))
     lines = [f"{'patient':12} {'rule':18} {'priority':8} events"]
-    lines += [f"{f['patient']:12} {f['rule']:18} {f['priority']:8} {', '.join(f['events'])}"
-              for f in rows]
+    lines += [
+        f"{f['patient']:12} {f['rule']:18} {f['priority']:8} {', '.join(f['events'])}" for f in rows
+    ]
     return "\n".join(lines)

@@ -22,11 +22,17 @@ EXIT_CONFIG = 2
 
 def add_serve_commands(sub: Any) -> None:
     """Register the service's commands on ``sub`` (the parser's sub-parsers)."""
-    serve = sub.add_parser("serve", help="run the service (MLLP, FHIR polls, board, API)",
-                           description="Run gasgap until SIGTERM. " + ADVISORY)
+    serve = sub.add_parser(
+        "serve",
+        help="run the service (MLLP, FHIR polls, board, API)",
+        description="Run gasgap until SIGTERM. " + ADVISORY,
+    )
     serve.add_argument("--config", type=Path, required=True, help="site configuration (TOML)")
-    serve.add_argument("--secrets-file", type=Path,
-                       help="KEY=VALUE file read for secrets not set in the environment")
+    serve.add_argument(
+        "--secrets-file",
+        type=Path,
+        help="KEY=VALUE file read for secrets not set in the environment",
+    )
     serve.set_defaults(run=_run_serve)
 
     db = sub.add_parser("db", help="database maintenance")
@@ -144,7 +150,9 @@ def _run_alerts(args: argparse.Namespace) -> int:
         print("no open flags" + (f" in {args.unit}" if args.unit else ""))
     for a in found:
         where = a.location.label() if a.location else "location unknown"
-        print(f"{a.priority.value.upper():6} {a.state.value:12} {a.rule:18} {where:24} {a.alert_id}")
+        print(
+            f"{a.priority.value.upper():6} {a.state.value:12} {a.rule:18} {where:24} {a.alert_id}"
+        )
         print(f"       {a.summary}")
     print()
     print(ADVISORY)

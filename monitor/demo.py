@@ -42,7 +42,8 @@ def run(out_dir: Path, *, progress: bool = False) -> int:
         stale.unlink(missing_ok=True)  # a demo starts from nothing
     config = demo_config()
     context = SourceContext(
-        site_tz=config.zone(), patient_id_system=config.site.patient_id_system  # type: ignore[attr-defined]
+        site_tz=config.zone(),
+        patient_id_system=config.site.patient_id_system,  # type: ignore[attr-defined]
     )
     print("gasgap demo: three invented days at Hollowmere General Hospital (1,600 m)")
     print(f"replaying {', '.join(FEEDS)} on SQLite ({db_file}) ...", flush=True)
@@ -55,7 +56,9 @@ def run(out_dir: Path, *, progress: bool = False) -> int:
         label=SITE_CONFIG.name,
     )
     try:
-        page = write_report(result, out_dir / "report", title="gasgap demo replay: Hollowmere General Hospital")
+        page = write_report(
+            result, out_dir / "report", title="gasgap demo replay: Hollowmere General Hospital"
+        )
         c = result.counts
         print(
             f"{c.readings} readings read, {c.stored} stored, {c.quarantined} quarantined, "

@@ -37,8 +37,12 @@ EVENT_ORDER = ("raised", "updated", "escalated", "acknowledged", "resolved", "re
 #: Our own palette: a priority reads from light to dark, not by traffic-light colours.
 PRIORITY_COLOUR = {"low": "#8fb8de", "medium": "#4a78b0", "high": "#1d2f6f"}
 EVENT_MARKER = {
-    "raised": "^", "updated": "^", "escalated": "D", "acknowledged": "s",
-    "resolved": "o", "retracted": "x",
+    "raised": "^",
+    "updated": "^",
+    "escalated": "D",
+    "acknowledged": "s",
+    "resolved": "o",
+    "retracted": "x",
 }
 
 FIRST_WORSENING_DEFINITION = (
@@ -87,9 +91,13 @@ class Comparison:
     def rows(self) -> list[tuple[str, str, float, float, float]]:
         keys = sorted(set(self.first) | set(self.second))
         return [
-            (rule, priority, self.first.get((rule, priority), 0.0),
-             self.second.get((rule, priority), 0.0),
-             self.second.get((rule, priority), 0.0) - self.first.get((rule, priority), 0.0))
+            (
+                rule,
+                priority,
+                self.first.get((rule, priority), 0.0),
+                self.second.get((rule, priority), 0.0),
+                self.second.get((rule, priority), 0.0) - self.first.get((rule, priority), 0.0),
+            )
             for rule, priority in keys
         ]
 
@@ -98,13 +106,23 @@ class Comparison:
             "first": self.first_label,
             "second": self.second_label,
             "flags_per_patient_day": [
-                {"rule": r, "priority": p, "first": round(a, 4), "second": round(b, 4),
-                 "difference": round(d, 4)}
+                {
+                    "rule": r,
+                    "priority": p,
+                    "first": round(a, 4),
+                    "second": round(b, 4),
+                    "difference": round(d, 4),
+                }
                 for r, p, a, b, d in self.rows()
             ],
             "timing": [
-                {"patient": t.patient, "rule": t.rule, "first_at": _iso(t.first_at),
-                 "second_at": _iso(t.second_at), "minutes_later": round(t.minutes, 1)}
+                {
+                    "patient": t.patient,
+                    "rule": t.rule,
+                    "first_at": _iso(t.first_at),
+                    "second_at": _iso(t.second_at),
+                    "minutes_later": round(t.minutes, 1),
+                }
                 for t in self.timing
             ],
             "only_first": [{"patient": p, "rule": r} for p, r in self.only_first],
@@ -134,8 +152,13 @@ def compare(first: ReplayResult, second: ReplayResult) -> Comparison:
         only_a += [key] * max(len(a) - len(b), 0)
         only_b += [key] * max(len(b) - len(a), 0)
     return Comparison(
-        first.label or "first", second.label or "second",
-        flags_per_patient_day(first), flags_per_patient_day(second), timing, only_a, only_b,
+        first.label or "first",
+        second.label or "second",
+        flags_per_patient_day(first),
+        flags_per_patient_day(second),
+        timing,
+        only_a,
+        only_b,
     )
 
 
@@ -205,23 +228,35 @@ def _on_flag_side(spec: Any, d: Derivation, previous: Derivation | None) -> bool
         pf = d.pf_ratio_adjusted if d.pf_ratio_adjusted is not None else d.pf_ratio
         return pf is not None and pf <= spec.low
     if isinstance(spec, rules_mod.AaRoomAirRule):
-        return (d.aa_gradient is not None and d.aa_gradient_expected is not None
-                and d.aa_gradient > d.aa_gradient_expected + spec.margin)
+        return (
+            d.aa_gradient is not None
+            and d.aa_gradient_expected is not None
+            and d.aa_gradient > d.aa_gradient_expected + spec.margin
+        )
     if isinstance(spec, rules_mod.SfLowRule):
         return d.sf_ratio is not None and d.sf_ratio <= spec.threshold
     if previous is None:
         return False
     if isinstance(spec, rules_mod.PfFallRule):
-        return d.pf_ratio is not None and previous.pf_ratio is not None and d.pf_ratio < previous.pf_ratio
+        return (
+            d.pf_ratio is not None
+            and previous.pf_ratio is not None
+            and d.pf_ratio < previous.pf_ratio
+        )
     if isinstance(spec, rules_mod.AaRiseRule):
-        return (d.aa_gradient is not None and previous.aa_gradient is not None
-                and d.aa_gradient > previous.aa_gradient)
+        return (
+            d.aa_gradient is not None
+            and previous.aa_gradient is not None
+            and d.aa_gradient > previous.aa_gradient
+        )
     if isinstance(spec, rules_mod.OxygenEscalationRule):
         return d.fio2 is not None and previous.fio2 is not None and d.fio2 > previous.fio2
     return False
 
 
-def first_worsening(spec: Any, gases: Sequence[Derivation], sample_id: str | None) -> datetime | None:
+def first_worsening(
+    spec: Any, gases: Sequence[Derivation], sample_id: str | None
+) -> datetime | None:
     """Draw time of the first worsening gas for a flag raised on ``sample_id``;
     ``gases`` in draw order (the flag's kind: arterial gases, or S/F estimates)."""
     index = next((i for i, d in enumerate(gases) if d.sample_id == sample_id), None)
@@ -259,15 +294,25 @@ def collect(result: ReplayResult) -> ReportData:
                 spec = specs.get(e.rule)
                 # the gases of the flag's own kind (gases, or SpO2 estimates), not
                 # withdrawn, plus the raising sample itself even if it was withdrawn later
-                raising = next((d for d, _ in series.derivations if d.sample_id == e.sample_id), None)
+                raising = next(
+                    (d for d, _ in series.derivations if d.sample_id == e.sample_id), None
+                )
                 estimated = raising.estimated if raising is not None else False
-                pool = [d for d, retracted in series.derivations
-                        if d.estimated == estimated and (not retracted or d.sample_id == e.sample_id)]
+                pool = [
+                    d
+                    for d, retracted in series.derivations
+                    if d.estimated == estimated and (not retracted or d.sample_id == e.sample_id)
+                ]
                 worst = _final_priority(series.events, e.alert_id)
-                data.time_to_flag.append(TimeToFlag(
-                    patient, e.rule, worst, e.at,
-                    first_worsening(spec, pool, e.sample_id) if spec else None,
-                ))
+                data.time_to_flag.append(
+                    TimeToFlag(
+                        patient,
+                        e.rule,
+                        worst,
+                        e.at,
+                        first_worsening(spec, pool, e.sample_id) if spec else None,
+                    )
+                )
         for item in outbox_store.outbox_items(conn):
             data.outbox[(item.notification.event, item.channel)] += 1
     raised = Counter(e.rule for e in result.events if e.event == "raised")
@@ -302,40 +347,86 @@ def plot_patient(series: PatientSeries, path: Path, tz: tzinfo) -> None:
 
     gases = [(d, r) for d, r in series.derivations if not d.estimated]
     estimates = [(d, r) for d, r in series.derivations if d.estimated]
-    fig, axes = plt.subplots(3, 1, figsize=(9, 7.2), sharex=True,
-                             gridspec_kw={"height_ratios": [1.4, 1, 0.8]})
+    fig, axes = plt.subplots(
+        3, 1, figsize=(9, 7.2), sharex=True, gridspec_kw={"height_ratios": [1.4, 1, 0.8]}
+    )
     ax_pf, ax_aa, ax_fio2 = axes
 
     def times(items: Sequence[tuple[Derivation, bool]]) -> list[datetime]:
         return [d.drawn_at.astimezone(tz) for d, _ in items]
 
     def line(ax: Any, items: Sequence[tuple[Derivation, bool]], attr: str, **kw: Any) -> None:
-        pts = [(d.drawn_at.astimezone(tz), getattr(d, attr)) for d, r in items
-               if getattr(d, attr) is not None and not r]
+        pts = [
+            (d.drawn_at.astimezone(tz), getattr(d, attr))
+            for d, r in items
+            if getattr(d, attr) is not None and not r
+        ]
         if pts:
             ax.plot([t for t, _ in pts], [v for _, v in pts], **kw)
 
     line(ax_pf, gases, "pf_ratio", marker="o", color="#555555", label="P/F measured")
-    line(ax_pf, gases, "pf_ratio_adjusted", marker="s", color="#2a6f97", label="P/F altitude-adjusted")
+    line(
+        ax_pf,
+        gases,
+        "pf_ratio_adjusted",
+        marker="s",
+        color="#2a6f97",
+        label="P/F altitude-adjusted",
+    )
+
     def crossed(ax: Any, attr: str) -> None:  # withdrawn results stay visible, crossed out
-        pts = [(d.drawn_at.astimezone(tz), getattr(d, attr)) for d, r in gases
-               if r and getattr(d, attr) is not None]
+        pts = [
+            (d.drawn_at.astimezone(tz), getattr(d, attr))
+            for d, r in gases
+            if r and getattr(d, attr) is not None
+        ]
         if pts:
-            ax.scatter([t for t, _ in pts], [v for _, v in pts], marker="x", s=70,
-                       color="#b23a48", label="withdrawn result", zorder=4)
+            ax.scatter(
+                [t for t, _ in pts],
+                [v for _, v in pts],
+                marker="x",
+                s=70,
+                color="#b23a48",
+                label="withdrawn result",
+                zorder=4,
+            )
 
     crossed(ax_pf, "pf_ratio")
-    line(ax_pf, estimates, "sf_ratio", linestyle="none", marker=".", color="#a0a0a0",
-         label="S/F (estimate)", alpha=0.6)
+    line(
+        ax_pf,
+        estimates,
+        "sf_ratio",
+        linestyle="none",
+        marker=".",
+        color="#a0a0a0",
+        label="S/F (estimate)",
+        alpha=0.6,
+    )
     ax_pf.set_ylabel("ratio (mmHg)")
     line(ax_aa, gases, "aa_gradient", marker="o", color="#7b4f9d", label="A–a gradient")
-    line(ax_aa, gases, "aa_gradient_expected", linestyle="--", marker="_", markersize=14,
-         color="#9b7fb5", label="age-expected (room air)")
+    line(
+        ax_aa,
+        gases,
+        "aa_gradient_expected",
+        linestyle="--",
+        marker="_",
+        markersize=14,
+        color="#9b7fb5",
+        label="age-expected (room air)",
+    )
     crossed(ax_aa, "aa_gradient")
     ax_aa.set_ylabel("A–a (mmHg)")
     line(ax_fio2, gases, "fio2", marker="o", color="#3c8d5a", label="FiO2 at gas")
-    line(ax_fio2, estimates, "fio2", linestyle="none", marker=".", color="#9cc9a8",
-         label="FiO2 at SpO2", alpha=0.6)
+    line(
+        ax_fio2,
+        estimates,
+        "fio2",
+        linestyle="none",
+        marker=".",
+        color="#9cc9a8",
+        label="FiO2 at SpO2",
+        alpha=0.6,
+    )
     ax_fio2.set_ylabel("FiO2")
     ax_fio2.set_ylim(0.15, 1.05)
 
@@ -350,23 +441,37 @@ def plot_patient(series: PatientSeries, path: Path, tz: tzinfo) -> None:
         seen.add(e.event)
         marker = EVENT_MARKER.get(e.event, "*")
         edge = {} if marker == "x" else {"edgecolors": "black", "linewidths": 0.4}
-        ax_pf.scatter([at], [top], marker=marker, s=60, color=colour, label=label, zorder=5,
-                      clip_on=False, **edge)
+        ax_pf.scatter(
+            [at],
+            [top],
+            marker=marker,
+            s=60,
+            color=colour,
+            label=label,
+            zorder=5,
+            clip_on=False,
+            **edge,
+        )
     for ax in axes:
         ax.grid(True, alpha=0.3)
         if ax.has_data():
             ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0))
     ax_fio2.xaxis.set_major_formatter(mdates.DateFormatter("%d %b\n%H:%M", tz=tz))
-    ax_pf.set_title(f"{series.patient}: oxygenation over time (flag colour = priority)", fontsize=10)
+    ax_pf.set_title(
+        f"{series.patient}: oxygenation over time (flag colour = priority)", fontsize=10
+    )
     fig.text(0.01, 0.005, "Advisory only: clinicians decide.", fontsize=7, color="#555555")
     fig.tight_layout()
     fig.savefig(path, dpi=90)
     plt.close(fig)
 
 
-def plot_flag_rates(rates: dict[tuple[str, str], float], path: Path,
-                    second: dict[tuple[str, str], float] | None = None,
-                    labels: tuple[str, str] = ("", "")) -> None:
+def plot_flag_rates(
+    rates: dict[tuple[str, str], float],
+    path: Path,
+    second: dict[tuple[str, str], float] | None = None,
+    labels: tuple[str, str] = ("", ""),
+) -> None:
     """Flags per patient-day by rule, stacked by priority (two bars per rule when
     comparing)."""
     plt = _pyplot()
@@ -381,10 +486,17 @@ def plot_flag_rates(rates: dict[tuple[str, str], float], path: Path,
         bottom = [0.0] * len(rule_ids)
         for priority in PRIORITIES:
             heights = [values.get((r, priority), 0.0) for r in rule_ids]
-            ax.bar([i + offset for i in range(len(rule_ids))], heights, width, bottom=bottom,
-                   color=PRIORITY_COLOUR[priority], edgecolor="black", linewidth=0.4,
-                   hatch="//" if n else None,
-                   label=f"{priority}" + (f" ({name})" if second is not None else ""))
+            ax.bar(
+                [i + offset for i in range(len(rule_ids))],
+                heights,
+                width,
+                bottom=bottom,
+                color=PRIORITY_COLOUR[priority],
+                edgecolor="black",
+                linewidth=0.4,
+                hatch="//" if n else None,
+                label=f"{priority}" + (f" ({name})" if second is not None else ""),
+            )
             bottom = [b + h for b, h in zip(bottom, heights, strict=True)]
     ax.set_xticks(range(len(rule_ids)), rule_ids, rotation=15, fontsize=8)
     ax.set_ylabel("flags per patient-day")
@@ -403,8 +515,14 @@ def plot_time_to_flag(items: Sequence[TimeToFlag], path: Path) -> None:
     rule_ids = sorted({t.rule for t in known}) or ["(none)"]
     fig, ax = plt.subplots(figsize=(9, 3.8))
     for t in known:
-        ax.scatter([t.hours], [rule_ids.index(t.rule)], color=PRIORITY_COLOUR.get(t.priority),
-                   edgecolors="black", linewidths=0.4, s=50)
+        ax.scatter(
+            [t.hours],
+            [rule_ids.index(t.rule)],
+            color=PRIORITY_COLOUR.get(t.priority),
+            edgecolors="black",
+            linewidths=0.4,
+            s=50,
+        )
     ax.set_yticks(range(len(rule_ids)), rule_ids, fontsize=8)
     ax.set_xlabel("hours from the first worsening gas to the flag")
     ax.set_title("Time to flag (colour = highest priority reached)", fontsize=10)
@@ -423,11 +541,20 @@ def plot_retracted(share: dict[str, tuple[int, int]], path: Path) -> None:
     ax.bar(range(len(rule_ids)), values, color="#b23a48", edgecolor="black", linewidth=0.4)
     for i, r in enumerate(rule_ids):
         if r in share:
-            ax.text(i, values[i], f"{share[r][0]} of {share[r][1]}", ha="center", va="bottom", fontsize=8)
+            ax.text(
+                i,
+                values[i],
+                f"{share[r][0]} of {share[r][1]}",
+                ha="center",
+                va="bottom",
+                fontsize=8,
+            )
     ax.set_xticks(range(len(rule_ids)), rule_ids, rotation=15, fontsize=8)
     ax.set_ylim(0, 1.05)
     ax.set_ylabel("share retracted")
-    ax.set_title("Share of flags later retracted (a result they stood on was withdrawn)", fontsize=10)
+    ax.set_title(
+        "Share of flags later retracted (a result they stood on was withdrawn)", fontsize=10
+    )
     fig.tight_layout()
     fig.savefig(path, dpi=90)
     plt.close(fig)
@@ -453,16 +580,24 @@ def _file_name(patient: str, index: int) -> str:
     return f"patient-{index:03d}-{safe}.png"
 
 
-def write_report(result: ReplayResult, out_dir: Path, *, comparison: Comparison | None = None,
-                 title: str = "gasgap replay") -> Path:
+def write_report(
+    result: ReplayResult,
+    out_dir: Path,
+    *,
+    comparison: Comparison | None = None,
+    title: str = "gasgap replay",
+) -> Path:
     """Write ``index.html`` and its PNGs into ``out_dir``; returns the HTML's path."""
     out_dir.mkdir(parents=True, exist_ok=True)
     tz = result.settings.site_tz
     data = collect(result)
     rates = flags_per_patient_day(result)
-    plot_flag_rates(rates, out_dir / "flags-per-patient-day.png",
-                    comparison.second if comparison else None,
-                    (comparison.first_label, comparison.second_label) if comparison else ("", ""))
+    plot_flag_rates(
+        rates,
+        out_dir / "flags-per-patient-day.png",
+        comparison.second if comparison else None,
+        (comparison.first_label, comparison.second_label) if comparison else ("", ""),
+    )
     plot_time_to_flag(data.time_to_flag, out_dir / "time-to-flag.png")
     plot_retracted(data.retracted_share, out_dir / "retracted.png")
     patient_pngs: list[tuple[PatientSeries, str]] = []
@@ -488,10 +623,15 @@ def write_report(result: ReplayResult, out_dir: Path, *, comparison: Comparison 
         "<h2>Counts</h2><table>",
     ]
     for label, value in (
-        ("units of input", c.units), ("readings read", c.readings), ("stored", c.stored),
-        ("duplicates", c.duplicates), ("quarantined", c.quarantined),
-        ("derivations written", c.derivations), ("derivations withdrawn", c.retracted_derivations),
-        ("notifications captured (outbox)", c.notifications), ("patient-days", c.patient_days),
+        ("units of input", c.units),
+        ("readings read", c.readings),
+        ("stored", c.stored),
+        ("duplicates", c.duplicates),
+        ("quarantined", c.quarantined),
+        ("derivations written", c.derivations),
+        ("derivations withdrawn", c.retracted_derivations),
+        ("notifications captured (outbox)", c.notifications),
+        ("patient-days", c.patient_days),
         ("flags", sum(c.flags.values())),
     ):
         parts.append(f"<tr><th>{_e(label)}</th><td>{_e(value)}</td></tr>")
@@ -499,76 +639,111 @@ def write_report(result: ReplayResult, out_dir: Path, *, comparison: Comparison 
     if result.delivered is not None:
         parts.append(f"<p>{_e(result.delivered)} captured notifications were delivered.</p>")
     else:
-        parts.append("<p>Notifications were captured in the replay database's outbox, not sent.</p>")
+        parts.append(
+            "<p>Notifications were captured in the replay database's outbox, not sent.</p>"
+        )
 
-    parts.append("<h2>Flags per patient-day</h2>"
-                 "<p>A patient-day is a patient with at least one reading drawn on that "
-                 "calendar day. Each flag counts once, at the highest priority it reached.</p>"
-                 "<img src='flags-per-patient-day.png' alt='flags per patient-day by rule and priority'>"
-                 "<table><tr><th>rule</th><th>priority</th><th>flags</th><th>per patient-day</th></tr>")
+    parts.append(
+        "<h2>Flags per patient-day</h2>"
+        "<p>A patient-day is a patient with at least one reading drawn on that "
+        "calendar day. Each flag counts once, at the highest priority it reached.</p>"
+        "<img src='flags-per-patient-day.png' alt='flags per patient-day by rule and priority'>"
+        "<table><tr><th>rule</th><th>priority</th><th>flags</th><th>per patient-day</th></tr>"
+    )
     for (rule, priority), n in sorted(c.flags.items()):
-        parts.append(f"<tr><td>{_e(rule)}</td><td>{_e(priority)}</td><td>{n}</td>"
-                     f"<td>{rates[(rule, priority)]:.3f}</td></tr>")
+        parts.append(
+            f"<tr><td>{_e(rule)}</td><td>{_e(priority)}</td><td>{n}</td>"
+            f"<td>{rates[(rule, priority)]:.3f}</td></tr>"
+        )
     parts.append("</table>")
 
     if comparison is not None:
-        parts.append(f"<h2>Rule sets compared: {_e(comparison.first_label)} and "
-                     f"{_e(comparison.second_label)}</h2><table><tr><th>rule</th><th>priority</th>"
-                     f"<th>{_e(comparison.first_label)}</th><th>{_e(comparison.second_label)}</th>"
-                     "<th>difference</th></tr>")
+        parts.append(
+            f"<h2>Rule sets compared: {_e(comparison.first_label)} and "
+            f"{_e(comparison.second_label)}</h2><table><tr><th>rule</th><th>priority</th>"
+            f"<th>{_e(comparison.first_label)}</th><th>{_e(comparison.second_label)}</th>"
+            "<th>difference</th></tr>"
+        )
         for rule, priority, a, b, d in comparison.rows():
-            parts.append(f"<tr><td>{_e(rule)}</td><td>{_e(priority)}</td><td>{a:.3f}</td>"
-                         f"<td>{b:.3f}</td><td>{d:+.3f}</td></tr>")
-        parts.append("</table><p>Flags both rule sets raised for the same patient and rule "
-                     "(minutes: positive when the second raised it later).</p><table>"
-                     "<tr><th>patient</th><th>rule</th><th>first</th><th>second</th><th>minutes</th></tr>")
+            parts.append(
+                f"<tr><td>{_e(rule)}</td><td>{_e(priority)}</td><td>{a:.3f}</td>"
+                f"<td>{b:.3f}</td><td>{d:+.3f}</td></tr>"
+            )
+        parts.append(
+            "</table><p>Flags both rule sets raised for the same patient and rule "
+            "(minutes: positive when the second raised it later).</p><table>"
+            "<tr><th>patient</th><th>rule</th><th>first</th><th>second</th><th>minutes</th></tr>"
+        )
         for t in comparison.timing:
-            parts.append(f"<tr><td>{_e(t.patient)}</td><td>{_e(t.rule)}</td>"
-                         f"<td>{_e(_when(t.first_at, tz))}</td><td>{_e(_when(t.second_at, tz))}</td>"
-                         f"<td>{t.minutes:+.0f}</td></tr>")
+            parts.append(
+                f"<tr><td>{_e(t.patient)}</td><td>{_e(t.rule)}</td>"
+                f"<td>{_e(_when(t.first_at, tz))}</td><td>{_e(_when(t.second_at, tz))}</td>"
+                f"<td>{t.minutes:+.0f}</td></tr>"
+            )
         parts.append("</table>")
-        for name, keys in ((comparison.second_label, comparison.only_second),
-                           (comparison.first_label, comparison.only_first)):
+        for name, keys in (
+            (comparison.second_label, comparison.only_second),
+            (comparison.first_label, comparison.only_first),
+        ):
             if keys:
-                parts.append(f"<p>Raised only by {_e(name)}: "
-                             + _e(", ".join(f"{p} {r}" for p, r in keys)) + "</p>")
+                parts.append(
+                    f"<p>Raised only by {_e(name)}: "
+                    + _e(", ".join(f"{p} {r}" for p, r in keys))
+                    + "</p>"
+                )
 
-    parts.append("<h2>Time from the first worsening gas to the flag</h2>"
-                 f"<p>{_e(FIRST_WORSENING_DEFINITION)}</p>"
-                 "<img src='time-to-flag.png' alt='time from first worsening gas to flag'><table>"
-                 "<tr><th>patient</th><th>rule</th><th>priority</th><th>first worsening gas</th>"
-                 "<th>raised</th><th>hours</th></tr>")
+    parts.append(
+        "<h2>Time from the first worsening gas to the flag</h2>"
+        f"<p>{_e(FIRST_WORSENING_DEFINITION)}</p>"
+        "<img src='time-to-flag.png' alt='time from first worsening gas to flag'><table>"
+        "<tr><th>patient</th><th>rule</th><th>priority</th><th>first worsening gas</th>"
+        "<th>raised</th><th>hours</th></tr>"
+    )
     for t in data.time_to_flag:
         hours = "" if t.hours is None else f"{t.hours:.1f}"
-        parts.append(f"<tr><td>{_e(t.patient)}</td><td>{_e(t.rule)}</td><td>{_e(t.priority)}</td>"
-                     f"<td>{_e(_when(t.first_worsening, tz))}</td><td>{_e(_when(t.raised_at, tz))}</td>"
-                     f"<td>{hours}</td></tr>")
+        parts.append(
+            f"<tr><td>{_e(t.patient)}</td><td>{_e(t.rule)}</td><td>{_e(t.priority)}</td>"
+            f"<td>{_e(_when(t.first_worsening, tz))}</td><td>{_e(_when(t.raised_at, tz))}</td>"
+            f"<td>{hours}</td></tr>"
+        )
     parts.append("</table>")
 
-    parts.append("<h2>Flags later retracted</h2><img src='retracted.png' alt='share of flags retracted'>")
+    parts.append(
+        "<h2>Flags later retracted</h2><img src='retracted.png' alt='share of flags retracted'>"
+    )
 
-    parts.append("<h2>Flag events</h2><p>Times are simulated (the record time of the input "
-                 "that caused them); the sample time is the draw time of the gas behind the event.</p>"
-                 "<table><tr><th>at</th><th>patient</th><th>rule</th><th>priority</th>"
-                 "<th>event</th><th>sample drawn</th></tr>")
+    parts.append(
+        "<h2>Flag events</h2><p>Times are simulated (the record time of the input "
+        "that caused them); the sample time is the draw time of the gas behind the event.</p>"
+        "<table><tr><th>at</th><th>patient</th><th>rule</th><th>priority</th>"
+        "<th>event</th><th>sample drawn</th></tr>"
+    )
     for e in result.events:
-        parts.append(f"<tr><td>{_e(_when(e.at, tz))}</td><td>{_e(e.patient)}</td><td>{_e(e.rule)}</td>"
-                     f"<td>{_e(e.priority)}</td><td>{_e(e.event)}</td>"
-                     f"<td>{_e(_when(e.sample_time, tz))}</td></tr>")
+        parts.append(
+            f"<tr><td>{_e(_when(e.at, tz))}</td><td>{_e(e.patient)}</td><td>{_e(e.rule)}</td>"
+            f"<td>{_e(e.priority)}</td><td>{_e(e.event)}</td>"
+            f"<td>{_e(_when(e.sample_time, tz))}</td></tr>"
+        )
     parts.append("</table>")
     if data.outbox:
-        parts.append("<h2>Notifications captured</h2><table><tr><th>event</th><th>channel</th>"
-                     "<th>count</th></tr>")
+        parts.append(
+            "<h2>Notifications captured</h2><table><tr><th>event</th><th>channel</th>"
+            "<th>count</th></tr>"
+        )
         for (event, channel), n in sorted(data.outbox.items()):
             parts.append(f"<tr><td>{_e(event)}</td><td>{_e(channel)}</td><td>{n}</td></tr>")
         parts.append("</table>")
 
-    parts.append("<h2>Patients</h2><p>Markers on the top panel: ▲ raised or worsened, "
-                 "◆ escalated, ● resolved, ✕ retracted; colour = priority (light low, mid "
-                 "medium, dark high). Withdrawn results are crossed.</p>")
+    parts.append(
+        "<h2>Patients</h2><p>Markers on the top panel: ▲ raised or worsened, "
+        "◆ escalated, ● resolved, ✕ retracted; colour = priority (light low, mid "
+        "medium, dark high). Withdrawn results are crossed.</p>"
+    )
     for series, name in patient_pngs:
-        parts.append(f"<h3>{_e(series.patient)}</h3><img src='{_e(name)}' "
-                     f"alt='{_e('oxygenation of ' + series.patient)}'>")
+        parts.append(
+            f"<h3>{_e(series.patient)}</h3><img src='{_e(name)}' "
+            f"alt='{_e('oxygenation of ' + series.patient)}'>"
+        )
     parts.append(f"<p class='advisory'>{_e(ADVISORY)}</p></body></html>")
     page = out_dir / "index.html"
     page.write_text("\n".join(parts), encoding="utf-8")

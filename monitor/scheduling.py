@@ -76,8 +76,12 @@ class Scheduler:
             # argument is passed only to run at start; otherwise the interval decides.
             first = {"next_run_time": datetime.now(UTC)} if job.run_at_start else {}
             self._scheduler.add_job(
-                self._runner(job), "interval", seconds=job.every.total_seconds(), id=job.name,
-                name=job.name, **first,
+                self._runner(job),
+                "interval",
+                seconds=job.every.total_seconds(),
+                id=job.name,
+                name=job.name,
+                **first,
             )
 
     def _runner(self, job: Job) -> Callable[[], None]:
@@ -154,7 +158,11 @@ class PollJob:
         started = self.clock()
         with self.db.begin(read_only=True) as conn:
             cursor = get_cursor(conn, self.source)
-        if cursor and cursor.last_success_at and started - cursor.last_success_at < self.every * RECENT_FRACTION:
+        if (
+            cursor
+            and cursor.last_success_at
+            and started - cursor.last_success_at < self.every * RECENT_FRACTION
+        ):
             log.debug("poll of %s skipped: another process polled it recently", self.source)
             return
         since = cursor.watermark_at if cursor else None
@@ -168,10 +176,18 @@ class PollJob:
             if batch.watermark is not None:
                 set_cursor(conn, self.source, batch.watermark, self.clock())
             else:
-                set_cursor(conn, self.source, cursor.watermark if cursor and cursor.watermark
-                           else "", self.clock())
-        log.info("poll of %s: %d readings, %d refused", self.source, len(batch.readings),
-                 len(batch.rejections))
+                set_cursor(
+                    conn,
+                    self.source,
+                    cursor.watermark if cursor and cursor.watermark else "",
+                    self.clock(),
+                )
+        log.info(
+            "poll of %s: %d readings, %d refused",
+            self.source,
+            len(batch.readings),
+            len(batch.rejections),
+        )
 
     def _failed(self, at: datetime, exc: Exception) -> None:
         text = f"{type(exc).__name__}: {exc}".splitlines()[0][:500]

@@ -101,7 +101,9 @@ def web_security(config: SiteConfig, secrets_file: Path | None) -> WebSecurity:
         board_password=_optional_secret(http.board_password_env, secrets_file),
         hook_secret=_optional_secret(http.hook_secret_env, secrets_file),
         max_body_bytes=http.max_request_bytes,
-        secure_cookies=getattr(http, "secure_cookies", http.host not in ("127.0.0.1", "localhost", "::1")),
+        secure_cookies=getattr(
+            http, "secure_cookies", http.host not in ("127.0.0.1", "localhost", "::1")
+        ),
     )
 
 
@@ -138,8 +140,11 @@ class Service:
         self.metrics.count_inbound(source, inbound.readings, report.quarantined)
         drawn = {r.logical_id: r.effective_at for r in inbound.readings}
         self.metrics.count_report(
-            source, duplicates=report.duplicates, derivations=report.derivations,
-            events=report.alert_events, drawn_at=drawn,
+            source,
+            duplicates=report.duplicates,
+            derivations=report.derivations,
+            events=report.alert_events,
+            drawn_at=drawn,
         )
         if report.notifications:
             self.scheduler.trigger(DISPATCH_JOB)
@@ -187,10 +192,18 @@ class Service:
     async def serve(self, stop: asyncio.Event) -> None:
         """Serve until ``stop`` is set, then shut down in order."""
         http = self.config.http
-        server = _QuietServer(uvicorn.Config(
-            self.app, host=http.host, port=http.port, log_config=None, access_log=False,
-            lifespan="off", server_header=False, timeout_graceful_shutdown=10,
-        ))
+        server = _QuietServer(
+            uvicorn.Config(
+                self.app,
+                host=http.host,
+                port=http.port,
+                log_config=None,
+                access_log=False,
+                lifespan="off",
+                server_header=False,
+                timeout_graceful_shutdown=10,
+            )
+        )
         if self.listener is not None:
             await self.listener.start()
         self.scheduler.start()
@@ -201,8 +214,12 @@ class Service:
             await self._stop_parts()
             web.result()
             raise RuntimeError(f"HTTP server on {http.host}:{http.port} did not start")
-        log.info("gasgap serving: HTTP on %s:%s%s", http.host, http.port,
-                 f", MLLP on {self.listener._host}:{self.listener.port}" if self.listener else "")
+        log.info(
+            "gasgap serving: HTTP on %s:%s%s",
+            http.host,
+            http.port,
+            f", MLLP on {self.listener._host}:{self.listener.port}" if self.listener else "",
+        )
         waiter = asyncio.create_task(stop.wait())
         await asyncio.wait({web, waiter}, return_when=asyncio.FIRST_COMPLETED)
         log.info("gasgap stopping: finishing the work in hand")
@@ -280,21 +297,29 @@ def build_service(
     metrics = Metrics()
     guard = guard or IdentifierGuard()
     context = SourceContext(
-        codes=codes or CodeTable.load(), site_tz=config.zone(),
+        codes=codes or CodeTable.load(),
+        site_tz=config.zone(),
         patient_id_system=config.site.patient_id_system,
     )
     pipeline = Pipeline(db, config.to_pipeline_settings())
     if channels is None:
         environ = _Secrets(secrets_file)
-        channels = {alias: build_channel(alias, config.channel_options(alias), environ=environ)
-                    for alias in config.channels}
+        channels = {
+            alias: build_channel(alias, config.channel_options(alias), environ=environ)
+            for alias in config.channels
+        }
     dispatcher = OutboxDispatcher(db, channels, clock=clock, metrics=metrics)
     pollers = {
         s.name: FhirPoller(
-            s.base_url, codes=context.codes, auth=_fhir_auth(s, secrets_file),
-            source_system=s.name, patient_id_system=config.site.patient_id_system, clock=clock,
+            s.base_url,
+            codes=context.codes,
+            auth=_fhir_auth(s, secrets_file),
+            source_system=s.name,
+            patient_id_system=config.site.patient_id_system,
+            clock=clock,
         )
-        for s in config.sources.fhir if s.enabled
+        for s in config.sources.fhir
+        if s.enabled
     }
     service_ref: dict[str, Service] = {}
 
@@ -302,36 +327,66 @@ def build_service(
         return lambda inbound: service_ref["s"].accept(source, inbound)
 
     jobs = [
-        Job(f"poll:{s.name}", timedelta(seconds=s.poll_seconds),
-            PollJob(s.name, pollers[s.name], db=db, every=timedelta(seconds=s.poll_seconds),
-                    accept=accept_from(s.name), to_inbound=_poll_inbound(s.name), clock=clock,
-                    metrics=metrics),
-            lock=f"poll:{s.name}", run_at_start=True)
-        for s in config.sources.fhir if s.enabled
+        Job(
+            f"poll:{s.name}",
+            timedelta(seconds=s.poll_seconds),
+            PollJob(
+                s.name,
+                pollers[s.name],
+                db=db,
+                every=timedelta(seconds=s.poll_seconds),
+                accept=accept_from(s.name),
+                to_inbound=_poll_inbound(s.name),
+                clock=clock,
+                metrics=metrics,
+            ),
+            lock=f"poll:{s.name}",
+            run_at_start=True,
+        )
+        for s in config.sources.fhir
+        if s.enabled
     ]
     jobs.append(Job(DISPATCH_JOB, DISPATCH_EVERY, dispatcher.drain, lock="outbox"))
-    jobs.append(Job("escalation", ESCALATION_EVERY, lambda: service_ref["s"].escalate(),
-                    lock="escalation"))
-    jobs.append(Job("retention", RETENTION_EVERY, lambda: pipeline.purge(now=clock()),
-                    lock="retention", run_at_start=config.retention_days is not None))
+    jobs.append(
+        Job("escalation", ESCALATION_EVERY, lambda: service_ref["s"].escalate(), lock="escalation")
+    )
+    jobs.append(
+        Job(
+            "retention",
+            RETENTION_EVERY,
+            lambda: pipeline.purge(now=clock()),
+            lock="retention",
+            run_at_start=config.retention_days is not None,
+        )
+    )
     scheduler = Scheduler(db, jobs, metrics=metrics)
     ctx = WebContext(
-        db=db, pipeline=pipeline, clock=clock, site_name=config.site.name,
-        display_mode=config.site.display_key, site_tz=config.zone(), metrics=metrics,
+        db=db,
+        pipeline=pipeline,
+        clock=clock,
+        site_name=config.site.name,
+        display_mode=config.site.display_key,
+        site_tz=config.zone(),
+        metrics=metrics,
         guard=guard,
         poll_now={name: (lambda name=name: scheduler.trigger(f"poll:{name}")) for name in pollers},
     )
-    app = create_app(config, db, pipeline, clock=clock,
-                     security=web_security(config, secrets_file), context=ctx)
-    service = Service(config, db, pipeline, clock, metrics, guard, context, dispatcher,
-                      scheduler, app, pollers)
+    app = create_app(
+        config, db, pipeline, clock=clock, security=web_security(config, secrets_file), context=ctx
+    )
+    service = Service(
+        config, db, pipeline, clock, metrics, guard, context, dispatcher, scheduler, app, pollers
+    )
     service_ref["s"] = service
     ctx.hook_sources = {name: service.hook_reader(name) for name in pollers}
     mllp = config.sources.mllp
     if mllp is not None and mllp.enabled:
         service.listener = MllpListener(
-            service.on_hl7, host=mllp.host, port=mllp.port,
-            max_message_bytes=mllp.max_message_bytes, ssl=_mllp_ssl(config),
+            service.on_hl7,
+            host=mllp.host,
+            port=mllp.port,
+            max_message_bytes=mllp.max_message_bytes,
+            ssl=_mllp_ssl(config),
         )
     return service
 

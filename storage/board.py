@@ -56,13 +56,17 @@ def known_units(conn: Connection) -> list[str]:
     return sorted(u for u in conn.execute(query).scalars() if u)
 
 
-def patients_in_unit(conn: Connection, unit: str | None = None, limit: int = 500) -> list[PatientCard]:
+def patients_in_unit(
+    conn: Connection, unit: str | None = None, limit: int = 500
+) -> list[PatientCard]:
     """Patients whose latest known location is ``unit`` (all patients when None)."""
     query = sa.select(patients).order_by(patients.c.patient_key).limit(limit)
     if unit is not None:
         query = query.where(patients.c.location_unit == unit)
     return [
-        PatientCard(r._mapping["patient_key"], r._mapping["display_key"], row_to_location(r._mapping))
+        PatientCard(
+            r._mapping["patient_key"], r._mapping["display_key"], row_to_location(r._mapping)
+        )
         for r in conn.execute(query)
     ]
 

@@ -84,7 +84,9 @@ class CodeTable:
                 return found
         return None
 
-    def device(self, system: str | None, code: str | None, text: str | None = None) -> O2Device | None:
+    def device(
+        self, system: str | None, code: str | None, text: str | None = None
+    ) -> O2Device | None:
         """The O2 device a coded or free-text value names, or None."""
         if code:
             for sys in (normalise_system(system) if system else None, SNOMED, LOCAL):

@@ -604,7 +604,7 @@ def _value(
     if status is Status.RETRACTED:
         return None, None, original, unit  # a withdrawal needs no (and trusts no) value
     if not comps:
-        raise _Bad(f"{where}-5", f"no value")
+        raise _Bad(f"{where}-5", "no value")
     if kind is Kind.O2_DEVICE:
         if value_type not in _CODED_TYPES | {"ST", "TX"}:
             raise _Bad(f"{where}-2",

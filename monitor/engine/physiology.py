@@ -319,9 +319,7 @@ def oxygenation_index(fio2: float, mean_airway_pressure: float, pao2: float) -> 
     return _fio2(fio2) * mean_airway * 100.0 / _positive("pao2", pao2, 800.0)
 
 
-def oxygen_saturation_index(
-    fio2: float, mean_airway_pressure: float, spo2: float
-) -> float | None:
+def oxygen_saturation_index(fio2: float, mean_airway_pressure: float, spo2: float) -> float | None:
     """Oxygen saturation index: FiO2 x MAP x 100 / SpO2 (%); None above SpO2 97 %
     (PALICC 2015; Thomas NJ et al., Pediatr Crit Care Med 2010;11:12-17)."""
     mean_airway = _positive("mean airway pressure", mean_airway_pressure, 60.0)
@@ -422,7 +420,9 @@ def estimated_fio2(device: O2Device | str, flow_l_min: float | None) -> float:
         O2Device.RESERVOIR_MASK: (10.0, 15.0, 0.60, 0.06),
     }
     if device not in table:
-        raise InvalidInput("device", str(device), "has a set FiO2; chart it, it cannot be estimated")
+        raise InvalidInput(
+            "device", str(device), "has a set FiO2; chart it, it cannot be estimated"
+        )
     low, high, fio2_at_low, per_l = table[device]
     if flow_l_min is None or not math.isfinite(flow_l_min) or not low <= flow_l_min <= high:
         raise InvalidInput(

@@ -68,29 +68,60 @@ def alert_json(alert: Alert) -> dict[str, Any]:
 
 def event_json(event: AlertEvent) -> dict[str, Any]:
     return {
-        "event": event.event, "at": _iso(event.at), "priority": event.priority.value,
-        "state": event.state.value, "sample_id": event.sample_id, "by": event.by,
+        "event": event.event,
+        "at": _iso(event.at),
+        "priority": event.priority.value,
+        "state": event.state.value,
+        "sample_id": event.sample_id,
+        "by": event.by,
         "note": event.note,
     }
 
 
 _DERIVED = (
-    "pao2", "fio2", "paco2", "barometric_pressure", "water_vapour_pressure", "inspired_po2",
-    "alveolar_po2", "aa_gradient", "aa_gradient_expected", "arterial_alveolar_ratio",
-    "pf_ratio", "pf_ratio_adjusted", "berlin_band", "sf_ratio", "oxygenation_index",
-    "oxygen_saturation_index", "arterial_o2_content", "peep", "spo2", "age_years",
+    "pao2",
+    "fio2",
+    "paco2",
+    "barometric_pressure",
+    "water_vapour_pressure",
+    "inspired_po2",
+    "alveolar_po2",
+    "aa_gradient",
+    "aa_gradient_expected",
+    "arterial_alveolar_ratio",
+    "pf_ratio",
+    "pf_ratio_adjusted",
+    "berlin_band",
+    "sf_ratio",
+    "oxygenation_index",
+    "oxygen_saturation_index",
+    "arterial_o2_content",
+    "peep",
+    "spo2",
+    "age_years",
 )
 
 
 def derivation_json(d: Derivation) -> dict[str, Any]:
     out: dict[str, Any] = {
-        "sample_id": d.sample_id, "drawn_at": _iso(d.drawn_at), "specimen": d.specimen.value,
-        "equation": d.equation, "fio2_source": d.fio2_source.value,
-        "estimated": d.estimated, "preliminary": d.preliminary, "unreliable": d.unreliable,
+        "sample_id": d.sample_id,
+        "drawn_at": _iso(d.drawn_at),
+        "specimen": d.specimen.value,
+        "equation": d.equation,
+        "fio2_source": d.fio2_source.value,
+        "estimated": d.estimated,
+        "preliminary": d.preliminary,
+        "unreliable": d.unreliable,
         "flags": sorted(f.value for f in d.flags),
         "inputs": [
-            {"role": i.role, "value": i.value, "reason": i.reason, "reading_id": i.reading_id,
-             "at": _iso(i.at)} for i in d.inputs
+            {
+                "role": i.role,
+                "value": i.value,
+                "reason": i.reason,
+                "reading_id": i.reading_id,
+                "at": _iso(i.at),
+            }
+            for i in d.inputs
         ],
         "units": "pressures in mmHg, FiO2 as a fraction, saturations in %",
     }
@@ -119,17 +150,23 @@ def list_patients(request: Request, unit: str | None = None) -> dict[str, Any]:
 
 @router.get("/patients/{patient_key:path}/derivations", summary="A patient's derived indices")
 def patient_derivations(
-    request: Request, patient_key: str, since: datetime | None = None,
+    request: Request,
+    patient_key: str,
+    since: datetime | None = None,
     include_estimated: bool = True,
 ) -> dict[str, Any]:
     ctx = request.app.state.ctx
     if since is not None and since.tzinfo is None:
         raise HTTPException(422, "since must carry a time zone (e.g. 2026-03-15T08:00:00Z)")
     with ctx.db.begin(read_only=True) as conn:
-        rows = current_derivations(conn, patient_key, since=since,
-                                   include_estimated=include_estimated)
-    return {"patient_key": patient_key, "derivations": [derivation_json(r.derivation) for r in rows],
-            "advisory": ADVISORY}
+        rows = current_derivations(
+            conn, patient_key, since=since, include_estimated=include_estimated
+        )
+    return {
+        "patient_key": patient_key,
+        "derivations": [derivation_json(r.derivation) for r in rows],
+        "advisory": ADVISORY,
+    }
 
 
 @router.get("/flags", summary="Open flags, or every flag changed since a time")
@@ -157,8 +194,11 @@ def get_flag(request: Request, alert_id: str) -> dict[str, Any]:
         if alert is None:
             raise HTTPException(404, f"no flag with id {alert_id!r}")
         events = alerts_store.alert_events(conn, alert_id=alert_id)
-    return {"flag": alert_json(alert), "events": [event_json(e) for e in events],
-            "advisory": ADVISORY}
+    return {
+        "flag": alert_json(alert),
+        "events": [event_json(e) for e in events],
+        "advisory": ADVISORY,
+    }
 
 
 @router.post("/flags/{alert_id}/acknowledge", summary="Record who has seen a flag")

@@ -126,8 +126,13 @@ def health(request: Request) -> JSONResponse:
         for c in cursors
     }
     return JSONResponse(
-        {"status": "ok", "database": "reachable", "sources": sources, "outbox_backlog": backlog,
-         "checked_at": _iso(ctx.clock())}
+        {
+            "status": "ok",
+            "database": "reachable",
+            "sources": sources,
+            "outbox_backlog": backlog,
+            "checked_at": _iso(ctx.clock()),
+        }
     )
 
 
@@ -138,7 +143,9 @@ def metrics(request: Request) -> Response:
     return Response(ctx.metrics.exposition(), media_type=CONTENT_TYPE)
 
 
-async def log_requests(request: Request, call_next: Callable[[Request], Awaitable[Response]]) -> Response:
+async def log_requests(
+    request: Request, call_next: Callable[[Request], Awaitable[Response]]
+) -> Response:
     """One line per request with the route template, never the concrete path (which may
     hold a patient key or a token)."""
     started = time.perf_counter()
@@ -146,7 +153,10 @@ async def log_requests(request: Request, call_next: Callable[[Request], Awaitabl
     route = request.scope.get("route")
     template = getattr(route, "path", None) or "(unrouted)"
     log.info(
-        "%s %s -> %d in %.0f ms", request.method, template, response.status_code,
+        "%s %s -> %d in %.0f ms",
+        request.method,
+        template,
+        response.status_code,
         (time.perf_counter() - started) * 1000,
     )
     return response

@@ -99,7 +99,7 @@ def display_for(patient_key: str, stored: str | None, location: Location | None,
 
 
 def age_words(then: datetime, now: datetime) -> str:
-    """"just now", "12 min", "3 h 05 min", "2 d 4 h": how long ago, at a glance."""
+    """ "just now", "12 min", "3 h 05 min", "2 d 4 h": how long ago, at a glance."""
     seconds = max(0, int((now - then).total_seconds()))
     if seconds < 60:
         return "just now"
@@ -129,8 +129,9 @@ def flag_view(alert: Alert, now: datetime, tz: tzinfo) -> FlagView:
         age = age if age == "just now" else f"{age} ago"
     else:
         age = f"closed {age_words(alert.closed_at or alert.updated_at, now)} ago"
-    return FlagView(alert, word, css, shape, age, alert.state.value,
-                    local_time(alert.raised_at, tz, now))
+    return FlagView(
+        alert, word, css, shape, age, alert.state.value, local_time(alert.raised_at, tz, now)
+    )
 
 
 def patient_url(patient_key: str) -> str:
@@ -155,8 +156,9 @@ def unit_rows(conn: Any, unit: str, ctx: Any, now: datetime) -> list[RowView]:
         rows.append(
             RowView(
                 patient_key=key,
-                display=display_for(key, card.display_key if card else None, location,
-                                    ctx.display_mode),
+                display=display_for(
+                    key, card.display_key if card else None, location, ctx.display_mode
+                ),
                 where=location.label() if location else "location unknown",
                 flags=[flag_view(a, now, ctx.site_tz) for a in flags],
                 latest=latest,
@@ -208,8 +210,15 @@ def _y(value: float, height: int, pad: int) -> float:
     return round(pad + (1 - clipped / PF_TOP) * (height - 2 * pad), 1)
 
 
-def _trace(series: list[Derivation], start: datetime, end: datetime, width: int, height: int,
-           pad: int, tz: tzinfo | None = None) -> Trace | None:
+def _trace(
+    series: list[Derivation],
+    start: datetime,
+    end: datetime,
+    width: int,
+    height: int,
+    pad: int,
+    tz: tzinfo | None = None,
+) -> Trace | None:
     """P/F against time in [start, end]; None when there is nothing to draw."""
     points = [(d.drawn_at, d.pf_ratio) for d in series if d.pf_ratio is not None]
     points = [(t, v) for t, v in points if start <= t <= end]
@@ -223,11 +232,17 @@ def _trace(series: list[Derivation], start: datetime, end: datetime, width: int,
     xy = [(x(t), _y(v, height, pad), f"{v:.0f}") for t, v in points]
     ticks: list[tuple[float, str]] = []
     if tz is not None:
-        ticks = [(x(start), start.astimezone(tz).strftime("%d %b %H:%M")),
-                 (x(end), end.astimezone(tz).strftime("%d %b %H:%M"))]
+        ticks = [
+            (x(start), start.astimezone(tz).strftime("%d %b %H:%M")),
+            (x(end), end.astimezone(tz).strftime("%d %b %H:%M")),
+        ]
     return Trace(
-        width, height, " ".join(f"{a},{b}" for a, b, _ in xy), xy,
-        [(_y(line, height, pad), f"{line:.0f}") for line in PF_LINES], ticks,
+        width,
+        height,
+        " ".join(f"{a},{b}" for a, b, _ in xy),
+        xy,
+        [(_y(line, height, pad), f"{line:.0f}") for line in PF_LINES],
+        ticks,
     )
 
 
@@ -251,17 +266,26 @@ def full_plot(series: list[Derivation], now: datetime, tz: tzinfo | None = None)
 def _login_redirect(request: Request) -> Response:
     security = request.app.state.security
     if uses_basic(security):
-        return Response("board login needed", status_code=401,
-                        headers={"WWW-Authenticate": 'Basic realm="gasgap board"'})
+        return Response(
+            "board login needed",
+            status_code=401,
+            headers={"WWW-Authenticate": 'Basic realm="gasgap board"'},
+        )
     return RedirectResponse("/board/login?next=" + quote(request.url.path, safe=""), 303)
 
 
 def _page(request: Request, name: str, status_code: int = 200, **values: Any) -> HTMLResponse:
     ctx = request.app.state.ctx
     return templates.TemplateResponse(
-        request, name,
-        {"site": ctx.site_name, "advisory": ADVISORY, "refresh": ctx.refresh_seconds,
-         "now": local_time(ctx.clock(), ctx.site_tz, ctx.clock()), **values},
+        request,
+        name,
+        {
+            "site": ctx.site_name,
+            "advisory": ADVISORY,
+            "refresh": ctx.refresh_seconds,
+            "now": local_time(ctx.clock(), ctx.site_tz, ctx.clock()),
+            **values,
+        },
         status_code=status_code,
     )
 
@@ -281,8 +305,14 @@ def _guarded(request: Request) -> Response | None:
 
 
 def _set_session(response: Response, security: Any) -> None:
-    response.set_cookie(BOARD_COOKIE, security.board_session_value(), httponly=True,
-                        samesite="strict", secure=security.secure_cookies, max_age=12 * 3600)
+    response.set_cookie(
+        BOARD_COOKIE,
+        security.board_session_value(),
+        httponly=True,
+        samesite="strict",
+        secure=security.secure_cookies,
+        max_age=12 * 3600,
+    )
 
 
 @router.get("/board/login")
@@ -297,8 +327,14 @@ async def login(request: Request) -> Response:
     target = _safe_next(form.get("next", "/board"))
     if not same(form.get("token"), security.board_token):
         log.warning("board login refused")
-        return _page(request, "login.html", 401, next=target, error="That board code is not right.",
-                     refresh=None)
+        return _page(
+            request,
+            "login.html",
+            401,
+            next=target,
+            error="That board code is not right.",
+            refresh=None,
+        )
     response = RedirectResponse(target, 303)
     _set_session(response, security)
     return response
@@ -311,7 +347,9 @@ def units(request: Request) -> Response:
     ctx = request.app.state.ctx
     with ctx.db.begin(read_only=True) as conn:
         names = board_store.known_units(conn)
-    return _page(request, "units.html", units=[(u, "/board/unit/" + quote(u, safe="")) for u in names])
+    return _page(
+        request, "units.html", units=[(u, "/board/unit/" + quote(u, safe="")) for u in names]
+    )
 
 
 @router.get("/board/unit/{unit}")
@@ -322,8 +360,15 @@ def unit_page(request: Request, unit: str) -> Response:
     now = ctx.clock()
     with ctx.db.begin(read_only=True) as conn:
         rows = unit_rows(conn, unit, ctx, now)
-    return _page(request, "unit.html", unit=unit, rows=rows, now=local_time(now, ctx.site_tz, now),
-                 back=request.url.path, message=request.query_params.get("done"))
+    return _page(
+        request,
+        "unit.html",
+        unit=unit,
+        rows=rows,
+        now=local_time(now, ctx.site_tz, now),
+        back=request.url.path,
+        message=request.query_params.get("done"),
+    )
 
 
 @router.get("/board/patient/{patient_key:path}")
@@ -342,15 +387,24 @@ def patient_page(request: Request, patient_key: str) -> Response:
     if card is None and not series and not flags:
         return _page(request, "missing.html", 404)
     location = card.location if card else (series[-1].location if series else None)
-    display = display_for(patient_key, card.display_key if card else None, location, ctx.display_mode)
+    display = display_for(
+        patient_key, card.display_key if card else None, location, ctx.display_mode
+    )
     if ctx.guard is not None:
         ctx.guard.register(patient_key, display)
     rows = [(d, local_time(d.drawn_at, ctx.site_tz, now)) for d in reversed(series)]
     return _page(
-        request, "patient.html", display=display,
-        where=location.label() if location else "location unknown", rows=rows, flags=views,
-        plot=full_plot(series, now, ctx.site_tz), back=request.url.path,
-        unit_url=("/board/unit/" + quote(location.unit, safe="")) if location and location.unit else "/board",
+        request,
+        "patient.html",
+        display=display,
+        where=location.label() if location else "location unknown",
+        rows=rows,
+        flags=views,
+        plot=full_plot(series, now, ctx.site_tz),
+        back=request.url.path,
+        unit_url=("/board/unit/" + quote(location.unit, safe=""))
+        if location and location.unit
+        else "/board",
         local=lambda at: local_time(at, ctx.site_tz, now),
     )
 

@@ -48,7 +48,9 @@ class WebSecurity:
         """The cookie value that proves a board login (an HMAC of the board token)."""
         if not self.board_token:
             return ""
-        return hmac.new(self.board_token.encode(), b"gasgap-board-session", hashlib.sha256).hexdigest()
+        return hmac.new(
+            self.board_token.encode(), b"gasgap-board-session", hashlib.sha256
+        ).hexdigest()
 
 
 def same(given: str | None, expected: str | None) -> bool:
@@ -171,6 +173,9 @@ def _content_length(scope: Scope) -> int | None:
 
 async def _too_large(send: Send, limit: int) -> None:
     body = f'{{"detail":"request body over {limit} bytes"}}'.encode()
-    headers: list[Any] = [(b"content-type", b"application/json"), (b"content-length", str(len(body)).encode())]
+    headers: list[Any] = [
+        (b"content-type", b"application/json"),
+        (b"content-length", str(len(body)).encode()),
+    ]
     await send({"type": "http.response.start", "status": 413, "headers": headers})
     await send({"type": "http.response.body", "body": body})
