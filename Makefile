@@ -11,7 +11,7 @@ PIP := $(PY) -m pip
 $(VENV)/.installed: pyproject.toml constraints.txt
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PIP) install --quiet --upgrade pip
-	$(PIP) install --quiet -c constraints.txt -e '.[test,bench]'
+	$(PIP) install --quiet -c constraints.txt -e '.[test,bench,lint]'
 	touch $@
 
 demo: $(VENV)/.installed
@@ -26,6 +26,12 @@ test: $(VENV)/.installed .fhir-venv/bin/sekmet
 
 bench: $(VENV)/.installed
 	$(PY) -m bench
+
+# Lint and types: ruff everywhere, mypy --strict on the pure core (the shell is measured,
+# not gated). Needs `pip install ruff mypy` in .venv.
+lint: $(VENV)/.installed
+	$(PY) -m ruff check monitor adapters storage fixtures bench
+	$(PY) -m mypy monitor/engine
 
 clean:
 	rm -rf $(VENV) demo-out test-artifacts .pytest_cache .hypothesis

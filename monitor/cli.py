@@ -10,6 +10,7 @@ import argparse
 import json
 import sys
 from collections.abc import Callable, Sequence
+from typing import NoReturn
 
 from monitor import calc
 from monitor.engine import physiology as phys
@@ -37,7 +38,7 @@ def _number(option: str) -> Callable[[str], float]:
 
 
 class _Parser(argparse.ArgumentParser):
-    def error(self, message: str) -> None:  # one line, exit 2, no usage dump
+    def error(self, message: str) -> NoReturn:  # one line, exit 2, no usage dump
         self.exit(EXIT_USAGE, f"gasgap: {message}\n")
 
 
@@ -143,7 +144,7 @@ def _run_calc(args: argparse.Namespace) -> int:
         raise UsageError(f"{option}: {exc.rule}, not {exc.value!r}") from None
     flags = notes + result.flags
     if args.json:
-        out = dict(values)
+        out: dict[str, object] = dict(values)
         out.update(
             units=args.units,
             equation=gas.equation.value,

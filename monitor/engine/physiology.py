@@ -134,7 +134,7 @@ def barometric_pressure_at_elevation(elevation_m: float) -> float:
         raise InvalidInput("elevation", elevation_m, "must be in [-500, 11000] m")
     h = _EARTH_RADIUS_M * elevation_m / (_EARTH_RADIUS_M + elevation_m)
     exponent = _G0 * _M0 / (_R_STAR * _LAPSE_K_PER_M)
-    p_pa = _P0_PA * (1.0 - _LAPSE_K_PER_M * h / _T0_K) ** exponent
+    p_pa: float = _P0_PA * (1.0 - _LAPSE_K_PER_M * h / _T0_K) ** exponent
     return p_pa / PASCAL_PER_MMHG
 
 
