@@ -20,8 +20,7 @@ import tempfile
 import threading
 import time
 from collections import Counter
-from collections.abc import Callable, Iterator
-from contextlib import contextmanager
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from glob import glob
@@ -47,7 +46,8 @@ from tests.integration.service import (
 __all__ = [
     "API_TOKEN", "BOARD_TOKEN", "REPO", "ack_code", "free_port", "site_toml",
     "Receiver", "ServiceProcess", "MllpSession", "gas", "PgCluster", "pg_binaries",
-    "stored_control_ids", "outbox_rows", "notifying_events", "wait_until", "SB", "EB", "CR",
+    "stored_control_ids", "count_rows", "outbox_rows", "notifying_events", "wait_until",
+    "minutes_ago", "SB", "EB", "CR",
 ]
 
 # MLLP framing (HL7 v2.5.1 Appendix C, minimal lower layer protocol): VT ... FS CR.
@@ -160,7 +160,6 @@ class Receiver:
             def log_message(self, format: str, *args: Any) -> None:  # quiet
                 return
 
-        ThreadingHTTPServer.allow_reuse_address = True
         self._server = ThreadingHTTPServer(("127.0.0.1", self.port), Handler)
         threading.Thread(target=self._server.serve_forever, daemon=True).start()
 
@@ -179,7 +178,7 @@ class Receiver:
             return list(self.keys), list(self.bodies)
 
 
-# --- the service process -----------------------------------------------------------------------------
+# --- the service process ----------------------------------------------------------------------
 
 
 class ServiceProcess:
@@ -238,17 +237,7 @@ class ServiceProcess:
         return self.log_path.read_text(encoding="utf-8", errors="replace")
 
 
-@contextmanager
-def service_process(config: Path, http_port: int, log_path: Path) -> Iterator[ServiceProcess]:
-    service = ServiceProcess(config, http_port, log_path)
-    service.start()
-    try:
-        yield service
-    finally:
-        service.kill()
-
-
-# --- a throwaway PostgreSQL cluster --------------------------------------------------------------------
+# --- a throwaway PostgreSQL cluster -----------------------------------------------------------
 
 
 def pg_binaries() -> Path | None:
@@ -322,7 +311,7 @@ class PgCluster:
         shutil.rmtree(self.root, ignore_errors=True)
 
 
-# --- read-only looks at the database (SQLAlchemy expressions over storage's tables) -------------------
+# --- read-only looks at the database (SQLAlchemy expressions over storage's tables) -----------
 
 
 def _engine(url: str) -> sa.Engine:

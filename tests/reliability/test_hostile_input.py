@@ -119,7 +119,8 @@ def _exchange(port: int, pieces: list[bytes], wait_for: str, timeout: float = 15
             try:
                 chunk = sock.recv(65536)
             except TimeoutError:
-                raise AssertionError(f"no ACK for {wait_for} in {timeout}s; got {answers}") from None
+                raise AssertionError(
+                    f"no ACK for {wait_for} in {timeout}s; got {answers}") from None
             if not chunk:
                 raise AssertionError(f"connection closed before the ACK for {wait_for}: {answers}")
             buffer += chunk
@@ -181,7 +182,7 @@ def test_mutated_frames_between_good_messages(
     stream = SB + first + EB + CR + garbage + hostile + SB + last + EB + CR
     # Split the whole stream at random byte boundaries (one write each).
     cuts = sorted(data.draw(st.lists(st.integers(1, len(stream) - 1), max_size=6, unique=True)))
-    pieces = [stream[a:b] for a, b in zip([0, *cuts], [*cuts, len(stream)])]
+    pieces = [stream[a:b] for a, b in zip([0, *cuts], [*cuts, len(stream)], strict=True)]
     answers = _exchange(port, pieces, wait_for=after)
     _check_answers(answers, {before, after})
     assert [a[1] for a in answers if a[1] in (before, after)] == [before, after]
@@ -267,7 +268,7 @@ def test_slow_and_abandoned_partial_frames_do_not_block_others(
     assert stored_control_ids(db_url)[control] == 3
 
 
-# --- files through gasgap ingest -------------------------------------------------------------------
+# --- files through gasgap ingest --------------------------------------------------------------
 
 
 def _ingest(path: Path) -> tuple[Any, list[str], str]:
@@ -385,7 +386,7 @@ def test_mutated_hl7_messages_in_a_file_are_quarantined_and_good_ones_stored(
     assert not missing, (missing, reasons)
 
 
-# --- coverage-guided fuzzing (optional tooling) ------------------------------------------------------
+# --- coverage-guided fuzzing (optional tooling) -----------------------------------------------
 
 
 @pytest.mark.slow
@@ -410,6 +411,7 @@ def test_atheris_run_over_the_hl7_and_fhir_readers(tmp_path: Path) -> None:
          f"-artifact_prefix={tmp_path}/", "-print_final_stats=1", str(corpus)],
         cwd=repo, capture_output=True, text=True, timeout=150,
     )
-    crashes = sorted(p.name for p in tmp_path.iterdir() if p.name.startswith(("crash-", "timeout-")))
+    crashes = sorted(p.name for p in tmp_path.iterdir()
+                     if p.name.startswith(("crash-", "timeout-")))
     assert run.returncode == 0 and not crashes, (crashes, run.stderr[-4000:])
     assert "Done" in run.stderr, run.stderr[-2000:]

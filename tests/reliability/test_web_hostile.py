@@ -21,7 +21,6 @@ import socket
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
-from pathlib import Path
 from urllib.parse import quote
 
 import httpx
@@ -158,7 +157,7 @@ def _refused_without_login(web: str, plain: httpx.Client) -> None:
     assert not [e for e in after["events"] if e["event"] == "acknowledged"]
 
 
-# --- hostile strings in pages ---------------------------------------------------------------------------
+# --- hostile strings in pages -----------------------------------------------------------------
 
 
 def _assert_inert(page: str, where: str) -> None:
@@ -174,8 +173,8 @@ def test_hostile_strings_are_text_on_every_page(web: str) -> None:
         patient = board.get("/board/patient/" + quote(MRN, safe=""))
         missing = board.get("/board/patient/" + quote(SCRIPT + "{{ 7*7 }}", safe=""))
     seen.update(units=units.text, unit=unit_page.text, patient=patient.text, missing=missing.text)
-    seen["login"] = httpx.get(web + "/board/login", params={"next": f'/board"><script>alert(1)</script>'},
-                              timeout=10).text
+    seen["login"] = httpx.get(web + "/board/login", timeout=10,
+                              params={"next": '/board"><script>alert(1)</script>'}).text
     assert units.status_code == unit_page.status_code == patient.status_code == 200
     for where, page in seen.items():
         _assert_inert(page, where)
@@ -196,7 +195,7 @@ def test_api_returns_hostile_strings_as_json_not_html(web: str) -> None:
     assert flag["patient_key"].endswith(MRN)  # the value itself, unchanged, as data
 
 
-# --- oversized requests ---------------------------------------------------------------------------------
+# --- oversized requests -----------------------------------------------------------------------
 
 
 def _read_all(sock: socket.socket, limit: float = 10.0, *, until: bytes | None = None) -> bytes:
