@@ -12,6 +12,8 @@ $(VENV)/.installed: pyproject.toml constraints.txt
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PIP) install --quiet --upgrade pip
 	$(PIP) install --quiet -c constraints.txt -e '.[test,bench,lint]'
+	# The coverage-guided fuzzer is used when it installs; its test skips (saying so) if not.
+	$(PIP) install --quiet -c constraints.txt atheris || echo "atheris did not install: its fuzz run will be skipped"
 	touch $@
 
 demo: $(VENV)/.installed
