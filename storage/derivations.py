@@ -167,7 +167,11 @@ _STORED_COLUMNS = (
 
 def _decoded(conn: Connection, rows: list[Any]) -> dict[str, Derivation]:
     """The Derivation for each row's fingerprint, reading in full only rows not seen."""
-    found = {r.fingerprint: _DECODED[r.fingerprint] for r in rows if r.fingerprint in _DECODED}
+    found: dict[str, Derivation] = {}
+    for r in rows:  # one get each: another thread may empty the cache meanwhile
+        known = _DECODED.get(r.fingerprint)
+        if known is not None:
+            found[r.fingerprint] = known
     missing = sorted({r.id for r in rows if r.fingerprint not in found})
     for part in chunks(missing):
         for row in conn.execute(_BY_IDS, {"ids": part}):
