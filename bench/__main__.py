@@ -22,20 +22,33 @@ BENCHMARKS = ("ingest", "replay", "latency", "postgres")
 
 
 def _parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="python -m bench", description=__doc__,
-                                formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("--only", choices=BENCHMARKS, action="append",
-                   help="run only this benchmark (repeatable)")
+    p = argparse.ArgumentParser(
+        prog="python -m bench",
+        description=__doc__,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument(
+        "--only", choices=BENCHMARKS, action="append", help="run only this benchmark (repeatable)"
+    )
     p.add_argument("--quick", action="store_true", help="small sizes, for a first look")
     p.add_argument("--ingest-beds", type=int, help="ICU beds for ingest (default 30; quick 3)")
     p.add_argument("--ingest-days", type=float, help="days for ingest (default 30; quick 7)")
     p.add_argument("--replay-beds", type=int, help="ICU beds for replay (default 3)")
-    p.add_argument("--replay-days", type=float,
-                   help="days of the shorter replay (default 36.5; quick 3)")
-    p.add_argument("--factor", type=int, default=10,
-                   help="the longer replay is this many times longer (default 10)")
-    p.add_argument("--replay-db", choices=["file", "memory"], default="file",
-                   help="replay database: SQLite file (default) or in memory")
+    p.add_argument(
+        "--replay-days", type=float, help="days of the shorter replay (default 36.5; quick 3)"
+    )
+    p.add_argument(
+        "--factor",
+        type=int,
+        default=10,
+        help="the longer replay is this many times longer (default 10)",
+    )
+    p.add_argument(
+        "--replay-db",
+        choices=["file", "memory"],
+        default="file",
+        help="replay database: SQLite file (default) or in memory",
+    )
     p.add_argument("--gases", type=int, help="gases for latency (default 1000; quick 100)")
     p.add_argument("--pace", type=float, default=20.0, help="gases per second sent (default 20)")
     p.add_argument("--pg-beds", type=int, help="ICU beds for PostgreSQL (default 30; quick 3)")
@@ -52,18 +65,25 @@ def main(argv: list[str] | None = None) -> int:
     print("gasgap benchmarks: " + ", ".join(f"{k} {v}" for k, v in host.items()), flush=True)
     results: dict[str, Any] = {"machine": host, "quick": quick}
     if "ingest" in chosen:
-        results["ingest"] = ingest.run(beds=args.ingest_beds or (3 if quick else 30),
-                                       days=args.ingest_days or (7 if quick else 30))
+        results["ingest"] = ingest.run(
+            beds=args.ingest_beds or (3 if quick else 30),
+            days=args.ingest_days or (7 if quick else 30),
+        )
     if "replay" in chosen:
-        results["replay"] = replay.run(beds=args.replay_beds or 3,
-                                       days=args.replay_days or (3 if quick else 36.5),
-                                       factor=args.factor, db=args.replay_db)
+        results["replay"] = replay.run(
+            beds=args.replay_beds or 3,
+            days=args.replay_days or (3 if quick else 36.5),
+            factor=args.factor,
+            db=args.replay_db,
+        )
     if "latency" in chosen:
-        results["latency"] = latency.run(gases=args.gases or (100 if quick else 1000),
-                                         pace_per_s=args.pace)
+        results["latency"] = latency.run(
+            gases=args.gases or (100 if quick else 1000), pace_per_s=args.pace
+        )
     if "postgres" in chosen:
-        results["postgres"] = postgres.run(beds=args.pg_beds or (3 if quick else 30),
-                                           days=args.pg_days or (3 if quick else 7))
+        results["postgres"] = postgres.run(
+            beds=args.pg_beds or (3 if quick else 30), days=args.pg_days or (3 if quick else 7)
+        )
     if args.json is not None:
         args.json.write_text(json.dumps(results, indent=2, sort_keys=True, default=str) + "\n")
     return 0

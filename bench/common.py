@@ -64,9 +64,23 @@ def feed(beds: int, days: float, seed: int = 20260301) -> Path:
     if not done.exists():
         out.mkdir(parents=True, exist_ok=True)
         subprocess.run(
-            [sys.executable, "-m", "fixtures.generate", "icu", "--beds", str(beds),
-             "--days", f"{days:g}", "--seed", str(seed), "--out", str(out)],
-            cwd=REPO, check=True, stdout=subprocess.DEVNULL,
+            [
+                sys.executable,
+                "-m",
+                "fixtures.generate",
+                "icu",
+                "--beds",
+                str(beds),
+                "--days",
+                f"{days:g}",
+                "--seed",
+                str(seed),
+                "--out",
+                str(out),
+            ],
+            cwd=REPO,
+            check=True,
+            stdout=subprocess.DEVNULL,
         )
         done.write_text("")
     return out
@@ -99,8 +113,11 @@ def run_worker(module: str, args: Sequence[str], *, timeout: float | None = None
 def start_worker(module: str, args: Sequence[str]) -> subprocess.Popen[str]:
     """The same worker, started and left running (for two at once)."""
     return subprocess.Popen(
-        [sys.executable, "-m", module, "--worker", *args], cwd=REPO,
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+        [sys.executable, "-m", module, "--worker", *args],
+        cwd=REPO,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
     )
 
 

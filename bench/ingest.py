@@ -59,7 +59,8 @@ def _raw_table(db_url: str) -> tuple[Any, Any]:
 
     metadata = sa.MetaData()
     table = sa.Table(
-        "raw_items", metadata,
+        "raw_items",
+        metadata,
         sa.Column("id", sa.Integer, primary_key=True, autoincrement=True),
         sa.Column("kind", sa.String, nullable=False),
         sa.Column("item_key", sa.String, nullable=True),
@@ -85,8 +86,13 @@ def floor_fhir(path: Path, db_url: str) -> dict[str, Any]:
                 if not raw.strip():
                     continue
                 item = orjson.loads(raw)
-                rows.append({"kind": item.get("resourceType", ""), "item_key": item.get("id"),
-                             "body": raw.decode("utf-8")})
+                rows.append(
+                    {
+                        "kind": item.get("resourceType", ""),
+                        "item_key": item.get("id"),
+                        "body": raw.decode("utf-8"),
+                    }
+                )
                 count += 1
                 if len(rows) >= BATCH:
                     conn.execute(insert, rows)
@@ -133,24 +139,52 @@ def run(*, beds: int, days: float) -> dict[str, Any]:
     for kind, name in (("fhir", "feed-ehr.ndjson"), ("hl7", "feed-lab.hl7")):
         path = directory / name
         with tempfile.TemporaryDirectory(prefix="gasgap-bench-") as tmp:
-            floor = run_worker(MODULE, ["--mode", f"floor-{kind}", "--path", str(path),
-                                        "--db-url", f"sqlite:///{tmp}/floor.db"])
-            full = run_worker(MODULE, ["--mode", "pipeline", "--path", str(path),
-                                       "--db-url", f"sqlite:///{tmp}/gasgap.db"])
+            floor = run_worker(
+                MODULE,
+                [
+                    "--mode",
+                    f"floor-{kind}",
+                    "--path",
+                    str(path),
+                    "--db-url",
+                    f"sqlite:///{tmp}/floor.db",
+                ],
+            )
+            full = run_worker(
+                MODULE,
+                [
+                    "--mode",
+                    "pipeline",
+                    "--path",
+                    str(path),
+                    "--db-url",
+                    f"sqlite:///{tmp}/gasgap.db",
+                ],
+            )
         readings = full["readings"]
         floor_rate = rate(readings, floor["seconds"])
         ratio = full["readings_per_s"] / floor_rate
         size = path.stat().st_size / 1e6
         line(f"{kind}: file", f"{name}, {size:.1f} MB, {readings} readings")
-        line(f"{kind}: floor ({floor['items']} raw rows)",
-             f"{floor['seconds']:.2f} s = {floor_rate:,.0f} readings/s")
-        line(f"{kind}: pipeline", f"{full['seconds']:.2f} s = {full['readings_per_s']:,.0f} "
-             f"readings/s ({full['derivations']} derivations, {full['notifications']} "
-             "notifications)")
-        line(f"{kind}: pipeline / floor", f"{ratio:.3f} (goal >= 0.5: "
-             f"{'met' if ratio >= 0.5 else f'missed, {0.5 / ratio:.0f}x short'})")
-        line(f"{kind}: peak memory pipeline / floor",
-             f"{full['peak_rss_mib']:.0f} / {floor['peak_rss_mib']:.0f} MiB")
+        line(
+            f"{kind}: floor ({floor['items']} raw rows)",
+            f"{floor['seconds']:.2f} s = {floor_rate:,.0f} readings/s",
+        )
+        line(
+            f"{kind}: pipeline",
+            f"{full['seconds']:.2f} s = {full['readings_per_s']:,.0f} "
+            f"readings/s ({full['derivations']} derivations, {full['notifications']} "
+            "notifications)",
+        )
+        line(
+            f"{kind}: pipeline / floor",
+            f"{ratio:.3f} (goal >= 0.5: "
+            f"{'met' if ratio >= 0.5 else f'missed, {0.5 / ratio:.0f}x short'})",
+        )
+        line(
+            f"{kind}: peak memory pipeline / floor",
+            f"{full['peak_rss_mib']:.0f} / {floor['peak_rss_mib']:.0f} MiB",
+        )
         results[kind] = {"floor": floor, "pipeline": full, "ratio": round(ratio, 4)}
     return results
 

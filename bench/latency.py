@@ -81,19 +81,47 @@ def _receiver() -> Iterator[tuple[str, _Arrivals]]:
 
 
 def _site(db_url: str, http_port: int, mllp_port: int, webhook: str) -> str:
-    return "\n".join([
-        "[site]", 'name = "Hollowmere General Hospital"', "elevation_m = 1600",
-        'timezone = "UTC"', 'patient_id_system = "urn:oid:2.999.1.1.1"', 'display_key = "mrn"',
-        "", "[channels.icu-north-station]", 'type = "webhook"', f'url = "{webhook}"',
-        "", "[channels.log]", 'type = "log"',
-        "", "[routes]", 'default = ["log"]', "", "[routes.units]",
-        '"ICU-North" = ["icu-north-station"]',
-        "", "[sources.mllp]", 'host = "127.0.0.1"', f"port = {mllp_port}",
-        "", "[database]", f'url = "{db_url}"',
-        "", "[http]", 'host = "127.0.0.1"', f"port = {http_port}",
-        f'board_token_env = "{BOARD_TOKEN_ENV}"', f'api_token_env = "{API_TOKEN_ENV}"',
-        "", "[logging]", 'level = "WARNING"', 'format = "json"', "",
-    ])
+    return "\n".join(
+        [
+            "[site]",
+            'name = "Hollowmere General Hospital"',
+            "elevation_m = 1600",
+            'timezone = "UTC"',
+            'patient_id_system = "urn:oid:2.999.1.1.1"',
+            'display_key = "mrn"',
+            "",
+            "[channels.icu-north-station]",
+            'type = "webhook"',
+            f'url = "{webhook}"',
+            "",
+            "[channels.log]",
+            'type = "log"',
+            "",
+            "[routes]",
+            'default = ["log"]',
+            "",
+            "[routes.units]",
+            '"ICU-North" = ["icu-north-station"]',
+            "",
+            "[sources.mllp]",
+            'host = "127.0.0.1"',
+            f"port = {mllp_port}",
+            "",
+            "[database]",
+            f'url = "{db_url}"',
+            "",
+            "[http]",
+            'host = "127.0.0.1"',
+            f"port = {http_port}",
+            f'board_token_env = "{BOARD_TOKEN_ENV}"',
+            f'api_token_env = "{API_TOKEN_ENV}"',
+            "",
+            "[logging]",
+            'level = "WARNING"',
+            'format = "json"',
+            "",
+        ]
+    )
 
 
 def _gas(n: int, mrn: str) -> bytes:
@@ -144,8 +172,10 @@ def _wait_healthy(process: subprocess.Popen[bytes], port: int, log: Path) -> Non
 
 
 def run(*, gases: int, pace_per_s: float = 20.0) -> dict[str, Any]:
-    heading(f"latency: gasgap serve, {gases} gases over MLLP at {pace_per_s:g}/s, "
-            "webhook on loopback, SQLite file")
+    heading(
+        f"latency: gasgap serve, {gases} gases over MLLP at {pace_per_s:g}/s, "
+        "webhook on loopback, SQLite file"
+    )
     with (
         tempfile.TemporaryDirectory(prefix="gasgap-bench-") as tmp,
         _receiver() as (hook, arrivals),
@@ -154,12 +184,19 @@ def run(*, gases: int, pace_per_s: float = 20.0) -> dict[str, Any]:
         config = Path(tmp) / "site.toml"
         config.write_text(_site(f"sqlite:///{tmp}/gasgap.db", http_port, mllp_port, hook))
         log = Path(tmp) / "serve.log"
-        env = {**os.environ, API_TOKEN_ENV: "bench-api-token-0f3c9a", BOARD_TOKEN_ENV:
-               "bench-board-token-77d1e2", "PYTHONUNBUFFERED": "1"}
+        env = {
+            **os.environ,
+            API_TOKEN_ENV: "bench-api-token-0f3c9a",
+            BOARD_TOKEN_ENV: "bench-board-token-77d1e2",
+            "PYTHONUNBUFFERED": "1",
+        }
         with open(log, "wb") as out:
             process = subprocess.Popen(
                 [sys.executable, "-m", "monitor.cli", "serve", "--config", str(config)],
-                cwd=REPO, env=env, stdout=out, stderr=subprocess.STDOUT,
+                cwd=REPO,
+                env=env,
+                stdout=out,
+                stderr=subprocess.STDOUT,
             )
         try:
             _wait_healthy(process, http_port, log)
@@ -198,14 +235,25 @@ def run(*, gases: int, pace_per_s: float = 20.0) -> dict[str, Any]:
     ack_ms = [x * 1000 for x in acks]
     p50, p95, p99 = (percentile(ms, f) for f in (0.50, 0.95, 0.99))
     line("gases sent / flags received (webhook calls)", f"{gases} / {len(ms)} ({calls})")
-    line("MLLP ACK p50 / p95 / p99", " / ".join(f"{percentile(ack_ms, f):.0f} ms"
-                                                 for f in (0.5, 0.95, 0.99)))
-    line("send to webhook p50 / p95 / p99", f"{p50:.0f} / {p95:.0f} / {p99:.0f} ms "
-         f"(max {max(ms, default=float('nan')):.0f} ms)")
+    line(
+        "MLLP ACK p50 / p95 / p99",
+        " / ".join(f"{percentile(ack_ms, f):.0f} ms" for f in (0.5, 0.95, 0.99)),
+    )
+    line(
+        "send to webhook p50 / p95 / p99",
+        f"{p50:.0f} / {p95:.0f} / {p99:.0f} ms (max {max(ms, default=float('nan')):.0f} ms)",
+    )
     line("goal p99 < 250 ms", "met" if ms and p99 < 250 and len(ms) == gases else "missed")
-    return {"gases": gases, "received": len(ms), "calls": calls, "p50_ms": round(p50, 1),
-            "p95_ms": round(p95, 1), "p99_ms": round(p99, 1),
-            "ack_p99_ms": round(percentile(ack_ms, 0.99), 1), "pace_per_s": pace_per_s}
+    return {
+        "gases": gases,
+        "received": len(ms),
+        "calls": calls,
+        "p50_ms": round(p50, 1),
+        "p95_ms": round(p95, 1),
+        "p99_ms": round(p99, 1),
+        "ack_p99_ms": round(percentile(ack_ms, 0.99), 1),
+        "pace_per_s": pace_per_s,
+    }
 
 
 if __name__ == "__main__":

@@ -79,15 +79,21 @@ def _ingest(paths: list[Path], url: str) -> dict[str, Any]:
     from storage.db import upgrade
 
     upgrade(url)
-    workers = [start_worker(INGEST, ["--mode", "pipeline", "--path", str(p), "--db-url", url])
-               for p in paths]
+    workers = [
+        start_worker(INGEST, ["--mode", "pipeline", "--path", str(p), "--db-url", url])
+        for p in paths
+    ]
     results = [finish_worker(w) for w in workers]
     wall = max(r["seconds"] for r in results)
     readings = sum(r["readings"] for r in results)
-    return {"wall_s": wall, "readings": readings,
-            "stored": sum(r["stored"] for r in results),
-            "duplicates": sum(r["duplicates"] for r in results),
-            "readings_per_s": round(rate(readings, wall), 1), "workers": results}
+    return {
+        "wall_s": wall,
+        "readings": readings,
+        "stored": sum(r["stored"] for r in results),
+        "duplicates": sum(r["duplicates"] for r in results),
+        "readings_per_s": round(rate(readings, wall), 1),
+        "workers": results,
+    }
 
 
 def run(*, beds: int, days: float) -> dict[str, Any]:
@@ -116,8 +122,11 @@ def run(*, beds: int, days: float) -> dict[str, Any]:
             with fresh_schema(url) as schema_url:
                 figures = _ingest(paths, schema_url)
             results[label] = figures
-            line(label, f"{figures['wall_s']:.1f} s, {figures['readings_per_s']:,.0f} readings/s "
-                 f"({figures['stored']} stored, {figures['duplicates']} duplicates)")
+            line(
+                label,
+                f"{figures['wall_s']:.1f} s, {figures['readings_per_s']:,.0f} readings/s "
+                f"({figures['stored']} stored, {figures['duplicates']} duplicates)",
+            )
     one = results["one process, whole file"]["wall_s"]
     two = results["two processes, half the patients each"]["wall_s"]
     same = results["two processes, the same file each"]["wall_s"]

@@ -29,8 +29,9 @@ def replay_once(directory: Path, db_url: str) -> dict[str, Any]:
     config = default_config()
     context = SourceContext(site_tz=config.zone(), patient_id_system=config.site.patient_id_system)
     with stopwatch() as watch:
-        result = replay(feed_files(directory), config.to_pipeline_settings(), context,
-                        db_url=db_url)
+        result = replay(
+            feed_files(directory), config.to_pipeline_settings(), context, db_url=db_url
+        )
     counts = result.counts
     result.close()
     return {
@@ -46,8 +47,10 @@ def replay_once(directory: Path, db_url: str) -> dict[str, Any]:
 
 
 def run(*, beds: int, days: float, factor: int = 10, db: str = "file") -> dict[str, Any]:
-    heading(f"replay: {beds}-bed ICU, {days:g} days and {days * factor:g} days "
-            f"(fixtures.generate icu), {db} SQLite")
+    heading(
+        f"replay: {beds}-bed ICU, {days:g} days and {days * factor:g} days "
+        f"(fixtures.generate icu), {db} SQLite"
+    )
     results: dict[str, Any] = {}
     for label, length in (("base", days), (f"x{factor}", days * factor)):
         directory = feed(beds, length)
@@ -56,22 +59,33 @@ def run(*, beds: int, days: float, factor: int = 10, db: str = "file") -> dict[s
             url = "sqlite://" if db == "memory" else f"sqlite:///{tmp}/replay.db"
             figures = run_worker(MODULE, ["--dir", str(directory), "--db-url", url])
         results[label] = figures
-        line(f"{length:g} days: input", f"{size:.1f} MB, {figures['units']} units, "
-             f"{figures['readings']} readings")
-        line(f"{length:g} days: wall time", f"{figures['seconds']:.1f} s = "
-             f"{figures['units_per_s']:,.0f} units/s = {figures['readings_per_s']:,.0f} readings/s")
-        line(f"{length:g} days: derivations, flags, notifications",
-             f"{figures['derivations']}, {figures['flags']}, {figures['notifications']}")
+        line(
+            f"{length:g} days: input",
+            f"{size:.1f} MB, {figures['units']} units, {figures['readings']} readings",
+        )
+        line(
+            f"{length:g} days: wall time",
+            f"{figures['seconds']:.1f} s = "
+            f"{figures['units_per_s']:,.0f} units/s = {figures['readings_per_s']:,.0f} readings/s",
+        )
+        line(
+            f"{length:g} days: derivations, flags, notifications",
+            f"{figures['derivations']}, {figures['flags']}, {figures['notifications']}",
+        )
         line(f"{length:g} days: peak memory", f"{figures['peak_rss_mib']:.0f} MiB")
     ratio = results[f"x{factor}"]["peak_rss_mib"] / results["base"]["peak_rss_mib"]
-    line(f"peak memory x{factor} / base", f"{ratio:.2f} (goal < 1.5: "
-         f"{'met' if ratio < 1.5 else 'missed'})")
+    line(
+        f"peak memory x{factor} / base",
+        f"{ratio:.2f} (goal < 1.5: {'met' if ratio < 1.5 else 'missed'})",
+    )
     # The longer run's rate: start-up (migrations, imports' first use) is spread thinner.
     speed = results[f"x{factor}"]["units_per_s"]
     year_units = results["base"]["units"] * (365 / days) * (30 / beds)
-    line("extrapolated: 30 beds x 365 days at the longer run's rate",
-         f"{year_units:,.0f} units, about {year_units / speed / 60:,.0f} min "
-         "(units scale with beds; per-unit cost assumed not to)")
+    line(
+        "extrapolated: 30 beds x 365 days at the longer run's rate",
+        f"{year_units:,.0f} units, about {year_units / speed / 60:,.0f} min "
+        "(units scale with beds; per-unit cost assumed not to)",
+    )
     results["memory_ratio"] = round(ratio, 3)
     return results
 

@@ -92,19 +92,27 @@ def inbound_from_hl7(
     """
     name = source or context.hl7_source
     parsed = parse_oru(
-        raw, received_at=received_at, codes=context.codes, source_system=name,
-        site_tz=context.site_tz, patient_id_system=context.patient_id_system,
+        raw,
+        received_at=received_at,
+        codes=context.codes,
+        source_system=name,
+        site_tz=context.site_tz,
+        patient_id_system=context.patient_id_system,
     )
     rejected = [
         Rejected(f"hl7:{name}", raw, f"message {parsed.control_id} {r}") for r in parsed.rejected
     ]
     return Inbound(
-        readings=list(parsed.readings), rejected=rejected,
-        skipped_codes=parsed.skipped_codes, ignored=sum(parsed.ignored.values()),
+        readings=list(parsed.readings),
+        rejected=rejected,
+        skipped_codes=parsed.skipped_codes,
+        ignored=sum(parsed.ignored.values()),
     )
 
 
-def hl7_units(path: Path, context: SourceContext, received_at: Callable[[], datetime]) -> Iterator[Unit]:
+def hl7_units(
+    path: Path, context: SourceContext, received_at: Callable[[], datetime]
+) -> Iterator[Unit]:
     oversized: list[tuple[int, bytes]] = []
     source = f"hl7:{context.hl7_source}"
     for raw in iter_hl7_file(path, on_oversized=lambda at, head: oversized.append((at, head))):
@@ -149,46 +157,66 @@ def fhir_record_time(resource: dict[str, Any]) -> datetime | None:
 
 def fhir_builder(context: SourceContext, received_at: Callable[[], datetime]) -> FhirReadingBuilder:
     return FhirReadingBuilder(
-        context.codes, source_system=context.fhir_source,
-        patient_id_system=context.patient_id_system, received_at_fn=received_at,
+        context.codes,
+        source_system=context.fhir_source,
+        patient_id_system=context.patient_id_system,
+        received_at_fn=received_at,
         strict=context.strict_fhir,
     )
 
 
 def ndjson_units(
-    path: Path, context: SourceContext, received_at: Callable[[], datetime],
+    path: Path,
+    context: SourceContext,
+    received_at: Callable[[], datetime],
     builder: FhirReadingBuilder | None = None,
 ) -> Iterator[Unit]:
     builder = builder or fhir_builder(context, received_at)
     for number, item in iter_ndjson(path):
         if isinstance(item, bytes):
             reason = f"{path.name} {ndjson_line_reason(number, item)}"
-            yield Unit(Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", item, reason)]),
-                       None, path.name)
+            yield Unit(
+                Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", item, reason)]),
+                None,
+                path.name,
+            )
             continue
         rtype = item.get("resourceType")
         if rtype not in TAKEN_RESOURCES:
-            reason = (f"{path.name} line {number}: resourceType {rtype!r} is not taken "
-                      f"(only {', '.join(TAKEN_RESOURCES)})")
+            reason = (
+                f"{path.name} line {number}: resourceType {rtype!r} is not taken "
+                f"(only {', '.join(TAKEN_RESOURCES)})"
+            )
             raw_line = orjson.dumps(item)
-            yield Unit(Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw_line, reason)]),
-                       None, path.name)
+            yield Unit(
+                Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw_line, reason)]),
+                None,
+                path.name,
+            )
             continue
         record_time = fhir_record_time(item)
         builder.note_panels([item])
         batch = builder.read(item, received_at=record_time or received_at())
         for i, rej in enumerate(batch.rejections):
-            batch.rejections[i] = type(rej)(rej.source, f"{path.name} line {number}: {rej.reason}", rej.raw)
+            batch.rejections[i] = type(rej)(
+                rej.source, f"{path.name} line {number}: {rej.reason}", rej.raw
+            )
         yield Unit(_inbound_from_fhir(batch, context.fhir_source), record_time, path.name)
 
 
-def json_units(path: Path, context: SourceContext, received_at: Callable[[], datetime]) -> Iterator[Unit]:
+def json_units(
+    path: Path, context: SourceContext, received_at: Callable[[], datetime]
+) -> Iterator[Unit]:
     raw = path.read_bytes()
     try:
         data = orjson.loads(raw)
     except orjson.JSONDecodeError as exc:
         reason = f"{path.name}: invalid JSON: {exc}"
-        yield Unit(Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw, reason)]), None, path.name)
+        yield Unit(
+            Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw, reason)]),
+            None,
+            path.name,
+        )
         return
     builder = fhir_builder(context, received_at)
     if isinstance(data, dict) and data.get("resourceType") == "Bundle":
@@ -199,13 +227,22 @@ def json_units(path: Path, context: SourceContext, received_at: Callable[[], dat
             entries, key=lambda e: 0 if e[0].get("resourceType") in ("Patient", "Encounter") else 1
         ):
             builder.read(resource, full_url=full_url, into=batch)
-        yield Unit(_inbound_from_fhir(batch, context.fhir_source), fhir_record_time(data), path.name)
+        yield Unit(
+            _inbound_from_fhir(batch, context.fhir_source), fhir_record_time(data), path.name
+        )
     elif isinstance(data, dict):
-        yield Unit(_inbound_from_fhir(builder.read_all([data]), context.fhir_source),
-                   fhir_record_time(data), path.name)
+        yield Unit(
+            _inbound_from_fhir(builder.read_all([data]), context.fhir_source),
+            fhir_record_time(data),
+            path.name,
+        )
     else:
         reason = f"{path.name}: not a FHIR resource or Bundle (a JSON object)"
-        yield Unit(Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw, reason)]), None, path.name)
+        yield Unit(
+            Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw, reason)]),
+            None,
+            path.name,
+        )
 
 
 # --- files of either kind -------------------------------------------------------------------
