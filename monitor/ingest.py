@@ -125,6 +125,9 @@ def hl7_units(
             inbound = inbound_from_hl7(
                 raw, received_at=record_time or received_at(), context=context
             )
+            inbound.rejected = [
+                Rejected(r.source, r.raw, f"{path.name}: {r.reason}") for r in inbound.rejected
+            ]
         except Hl7Error as exc:
             inbound = Inbound(rejected=[Rejected(source, raw, f"{path.name}: {exc}")])
         yield Unit(inbound, record_time, f"{path.name}")

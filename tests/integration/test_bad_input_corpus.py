@@ -121,7 +121,7 @@ def test_bad_items_are_quarantined_with_reasons_and_good_ones_stored(
     one("no-value")  # names the resource with the missing value
     one("too-high", "4000")  # names the resource and the impossible value
     one("furlongs")  # the unknown unit
-    one("OBX", "abc")  # the bad HL7 value, by segment
+    one("lab.hl7", "OBX", "abc")  # the bad HL7 value, by file and segment
     one("size limit")  # the 52 MB message
     one("UTF-8")  # the Latin-1 message that did not say so in MSH-18
     one("MSH-9")  # the broken header
