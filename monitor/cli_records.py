@@ -177,64 +177,11 @@ def _run_outbox(args: argparse.Namespace) -> int:
 
 # --- patient -------------------------------------------------------------------------------
 
-SERIES_KEYS = (
-    "drawn_at",
-    "sample_id",
-    "specimen",
-    "pao2",
-    "fio2",
-    "fio2_source",
-    "paco2",
-    "barometric_pressure",
-    "alveolar_po2",
-    "aa_gradient",
-    "aa_gradient_expected",
-    "arterial_alveolar_ratio",
-    "pf_ratio",
-    "pf_ratio_adjusted",
-    "berlin_band",
-    "sf_ratio",
-    "estimated",
-    "unreliable",
-    "flags",
-    "version",
-)
-
-
 def series_row(derivation: Derivation, version: int) -> dict[str, Any]:
-    d = derivation
-    return {
-        "drawn_at": d.drawn_at.isoformat(),
-        "sample_id": d.sample_id,
-        "specimen": d.specimen.value,
-        "pao2": d.pao2,
-        "fio2": d.fio2,
-        "fio2_source": d.fio2_source.value,
-        "paco2": d.paco2,
-        "barometric_pressure": d.barometric_pressure,
-        "alveolar_po2": d.alveolar_po2,
-        "aa_gradient": d.aa_gradient,
-        "aa_gradient_expected": d.aa_gradient_expected,
-        "arterial_alveolar_ratio": d.arterial_alveolar_ratio,
-        "pf_ratio": d.pf_ratio,
-        "pf_ratio_adjusted": d.pf_ratio_adjusted,
-        "berlin_band": d.berlin_band,
-        "sf_ratio": d.sf_ratio,
-        "estimated": d.estimated,
-        "unreliable": d.unreliable,
-        "flags": sorted(f.value for f in d.flags),
-        "version": version,
-        "inputs": [
-            {
-                "role": i.role,
-                "value": i.value,
-                "reason": i.reason,
-                "reading_id": i.reading_id,
-                "at": i.at.isoformat() if i.at else None,
-            }
-            for i in d.inputs
-        ],
-    }
+    """One row of ``gasgap patient --json``: the API's shape plus the stored version."""
+    from monitor.records import derivation_json
+
+    return derivation_json(derivation) | {"version": version}
 
 
 def _run_patient(args: argparse.Namespace) -> int:
