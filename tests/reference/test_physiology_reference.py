@@ -10,6 +10,10 @@ from __future__ import annotations
 
 import math
 
+import ambiance
+import fluids.atmosphere as fluids_atmosphere
+import iapws
+import pint
 import pytest
 
 from monitor.engine import physiology as phys
@@ -131,7 +135,6 @@ def test_water_vapour_at_body_temperature_is_47_1() -> None:
 
 @pytest.mark.parametrize("temp", [30 + 0.5 * i for i in range(25)])
 def test_water_vapour_matches_iapws_if97_and_95(temp: float) -> None:
-    iapws = pytest.importorskip("iapws")
     from iapws.iapws97 import _PSat_T
 
     kelvin = temp + 273.15
@@ -171,8 +174,6 @@ def test_pressure_at_elevation_matches_reference_table(elevation: float, mmhg: f
 
 @pytest.mark.parametrize("elevation", [100.0 * i for i in range(41)])
 def test_pressure_at_elevation_matches_fluids_and_ambiance(elevation: float) -> None:
-    fluids_atmosphere = pytest.importorskip("fluids.atmosphere")
-    ambiance = pytest.importorskip("ambiance")
     ours_pa = phys.barometric_pressure_at_elevation(elevation) * phys.PASCAL_PER_MMHG
     # US Standard Atmosphere 1976 (fluids) and ICAO 1993 (ambiance), geometric altitude.
     assert ours_pa == pytest.approx(fluids_atmosphere.ATMOSPHERE_1976(elevation).P, abs=1.0)
@@ -193,7 +194,6 @@ def test_exponential_rule_of_thumb_underestimates_altitude_pressure() -> None:
 
 @pytest.mark.parametrize("kpa", [1.0, 5.3, 13.33, 40.0, 101.325])
 def test_kpa_conversion_matches_pint(kpa: float) -> None:
-    pint = pytest.importorskip("pint")
     ureg = pint.UnitRegistry()
     expected = (kpa * ureg.kilopascal).to(ureg.mmHg).magnitude
     assert phys.kpa_to_mmhg(kpa) == pytest.approx(expected, rel=1e-9)
@@ -201,7 +201,6 @@ def test_kpa_conversion_matches_pint(kpa: float) -> None:
 
 
 def test_cmh2o_conversion_matches_pint() -> None:
-    pint = pytest.importorskip("pint")
     ureg = pint.UnitRegistry()
     expected = (10 * ureg.cmH2O).to(ureg.mmHg).magnitude
     assert phys.cmh2o_to_mmhg(10) == pytest.approx(expected, rel=1e-6)
