@@ -16,6 +16,7 @@ open for it (a second writer on SQLite would wait on our own lock).
 from __future__ import annotations
 
 import logging
+import threading
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -67,6 +68,9 @@ class Scheduler:
         self.db = db
         self.jobs = {job.name: job for job in jobs}
         self.metrics = metrics
+        self._state = threading.Lock()
+        self._running: set[str] = set()
+        self._again: set[str] = set()
         self._scheduler = BackgroundScheduler(
             timezone=UTC,
             job_defaults={"coalesce": True, "max_instances": 1, "misfire_grace_time": None},
@@ -86,23 +90,38 @@ class Scheduler:
 
     def _runner(self, job: Job) -> Callable[[], None]:
         def run() -> None:
-            outcome = "done"
-            try:
-                if job.lock is None:
-                    job.run()
-                else:
-                    with fleet_lock(self.db, job.lock) as got:
-                        if got:
-                            job.run()
-                        else:
-                            outcome = "skipped"
-            except Exception:  # one failed run must not stop the schedule
-                outcome = "failed"
-                log.exception("scheduled job %s failed", job.name)
-            if self.metrics is not None:
-                self.metrics.jobs.labels(job=job.name, outcome=outcome).inc()
+            with self._state:
+                self._running.add(job.name)
+            while True:
+                self._run_once(job)
+                # A trigger that came while this run was finishing (after its last look
+                # at the outbox, say) would be skipped by APScheduler, one instance at a
+                # time: run once more for it instead of leaving it to the next interval.
+                with self._state:
+                    if job.name in self._again:
+                        self._again.discard(job.name)
+                        continue
+                    self._running.discard(job.name)
+                    return
 
         return run
+
+    def _run_once(self, job: Job) -> None:
+        outcome = "done"
+        try:
+            if job.lock is None:
+                job.run()
+            else:
+                with fleet_lock(self.db, job.lock) as got:
+                    if got:
+                        job.run()
+                    else:
+                        outcome = "skipped"
+        except Exception:  # one failed run must not stop the schedule
+            outcome = "failed"
+            log.exception("scheduled job %s failed", job.name)
+        if self.metrics is not None:
+            self.metrics.jobs.labels(job=job.name, outcome=outcome).inc()
 
     def start(self) -> None:
         self._scheduler.start()
@@ -113,6 +132,9 @@ class Scheduler:
         job = self._scheduler.get_job(name)
         if job is None:
             return False
+        with self._state:
+            if name in self._running:
+                self._again.add(name)
         job.modify(next_run_time=datetime.now(UTC))
         return True
 
