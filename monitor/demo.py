@@ -14,6 +14,10 @@ import argparse
 import sys
 from collections.abc import Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from monitor.config import SiteConfig
 
 from monitor.engine.model import ADVISORY
 
@@ -23,7 +27,7 @@ FEEDS = ("feed-lab.hl7", "feed-late.hl7", "feed-ehr.ndjson")
 SITE_CONFIG = ROOT / "fixtures" / "site-example.toml"
 
 
-def demo_config() -> object:
+def demo_config() -> SiteConfig:
     """The example site configuration: Hollowmere, 1,600 m, its fixed UTC+02:00."""
     from monitor.config import load_config
 
@@ -43,13 +47,13 @@ def run(out_dir: Path, *, progress: bool = False) -> int:
     config = demo_config()
     context = SourceContext(
         site_tz=config.zone(),
-        patient_id_system=config.site.patient_id_system,  # type: ignore[attr-defined]
+        patient_id_system=config.site.patient_id_system,
     )
     print("gasgap demo: three invented days at Hollowmere General Hospital (1,600 m)")
     print(f"replaying {', '.join(FEEDS)} on SQLite ({db_file}) ...", flush=True)
     result = replay(
         [FEED_DIR / name for name in FEEDS],
-        config.to_pipeline_settings(),  # type: ignore[attr-defined]
+        config.to_pipeline_settings(),
         context,
         db_url=f"sqlite:///{db_file}",
         progress=progress,

@@ -456,7 +456,7 @@ def plot_patient(series: PatientSeries, path: Path, tz: tzinfo) -> None:
         ax.grid(True, alpha=0.3)
         if ax.has_data():
             ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0))
-    ax_fio2.xaxis.set_major_formatter(mdates.DateFormatter("%d %b\n%H:%M", tz=tz))
+    ax_fio2.xaxis.set_major_formatter(mdates.DateFormatter("%d %b\n%H:%M", tz=tz))  # type: ignore[no-untyped-call]
     ax_pf.set_title(
         f"{series.patient}: oxygenation over time (flag colour = priority)", fontsize=10
     )
@@ -699,12 +699,12 @@ def write_report(
         "<tr><th>patient</th><th>rule</th><th>priority</th><th>first worsening gas</th>"
         "<th>raised</th><th>hours</th></tr>"
     )
-    for t in data.time_to_flag:
-        hours = "" if t.hours is None else f"{t.hours:.1f}"
+    for ttf in data.time_to_flag:
+        hours = "" if ttf.hours is None else f"{ttf.hours:.1f}"
         parts.append(
-            f"<tr><td>{_e(t.patient)}</td><td>{_e(t.rule)}</td><td>{_e(t.priority)}</td>"
-            f"<td>{_e(_when(t.first_worsening, tz))}</td><td>{_e(_when(t.raised_at, tz))}</td>"
-            f"<td>{hours}</td></tr>"
+            f"<tr><td>{_e(ttf.patient)}</td><td>{_e(ttf.rule)}</td><td>{_e(ttf.priority)}</td>"
+            f"<td>{_e(_when(ttf.first_worsening, tz))}</td>"
+            f"<td>{_e(_when(ttf.raised_at, tz))}</td><td>{hours}</td></tr>"
         )
     parts.append("</table>")
 

@@ -281,6 +281,15 @@ def _fhir_auth(source: Any, secrets_file: Path | None) -> BearerAuth | BasicAuth
     return None
 
 
+def _poll_trigger(scheduler: Scheduler, source: str) -> Callable[[], None]:
+    """What a subscription ping calls: run that source's poll now."""
+
+    def trigger() -> None:
+        scheduler.trigger(f"poll:{source}")
+
+    return trigger
+
+
 def build_service(
     config: SiteConfig,
     *,
@@ -369,7 +378,7 @@ def build_service(
         site_tz=config.zone(),
         metrics=metrics,
         guard=guard,
-        poll_now={name: (lambda name=name: scheduler.trigger(f"poll:{name}")) for name in pollers},
+        poll_now={name: _poll_trigger(scheduler, name) for name in pollers},
     )
     app = create_app(
         config, db, pipeline, clock=clock, security=web_security(config, secrets_file), context=ctx

@@ -11,7 +11,7 @@ so a correction of any one reading finds every sample it touched.
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
@@ -165,7 +165,7 @@ _STORED_COLUMNS = (
 )
 
 
-def _decoded(conn: Connection, rows: list[Any]) -> dict[str, Derivation]:
+def _decoded(conn: Connection, rows: Sequence[Any]) -> dict[str, Derivation]:
     """The Derivation for each row's fingerprint, reading in full only rows not seen."""
     found: dict[str, Derivation] = {}
     for r in rows:  # one get each: another thread may empty the cache meanwhile

@@ -30,7 +30,7 @@ from monitor.engine.model import (
     Status,
 )
 
-Row = Mapping[str, Any]
+Row = Mapping[Any, Any]  # SQLAlchemy RowMapping, or any plain mapping of column names
 
 # --- small pieces -------------------------------------------------------------------
 

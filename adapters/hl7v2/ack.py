@@ -113,7 +113,8 @@ def _looks_like_version(version: str) -> bool:
 
 def escape_text(text: str, header: Header) -> str:
     """Escape free text for an HL7 field (HL7 v2 section 2.7 escape sequences)."""
-    comp, rep, esc, sub = header.encoding_chars[:4]
+    chars = header.encoding_chars
+    comp, rep, esc, sub = chars[0], chars[1], chars[2], chars[3]
     replacements = [(esc, f"{esc}E{esc}"), (header.field_sep, f"{esc}F{esc}"),
                     (comp, f"{esc}S{esc}"), (sub, f"{esc}T{esc}"), (rep, f"{esc}R{esc}")]
     out = []

@@ -231,7 +231,8 @@ def parse_dtm(text: str, site_tz: tzinfo) -> datetime:
         zone: tzinfo = timezone(-offset if sign == "-" else offset)
     else:
         zone = site_tz
-    return naive.replace(tzinfo=zone).astimezone(UTC)
+    when: datetime = naive.replace(tzinfo=zone).astimezone(UTC)
+    return when
 
 
 def _parse_date(text: str) -> date | None:
