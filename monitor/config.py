@@ -292,6 +292,10 @@ class MllpSource(_Section):
     host: str = "127.0.0.1"
     port: int = Field(default=2575, ge=1, le=65535)
     max_message_bytes: int = Field(default=1_048_576, ge=1024, le=64 * 1_048_576)
+    #: A connection with no data for this long is closed (the sender reconnects).
+    idle_timeout_s: float = Field(default=300.0, gt=0, le=86_400)
+    #: More open connections than this are refused at once.
+    max_connections: int = Field(default=64, ge=1, le=10_000)
     tls_cert: Path | None = None
     tls_key: Path | None = None
     tls_client_ca: Path | None = None

@@ -396,6 +396,8 @@ def build_service(
             port=mllp.port,
             max_message_bytes=mllp.max_message_bytes,
             ssl=_mllp_ssl(config),
+            read_timeout=mllp.idle_timeout_s,
+            max_connections=mllp.max_connections,
         )
     return service
 

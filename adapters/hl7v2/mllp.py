@@ -56,6 +56,7 @@ class MllpListener:
         max_message_bytes: int = 10_000_000,
         ssl: ssl_module.SSLContext | None = None,
         read_timeout: float = 300,
+        max_connections: int = 64,
     ) -> None:
         self._on_message = on_message
         self._host = host
@@ -63,6 +64,7 @@ class MllpListener:
         self._max_message_bytes = max_message_bytes
         self._ssl = ssl
         self._read_timeout = read_timeout
+        self._max_connections = max_connections
         self._server: asyncio.Server | None = None
         self._connections: dict[asyncio.Task[None], bool] = {}  # task -> busy with a message
         self._stopping = False
@@ -94,8 +96,19 @@ class MllpListener:
     async def _serve(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
         task = asyncio.current_task()
         assert task is not None  # always set inside a running task
-        self._connections[task] = False
         peer = writer.get_extra_info("peername")
+        if len(self._connections) >= self._max_connections:
+            # A lab system holds a few connections; hundreds mean a fault or an attack.
+            # Refusing the extra one keeps file handles for the senders that matter.
+            log.warning("MLLP %s: %d connections open, refusing another", peer,
+                        len(self._connections))
+            writer.close()
+            try:
+                await writer.wait_closed()
+            except (ConnectionError, ssl_module.SSLError):
+                pass
+            return
+        self._connections[task] = False
         framer = MllpFramer(self._max_message_bytes)
         try:
             while not self._stopping:

@@ -233,6 +233,35 @@ def test_an_idle_connection_is_closed_after_the_read_timeout(serve) -> None:  # 
         assert sock.recv(10) == b""  # closed by the listener, not by us
 
 
+def test_connections_beyond_the_limit_are_refused_and_the_others_still_answered(
+    serve,  # noqa: ANN001
+) -> None:
+    running = serve(Store(), max_connections=2)
+    held = [connect(running.port), connect(running.port)]
+    try:
+        # A third connection is closed at once, without an answer.
+        with connect(running.port) as extra:
+            assert extra.recv(10) == b""
+        # The two held connections are still served.
+        for sock in held:
+            sock.sendall(VT + s.abg("LIM1").encode() + FS + CR)
+            assert validated(read_ack(sock, bytearray())).msa.msa_1.to_er7() == "AA"
+    finally:
+        for sock in held:
+            sock.close()
+    # Once they are gone, a new connection is taken again.
+    deadline = time.monotonic() + TIMEOUT
+    while True:
+        try:
+            ack = exchange(running.port, s.abg("LIM2").encode())
+            assert ack.msa.msa_1.to_er7() == "AA"  # type: ignore[attr-defined]
+            break
+        except (AssertionError, ConnectionError):
+            if time.monotonic() > deadline:
+                raise
+            time.sleep(0.05)
+
+
 def test_mllp_over_tls_with_a_self_signed_certificate(serve, tmp_path) -> None:  # noqa: ANN001
     import shutil
     import ssl
