@@ -130,6 +130,8 @@ def _msh18(raw: bytes) -> str:
     if start < 0 or len(text) < start + 5:
         return ""
     line = re.split(r"[\r\n]", text[start:], maxsplit=1)[0]
+    if len(line) < 4:  # "MSH" then a line break: no field separator to split on
+        return ""
     fields = line.split(line[3])
     return fields[17].split("~")[0].split("^")[0].strip() if len(fields) > 17 else ""
 

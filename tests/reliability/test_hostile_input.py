@@ -149,7 +149,10 @@ def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[ServicePr
     text = site_toml(db_url=db_url, http_port=http_port, mllp_port=mllp_port,
                      webhook_url=receiver.url)
     text = text.replace(f"port = {mllp_port}\n",
-                        f"port = {mllp_port}\nmax_message_bytes = {MAX_MESSAGE_BYTES}\n")
+                        f"port = {mllp_port}\nmax_message_bytes = {MAX_MESSAGE_BYTES}\n"
+                        # above the 150 held connections below; the cap itself is
+                        # tested in tests/integration/test_mllp.py
+                        "max_connections = 200\n")
     config = tmp / "site.toml"
     config.write_text(text)
     service = ServiceProcess(config, http_port, tmp / "service.log")

@@ -417,6 +417,14 @@ def test_bytes_that_are_not_utf8_without_msh18_are_refused_with_ae() -> None:
     assert caught.value.ack_code == "AE" and "UTF-8" in caught.value.reason
 
 
+def test_a_bare_msh_line_with_bytes_that_are_not_utf8_is_refused_with_ae() -> None:
+    # Found by the atheris run: "MSH" straight followed by a line break has no field
+    # separator, and looking for MSH-18 must not fail on it.
+    with pytest.raises(Hl7Error) as caught:
+        parse(b"MSH\r\xff\x00\x00PID|1")
+    assert caught.value.ack_code == "AE"
+
+
 def test_lf_and_crlf_segment_separators_are_accepted() -> None:
     for sep in ("\n", "\r\n"):
         assert len(parse(s.ABG_251.replace("\r", sep)).readings) == 5
