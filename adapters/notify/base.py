@@ -18,6 +18,7 @@ Exception tree (both root in the engine's ``MonitorError``)::
 """
 
 import hashlib
+import logging
 import smtplib
 import ssl
 from collections.abc import Iterator, Mapping
@@ -215,3 +216,19 @@ def log_ref(notification: Notification) -> str:
     digest of the idempotency key (recomputable from the outbox row) instead.
     """
     return hashlib.sha256(notification.idempotency_key.encode("utf-8")).hexdigest()[:12]
+
+
+def log_outcome(
+    log: logging.Logger, done: str, notification: Notification, result: DeliveryResult
+) -> None:
+    """One line per delivery attempt, the same for every channel: what happened, the
+    event, the patient's display key (never the patient key) and a digest reference."""
+    log.log(
+        logging.INFO if result.ok else logging.WARNING,
+        "%s %s flag for %s (ref %s): %s",
+        done if result.ok else ("will retry" if result.retryable else "gave up on"),
+        notification.event,
+        notification.patient_display,
+        log_ref(notification),
+        result.detail,
+    )

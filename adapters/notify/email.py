@@ -16,7 +16,7 @@ from adapters.notify import render
 from adapters.notify.base import (
     DeliveryFailed,
     DeliveryResult,
-    log_ref,
+    log_outcome,
     map_smtp_errors,
     parse_options,
     read_secret,
@@ -150,15 +150,7 @@ class EmailChannel:
             result = failed.as_result()
         else:
             result = self._partial(refused, what)
-        self._log.log(
-            logging.INFO if result.ok else logging.WARNING,
-            "%s %s flag for %s (ref %s): %s",
-            "sent" if result.ok else ("will retry" if result.retryable else "gave up on"),
-            notification.event,
-            notification.patient_display,
-            log_ref(notification),
-            result.detail,
-        )
+        log_outcome(self._log, "sent", notification, result)
         return result
 
     def _partial(self, refused: dict[str, tuple[int, bytes]], what: str) -> DeliveryResult:

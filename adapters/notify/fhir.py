@@ -29,7 +29,7 @@ from adapters.notify.base import (
     DeliveryFailed,
     DeliveryResult,
     http_status_result,
-    log_ref,
+    log_outcome,
     map_fhir_model_errors,
     map_http_errors,
     parse_options,
@@ -193,15 +193,7 @@ class FhirChannel:
                 result = self._put(communication)
         except DeliveryFailed as failed:
             result = failed.as_result()
-        self._log.log(
-            logging.INFO if result.ok else logging.WARNING,
-            "%s %s flag for %s (ref %s): %s",
-            "wrote" if result.ok else ("will retry" if result.retryable else "gave up on"),
-            notification.event,
-            notification.patient_display,
-            log_ref(notification),
-            result.detail,
-        )
+        log_outcome(self._log, "wrote", notification, result)
         return result
 
     def close(self) -> None:

@@ -15,7 +15,7 @@ from adapters.notify.base import (
     DeliveryFailed,
     DeliveryResult,
     http_status_result,
-    log_ref,
+    log_outcome,
     map_http_errors,
     parse_options,
     read_secret,
@@ -129,15 +129,7 @@ class WebhookChannel:
             result = failed.as_result()
         else:
             result = http_status_result(response.status_code, what)
-        self._log.log(
-            logging.INFO if result.ok else logging.WARNING,
-            "%s %s flag for %s (ref %s): %s",
-            "sent" if result.ok else ("will retry" if result.retryable else "gave up on"),
-            notification.event,
-            notification.patient_display,
-            log_ref(notification),
-            result.detail,
-        )
+        log_outcome(self._log, "sent", notification, result)
         return result
 
     def close(self) -> None:
