@@ -1,43 +1,61 @@
-"""One path for every reading: stored -> paired -> derived -> rules -> alerts -> outbox.
+"""One path for every reading: stored -> patient timeline -> derivations and flags ->
+outbox.
 
-The live service (MLLP listener, FHIR poller, subscription hook, file ingest) and
-replay call the same ``Pipeline.accept``. Each call is one database transaction: when
-it returns, the readings, the derivations, the alert changes and the notifications
-they caused are all committed, or none is (so an MLLP ACK sent after it is honest).
+The live service (MLLP listener, FHIR poller, subscription hook) calls
+``Pipeline.accept`` for each unit of input; historical loads (``monitor.history``:
+file ingest, replay, backfill) store everything first and then ``process_pending``
+steps each patient's timeline once. Both step the same pure
+``monitor.engine.timeline.PatientTimeline`` and write the same rows.
 
-Time is an argument (``now``): the service passes the wall clock, replay the recorded
-time, so windows, cooldowns and escalations behave the same in both.
+Each ``accept`` call is one database transaction: when it returns, the readings, the
+derivations, the flag changes and the notifications they caused are all committed, or
+none is (so an MLLP ACK sent after it is honest).
+
+Clinical time drives every rule: the timeline judges in known-time order on draw
+times. ``now`` (``seen_at``) is only when the work is done: it stamps the outbox and
+decides whether a flag is historical (data older than ``historical_after``).
+
+Live, each active patient's timeline stays in a bounded in-memory cache, so a unit
+costs no re-reads; the patient's ``revision`` in storage tells when another process
+(or an acknowledgement) changed it, and the cache then restores it.
 """
 
 from __future__ import annotations
 
 import logging
 import re
-from collections import Counter
-from collections.abc import Sequence
+from collections import Counter, OrderedDict
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta, tzinfo
 
 from sqlalchemy.engine import Connection
 
 from adapters.notify.routing import route
-from monitor.engine import alerts, rules
+from monitor.engine import alerts
 from monitor.engine.alerts import AlertSettings
-from monitor.engine.derive import DerivationSettings, derive, derive_spo2_series
-from monitor.engine.model import Alert, AlertEvent, Derivation, FiO2Source, Kind, Reading
-from monitor.engine.pairing import PairingSettings, context_window, influence_window, pair
+from monitor.engine.derive import DerivationSettings
+from monitor.engine.model import Alert, AlertEvent, Derivation, Reading
+from monitor.engine.pairing import PairingSettings
 from monitor.engine.rules import RuleSet, default_rules
+from monitor.engine.timeline import (
+    FlagChange,
+    PatientTimeline,
+    StepResult,
+    TimelineSettings,
+    time_problem,
+)
 from monitor.engine.wording import notification_for, patient_display
 from storage import alerts as alerts_store
 from storage import derivations as derivations_store
 from storage import outbox
 from storage import quarantine as quarantine_store
+from storage import timelines as timelines_store
 from storage.db import Database
 from storage.locks import patient_lock
 from storage.readings import (
     get_patient,
     purge_raw_readings,
-    readings_for_patient,
     store_readings,
     upsert_patient,
 )
@@ -85,6 +103,8 @@ class BatchReport:
     retracted_derivations: int = 0
     alert_events: list[AlertEvent] = field(default_factory=list)
     notifications: int = 0
+    #: Flag events recorded as historical (never sent).
+    historical_events: int = 0
 
     def merge(self, other: BatchReport) -> None:
         self.read += other.read
@@ -98,6 +118,7 @@ class BatchReport:
         self.retracted_derivations += other.retracted_derivations
         self.alert_events.extend(other.alert_events)
         self.notifications += other.notifications
+        self.historical_events += other.historical_events
 
 
 _WHERE = re.compile(r"^(message \S+ )?[\w.\-/\[\]#]+( (line|byte) \d+)?$")
@@ -139,6 +160,28 @@ class PipelineSettings:
     #: How far back the rules look (P/F fall: 24 h).
     history: timedelta = timedelta(hours=24)
     retention: timedelta | None = None
+    #: A flag on a sample drawn longer than this before it is computed is historical:
+    #: recorded and shown, never sent (common practice, no source: a gas older than a
+    #: few hours no longer describes the patient in front of the nurse).
+    historical_after: timedelta | None = timedelta(hours=6)
+    #: A reading drawn more than this after it was known or received cannot be right
+    #: (clocks of analysers and interfaces differ by minutes, not more).
+    draw_tolerance: timedelta = timedelta(minutes=10)
+    #: A reading drawn longer than this before it was received is refused as absurd.
+    max_draw_age: timedelta = timedelta(days=365 * 30)
+    #: Patients whose timelines the live path keeps in memory.
+    cache_size: int = 1024
+
+    def timeline(self, *, simulate_escalation: bool = False) -> TimelineSettings:
+        return TimelineSettings(
+            pairing=self.pairing,
+            derivation=self.derivation,
+            rules=self.rules,
+            alerts=self.alerts,
+            history=self.history,
+            historical_after=self.historical_after,
+            simulate_escalation=simulate_escalation,
+        )
 
 
 class Pipeline:
@@ -147,32 +190,36 @@ class Pipeline:
     def __init__(self, db: Database, settings: PipelineSettings | None = None) -> None:
         self.db = db
         self.settings = settings or PipelineSettings()
+        self._timeline_settings = self.settings.timeline()
+        self._cache: OrderedDict[str, tuple[int, PatientTimeline]] = OrderedDict()
 
-    # --- the main path ------------------------------------------------------------------
+    # --- the live path ------------------------------------------------------------------
 
     def accept(self, inbound: Inbound, *, now: datetime) -> BatchReport:
         """Store ``inbound`` and do everything that follows, in one transaction.
 
-        Rejections are quarantined with their reasons, readings stored idempotently,
-        the samples they can affect re-paired and re-derived, the rules judged on new
-        derivations, alert changes and their notifications written. When this returns
-        all of it is committed.
+        Rejections are quarantined with their reasons, readings with impossible times
+        refused, the rest stored idempotently and stepped through their patients'
+        timelines; derivations, flag changes and their notifications are written.
+        ``now``: when this happens (the wall clock live). When this returns all of it
+        is committed.
         """
-        with self.db.begin() as conn:
-            return self._accept_in(conn, inbound, now)
+        try:
+            with self.db.begin() as conn:
+                return self._accept_in(conn, inbound, now)
+        except BaseException:
+            # what the cache stepped was not committed
+            self._cache.clear()
+            raise
 
     def accept_many(self, units: Sequence[tuple[Inbound, datetime]]) -> list[BatchReport]:
-        """``accept`` for several units in one transaction, each judged at its own ``now``.
-
-        The same as calling ``accept(inbound, now=now)`` for each pair in order, except
-        that everything is committed together (or, if any unit fails, none of it): for
-        replay and bulk loads, where a commit per unit costs more than the unit. Returns
-        one report per unit, in order. The transaction holds every patient lock its
-        units take until it commits, so keep batches short where other processes write
-        to the same PostgreSQL.
-        """
-        with self.db.begin() as conn:
-            return [self._accept_in(conn, inbound, now) for inbound, now in units]
+        """``accept`` for several units in one transaction, each at its own ``now``."""
+        try:
+            with self.db.begin() as conn:
+                return [self._accept_in(conn, inbound, now) for inbound, now in units]
+        except BaseException:
+            self._cache.clear()
+            raise
 
     def _accept_in(self, conn: Connection, inbound: Inbound, now: datetime) -> BatchReport:
         report = BatchReport(
@@ -182,18 +229,202 @@ class Pipeline:
         )
         for rejected in inbound.rejected:
             self._quarantine(conn, rejected, now, report)
-        if inbound.readings:
-            result = store_readings(conn, inbound.readings)
-            report.stored += result.stored
-            report.duplicates += result.duplicates
-            new_birth_dates = self._note_patients(conn, result.new)
-            for patient_key, readings in sorted(_by_patient(result.new).items()):
-                patient_lock(conn, patient_key)
-                self._follow_up(
-                    conn, patient_key, readings, result.retracted, now, report,
-                    new_birth_date=patient_key in new_birth_dates,
-                )
+        good = self._screen_times(conn, inbound.readings, now, report)
+        if not good:
+            return report
+        self.note_patients(conn, good)
+        by_patient = _by_patient(good)
+        timelines: dict[str, tuple[int, PatientTimeline]] = {}
+        for patient_key in sorted(by_patient):
+            patient_lock(conn, patient_key)
+            timelines[patient_key] = self._cached(conn, patient_key, by_patient[patient_key])
+        result = store_readings(conn, good, processed=True)
+        report.stored += result.stored
+        report.duplicates += result.duplicates
+        for patient_key, new in sorted(_by_patient(result.new).items()):
+            _, timeline = timelines[patient_key]
+            step = timeline.advance(new, seen_at=now)
+            self.write_step(conn, patient_key, step, now, report)
+            revision = timelines_store.bump_revision(conn, patient_key)
+            self._remember(patient_key, revision, timeline)
         return report
+
+    def _cached(
+        self, conn: Connection, patient_key: str, new: Sequence[Reading]
+    ) -> tuple[int, PatientTimeline]:
+        """The patient's timeline, from the cache when storage has not changed it since
+        and it holds what ``new`` needs; else restored from storage."""
+        revision = timelines_store.revision(conn, patient_key) or 0
+        held = self._cache.get(patient_key)
+        if held is not None:
+            cached_revision, timeline = held
+            needs = timeline.needs_from(new)
+            if cached_revision == revision and (
+                timeline.covers_from is None or timeline.covers_from <= needs
+            ):
+                self._cache.move_to_end(patient_key)
+                return held
+        timeline = self.restore(conn, patient_key, new)
+        return revision, timeline
+
+    def restore(
+        self, conn: Connection, patient_key: str, new: Sequence[Reading]
+    ) -> PatientTimeline:
+        """The patient's timeline as storage holds it, from far enough back for ``new``
+        (and a day more, so the next units need no restore)."""
+        probe = PatientTimeline(patient_key, self._timeline_settings)
+        since = probe.needs_from(new) - timedelta(days=1) if new else _NEVER
+        state = timelines_store.timeline_state(conn, patient_key, since)
+        return PatientTimeline.restore(
+            patient_key,
+            self._timeline_settings,
+            readings=state.readings,
+            derivations=state.derivations,
+            open_alerts=state.open_alerts,
+            last_closed=state.last_closed,
+            birth_date=state.birth_date,
+            instant=state.instant,
+            covers_from=since,
+        )
+
+    def _remember(self, patient_key: str, revision: int, timeline: PatientTimeline) -> None:
+        if timeline.instant is not None:
+            # keep what the next unit can need (rules, pairing and a margin)
+            timeline.forget_before(
+                max(d.drawn_at for d in timeline.derivations.values())
+                - self.settings.history - timedelta(days=2)
+                if timeline.derivations else timeline.instant - timedelta(days=3)
+            )
+        self._cache[patient_key] = (revision, timeline)
+        self._cache.move_to_end(patient_key)
+        while len(self._cache) > self.settings.cache_size:
+            self._cache.popitem(last=False)
+
+    # --- steps shared by the live and historical paths -----------------------------------
+
+    def _screen_times(
+        self, conn: Connection, readings: Sequence[Reading], now: datetime, report: BatchReport
+    ) -> list[Reading]:
+        """Readings whose times can be right; the rest quarantined with the reason."""
+        good: list[Reading] = []
+        births: dict[str, date | None] = {}
+        for r in readings:
+            born = r.birth_date
+            if born is None:
+                if r.patient_key not in births:
+                    patient = get_patient(conn, r.patient_key)
+                    births[r.patient_key] = None if patient is None else patient.birth_date
+                born = births[r.patient_key]
+            problem = time_problem(
+                r,
+                tolerance=self.settings.draw_tolerance,
+                max_age=self.settings.max_draw_age,
+                birth_date=born,
+            )
+            if problem is None:
+                good.append(r)
+                continue
+            self._quarantine(
+                conn,
+                Rejected(f"reading:{r.source_system}", _reading_text(r), problem),
+                now,
+                report,
+            )
+        return good
+
+    def note_patients(self, conn: Connection, readings: Sequence[Reading]) -> None:
+        """Keep what the readings say of each patient (birth date, location, display)."""
+        latest: dict[str, Reading] = {}
+        born: dict[str, date] = {}
+        for r in readings:
+            if r.patient_key not in latest or r.effective_at >= latest[r.patient_key].effective_at:
+                latest[r.patient_key] = r
+            if r.birth_date:
+                born[r.patient_key] = r.birth_date
+        for key, r in latest.items():
+            upsert_patient(
+                conn, key, birth_date=born.get(key), location=r.location,
+                display_key=patient_display(key, r.location, self.settings.display_key),
+                at=r.effective_at,
+            )
+
+    def write_step(
+        self,
+        conn: Connection,
+        patient_key: str,
+        step: StepResult,
+        seen_at: datetime,
+        report: BatchReport,
+    ) -> None:
+        """Write what a timeline step changed: derivation versions, flag changes, their
+        audit events and (unless historical) their notifications."""
+        for version in step.derivations:
+            if version.retracted:
+                report.retracted_derivations += len(
+                    derivations_store.retract_derivations(
+                        conn, patient_key, [version.derivation.sample_id],
+                        at=version.at, reason=version.reason,
+                    )
+                )
+                continue
+            saved = derivations_store.save_derivation(
+                conn, version.derivation, at=version.at, reason=version.reason
+            )
+            if saved.changed:
+                report.derivations += 1
+        for change in step.flags:
+            self._apply(conn, change, seen_at, report)
+
+    def _apply(
+        self, conn: Connection, change: FlagChange, seen_at: datetime, report: BatchReport
+    ) -> None:
+        """Save a flag change, its audit events and its notifications together."""
+        alert = change.decision.alert
+        if alert is None:
+            return
+        alerts_store.save_alert(conn, alert)
+        alerts_store.append_alert_events(conn, change.decision.events)
+        report.alert_events.extend(change.decision.events)
+        if change.historical:
+            report.historical_events += len(change.decision.events)
+            return
+        self._notify(conn, alert, change.decision.notify, change.derivation, change.numbers,
+                     at=change.at, seen_at=seen_at, report=report)
+
+    def _notify(
+        self,
+        conn: Connection,
+        alert: Alert,
+        events: Sequence[str],
+        derivation: Derivation | None,
+        numbers: dict[str, object],
+        *,
+        at: datetime,
+        seen_at: datetime,
+        report: BatchReport,
+    ) -> None:
+        if not events:
+            return
+        patient = get_patient(conn, alert.patient_key)
+        display = (patient.display_key if patient and patient.display_key else None) or (
+            patient_display(alert.patient_key, alert.location, self.settings.display_key)
+        )
+        routing = self.settings.routing
+        for event in events:
+            notification = notification_for(
+                alert, event, derivation, display_key=display, now=at, numbers=numbers,
+                tz=self.settings.site_tz,
+            )
+            channels = route(notification, routing.by_unit, routing.default, routing.escalation)
+            if channels:
+                outbox.enqueue(conn, notification, channels, at=min(at, seen_at))
+                report.notifications += len(channels)
+            log.info(
+                "flag %s %s: rule %s priority %s (%s)",
+                alert.alert_id, event, alert.rule, alert.priority.value, display,
+            )
+
+    # --- people and housekeeping ------------------------------------------------------
 
     def quarantine(self, rejected: Rejected, *, now: datetime) -> None:
         """Keep input that could not be read (a whole message the adapter refused)."""
@@ -207,20 +438,26 @@ class Pipeline:
             alert = alerts_store.get_alert(conn, alert_id)
             if alert is None:
                 raise LookupError(f"no flag with id {alert_id!r}")
+            patient_lock(conn, alert.patient_key)
             decision = alerts.acknowledge(alert, by, now)
-            self._apply(conn, decision, None, {}, now, BatchReport())
+            self._apply(conn, FlagChange(decision, None, {}, now), now, BatchReport())
+            timelines_store.bump_revision(conn, alert.patient_key)
             assert decision.alert is not None
             return decision.alert
 
     def escalate_due(self, *, now: datetime) -> list[AlertEvent]:
-        """Escalate medium and high flags left unacknowledged too long."""
+        """Escalate medium and high flags left unacknowledged too long (counted from
+        when each could first be seen); historical flags never escalate."""
         report = BatchReport()
         with self.db.begin() as conn:
+            live = [a for a in alerts_store.open_alerts(conn) if not a.historical]
             due = alerts.escalate_due(
-                alerts_store.open_alerts(conn), now, self.settings.alerts
+                [_seen(a) for a in live], now, self.settings.alerts
             )
             for decision in due:
-                self._apply(conn, decision, None, {}, now, report)
+                assert decision.alert is not None
+                self._apply(conn, FlagChange(decision, None, {}, now), now, report)
+                timelines_store.bump_revision(conn, decision.alert.patient_key)
         return report.alert_events
 
     def purge(self, *, now: datetime) -> int:
@@ -229,9 +466,9 @@ class Pipeline:
         if self.settings.retention is None:
             return 0
         with self.db.begin() as conn:
-            return purge_raw_readings(conn, now - self.settings.retention)
-
-    # --- steps ----------------------------------------------------------------------------
+            removed = purge_raw_readings(conn, now - self.settings.retention)
+        self._cache.clear()
+        return removed
 
     def _quarantine(
         self, conn: Connection, rejected: Rejected, now: datetime, report: BatchReport
@@ -244,258 +481,33 @@ class Pipeline:
         report.quarantine_reasons[_reason_key(rejected.reason)] += 1
         log.info("quarantined input from %s: %s", rejected.source, _reason_key(rejected.reason))
 
-    def _note_patients(self, conn: Connection, readings: Sequence[Reading]) -> set[str]:
-        """Keep what the readings say of each patient; return the patients whose birth
-        date is new (every sample's age may change)."""
-        latest: dict[str, Reading] = {}
-        born: dict[str, date] = {}
-        for r in readings:
-            if r.patient_key not in latest or r.effective_at >= latest[r.patient_key].effective_at:
-                latest[r.patient_key] = r
-            if r.birth_date:
-                born[r.patient_key] = r.birth_date
-        new_birth_dates: set[str] = set()
-        for key, r in latest.items():
-            if key in born:
-                known = get_patient(conn, key)
-                if known is None or known.birth_date != born[key]:
-                    new_birth_dates.add(key)
-            upsert_patient(
-                conn, key, birth_date=born.get(key), location=r.location,
-                display_key=patient_display(key, r.location, self.settings.display_key),
-                at=r.effective_at,
-            )
-        return new_birth_dates
 
-    def _follow_up(
-        self,
-        conn: Connection,
-        patient_key: str,
-        new: Sequence[Reading],
-        retracted_ids: Sequence[str],
-        now: datetime,
-        report: BatchReport,
-        *,
-        new_birth_date: bool = False,
-    ) -> None:
-        """Re-pair and re-derive what the new readings can change, then judge."""
-        ps = self.settings.pairing
-        windows = [_window(r, ps) for r in new]
-        before, after = context_window(ps)
-        lo = min(w[0] for w in windows)
-        hi = max(w[1] for w in windows)
-        if new_birth_date:  # a birth date can change the age of every recent sample
-            lo = min(lo, now - self.settings.history)
-            windows.append((lo, hi))
-        panels = {r.panel_id for r in new if r.panel_id}
-        context = readings_for_patient(conn, patient_key, lo - before, hi + after)
-        retracted_here = {r.logical_id for r in new if r.logical_id in set(retracted_ids)}
-        samples = [
-            r for r in context
-            if r.kind is Kind.PAO2
-            and (r.panel_id in panels or any(s <= r.effective_at <= e for s, e in windows))
-        ]
-        spo2s = [
-            r for r in context
-            if r.kind is Kind.SPO2 and any(s <= r.effective_at <= e for s, e in windows)
-        ]
-        # What was judged before this call (read before anything is withdrawn or saved;
-        # only needed when there is something to derive).
-        latest_gas: datetime | None = None
-        latest_estimate: datetime | None = None
-        if samples or spo2s:
-            latest_gas, latest_estimate = self._latest_drawn(
-                conn, patient_key, since=lo - self.settings.history
-            )
-
-        self._withdraw(conn, patient_key, retracted_here, now, report)
-
-        changed: list[Derivation] = []
-        for sample in samples:
-            derivation = derive(pair(sample, context, ps), self.settings.derivation)
-            saved = derivations_store.save_derivation(
-                conn, derivation, at=now, reason="new or changed readings"
-            )
-            if saved.changed:
-                report.derivations += 1
-                changed.append(derivation)
-        for derivation in derive_spo2_series(spo2s, context, self.settings.derivation, ps):
-            saved = derivations_store.save_derivation(
-                conn, derivation, at=now, reason="SpO2 between gases"
-            )
-            if saved.changed:
-                report.derivations += 1
-                changed.append(derivation)
-
-        # The rules judge the present: a sample drawn before the newest one of its kind
-        # already judged (a late arrival) is derived and kept, but raises nothing itself.
-        judged = [
-            d for d in sorted(changed, key=lambda d: (d.drawn_at, d.sample_id))
-            if not (
-                (latest := latest_estimate if d.estimated else latest_gas) is not None
-                and d.drawn_at < latest
-            )
-        ]
-        if not judged:
-            return
-        # The stored derivations every judgement below may look back on, read once
-        # (judging changes flags, never derivations, so each judgement's own window
-        # is a slice of this).
-        stored = [
-            s.derivation
-            for s in derivations_store.current_derivations(
-                conn, patient_key, since=judged[0].drawn_at - self.settings.history,
-                until=judged[-1].drawn_at,
-            )
-            if not s.retracted
-        ]
-        for derivation in judged:
-            self._judge(conn, derivation, context, stored, now, report)
-
-    def _latest_drawn(
-        self, conn: Connection, patient_key: str, *, since: datetime
-    ) -> tuple[datetime | None, datetime | None]:
-        """Draw time of the newest current gas derivation and of the newest estimate."""
-        return derivations_store.latest_drawn(conn, patient_key, since=since)
-
-    def _withdraw(
-        self,
-        conn: Connection,
-        patient_key: str,
-        retracted: set[str],
-        now: datetime,
-        report: BatchReport,
-    ) -> None:
-        """A withdrawn result takes down what stood on it: its derivations and the open
-        flags raised on those samples (the retraction is notified too)."""
-        if not retracted:
-            return
-        samples: set[str] = set()
-        for logical_id in retracted:
-            samples.update(derivations_store.samples_using_reading(conn, logical_id))
-            samples.add(logical_id)
-        for alert in alerts_store.open_alerts(conn, patient_key):
-            if alert.sample_id in samples:
-                decision = alerts.retract(
-                    alert, now, "a result this flag stood on was withdrawn", alert.sample_id
-                )
-                self._apply(conn, decision, None, {}, now, report)
-        withdrawn = [s for s in samples if s in retracted]  # the withdrawn samples themselves
-        if withdrawn:
-            report.retracted_derivations += len(
-                derivations_store.retract_derivations(
-                    conn, patient_key, withdrawn, at=now, reason="result withdrawn"
-                )
-            )
-
-    def _judge(
-        self,
-        conn: Connection,
-        derivation: Derivation,
-        context: Sequence[Reading],
-        stored: Sequence[Derivation],
-        now: datetime,
-        report: BatchReport,
-    ) -> None:
-        history = self._history(derivation, context, stored)
-        outcomes = rules.evaluate(
-            self.settings.rules, derivation, history, max(now, derivation.drawn_at)
-        )
-        open_by_rule = {a.rule: a for a in alerts_store.open_alerts(conn, derivation.patient_key)}
-        for outcome in outcomes:
-            open_alert = open_by_rule.get(outcome.rule_id)
-            if open_alert is not None and open_alert.sample_id == derivation.sample_id and not (
-                outcome.fired and outcome.priority is open_alert.priority
-            ):
-                # The sample this flag stands on was derived anew (a correction, a late
-                # input) and no longer says what the flag says: take the flag back, and
-                # let the new values raise whatever they support.
-                decision = alerts.retract(
-                    open_alert, now, "the result behind this flag changed", derivation.sample_id
-                )
-                self._apply(conn, decision, derivation, outcome.numbers, now, report)
-                open_alert = None
-            if not (outcome.fired or outcome.cleared):
-                continue
-            if outcome.cleared and open_alert is None:
-                continue  # nothing open to resolve
-            last_closed = (
-                alerts_store.last_closed_alert(conn, derivation.patient_key, outcome.rule_id)
-                if open_alert is None
-                else None
-            )
-            decision = alerts.apply_outcome(
-                open_alert, last_closed, outcome, derivation, now, self.settings.alerts
-            )
-            self._apply(conn, decision, derivation, outcome.numbers, now, report)
-
-    def _history(
-        self, derivation: Derivation, context: Sequence[Reading], loaded: Sequence[Derivation]
-    ) -> rules.PatientHistory:
-        """The patient's history as the rules see it for ``derivation``: current, not
-        retracted derivations drawn in the history window up to its draw (from
-        ``loaded``, oldest first), and the FiO2 points charted or used."""
-        since = derivation.drawn_at - self.settings.history
-        stored = [d for d in loaded if since <= d.drawn_at <= derivation.drawn_at]
-        points = [
-            rules.FiO2Point(r.effective_at, r.value, FiO2Source.CHARTED, r.logical_id)
-            for r in context
-            if r.kind is Kind.FIO2 and r.value is not None and r.effective_at <= derivation.drawn_at
-        ]
-        points += [
-            rules.FiO2Point(d.drawn_at, d.fio2, d.fio2_source, d.sample_id)
-            for d in stored
-            if d.fio2 is not None
-        ]
-        return rules.PatientHistory(
-            derivations=[d for d in stored if not d.estimated],
-            fio2_points=sorted(points, key=lambda p: p.at),
-            estimated=[d for d in stored if d.estimated],
-        )
-
-    def _apply(
-        self,
-        conn: Connection,
-        decision: alerts.Decision,
-        derivation: Derivation | None,
-        numbers: dict[str, object],
-        now: datetime,
-        report: BatchReport,
-    ) -> None:
-        """Save an alert change, its audit events and its notifications together."""
-        alert = decision.alert
-        if alert is None:
-            return
-        alerts_store.save_alert(conn, alert)
-        alerts_store.append_alert_events(conn, decision.events)
-        report.alert_events.extend(decision.events)
-        patient = get_patient(conn, alert.patient_key)
-        display = (patient.display_key if patient and patient.display_key else None) or (
-            patient_display(alert.patient_key, alert.location, self.settings.display_key)
-        )
-        for event in decision.notify:
-            notification = notification_for(
-                alert, event, derivation, display_key=display, now=now, numbers=numbers,
-                tz=self.settings.site_tz,
-            )
-            routing = self.settings.routing
-            channels = route(notification, routing.by_unit, routing.default, routing.escalation)
-            if channels:
-                outbox.enqueue(conn, notification, channels, at=now)
-                report.notifications += len(channels)
-            log.info(
-                "flag %s %s: rule %s priority %s (%s)",
-                alert.alert_id, event, alert.rule, alert.priority.value, display,
-            )
+_NEVER = datetime(1900, 1, 1, tzinfo=UTC)
 
 
-def _by_patient(readings: Sequence[Reading]) -> dict[str, list[Reading]]:
+def _seen(alert: Alert) -> Alert:
+    """The flag as escalation sees it: its clock starts when it could first be seen."""
+    if alert.seen_at is None:
+        return alert
+    fields = _fields(alert)
+    fields["updated_at"] = alert.seen_at
+    return Alert(**fields)
+
+
+def _fields(alert: Alert) -> dict[str, object]:
+    return {name: getattr(alert, name) for name in Alert.__dataclass_fields__}
+
+
+def _reading_text(r: Reading) -> str:
+    return (
+        f"{r.kind} {r.original_value or r.value} {r.original_unit or r.unit} "
+        f"drawn {r.effective_at.isoformat()} known {r.known.isoformat()} "
+        f"received {r.received_at.isoformat()} ({r.delivery_id})"
+    )
+
+
+def _by_patient(readings: Iterable[Reading]) -> dict[str, list[Reading]]:
     grouped: dict[str, list[Reading]] = {}
     for r in readings:
         grouped.setdefault(r.patient_key, []).append(r)
     return grouped
-
-
-def _window(r: Reading, settings: PairingSettings) -> tuple[datetime, datetime]:
-    before, after = influence_window(r.kind, settings)
-    return r.effective_at - before, r.effective_at + after

@@ -67,11 +67,19 @@ class Patient:
 
 
 def _precedence(row: Any) -> tuple[datetime, int, str]:
-    return (row.received_at, _STATUS_RANK[row.status], row.delivery_id)
+    # The same order as monitor.engine.timeline.precedence: the later known delivery
+    # wins whatever order they were received in.
+    known = row.known_at if row.known_at is not None else row.received_at
+    return (known, _STATUS_RANK[row.status], row.delivery_id)
 
 
-def store_readings(conn: Connection, batch: Iterable[Reading]) -> StoreResult:
-    """Store a batch of readings: idempotent by delivery, corrections supersede."""
+def store_readings(
+    conn: Connection, batch: Iterable[Reading], *, processed: bool = True
+) -> StoreResult:
+    """Store a batch of readings: idempotent by delivery, corrections supersede.
+
+    ``processed=False`` (historical loads) marks them as not yet stepped through the
+    patient's timeline (``storage.timelines.unprocessed_patients``)."""
     unique: dict[str, Reading] = {}
     given = 0
     for reading in batch:
@@ -92,7 +100,7 @@ def store_readings(conn: Connection, batch: Iterable[Reading]) -> StoreResult:
     # (the common case): no update needed afterwards.
     deliveries = Counter(r.logical_id for r in unique.values())
     first = {lid for lid, n in deliveries.items() if n == 1 and lid not in known}
-    inserted = _insert_new(conn, list(unique.values()), first)
+    inserted = _insert_new(conn, list(unique.values()), first, processed)
     stored = {row.delivery_id for row in inserted}
     new = [r for r in unique.values() if r.delivery_id in stored]
     by_logical: dict[str, list[Any]] = {}
@@ -117,11 +125,14 @@ _ROWS_FOR = sa.select(readings).where(
 _CURRENT_ROWS_FOR = _ROWS_FOR.where(readings.c.is_current)
 
 
-def _insert_new(conn: Connection, batch: list[Reading], current: set[str]) -> list[Any]:
+def _insert_new(
+    conn: Connection, batch: list[Reading], current: set[str], processed: bool = True
+) -> list[Any]:
     """Insert the deliveries not stored yet; returns the inserted rows. Those of results
     in ``current`` are inserted as current, the rest wait for ``_choose_current``."""
     rows = [
-        reading_to_row(r) | {"is_current": r.logical_id in current, "superseded_at": None}
+        reading_to_row(r)
+        | {"is_current": r.logical_id in current, "superseded_at": None, "processed": processed}
         for r in batch
     ]
     statement = _INSERTS.get(conn.dialect.name)

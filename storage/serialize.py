@@ -92,6 +92,7 @@ def reading_to_row(reading: Reading) -> dict[str, Any]:
         "status": reading.status.value,
         "effective_at": reading.effective_at,
         "received_at": reading.received_at,
+        "known_at": reading.known_at,
         "source_system": reading.source_system,
         "panel_id": reading.panel_id,
         "from_ventilator": reading.from_ventilator,
@@ -124,6 +125,7 @@ def row_to_reading(row: Row) -> Reading:
         encounter_id=row["encounter_id"],
         location=row_to_location(row),
         birth_date=row["birth_date"],
+        known_at=row.get("known_at"),
     )
 
 
@@ -270,6 +272,8 @@ def alert_to_row(alert: Alert) -> dict[str, Any]:
         "closed_at": alert.closed_at,
         "preliminary": alert.preliminary,
         "estimated": alert.estimated,
+        "historical": alert.historical,
+        "seen_at": alert.seen_at,
     }
 
 
@@ -290,6 +294,8 @@ def row_to_alert(row: Row) -> Alert:
         closed_at=row["closed_at"],
         preliminary=bool(row["preliminary"]),
         estimated=bool(row["estimated"]),
+        historical=bool(row.get("historical", False)),
+        seen_at=row.get("seen_at"),
     )
 
 

@@ -92,6 +92,10 @@ patients = sa.Table(
     sa.Column("birth_date", sa.Date, nullable=True),
     *_location_columns(),
     sa.Column("updated_at", UTCDateTime, nullable=False),
+    #: Bumped by every change of the patient's timeline (readings judged, a flag
+    #: acknowledged or escalated): a process holding a cached timeline of the patient
+    #: knows from it whether another process changed it since.
+    sa.Column("revision", sa.Integer, nullable=False, server_default="0"),
 )
 
 readings = sa.Table(
@@ -113,6 +117,7 @@ readings = sa.Table(
     sa.Column("status", sa.String, nullable=False),
     sa.Column("effective_at", UTCDateTime, nullable=False),
     sa.Column("received_at", UTCDateTime, nullable=False),
+    sa.Column("known_at", UTCDateTime, nullable=True),
     sa.Column("source_system", sa.String, nullable=False),
     sa.Column("panel_id", sa.String, nullable=True),
     sa.Column("from_ventilator", sa.Boolean, nullable=False),
@@ -121,7 +126,12 @@ readings = sa.Table(
     sa.Column("birth_date", sa.Date, nullable=True),
     sa.Column("is_current", sa.Boolean, nullable=False),
     sa.Column("superseded_at", UTCDateTime, nullable=True),
+    #: False while a historical load has stored the reading but not yet stepped the
+    #: patient's timeline with it (a crash in between leaves work to resume).
+    sa.Column("processed", sa.Boolean, nullable=False, server_default=sa.true()),
     sa.Index(None, "patient_key", "kind", "effective_at"),
+    sa.Index("ix_readings_unprocessed", "patient_key",
+             sqlite_where=sa.text("NOT processed"), postgresql_where=sa.text("NOT processed")),
     sa.Index(None, "logical_id"),
     sa.Index(
         "uq_readings_current_logical_id",
@@ -248,6 +258,8 @@ alerts = sa.Table(
     sa.Column("closed_at", UTCDateTime, nullable=True),
     sa.Column("preliminary", sa.Boolean, nullable=False),
     sa.Column("estimated", sa.Boolean, nullable=False),
+    sa.Column("historical", sa.Boolean, nullable=False, server_default=sa.false()),
+    sa.Column("seen_at", UTCDateTime, nullable=True),
     sa.Index(None, "patient_key", "rule"),
     sa.Index(None, "updated_at"),
     sa.Index(

@@ -137,6 +137,11 @@ class Reading:
 
     ``logical_id`` names the result itself (a correction of it supersedes it);
     ``delivery_id`` names one transmission (receiving it twice changes nothing).
+
+    Three times: ``effective_at`` is when it was drawn or charted (the clinical time);
+    ``known_at`` when the result became available (HL7 OBX-19 or MSH-7, FHIR ``issued``
+    or ``meta.lastUpdated``; None: not stated, then the receipt time counts, see
+    ``known``); ``received_at`` when gasgap received it.
     ``value`` is None only for O2_DEVICE, whose coded value is in ``code_value``,
     and for RETRACTED readings, which withdraw the result without a value.
     """
@@ -162,6 +167,16 @@ class Reading:
     encounter_id: str | None = None
     location: Location | None = None
     birth_date: date | None = None
+    known_at: datetime | None = None
+
+    @property
+    def known(self) -> datetime:
+        """When the result became available: ``known_at`` when the source said, else
+        when it was received. Never after it was received: a stated time later than
+        that comes from a clock that runs ahead."""
+        if self.known_at is None or self.known_at > self.received_at:
+            return self.received_at
+        return self.known_at
 
     def __post_init__(self) -> None:
         if not self.patient_key:
@@ -172,6 +187,8 @@ class Reading:
             raise InvalidReading("delivery_id", self.delivery_id, "must not be empty")
         _require_aware("effective_at", self.effective_at)
         _require_aware("received_at", self.received_at)
+        if self.known_at is not None:
+            _require_aware("known_at", self.known_at)
         for name in _TEXT_FIELDS:
             text = getattr(self, name)
             if text and "\x00" in text:
@@ -425,6 +442,12 @@ class Alert:
     closed_at: datetime | None = None
     preliminary: bool = False
     estimated: bool = False
+    #: Raised on data older than the site's horizon when it was computed (a backfill,
+    #: a feed catching up): kept and shown, never sent, never escalated.
+    historical: bool = False
+    #: When the flag (or its last worsening) could first be seen: the clock for
+    #: escalation, the one timer about people rather than blood. None: ``updated_at``.
+    seen_at: datetime | None = None
 
 
 @dataclass(frozen=True, slots=True)

@@ -110,7 +110,7 @@ class PairingSettings:
 
 def _order(r: Reading) -> tuple[datetime, datetime, str, str]:
     """A total order on readings, so that the input order never matters."""
-    return (r.effective_at, r.received_at, r.logical_id, r.delivery_id)
+    return (r.effective_at, r.known, r.logical_id, r.delivery_id)
 
 
 def _usable(r: Reading) -> bool:
@@ -127,7 +127,7 @@ def current_readings(readings: Iterable[Reading], patient_key: str) -> list[Read
         if r.patient_key != patient_key:
             continue
         held = latest.get(r.logical_id)
-        if held is None or (r.received_at, r.delivery_id) > (held.received_at, held.delivery_id):
+        if held is None or (r.known, r.delivery_id) > (held.known, held.delivery_id):
             latest[r.logical_id] = r
     return sorted((r for r in latest.values() if _usable(r)), key=_order)
 
@@ -449,7 +449,7 @@ def _age(sample: Reading, readings: Sequence[Reading]) -> tuple[float | None, In
     if carrier is None:
         dated = [r for r in readings if r.birth_date is not None]
         carrier = max(
-            dated, key=lambda r: (r.received_at, r.logical_id, r.delivery_id), default=None
+            dated, key=lambda r: (r.known, r.logical_id, r.delivery_id), default=None
         )
     if carrier is None or carrier.birth_date is None:
         return None, None

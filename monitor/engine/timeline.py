@@ -1,0 +1,651 @@
+"""A patient's timeline: the one place where readings become derivations and flags.
+
+Theory of operation
+-------------------
+Patients are independent. Everything gasgap concludes about one patient is a function
+of that patient's readings, each carrying three times (``Reading.effective_at``, when
+drawn or charted; ``Reading.known``, when the result became available;
+``Reading.received_at``, when gasgap got it). ``PatientTimeline`` holds those readings
+and steps through them in known-time order:
+
+- **Derivations** follow the readings by drawn time only. At every step the samples a
+  new, corrected or withdrawn reading can affect (``pairing.influence_window``) are
+  paired and derived again from the current readings, so the same readings give the
+  same derivations whatever order they were delivered in, repeats and corrections
+  included. The current version of a result is chosen by ``precedence`` (known time,
+  then status, then delivery id), never by arrival.
+- **Flags** are judged in known-time order. A step is every reading known at one
+  instant and drawn at one time (a gas panel, a charting); at each step the rules judge
+  the patient's newest gas and newest SpO2 estimate as of that instant. Windows,
+  cooldown and hysteresis run on the clinical clock (draw times). The clock never runs
+  back: a reading known before the last instant already judged (a late delivery) is
+  judged at that last instant.
+- **Late results.** A result drawn before the newest sample raises nothing of its own,
+  but when it changes what the newest sample's trend rules see, the newest sample is
+  judged again: a flag raised that way says so. Such a re-judgement never resolves a
+  flag, and never takes one back: only a change of the newest sample's own derivation
+  can.
+- **Withdrawals** retract the derivations of the withdrawn samples and the open flags
+  that stood on any withdrawn result.
+- **History.** A flag standing on a sample drawn longer than
+  ``TimelineSettings.historical_after`` before the moment it was computed (``seen_at``:
+  the wall clock live, the record time in a replay) is recorded as historical: it is
+  kept and shown, never sent.
+
+The live service keeps a bounded cache of timelines and steps one per arriving unit;
+historical loads build each timeline from all of a patient's readings. Both call the
+same ``advance``, so both write the same rows.
+
+Pure: no I/O, no clock; time comes in as arguments.
+"""
+
+from __future__ import annotations
+
+import bisect
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field, replace
+from datetime import date, datetime, timedelta
+
+from monitor.engine import alerts, rules
+from monitor.engine.alerts import AlertSettings
+from monitor.engine.derive import DerivationSettings, derive, derive_spo2_series
+from monitor.engine.model import (
+    Alert,
+    AlertState,
+    Derivation,
+    FiO2Source,
+    Kind,
+    Priority,
+    Reading,
+    Status,
+)
+from monitor.engine.pairing import PairingSettings, context_window, influence_window, pair
+from monitor.engine.rules import RuleSet, default_rules
+
+#: Which delivery of a result wins when two say different things: the later known,
+#: then the more final status, then the delivery id (a total order, so any arrival
+#: order picks the same one).
+_STATUS_RANK = {
+    Status.PRELIMINARY: 0,
+    Status.FINAL: 1,
+    Status.CORRECTED: 2,
+    Status.RETRACTED: 3,
+}
+
+
+def precedence(r: Reading) -> tuple[datetime, int, str]:
+    """The order in which deliveries of one result supersede each other."""
+    return (r.known, _STATUS_RANK.get(r.status, 1), r.delivery_id)
+
+
+def _by_time(r: Reading) -> tuple[datetime, datetime, str, str]:
+    return (r.effective_at, r.known, r.logical_id, r.delivery_id)
+
+
+def step_key(r: Reading) -> tuple[datetime, datetime]:
+    """Readings known at one instant and drawn at one time are judged as one step."""
+    return (r.known, r.effective_at)
+
+
+def _usable(r: Reading) -> bool:
+    if r.status is Status.RETRACTED:
+        return False
+    return r.code_value is not None if r.kind is Kind.O2_DEVICE else r.value is not None
+
+
+@dataclass(frozen=True, slots=True)
+class TimelineSettings:
+    """Everything a timeline needs from the site configuration.
+
+    ``history``: how far back the rules look (the P/F fall window, default 24 h).
+    ``historical_after``: a flag on a sample drawn longer than this before it was
+    computed is historical (never sent); None: no flag is historical.
+    ``simulate_escalation``: escalate unacknowledged flags on the timeline's own clock
+    (replay: nobody acknowledges, so every medium and high flag still raised
+    ``escalate_after`` after it could first be seen is escalated).
+    """
+
+    pairing: PairingSettings = field(default_factory=PairingSettings)
+    derivation: DerivationSettings = field(default_factory=DerivationSettings)
+    rules: RuleSet = field(default_factory=default_rules)
+    alerts: AlertSettings = field(default_factory=AlertSettings)
+    history: timedelta = timedelta(hours=24)
+    historical_after: timedelta | None = None
+    simulate_escalation: bool = False
+
+
+@dataclass(frozen=True, slots=True)
+class DerivedVersion:
+    """A new current version of a sample's derivation (``retracted``: the sample was
+    withdrawn or can no longer be derived; ``derivation`` is then its last values)."""
+
+    derivation: Derivation
+    at: datetime
+    reason: str
+    retracted: bool = False
+
+
+@dataclass(frozen=True, slots=True)
+class FlagChange:
+    """One alert decision, with the derivation and numbers behind it, to be stored
+    (and, unless historical, notified)."""
+
+    decision: alerts.Decision
+    derivation: Derivation | None
+    numbers: dict[str, object]
+    at: datetime
+    historical: bool = False
+
+
+@dataclass(slots=True)
+class StepResult:
+    """What stepping a timeline changed, in the order it happened."""
+
+    derivations: list[DerivedVersion] = field(default_factory=list)
+    flags: list[FlagChange] = field(default_factory=list)
+    duplicates: int = 0
+
+    def extend(self, other: StepResult) -> None:
+        self.derivations.extend(other.derivations)
+        self.flags.extend(other.flags)
+        self.duplicates += other.duplicates
+
+
+@dataclass(slots=True)
+class _Judged:
+    derivation: Derivation
+    own_change: bool
+
+
+class PatientTimeline:
+    """One patient's readings, derivations and flags, stepped in known-time order.
+
+    Build it empty (a new patient, a historical load) or from stored state
+    (``restore``), then call ``advance`` with new readings. The object only grows by
+    ``advance`` and shrinks by ``forget_before``; it never reads a clock.
+    """
+
+    def __init__(
+        self,
+        patient_key: str,
+        settings: TimelineSettings,
+        *,
+        birth_date: date | None = None,
+    ) -> None:
+        self.patient_key = patient_key
+        self.settings = settings
+        self.birth_date = birth_date
+        #: Every delivery seen, by delivery id (repeats change nothing).
+        self._deliveries: set[str] = set()
+        #: Every delivery of each result, and the current one.
+        self._versions: dict[str, list[Reading]] = {}
+        self._current: dict[str, Reading] = {}
+        #: Usable current readings by drawn time, and their sort keys (for bisect).
+        self._timeline: list[Reading] = []
+        self._keys: list[tuple[datetime, datetime, str, str]] = []
+        self._panels: dict[str, set[str]] = {}
+        #: Current derivations (gases and estimates) by sample id, not retracted.
+        self.derivations: dict[str, Derivation] = {}
+        self.open: dict[str, Alert] = {}
+        self.last_closed: dict[str, Alert] = {}
+        #: The last known instant judged; the clinical clock never runs back past it.
+        self.instant: datetime | None = None
+        #: Readings drawn before this were left out when the timeline was restored or
+        #: trimmed: a new reading that needs them requires a fuller restore.
+        self.covers_from: datetime | None = None
+
+    # --- building -------------------------------------------------------------------
+
+    @classmethod
+    def restore(
+        cls,
+        patient_key: str,
+        settings: TimelineSettings,
+        *,
+        readings: Iterable[Reading],
+        derivations: Iterable[Derivation],
+        open_alerts: Iterable[Alert],
+        last_closed: Iterable[Alert],
+        birth_date: date | None,
+        instant: datetime | None,
+        covers_from: datetime | None,
+    ) -> PatientTimeline:
+        """A timeline in the state storage holds: its readings (every delivery),
+        current derivations, open flags and the last closed flag of each rule."""
+        t = cls(patient_key, settings, birth_date=birth_date)
+        for r in readings:
+            t._add_delivery(r)
+        t.derivations = {d.sample_id: d for d in derivations}
+        t.open = {a.rule: a for a in open_alerts}
+        t.last_closed = {a.rule: a for a in last_closed}
+        t.instant = instant
+        t.covers_from = covers_from
+        return t
+
+    def needs_from(self, readings: Sequence[Reading]) -> datetime:
+        """The earliest draw time whose readings must be held to step ``readings``."""
+        before, _ = context_window(self.settings.pairing)
+        earliest = min(r.effective_at - influence_window(r.kind, self.settings.pairing)[0]
+                       for r in readings)
+        return earliest - before - self.settings.history
+
+    def forget_before(self, cutoff: datetime) -> None:
+        """Drop readings and derivations drawn before ``cutoff`` (bounded memory for a
+        long-lived cache); a later reading that needs them asks for a restore."""
+        keep = [r for r in self._timeline if r.effective_at >= cutoff]
+        if len(keep) == len(self._timeline):
+            return
+        dropped = {r.logical_id for r in self._timeline if r.effective_at < cutoff}
+        for lid in dropped:
+            for v in self._versions.pop(lid, []):
+                self._deliveries.discard(v.delivery_id)
+            self._current.pop(lid, None)
+        self._timeline = keep
+        self._keys = [_by_time(r) for r in keep]
+        self.derivations = {k: d for k, d in self.derivations.items() if d.drawn_at >= cutoff}
+        self.covers_from = max(cutoff, self.covers_from) if self.covers_from else cutoff
+
+    # --- stepping ---------------------------------------------------------------------
+
+    def advance(self, readings: Iterable[Reading], *, seen_at: datetime) -> StepResult:
+        """Take ``readings`` (any order, repeats allowed), step through them in
+        known-time order, and return what changed. ``seen_at``: when this is computed
+        (the wall clock live, the record time in a replay), only for deciding whether a
+        flag is historical."""
+        fresh: list[Reading] = []
+        result = StepResult()
+        seen: set[str] = set()
+        for r in readings:
+            if r.patient_key != self.patient_key:
+                raise ValueError(
+                    f"reading {r.delivery_id!r}: patient {r.patient_key!r} is not "
+                    f"this timeline's"
+                )
+            if r.delivery_id in self._deliveries or r.delivery_id in seen:
+                result.duplicates += 1
+                continue
+            seen.add(r.delivery_id)
+            fresh.append(r)
+        fresh.sort(key=lambda r: (step_key(r), r.logical_id, r.delivery_id))
+        i = 0
+        while i < len(fresh):
+            j = i
+            key = step_key(fresh[i])
+            while j < len(fresh) and step_key(fresh[j]) == key:
+                j += 1
+            result.extend(self._step(fresh[i:j], seen_at))
+            i = j
+        return result
+
+    def escalate_until(self, until: datetime) -> StepResult:
+        """Escalate, each at the moment it fell due, the raised medium and high flags
+        not acknowledged ``escalate_after`` after they could first be seen, up to
+        ``until`` (replay; historical flags never escalate)."""
+        result = StepResult()
+        after = self.settings.alerts.escalate_after
+        for rule in sorted(self.open):
+            alert = self.open[rule]
+            if (
+                alert.state is not AlertState.RAISED
+                or alert.priority not in (Priority.MEDIUM, Priority.HIGH)
+                or _is_historical(alert)
+            ):
+                continue
+            due = (alert.seen_at or alert.updated_at) + after
+            if due > until:
+                continue
+            clocked = replace(alert, updated_at=alert.seen_at or alert.updated_at)
+            for decision in alerts.escalate_due([clocked], due, self.settings.alerts):
+                self._keep(decision)
+                result.flags.append(FlagChange(decision, None, {}, due))
+        return result
+
+    # --- one step -----------------------------------------------------------------------
+
+    def _step(self, group: Sequence[Reading], seen_at: datetime) -> StepResult:
+        result = StepResult()
+        known = group[0].known
+        instant = known if self.instant is None or known > self.instant else self.instant
+        if self.settings.simulate_escalation:
+            result.extend(self.escalate_until(instant))
+        self.instant = instant
+        ps = self.settings.pairing
+
+        windows: list[tuple[datetime, datetime]] = []
+        panels: set[str] = set()
+        withdrawn: set[str] = set()
+        touched_times: list[datetime] = []
+        for r in group:
+            before = self._current.get(r.logical_id)
+            self._add_delivery(r)
+            after = self._current.get(r.logical_id)
+            if after is before:
+                continue  # an older delivery: it changes nothing
+            for version in (before, after):
+                if version is None:
+                    continue
+                lo, hi = influence_window(version.kind, ps)
+                windows.append((version.effective_at - lo, version.effective_at + hi))
+                touched_times.append(version.effective_at)
+                if version.panel_id:
+                    panels.add(version.panel_id)
+            if after is not None and after.status is Status.RETRACTED:
+                withdrawn.add(r.logical_id)
+            if r.birth_date is not None and r.birth_date != self.birth_date:
+                self.birth_date = r.birth_date
+                # a birth date can change the age, and so the expected A-a, of any sample
+                windows.append((datetime.min.replace(tzinfo=known.tzinfo),
+                                datetime.max.replace(tzinfo=known.tzinfo)))
+        if not windows:
+            return result
+
+        changed: dict[str, Derivation] = {}
+        changed_times: list[datetime] = list(touched_times)
+        for d, reason, retracted in self._rederive(windows, panels, withdrawn):
+            result.derivations.append(DerivedVersion(d, instant, reason, retracted))
+            changed_times.append(d.drawn_at)
+            if not retracted:
+                changed[d.sample_id] = d
+
+        self._withdraw_flags(withdrawn, instant, seen_at, result)
+        for judged in self._to_judge(changed, changed_times):
+            self._judge(judged, instant, seen_at, result)
+        return result
+
+    def _add_delivery(self, r: Reading) -> None:
+        self._deliveries.add(r.delivery_id)
+        self._versions.setdefault(r.logical_id, []).append(r)
+        held = self._current.get(r.logical_id)
+        if held is not None and precedence(held) >= precedence(r):
+            return
+        if held is not None and _usable(held):
+            k = _by_time(held)
+            i = bisect.bisect_left(self._keys, k)
+            if i < len(self._keys) and self._keys[i] == k:
+                del self._keys[i]
+                del self._timeline[i]
+        self._current[r.logical_id] = r
+        if _usable(r):
+            k = _by_time(r)
+            i = bisect.bisect_left(self._keys, k)
+            self._keys.insert(i, k)
+            self._timeline.insert(i, r)
+            if r.panel_id:
+                self._panels.setdefault(r.panel_id, set()).add(r.logical_id)
+
+    def _between(self, lo: datetime, hi: datetime) -> list[Reading]:
+        i = bisect.bisect_left(self._keys, (lo,))
+        j = bisect.bisect_right(self._keys, (hi, datetime.max.replace(tzinfo=hi.tzinfo)))
+        return self._timeline[i:j]
+
+    def _context(self, at: datetime, panel_id: str | None) -> list[Reading]:
+        before, after = context_window(self.settings.pairing)
+        context = self._between(at - before, at + after)
+        if panel_id:
+            inside = {r.logical_id for r in context}
+            extra = [
+                self._current[lid]
+                for lid in sorted(self._panels.get(panel_id, ()))
+                if lid not in inside and lid in self._current and _usable(self._current[lid])
+            ]
+            if extra:
+                context = sorted([*context, *extra], key=_by_time)
+        return context
+
+    def _rederive(
+        self,
+        windows: list[tuple[datetime, datetime]],
+        panels: set[str],
+        withdrawn: set[str],
+    ) -> list[tuple[Derivation, str, bool]]:
+        """Derive again every sample the changed readings can affect; returns the new
+        versions (derivation, reason, retracted)."""
+        lo = min(w[0] for w in windows)
+        hi = max(w[1] for w in windows)
+
+        def inside(r: Reading) -> bool:
+            return (r.panel_id is not None and r.panel_id in panels) or any(
+                s <= r.effective_at <= e for s, e in windows
+            )
+
+        candidates = self._between(lo, hi)
+        for panel in panels:
+            candidates += [
+                self._current[lid] for lid in self._panels.get(panel, ())
+                if lid in self._current and _usable(self._current[lid])
+            ]
+        gases = {r.logical_id: r for r in candidates if r.kind is Kind.PAO2 and inside(r)}
+        spo2s = {r.logical_id: r for r in candidates if r.kind is Kind.SPO2 and inside(r)}
+        out: list[tuple[Derivation, str, bool]] = []
+        for lid in sorted(gases, key=lambda k: _by_time(gases[k])):
+            sample = gases[lid]
+            derivation = derive(
+                pair(sample, self._context(sample.effective_at, sample.panel_id),
+                     self.settings.pairing),
+                self.settings.derivation,
+            )
+            if self.derivations.get(lid) != derivation:
+                self.derivations[lid] = derivation
+                out.append((derivation, "new or changed readings", False))
+        estimated: dict[str, Derivation] = {}
+        for r in sorted(spo2s.values(), key=_by_time):
+            for d in derive_spo2_series(
+                [r], self._context(r.effective_at, r.panel_id),
+                self.settings.derivation, self.settings.pairing,
+            ):
+                estimated[d.sample_id] = d
+        for lid in sorted(spo2s, key=lambda k: _by_time(spo2s[k])):
+            d = estimated.get(lid)
+            held = self.derivations.get(lid)
+            if d is not None and held != d:
+                self.derivations[lid] = d
+                out.append((d, "SpO2 between gases", False))
+            elif d is None and held is not None:
+                # what it stood on changed (a device charted, FiO2 corrected): an
+                # estimate that can no longer be made must not stay current
+                del self.derivations[lid]
+                out.append((held, "no longer estimable from what is charted", True))
+        # Samples whose own result was withdrawn (they are no longer in the timeline).
+        for lid in sorted(withdrawn):
+            held = self.derivations.pop(lid, None)
+            if held is not None:
+                out.append((held, "result withdrawn", True))
+        return out
+
+    def _withdraw_flags(
+        self, withdrawn: set[str], instant: datetime, seen_at: datetime, result: StepResult
+    ) -> None:
+        if not withdrawn:
+            return
+        for rule in sorted(self.open):
+            alert = self.open[rule]
+            if alert.sample_id in withdrawn or self._stood_on(alert.sample_id, withdrawn):
+                decision = alerts.retract(
+                    alert, instant, "a result this flag stood on was withdrawn", alert.sample_id
+                )
+                self._keep(decision)
+                result.flags.append(FlagChange(
+                    decision, None, {}, instant, historical=_is_historical(alert)
+                ))
+
+    def _stood_on(self, sample_id: str, withdrawn: set[str]) -> bool:
+        d = self.derivations.get(sample_id)
+        if d is None:
+            return False
+        return any(i.reading_id in withdrawn for i in d.inputs)
+
+    def _to_judge(self, changed: dict[str, Derivation], times: list[datetime]) -> list[_Judged]:
+        """The newest gas and the newest estimate, when this step changed them or
+        anything their rules look back at."""
+        out: list[_Judged] = []
+        for estimated in (False, True):
+            newest = max(
+                (d for d in self.derivations.values() if d.estimated is estimated),
+                key=lambda d: (d.drawn_at, d.sample_id),
+                default=None,
+            )
+            if newest is None:
+                continue
+            own = newest.sample_id in changed
+            since = newest.drawn_at - self.settings.history
+            if own or any(since <= t <= newest.drawn_at for t in times):
+                out.append(_Judged(newest, own))
+        out.sort(key=lambda j: (j.derivation.drawn_at, j.derivation.sample_id))
+        return out
+
+    def _history(self, d: Derivation) -> rules.PatientHistory:
+        since = d.drawn_at - self.settings.history
+        stored = sorted(
+            (p for p in self.derivations.values() if since <= p.drawn_at <= d.drawn_at),
+            key=lambda p: (p.drawn_at, p.sample_id),
+        )
+        points = [
+            rules.FiO2Point(r.effective_at, r.value, FiO2Source.CHARTED, r.logical_id)
+            for r in self._between(since, d.drawn_at)
+            if r.kind is Kind.FIO2 and r.value is not None
+        ]
+        points += [
+            rules.FiO2Point(p.drawn_at, p.fio2, p.fio2_source, p.sample_id)
+            for p in stored
+            if p.fio2 is not None
+        ]
+        return rules.PatientHistory(
+            derivations=[p for p in stored if not p.estimated],
+            fio2_points=sorted(points, key=lambda p: p.at),
+            estimated=[p for p in stored if p.estimated],
+        )
+
+    def _judge(
+        self, judged: _Judged, instant: datetime, seen_at: datetime, result: StepResult
+    ) -> None:
+        d = judged.derivation
+        historical = (
+            self.settings.historical_after is not None
+            and seen_at - d.drawn_at > self.settings.historical_after
+        )
+        outcomes = rules.evaluate(self.settings.rules, d, self._history(d), d.drawn_at)
+        for outcome in outcomes:
+            open_alert = self.open.get(outcome.rule_id)
+            if (
+                judged.own_change
+                and open_alert is not None
+                and open_alert.sample_id == d.sample_id
+                and not (outcome.fired and outcome.priority is open_alert.priority)
+            ):
+                # The sample this flag stands on was derived anew (a correction, a late
+                # input) and no longer says what the flag says: take the flag back, and
+                # let the new values raise whatever they support.
+                decision = alerts.retract(
+                    open_alert, instant, "the result behind this flag changed", d.sample_id
+                )
+                self._keep(decision)
+                result.flags.append(FlagChange(
+                    decision, d, outcome.numbers, instant, _is_historical(open_alert)
+                ))
+                open_alert = None
+            if not outcome.fired and not (outcome.cleared and judged.own_change):
+                # a late result never resolves a newer flag: only a new sample can
+                continue
+            if outcome.cleared and open_alert is None:
+                continue
+            last_closed = self.last_closed.get(outcome.rule_id) if open_alert is None else None
+            decision = alerts.apply_outcome(
+                open_alert, last_closed, outcome, d, instant, self.settings.alerts
+            )
+            if decision.alert is None:
+                continue
+            if not judged.own_change:
+                note = (
+                    f"judged again when a late result arrived (sample drawn "
+                    f"{d.drawn_at.isoformat()})"
+                )
+                decision = replace(
+                    decision, events=[replace(e, note=e.note or note) for e in decision.events]
+                )
+            if decision.alert.state is AlertState.RAISED and decision.notify:
+                # raised or worsened: escalation counts from when it could be seen
+                decision = replace(decision, alert=replace(decision.alert, seen_at=seen_at))
+            if historical and decision.alert.state.is_open:
+                decision = _mark_historical(decision)
+            self._keep(decision)
+            result.flags.append(FlagChange(
+                decision, d, outcome.numbers, instant,
+                historical=historical or _is_historical(open_alert),
+            ))
+
+    def _keep(self, decision: alerts.Decision) -> None:
+        alert = decision.alert
+        if alert is None:
+            return
+        if alert.state.is_open:
+            self.open[alert.rule] = alert
+        else:
+            self.open.pop(alert.rule, None)
+            self.last_closed[alert.rule] = alert
+
+
+def _is_historical(alert: Alert | None) -> bool:
+    return alert is not None and alert.historical
+
+
+def time_problem(
+    r: Reading, *, tolerance: timedelta, max_age: timedelta, birth_date: date | None
+) -> str | None:
+    """Why ``r``'s draw time cannot be right, or None. A result cannot be drawn after
+    it was known or received (beyond ``tolerance`` for clocks that differ), before the
+    patient was born, or longer than ``max_age`` before it was received. Such a time
+    would move the patient's clinical clock and mute every real result after it."""
+    drawn = r.effective_at
+    field_name = "drawn time (OBR-7/OBX-14, Observation.effective)"
+    if drawn > r.received_at + tolerance:
+        return (
+            f"{field_name} {drawn.isoformat()} is after the result was received "
+            f"({r.received_at.isoformat()}): a time in the future cannot be right"
+        )
+    if r.known_at is not None and drawn > r.known_at + tolerance:
+        return (
+            f"{field_name} {drawn.isoformat()} is after the result was known "
+            f"({r.known_at.isoformat()})"
+        )
+    if birth_date is not None and drawn.date() < birth_date:
+        return f"{field_name} {drawn.isoformat()} is before the patient's birth ({birth_date})"
+    if drawn < r.received_at - max_age:
+        return (
+            f"{field_name} {drawn.isoformat()} is more than {max_age.days} days before it "
+            f"was received: not a plausible draw time"
+        )
+    return None
+
+
+def _mark_historical(decision: alerts.Decision) -> alerts.Decision:
+    assert decision.alert is not None
+    return replace(decision, alert=replace(decision.alert, historical=True))
+
+
+def run_timeline(
+    patient_key: str,
+    readings: Iterable[Reading],
+    settings: TimelineSettings,
+    *,
+    seen_at: datetime | None = None,
+    until: datetime | None = None,
+    birth_date: date | None = None,
+) -> tuple[PatientTimeline, StepResult]:
+    """A whole timeline at once (historical loads, tests): every reading of one
+    patient stepped in known-time order from an empty state. ``seen_at``: when this is
+    computed (None: each step is seen at its own known instant, as a replay does);
+    ``until``: with simulated escalation, escalate what fell due up to then."""
+    timeline = PatientTimeline(patient_key, settings, birth_date=birth_date)
+    ordered = sorted(readings, key=lambda r: (step_key(r), r.logical_id, r.delivery_id))
+    result = StepResult()
+    i = 0
+    while i < len(ordered):
+        j = i
+        key = step_key(ordered[i])
+        while j < len(ordered) and step_key(ordered[j]) == key:
+            j += 1
+        result.extend(timeline.advance(ordered[i:j], seen_at=seen_at or key[0]))
+        i = j
+    if settings.simulate_escalation and until is not None:
+        result.extend(timeline.escalate_until(until))
+    return timeline, result
