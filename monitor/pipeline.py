@@ -26,7 +26,7 @@ import logging
 import re
 from collections import Counter, OrderedDict
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, date, datetime, timedelta, tzinfo
 
 from sqlalchemy.engine import Connection
@@ -487,15 +487,7 @@ _NEVER = datetime(1900, 1, 1, tzinfo=UTC)
 
 def _seen(alert: Alert) -> Alert:
     """The flag as escalation sees it: its clock starts when it could first be seen."""
-    if alert.seen_at is None:
-        return alert
-    fields = _fields(alert)
-    fields["updated_at"] = alert.seen_at
-    return Alert(**fields)
-
-
-def _fields(alert: Alert) -> dict[str, object]:
-    return {name: getattr(alert, name) for name in Alert.__dataclass_fields__}
+    return alert if alert.seen_at is None else replace(alert, updated_at=alert.seen_at)
 
 
 def _reading_text(r: Reading) -> str:

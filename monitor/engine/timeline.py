@@ -184,8 +184,10 @@ class PatientTimeline:
         self._timeline: list[Reading] = []
         self._keys: list[tuple[datetime, datetime, str, str]] = []
         self._panels: dict[str, set[str]] = {}
-        #: Current derivations (gases and estimates) by sample id, not retracted.
+        #: Current derivations (gases and estimates) by sample id, not retracted, and
+        #: their (drawn time, sample id) keys in order, gases and estimates apart.
         self.derivations: dict[str, Derivation] = {}
+        self._order: dict[bool, list[tuple[datetime, str]]] = {False: [], True: []}
         self.open: dict[str, Alert] = {}
         self.last_closed: dict[str, Alert] = {}
         #: The last known instant judged; the clinical clock never runs back past it.
@@ -215,7 +217,8 @@ class PatientTimeline:
         t = cls(patient_key, settings, birth_date=birth_date)
         for r in readings:
             t._add_delivery(r)
-        t.derivations = {d.sample_id: d for d in derivations}
+        for d in derivations:
+            t._put(d)
         t.open = {a.rule: a for a in open_alerts}
         t.last_closed = {a.rule: a for a in last_closed}
         t.instant = instant
@@ -242,16 +245,20 @@ class PatientTimeline:
             self._current.pop(lid, None)
         self._timeline = keep
         self._keys = [_by_time(r) for r in keep]
-        self.derivations = {k: d for k, d in self.derivations.items() if d.drawn_at >= cutoff}
+        for sid in [k for k, d in self.derivations.items() if d.drawn_at < cutoff]:
+            self._drop(sid)
         self.covers_from = max(cutoff, self.covers_from) if self.covers_from else cutoff
 
     # --- stepping ---------------------------------------------------------------------
 
-    def advance(self, readings: Iterable[Reading], *, seen_at: datetime) -> StepResult:
+    def advance(
+        self, readings: Iterable[Reading], *, seen_at: datetime | None
+    ) -> StepResult:
         """Take ``readings`` (any order, repeats allowed), step through them in
         known-time order, and return what changed. ``seen_at``: when this is computed
-        (the wall clock live, the record time in a replay), only for deciding whether a
-        flag is historical."""
+        (the wall clock live), for deciding whether a flag is historical and when it
+        could first be seen; None: each step is seen at its own known instant (a replay
+        of a feed at its own pace)."""
         fresh: list[Reading] = []
         result = StepResult()
         seen: set[str] = set()
@@ -302,10 +309,11 @@ class PatientTimeline:
 
     # --- one step -----------------------------------------------------------------------
 
-    def _step(self, group: Sequence[Reading], seen_at: datetime) -> StepResult:
+    def _step(self, group: Sequence[Reading], seen: datetime | None) -> StepResult:
         result = StepResult()
         known = group[0].known
         instant = known if self.instant is None or known > self.instant else self.instant
+        seen_at = instant if seen is None else seen
         if self.settings.simulate_escalation:
             result.extend(self.escalate_until(instant))
         self.instant = instant
@@ -373,6 +381,30 @@ class PatientTimeline:
             if r.panel_id:
                 self._panels.setdefault(r.panel_id, set()).add(r.logical_id)
 
+    def _put(self, d: Derivation) -> None:
+        held = self.derivations.get(d.sample_id)
+        if held is not None:
+            self._drop(d.sample_id)
+        self.derivations[d.sample_id] = d
+        bisect.insort(self._order[d.estimated], (d.drawn_at, d.sample_id))
+
+    def _drop(self, sample_id: str) -> Derivation | None:
+        held = self.derivations.pop(sample_id, None)
+        if held is not None:
+            order = self._order[held.estimated]
+            i = bisect.bisect_left(order, (held.drawn_at, held.sample_id))
+            if i < len(order) and order[i] == (held.drawn_at, held.sample_id):
+                del order[i]
+        return held
+
+    def _window(
+        self, estimated: bool, lo: datetime, hi: datetime
+    ) -> list[tuple[datetime, str]]:
+        order = self._order[estimated]
+        i = bisect.bisect_left(order, (lo, ""))
+        j = bisect.bisect_right(order, (hi, "\U0010ffff"))
+        return order[i:j]
+
     def _between(self, lo: datetime, hi: datetime) -> list[Reading]:
         i = bisect.bisect_left(self._keys, (lo,))
         j = bisect.bisect_right(self._keys, (hi, datetime.max.replace(tzinfo=hi.tzinfo)))
@@ -425,7 +457,7 @@ class PatientTimeline:
                 self.settings.derivation,
             )
             if self.derivations.get(lid) != derivation:
-                self.derivations[lid] = derivation
+                self._put(derivation)
                 out.append((derivation, "new or changed readings", False))
         estimated: dict[str, Derivation] = {}
         for r in sorted(spo2s.values(), key=_by_time):
@@ -435,21 +467,21 @@ class PatientTimeline:
             ):
                 estimated[d.sample_id] = d
         for lid in sorted(spo2s, key=lambda k: _by_time(spo2s[k])):
-            d = estimated.get(lid)
+            new = estimated.get(lid)
             held = self.derivations.get(lid)
-            if d is not None and held != d:
-                self.derivations[lid] = d
-                out.append((d, "SpO2 between gases", False))
-            elif d is None and held is not None:
+            if new is not None and held != new:
+                self._put(new)
+                out.append((new, "SpO2 between gases", False))
+            elif new is None and held is not None:
                 # what it stood on changed (a device charted, FiO2 corrected): an
                 # estimate that can no longer be made must not stay current
-                del self.derivations[lid]
+                self._drop(lid)
                 out.append((held, "no longer estimable from what is charted", True))
         # Samples whose own result was withdrawn (they are no longer in the timeline).
         for lid in sorted(withdrawn):
-            held = self.derivations.pop(lid, None)
-            if held is not None:
-                out.append((held, "result withdrawn", True))
+            gone = self._drop(lid)
+            if gone is not None:
+                out.append((gone, "result withdrawn", True))
         return out
 
     def _withdraw_flags(
@@ -479,13 +511,10 @@ class PatientTimeline:
         anything their rules look back at."""
         out: list[_Judged] = []
         for estimated in (False, True):
-            newest = max(
-                (d for d in self.derivations.values() if d.estimated is estimated),
-                key=lambda d: (d.drawn_at, d.sample_id),
-                default=None,
-            )
-            if newest is None:
+            order = self._order[estimated]
+            if not order:
                 continue
+            newest = self.derivations[order[-1][1]]
             own = newest.sample_id in changed
             since = newest.drawn_at - self.settings.history
             if own or any(since <= t <= newest.drawn_at for t in times):
@@ -496,7 +525,11 @@ class PatientTimeline:
     def _history(self, d: Derivation) -> rules.PatientHistory:
         since = d.drawn_at - self.settings.history
         stored = sorted(
-            (p for p in self.derivations.values() if since <= p.drawn_at <= d.drawn_at),
+            (
+                self.derivations[sid]
+                for estimated in (False, True)
+                for _, sid in self._window(estimated, since, d.drawn_at)
+            ),
             key=lambda p: (p.drawn_at, p.sample_id),
         )
         points = [
@@ -562,11 +595,14 @@ class PatientTimeline:
                 decision = replace(
                     decision, events=[replace(e, note=e.note or note) for e in decision.events]
                 )
-            if decision.alert.state is AlertState.RAISED and decision.notify:
+            changed = decision.alert
+            assert changed is not None
+            if changed.state is AlertState.RAISED and decision.notify:
                 # raised or worsened: escalation counts from when it could be seen
-                decision = replace(decision, alert=replace(decision.alert, seen_at=seen_at))
-            if historical and decision.alert.state.is_open:
-                decision = _mark_historical(decision)
+                changed = replace(changed, seen_at=seen_at)
+            if historical and changed.state.is_open:
+                changed = replace(changed, historical=True)
+            decision = replace(decision, alert=changed)
             self._keep(decision)
             result.flags.append(FlagChange(
                 decision, d, outcome.numbers, instant,
@@ -617,11 +653,6 @@ def time_problem(
     return None
 
 
-def _mark_historical(decision: alerts.Decision) -> alerts.Decision:
-    assert decision.alert is not None
-    return replace(decision, alert=replace(decision.alert, historical=True))
-
-
 def run_timeline(
     patient_key: str,
     readings: Iterable[Reading],
@@ -636,16 +667,7 @@ def run_timeline(
     computed (None: each step is seen at its own known instant, as a replay does);
     ``until``: with simulated escalation, escalate what fell due up to then."""
     timeline = PatientTimeline(patient_key, settings, birth_date=birth_date)
-    ordered = sorted(readings, key=lambda r: (step_key(r), r.logical_id, r.delivery_id))
-    result = StepResult()
-    i = 0
-    while i < len(ordered):
-        j = i
-        key = step_key(ordered[i])
-        while j < len(ordered) and step_key(ordered[j]) == key:
-            j += 1
-        result.extend(timeline.advance(ordered[i:j], seen_at=seen_at or key[0]))
-        i = j
+    result = timeline.advance(readings, seen_at=seen_at)
     if settings.simulate_escalation and until is not None:
         result.extend(timeline.escalate_until(until))
     return timeline, result
