@@ -310,3 +310,16 @@ outbox = sa.Table(
     sa.Index(None, "status", "next_attempt_at"),
     sa.Index(None, "patient_key", "channel", "status"),
 )
+
+#: The patient register's links (``monitor.engine.identity``): each row is one
+#: ``PatientLink`` (keys that name one person), stored once by its fingerprint. The
+#: register is rebuilt by learning them all; the result does not depend on row order.
+patient_links = sa.Table(
+    "patient_links",
+    metadata,
+    sa.Column("id", Id, primary_key=True, autoincrement=True),
+    sa.Column("fingerprint", sa.String, nullable=False, unique=True),
+    sa.Column("link_keys", Json, nullable=False),
+    sa.Column("source", sa.String, nullable=False),
+    sa.Column("learnt_at", UTCDateTime, nullable=False),
+)

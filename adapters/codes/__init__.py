@@ -12,14 +12,19 @@ import tomllib
 from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from monitor.engine import physiology
 from monitor.engine.errors import InvalidReading
 from monitor.engine.model import Kind, O2Device, Specimen
 
+if TYPE_CHECKING:
+    from datetime import datetime
+
 LOINC = "http://loinc.org"
 SNOMED = "http://snomed.info/sct"
 LOCAL = "urn:gasgap:local"
+HL7_0487 = "http://terminology.hl7.org/CodeSystem/v2-0487"
 _SHIPPED = Path(__file__).with_name("codes.toml")
 
 
@@ -31,20 +36,74 @@ class CodeEntry:
     oximetry: bool = False
 
 
+#: Comparators of a censored value: FHIR Quantity.comparator (R4: <, <=, >=, >) and the
+#: HL7 v2 SN comparator (>, <, >=, <=, <>).
+COMPARATORS = frozenset({"<", "<=", ">=", ">", "<>"})
+
+
+@dataclass(frozen=True, slots=True)
+class CensoredValue:
+    """A result sent as beyond a limit (">500", "<5"): never an exact number.
+
+    Kept so the patient's series can say a value was sent and why nothing was derived
+    from it; never a ``Reading`` (pairing and rules see only exact values). ``limit``
+    is in canonical units when the unit was understood, else None.
+    """
+
+    patient_key: str
+    kind: Kind
+    comparator: str
+    limit: float | None
+    original_value: str
+    original_unit: str
+    effective_at: datetime
+    source_system: str
+    logical_id: str
+    code: str = ""
+
+    @property
+    def text(self) -> str:
+        return (
+            f"{self.kind} sent as {self.comparator}{self.original_value} "
+            f"{self.original_unit}".rstrip()
+            + ": a censored value, not an exact number; nothing derived from it"
+        )
+
+
+def _words(text: str) -> str:
+    """Lower case, underscores and hyphens as spaces, spaces collapsed."""
+    return " ".join(re.sub(r"[_\-/]+", " ", text.lower()).split())
+
+
 class CodeTable:
     """Lookup from (system, code) to what gasgap makes of it."""
 
     def __init__(
-        self, entries: dict[tuple[str, str], CodeEntry], devices: dict[tuple[str, str], O2Device]
+        self,
+        entries: dict[tuple[str, str], CodeEntry],
+        devices: dict[tuple[str, str], O2Device],
+        device_words: dict[str, O2Device] | None = None,
+        specimens: dict[tuple[str, str], Specimen] | None = None,
     ) -> None:
         self._entries = entries
         self._devices = devices
+        self._device_words = device_words or {}
+        self._specimens = specimens or {}
 
     @classmethod
     def load(cls, extra: Iterable[Path] = ()) -> CodeTable:
-        """The shipped table, then each site file in order (later entries win)."""
+        """The shipped table, then each site file in order (later entries win).
+
+        A file holds ``[[code]]`` (system, code, kind, specimen, ventilator, oximetry),
+        ``[[device]]`` (system, code, device), ``[[device_word]]`` (word, device: a
+        site's own word or abbreviation, matched whole after lower-casing, with
+        ``_``, ``-`` and ``/`` read as spaces) and ``[[specimen]]`` (system, code,
+        specimen: Specimen.type codes).
+        """
         entries: dict[tuple[str, str], CodeEntry] = {}
         devices: dict[tuple[str, str], O2Device] = {}
+        device_words: dict[str, O2Device] = {}
+        specimens: dict[tuple[str, str], Specimen] = {}
         for path in (_SHIPPED, *extra):
             with open(path, "rb") as fh:
                 data = tomllib.load(fh)
@@ -66,7 +125,23 @@ class CodeTable:
                     devices[(str(row["system"]), str(row["code"]))] = O2Device(row["device"])
                 except (KeyError, ValueError) as exc:
                     raise ValueError(f"{where} is not a valid device entry: {exc}") from exc
-        return cls(entries, devices)
+            for i, row in enumerate(data.get("device_word", [])):
+                where = f"{path.name}: device_word[{i}]"
+                try:
+                    word = _words(str(row["word"]))
+                    if not word:
+                        raise ValueError("the word is empty")
+                    device_words[word] = O2Device(row["device"])
+                except (KeyError, ValueError) as exc:
+                    raise ValueError(f"{where} is not a valid device word: {exc}") from exc
+            for i, row in enumerate(data.get("specimen", [])):
+                where = f"{path.name}: specimen[{i}]"
+                try:
+                    key = (normalise_system(str(row["system"])), str(row["code"]))
+                    specimens[key] = Specimen(row["specimen"])
+                except (KeyError, ValueError) as exc:
+                    raise ValueError(f"{where} is not a valid specimen entry: {exc}") from exc
+        return cls(entries, devices, device_words, specimens)
 
     def lookup(self, system: str | None, code: str) -> CodeEntry | None:
         """The entry for a code, or None when gasgap does not know it (count and skip).
@@ -96,7 +171,30 @@ class CodeTable:
                 return O2Device(code.strip().lower())
             except ValueError:
                 pass
-        return device_from_text(text) if text else None
+            found = self.device_word(code)
+            if found is not None:
+                return found
+        return self.device_word(text) if text else None
+
+    def device_word(self, text: str) -> O2Device | None:
+        """A device named in words: the site's own words first (whole text), then
+        gasgap's patterns ("nasal_cannula", "Nasal Cannula", "NC", "non-rebreather")."""
+        words = _words(text)
+        if words in self._device_words:
+            return self._device_words[words]
+        return device_from_text(words)
+
+    def specimen(self, system: str | None, code: str | None, text: str | None = None
+                 ) -> Specimen | None:
+        """The specimen a Specimen.type coding (or its words) names, or None if it says
+        nothing gasgap can use."""
+        if code:
+            for sys in ((normalise_system(system),) if system else (SNOMED, HL7_0487)):
+                if (sys, code.strip()) in self._specimens:
+                    return self._specimens[(sys, code.strip())]
+        if text:
+            return specimen_from_text(text)
+        return None
 
     def codes_for(self, kinds: Iterable[Kind], system: str = LOINC) -> list[str]:
         """The codes of a system that map to any of ``kinds`` (for FHIR searches)."""
@@ -104,7 +202,10 @@ class CodeTable:
         return sorted(c for (s, c), e in self._entries.items() if s == system and e.kind in wanted)
 
 
-_SYSTEM_ALIASES = {"ln": LOINC, "loinc": LOINC, "sct": SNOMED, "snomed": SNOMED, "l": LOCAL}
+_SYSTEM_ALIASES = {
+    "ln": LOINC, "loinc": LOINC, "sct": SNOMED, "snomed": SNOMED, "snm": SNOMED,
+    "l": LOCAL, "hl70487": HL7_0487, "hl70070": HL7_0487,
+}
 
 
 def normalise_system(system: str) -> str:
@@ -113,9 +214,10 @@ def normalise_system(system: str) -> str:
 
 
 _DEVICE_WORDS = [
-    (re.compile(r"room\s*air|\bra\b|none", re.I), O2Device.ROOM_AIR),
+    (re.compile(r"room\s*air|\bra\b|\bnone\b", re.I), O2Device.ROOM_AIR),
     (re.compile(r"high[\s-]*flow|hfn", re.I), O2Device.HIGH_FLOW_NASAL),
-    (re.compile(r"non[\s-]*rebreath|reservoir", re.I), O2Device.RESERVOIR_MASK),
+    (re.compile(r"non\s*rebreath|reservoir|partial\s*rebreath|\bnrb\b", re.I),
+     O2Device.RESERVOIR_MASK),
     (re.compile(r"venturi", re.I), O2Device.VENTURI_MASK),
     (re.compile(r"nasal\s*cannula|\bnc\b|nasal prong", re.I), O2Device.NASAL_CANNULA),
     (re.compile(r"simple\s*(face\s*)?mask|face\s*mask", re.I), O2Device.SIMPLE_MASK),
@@ -125,9 +227,26 @@ _DEVICE_WORDS = [
 
 
 def device_from_text(text: str) -> O2Device | None:
+    words = _words(text)
     for pattern, device in _DEVICE_WORDS:
-        if pattern.search(text):
+        if pattern.search(words):
             return device
+    return None
+
+
+# Order matters: a text naming both ("arterialised capillary") is not arterial.
+_SPECIMEN_WORDS = [
+    (re.compile(r"capill|\bcbg\b", re.I), Specimen.CAPILLARY),
+    (re.compile(r"ven(ous|e)\b|\bvbg\b|\bmixed\b", re.I), Specimen.VENOUS),
+    (re.compile(r"arter|\babg\b", re.I), Specimen.ARTERIAL),
+]
+
+
+def specimen_from_text(text: str) -> Specimen | None:
+    """The specimen words name ("Arterial blood", "venous", "CBG"), or None."""
+    for pattern, specimen in _SPECIMEN_WORDS:
+        if pattern.search(text):
+            return specimen
     return None
 
 

@@ -17,7 +17,7 @@ from typing import Any
 
 import orjson
 
-from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, Rejection
+from adapters.fhir.observations import CONTEXT_TYPES, FhirBatch, FhirReadingBuilder, Rejection
 
 
 def bundle_entries(
@@ -43,15 +43,16 @@ def bundle_entries(
 
 
 def read_bundle(builder: FhirReadingBuilder, bundle: dict[str, Any]) -> FhirBatch:
-    """Read one Bundle: context (Patient, Encounter) first, panels noted, then the rest,
-    so the order of entries inside the Bundle does not matter."""
+    """Read one Bundle: context (Patient, Encounter, Specimen, DiagnosticReport) first,
+    panels noted, then the rest, so the order of entries inside the Bundle does not
+    matter."""
     batch = FhirBatch()
     if bundle.get("resourceType") != "Bundle":
         return builder.read(bundle)
     entries = list(bundle_entries(bundle, batch.skipped))
     builder.note_panels(res for res, _ in entries)
     context_first = sorted(
-        entries, key=lambda e: 0 if e[0].get("resourceType") in ("Patient", "Encounter") else 1
+        entries, key=lambda e: 0 if e[0].get("resourceType") in CONTEXT_TYPES else 1
     )
     for resource, full_url in context_first:
         if resource.get("resourceType") == "Bundle":
@@ -110,8 +111,10 @@ def ndjson_line_reason(number: int, raw: bytes) -> str:
 def read_ndjson(builder: FhirReadingBuilder, path: str | Path) -> FhirBatch:
     """Read an NDJSON file line by line. Bad lines are rejected; the others go on.
 
-    Resources are read in file order, so Patient context must come before the
-    Observations that need it (the bulk export's Patient file first).
+    Resources are read in file order. Identity does not depend on it (readings that
+    come before their Patient get a provisional key, re-keyed when the link is learnt:
+    ``FhirBatch.rekeys``); Specimen and panel context does, so a caller that can should
+    pass context files first, or read them with ``builder.remember`` beforehand.
     """
     batch = FhirBatch()
     name = Path(path).name

@@ -15,12 +15,22 @@ Identity (design contract)::
 
 ``N`` is the component's 0-based position in ``Observation.component``.
 
-Patient key: the Patient's identifier in ``patient_id_system``, else its first
-identifier. When the Patient resource has not been seen (nor supplied with
-``remember``), the fallback is the subject reference's own ``identifier`` in
-``patient_id_system`` if it has one, else the subject reference as sent, made relative
-("Patient/123"). Feed Patient resources first (the bulk export's Patient.ndjson
-before Observation.ndjson) so every reading of a patient gets the same key.
+Patient key (``monitor.engine.identity``): every name a resource gives a patient is a
+key (``Patient/<id>`` in any reference form -> ``ref:<source>:Patient/<id>``; each
+Patient.identifier -> its value in ``patient_id_system``, else ``system|value``). Each
+Patient, Encounter and Observation subject gives a ``PatientLink`` (in
+``FhirBatch.links``) which the builder's ``PatientRegister`` learns; a reading's
+``patient_key`` is the register's canonical key as of its reading. Readings that came
+before their Patient keep a provisional key until the caller's register learns the
+link and re-keys them (see ``PatientRegister.learn``). Birth dates and Encounter
+locations are also given as ``PatientFacts``.
+
+Specimen: the code table's specimen for the LOINC code, combined with
+Observation.specimen (a contained or referenced Specimen's type, SNOMED CT or HL7
+0487, else its words): an arterial specimen makes an "in Blood" code arterial; a
+venous or capillary one makes any code non-arterial; a conflict with the code is kept
+in ``FhirBatch.notes``. A Quantity with a comparator (">500") is never a Reading: it
+is a ``CensoredValue`` in ``FhirBatch.censored``.
 """
 
 from __future__ import annotations
@@ -36,9 +46,26 @@ from typing import Any
 import orjson
 from pydantic import ValidationError
 
-from adapters.codes import CodeEntry, CodeTable, parse_number, to_canonical
+from adapters.codes import (
+    COMPARATORS,
+    CensoredValue,
+    CodeEntry,
+    CodeTable,
+    parse_number,
+    specimen_from_text,
+    to_canonical,
+)
 from adapters.fhir import resources as r
+from monitor.engine import identity
 from monitor.engine.errors import InvalidReading
+from monitor.engine.identity import (
+    Dispute,
+    PatientFacts,
+    PatientLink,
+    PatientRegister,
+    RegisterSettings,
+    Rekey,
+)
 from monitor.engine.model import Kind, Location, Reading, Specimen, Status
 
 UCUM = "http://unitsofmeasure.org"
@@ -65,31 +92,68 @@ class Rejection:
     raw: bytes = b""
 
 
+#: Resources read as context (identity, location, specimen, grouping), not values.
+CONTEXT_TYPES = ("Patient", "Encounter", "Specimen", "DiagnosticReport")
+#: Resources gasgap reads at all; any other type is counted as "skipped: <type>".
+READ_TYPES = ("Observation", *CONTEXT_TYPES)
+#: Kinds measured in the blood sample itself, to which Observation.specimen applies.
+SAMPLE_KINDS = frozenset({Kind.PAO2, Kind.PACO2, Kind.PH, Kind.SAO2, Kind.HAEMOGLOBIN})
+
+
+@dataclass(frozen=True, slots=True)
+class ReadingNote:
+    """A quality note on one reading (e.g. its specimen contradicts its code)."""
+
+    logical_id: str
+    text: str
+
+
 @dataclass(slots=True)
 class FhirBatch:
     """What one pass over some resources produced.
 
     ``skipped_codes`` counts Observation codes gasgap does not know ("system|code");
-    ``skipped`` counts everything else left out on purpose, by reason ("resource
-    Location", "status registered", "DELETE entry", "panel without value" ...).
+    ``skipped`` counts everything else left out on purpose, by reason ("skipped:
+    Condition", "status registered", "DELETE entry", "panel without value" ...): never
+    quarantined. ``links`` and ``facts`` are for the caller's patient register;
+    ``panel_members`` pairs (member logical id, panel id) from DiagnosticReport.result
+    and Observation.hasMember, whatever the order the members came in; ``censored``
+    holds values sent with a comparator; ``notes`` quality notes on readings;
+    ``rekeys`` and ``disputes`` what learning the links did to the builder's register
+    (the caller's, when it passed one in).
     """
 
     readings: list[Reading] = field(default_factory=list)
     rejections: list[Rejection] = field(default_factory=list)
     skipped_codes: Counter[str] = field(default_factory=Counter)
     skipped: Counter[str] = field(default_factory=Counter)
+    links: list[PatientLink] = field(default_factory=list)
+    facts: list[PatientFacts] = field(default_factory=list)
+    censored: list[CensoredValue] = field(default_factory=list)
+    notes: list[ReadingNote] = field(default_factory=list)
+    panel_members: list[tuple[str, str]] = field(default_factory=list)
+    rekeys: list[Rekey] = field(default_factory=list)
+    disputes: list[Dispute] = field(default_factory=list)
 
     def extend(self, other: FhirBatch) -> None:
         self.readings.extend(other.readings)
         self.rejections.extend(other.rejections)
         self.skipped_codes.update(other.skipped_codes)
         self.skipped.update(other.skipped)
+        self.links.extend(other.links)
+        self.facts.extend(other.facts)
+        self.censored.extend(other.censored)
+        self.notes.extend(other.notes)
+        self.panel_members.extend(other.panel_members)
+        self.rekeys.extend(other.rekeys)
+        self.disputes.extend(other.disputes)
 
 
 @dataclass(frozen=True, slots=True)
 class PatientContext:
     patient_key: str
     birth_date: date | None = None
+    location: Location | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -141,23 +205,51 @@ def content_hash(resource: dict[str, Any]) -> str:
     return hashlib.sha256(canonical_json(body)).hexdigest()[:16]
 
 
-_ROOM = re.compile(r"\broom\s*[:#]?\s*([\w.-]+)", re.I)
-_BED = re.compile(r"\bbed\s*[:#]?\s*([\w.-]+)", re.I)
+_ROOM = re.compile(r"\b(?:room|rm)\b\.?\s*[:#]?\s*([\w.-]*\d[\w.-]*|[A-Z])\b", re.I)
+_BED = re.compile(r"\bbed\b\.?\s*[:#]?\s*([\w.-]*\d[\w.-]*|[A-Z])\b", re.I)
 
 
 def location_from_text(text: str) -> Location:
-    """'ICU-North, Room 4, Bed 2' / 'ICU-North Room 4 Bed 2' / 'ICU-North/4/2' -> Location."""
+    """'ICU-North, Room 4, Bed 2' / 'ICU-North Room 4 Bed 2' / 'ICU-North/4/2' -> Location.
+
+    "Room" and "Bed" count only as whole words followed by a number (or one letter), so
+    "Bedford Ward" is a unit; a text split on ',', '/' or '|' gives room and bed only
+    when the parts after the first carry a digit, so "HDU/ICU" is one unit.
+    """
+    text = text.strip()
     room, bed = _ROOM.search(text), _BED.search(text)
     if room or bed:
         first = min(m.start() for m in (room, bed) if m)
-        unit = text[:first].strip(" ,;/-") or None
+        unit = text[:first].strip(" ,;/-|") or None
         return Location(unit, room.group(1) if room else None, bed.group(1) if bed else None)
     parts = [p.strip() for p in re.split(r"[,/|]", text) if p.strip()]
-    padded = (parts + [None, None, None])[:3]
-    return Location(padded[0], padded[1], padded[2])
+    if len(parts) > 1 and all(any(c.isdigit() for c in p) for p in parts[1:3]) and len(parts) <= 3:
+        padded = (parts + [None, None, None])[:3]
+        return Location(padded[0], padded[1], padded[2])
+    return Location(text or None)
 
 
 _PHYSICAL_TYPE_FIELD = {"wa": "unit", "ro": "room", "bd": "bed"}
+#: Location physical types above a ward (FHIR location-physical-type codes, from memory).
+_ABOVE_UNIT = frozenset({"si", "bu", "wi", "lvl", "co", "area", "jdn"})
+
+
+def _above_unit(entry: r.EncounterLocation) -> bool:
+    """A site, building, wing or level: not where the patient lies."""
+    codes = {c.code for c in (entry.physicalType.coding if entry.physicalType else [])}
+    return bool(codes & _ABOVE_UNIT) and not codes & _PHYSICAL_TYPE_FIELD.keys()
+
+
+def _last_entries(entries: list[r.EncounterLocation]) -> list[r.EncounterLocation]:
+    """Of entries no longer in force, the last ones: those with the latest period
+    (end, else start); without periods, the last entry listed."""
+    done = [e for e in entries if e.status != "planned"] or entries
+    def when(e: r.EncounterLocation) -> str:
+        return (e.period.end or e.period.start or "") if e.period else ""
+    latest = max((when(e) for e in done), default="")
+    if not latest:
+        return done[-1:]
+    return [e for e in done if when(e) == latest]
 
 
 def encounter_location(enc: r.Encounter) -> Location | None:
@@ -169,21 +261,16 @@ def encounter_location(enc: r.Encounter) -> Location | None:
     merged, the most specific first. ``physicalType`` (wa/ro/bd) says which level an
     entry names; a reference without display gives its id.
     """
-    current = [e for e in enc.location if e.status not in ("completed", "planned")]
-    entries = current or enc.location[-1:]
+    places = [e for e in enc.location if not _above_unit(e)] or enc.location
+    current = [e for e in places if e.status not in ("completed", "planned")]
+    entries = current or _last_entries(places)
     parsed: list[Location] = []
     for entry in entries:
         text = entry.location.display or (entry.location.reference or "").rsplit("/", 1)[-1]
         if not text:
             continue
-        level = next(
-            (
-                _PHYSICAL_TYPE_FIELD[c.code]
-                for c in (entry.physicalType.coding if entry.physicalType else [])
-                if c.code in _PHYSICAL_TYPE_FIELD
-            ),
-            None,
-        )
+        codes = [c.code for c in (entry.physicalType.coding if entry.physicalType else [])]
+        level = next((_PHYSICAL_TYPE_FIELD[c] for c in codes if c in _PHYSICAL_TYPE_FIELD), None)
         parsed.append(Location(**{level: text}) if level else location_from_text(text))
     if not parsed:
         return None
@@ -195,25 +282,31 @@ def encounter_location(enc: r.Encounter) -> Location | None:
     return Location(**merged)
 
 
-def _specimen_override(obs: r.Observation) -> Specimen | None:
-    """Non-arterial specimen named by Observation.specimen (display, or a contained
-    Specimen's type), which wins over the code table's specimen."""
-    ref = obs.specimen
-    if ref is None:
+def specimen_of_type(codes: CodeTable, spec_type: r.CodeableConcept | None) -> Specimen | None:
+    """What a Specimen.type says: its codes first (SNOMED CT, HL7 0487), then words."""
+    if spec_type is None:
         return None
-    words = [ref.display or ""]
-    if ref.reference and ref.reference.startswith("#"):
-        for res in obs.contained:
-            if res.get("resourceType") == "Specimen" and f"#{res.get('id')}" == ref.reference:
-                kind = res.get("type") or {}
-                words.append(str(kind.get("text") or ""))
-                words.extend(str(c.get("display") or "") for c in kind.get("coding") or [])
-    text = " ".join(words).lower()
-    if "venous" in text:
-        return Specimen.VENOUS
-    if "capillary" in text:
-        return Specimen.CAPILLARY
-    return None
+    for c in spec_type.coding:
+        found = codes.specimen(c.system, c.code) if c.code else None
+        if found is not None:
+            return found
+    words = " ".join([spec_type.text or "", *(c.display or "" for c in spec_type.coding)])
+    return specimen_from_text(words) if words.strip() else None
+
+
+def combine_specimen(by_code: Specimen, by_specimen: Specimen | None) -> tuple[Specimen, str]:
+    """The sample type from the LOINC code and Observation.specimen, and a note when
+    they contradict each other (empty when they agree). Safety first: any non-arterial
+    sign wins; an arterial specimen makes an unspecified "in Blood" code arterial."""
+    if by_specimen is None or by_specimen is Specimen.UNKNOWN or by_specimen is by_code:
+        return by_code, ""
+    if by_code is Specimen.UNKNOWN:
+        return by_specimen, ""
+    if by_specimen is Specimen.ARTERIAL:
+        return by_code, (f"the specimen is arterial but the code is for {by_code} blood: "
+                         f"taken as {by_code}")
+    return by_specimen, (f"the specimen is {by_specimen} blood but the code is for "
+                         f"{by_code} blood: taken as {by_specimen}, not arterial")
 
 
 @dataclass(frozen=True, slots=True)
@@ -246,6 +339,8 @@ class FhirReadingBuilder:
         received_at: datetime | None = None,
         received_at_fn: Callable[[], datetime] | None = None,
         strict: bool = False,
+        register: PatientRegister | None = None,
+        register_settings: RegisterSettings | None = None,
     ) -> None:
         if not source_system:
             raise ValueError("source_system must name the FHIR source (it is part of every id)")
@@ -260,28 +355,58 @@ class FhirReadingBuilder:
                 return fixed or datetime.now(UTC)
 
         self._received_at_fn = received_at_fn
+        self.register = register or PatientRegister(
+            register_settings or RegisterSettings(patient_id_system=patient_id_system)
+        )
+        #: Patients read so far ("Patient/<id>" and fullUrl) with their key at that time:
+        #: which ones the poller need not fetch. Identity itself is the register's.
         self.patients: dict[str, PatientContext] = {}
         self.encounters: dict[str, EncounterContext] = {}
+        self.specimens: dict[str, Specimen | None] = {}
         self.panel_of: dict[str, str] = {}
 
     # --- context -----------------------------------------------------------------
 
-    def remember(self, resource: dict[str, Any], full_url: str | None = None) -> None:
-        """Take a Patient or Encounter as context only (e.g. from the poller's fetch);
-        anything else is ignored."""
-        if resource.get("resourceType") in ("Patient", "Encounter"):
-            self.read(resource, full_url=full_url)
+    def remember(
+        self, resource: dict[str, Any], full_url: str | None = None, into: FhirBatch | None = None
+    ) -> None:
+        """Take a context resource (Patient, Encounter, Specimen, DiagnosticReport) as
+        context only (e.g. from the poller's fetch, or a first pass over an export);
+        anything else is ignored. Links and facts go to ``into`` when given."""
+        if resource.get("resourceType") in CONTEXT_TYPES:
+            self.read(resource, full_url=full_url, into=into)
 
     def note_panels(self, resources: Iterable[dict[str, Any]]) -> None:
-        """Remember which panel each member Observation belongs to (``hasMember``), so
-        members read later get ``panel_id`` = the panel's id, whatever the order."""
+        """Remember which panel each member Observation belongs to (Observation.hasMember,
+        DiagnosticReport.result), so members read later get ``panel_id``, whatever the
+        order. A member of both an Observation panel and a report takes the panel's id."""
         for res in resources:
-            if res.get("resourceType") != "Observation" or not res.get("id"):
+            rtype = res.get("resourceType")
+            if rtype not in ("Observation", "DiagnosticReport") or not res.get("id"):
                 continue
-            for member in res.get("hasMember") or []:
-                key = reference_key((member or {}).get("reference"))
-                if key:
-                    self.panel_of[key] = str(res["id"])
+            field_name = "hasMember" if rtype == "Observation" else "result"
+            panel = str(res["id"]) if rtype == "Observation" else f"DiagnosticReport/{res['id']}"
+            for member in res.get(field_name) or []:
+                key = reference_key((member or {}).get("reference") if isinstance(member, dict)
+                                    else None)
+                if key and key.startswith("Observation/"):
+                    self._set_panel(key, panel)
+
+    def _set_panel(self, member: str, panel: str) -> None:
+        def rank(p: str) -> tuple[bool, str]:
+            return (p.startswith("DiagnosticReport/"), p)
+        old = self.panel_of.get(member)
+        if old is None or rank(panel) < rank(old):
+            self.panel_of[member] = panel
+
+    def _panel_members(self, res: dict[str, Any], batch: FhirBatch) -> None:
+        rtype = res.get("resourceType")
+        field_name = "hasMember" if rtype == "Observation" else "result"
+        for member in res.get(field_name) or []:
+            key = reference_key(member.get("reference") if isinstance(member, dict) else None)
+            if key and key.startswith("Observation/") and key in self.panel_of:
+                logical = f"fhir:{self.source_system}:{key}"
+                batch.panel_members.append((logical, self.panel_of[key]))
 
     # --- reading -----------------------------------------------------------------
 
@@ -302,8 +427,8 @@ class FhirReadingBuilder:
         rtype = resource.get("resourceType") if isinstance(resource, dict) else None
         rid = resource.get("id", "?") if isinstance(resource, dict) else "?"
         label = f"{rtype or 'resource'}/{rid}"
-        if rtype not in ("Observation", "Patient", "Encounter"):
-            batch.skipped[f"resource {rtype or 'without resourceType'}"] += 1
+        if rtype not in READ_TYPES:
+            batch.skipped[f"skipped: {rtype or 'resource without resourceType'}"] += 1
             return batch
         try:
             if self.strict:
@@ -313,9 +438,14 @@ class FhirReadingBuilder:
                 if problem:
                     raise Rejected(f"{label} is not valid FHIR R4: {problem}")
             if rtype == "Patient":
-                self._read_patient(resource, full_url)
+                self._read_patient(resource, full_url, batch)
             elif rtype == "Encounter":
-                self._read_encounter(resource, full_url)
+                self._read_encounter(resource, full_url, batch)
+            elif rtype == "Specimen":
+                self._read_specimen(resource, full_url)
+            elif rtype == "DiagnosticReport":
+                self.note_panels([resource])
+                self._panel_members(resource, batch)
             else:
                 self._read_observation(resource, full_url, batch, received_at)
         except Rejected as exc:
@@ -331,39 +461,89 @@ class FhirReadingBuilder:
         items = list(resources)
         batch = FhirBatch()
         self.note_panels(items)
-        for res in sorted(
-            items, key=lambda x: 0 if x.get("resourceType") in ("Patient", "Encounter") else 1
-        ):
+        for res in sorted(items, key=lambda x: 0 if x.get("resourceType") in CONTEXT_TYPES else 1):
             self.read(res, into=batch)
         return batch
 
-    def _read_patient(self, resource: dict[str, Any], full_url: str | None) -> None:
+    def _identifier_keys(self, idents: Iterable[r.Identifier]) -> list[str]:
+        return [
+            identity.identifier_key(
+                i.system, i.value, self.patient_id_system, f"fhir:{self.source_system}"
+            )
+            for i in idents
+            if i.value and i.value.strip()
+        ]
+
+    def _ref_key(self, reference: str | None) -> str | None:
+        return identity.reference_key(self.source_system, reference or "")
+
+    def _read_patient(
+        self, resource: dict[str, Any], full_url: str | None, batch: FhirBatch
+    ) -> None:
         pat = r.Patient.model_validate(resource)
         label = f"Patient/{pat.id}"
-        ids = [i for i in pat.identifier if i.value]
-        chosen = next(
-            (i for i in ids if self.patient_id_system and i.system == self.patient_id_system), None
-        )
-        chosen = chosen or (ids[0] if ids else None)
-        if chosen is None or not chosen.value:
-            raise Rejected(f"{label} identifier is missing: gasgap needs one to key the patient")
+        keys = [k for k in (self._ref_key(label) if pat.id else None, self._ref_key(full_url))
+                if k]
+        keys.extend(self._identifier_keys(pat.identifier))
+        if not keys:
+            raise Rejected(f"{label} has no id, fullUrl nor identifier: it names nobody")
         birth: date | None = None
         if pat.birthDate and len(pat.birthDate) == 10:
             try:
                 birth = date.fromisoformat(pat.birthDate)
             except ValueError as exc:
                 raise Rejected(f"{label} birthDate {pat.birthDate!r} is not a date") from exc
-        ctx = PatientContext(chosen.value, birth)
-        for key in (f"Patient/{pat.id}" if pat.id else None, full_url):
+        at = _meta_time(pat.meta)
+        self._link(batch, keys, at)
+        if birth is not None:
+            facts = PatientFacts(identity.best_key(keys), birth_date=birth, at=at)
+            self.register.note(facts)
+            batch.facts.append(facts)
+        ctx = PatientContext(self.register.canonical(keys[0]), birth)
+        for key in (label if pat.id else None, full_url):
             if key:
                 self.patients[key] = ctx
 
-    def _read_encounter(self, resource: dict[str, Any], full_url: str | None) -> None:
+    def _link(self, batch: FhirBatch, keys: list[str], at: datetime | None) -> None:
+        link = PatientLink(tuple(dict.fromkeys(keys)), f"fhir:{self.source_system}", at)
+        result = self.register.learn(link)
+        batch.links.append(link)
+        batch.rekeys.extend(result.rekeys)
+        batch.disputes.extend(result.disputes)
+
+    def _read_encounter(
+        self, resource: dict[str, Any], full_url: str | None, batch: FhirBatch
+    ) -> None:
         enc = r.Encounter.model_validate(resource)
-        ctx = EncounterContext(enc.id or (full_url or ""), encounter_location(enc))
+        location = encounter_location(enc)
+        ctx = EncounterContext(enc.id or (full_url or ""), location)
         for key in (f"Encounter/{enc.id}" if enc.id else None, full_url):
             if key:
                 self.encounters[key] = ctx
+        subject = enc.subject
+        keys = self._subject_keys(subject) if subject else []
+        if keys:
+            self._link(batch, keys, _meta_time(enc.meta))
+            if location is not None:
+                at = _meta_time(enc.meta)
+                if at is None and enc.period and enc.period.start:
+                    at = _instant_or_none(enc.period.start)
+                facts = PatientFacts(identity.best_key(keys), location=location, at=at)
+                self.register.note(facts)
+                batch.facts.append(facts)
+
+    def _read_specimen(self, resource: dict[str, Any], full_url: str | None) -> None:
+        spec = r.Specimen.model_validate(resource)
+        found = specimen_of_type(self.codes, spec.type)
+        for key in (f"Specimen/{spec.id}" if spec.id else None, full_url):
+            if key:
+                self.specimens[key] = found
+
+    def _subject_keys(self, subject: r.Reference) -> list[str]:
+        keys = [k for k in (self._ref_key(subject.reference),) if k]
+        if subject.identifier is not None:
+            keys.extend(self._identifier_keys([subject.identifier]))
+        return keys
 
     def _read_observation(
         self,
@@ -397,7 +577,7 @@ class FhirReadingBuilder:
         if not known:
             return
         effective = self._effective(obs, label)
-        patient = self._patient(obs, label)
+        patient = self._patient(obs, label, batch)
         encounter = (
             self.encounters.get(reference_key(obs.encounter.reference) or "")
             if obs.encounter
@@ -410,14 +590,26 @@ class FhirReadingBuilder:
             else (f"/_content/{content_hash(resource)}")
         )
         panel_id = self.panel_of.get(label) or (obs_id if obs.component else None)
+        if obs.hasMember:
+            self._panel_members(resource, batch)
         received = received_at or self._received_at_fn()
-        override = _specimen_override(obs)
+        by_specimen = self._specimen(obs)
         for item, entry, coding in known:
             where = f"{label}{item.where}"
+            specimen, conflict = entry.specimen, ""
+            if entry.kind in SAMPLE_KINDS:
+                specimen, conflict = combine_specimen(entry.specimen, by_specimen)
+            q = item.quantity
+            if q is not None and q.comparator and status is not Status.RETRACTED:
+                self._censored(batch, q, entry.kind, where, patient.patient_key, effective,
+                               logical + item.suffix, coding.code or "")
+                continue
             try:
                 kind, value, code_value, original_value, original_unit = self._value(
                     item, entry, status, where, obs
                 )
+                if conflict:
+                    batch.notes.append(ReadingNote(logical + item.suffix, conflict))
                 batch.readings.append(
                     Reading(
                         patient_key=patient.patient_key,
@@ -429,7 +621,7 @@ class FhirReadingBuilder:
                         logical_id=logical + item.suffix,
                         delivery_id=logical + item.suffix + version,
                         status=status,
-                        specimen=override or entry.specimen,
+                        specimen=specimen,
                         original_value=original_value,
                         original_unit=original_unit,
                         code=coding.code or "",
@@ -438,7 +630,8 @@ class FhirReadingBuilder:
                         panel_id=panel_id,
                         from_ventilator=entry.ventilator,
                         encounter_id=encounter.encounter_id if encounter else None,
-                        location=encounter.location if encounter else None,
+                        location=(encounter.location if encounter else None)
+                        or patient.location,
                         birth_date=patient.birth_date,
                     )
                 )
@@ -498,23 +691,60 @@ class FhirReadingBuilder:
             return fhir_instant(obs.effectiveInstant, f"{label} effectiveInstant")
         raise Rejected(f"{label} effective[x] is missing: gasgap needs the time of the sample")
 
-    def _patient(self, obs: r.Observation, label: str) -> PatientContext:
+    def _patient(self, obs: r.Observation, label: str, batch: FhirBatch) -> PatientContext:
         subject = obs.subject
         if subject is None:
             raise Rejected(f"{label} subject is missing: gasgap needs the patient")
-        key = reference_key(subject.reference)
-        if key and key in self.patients:
-            return self.patients[key]
-        ident = subject.identifier
-        if (
-            ident
-            and ident.value
-            and (self.patient_id_system is None or ident.system == self.patient_id_system)
-        ):
-            return PatientContext(ident.value)
-        if key and not key.startswith("#"):
-            return PatientContext(key)
-        raise Rejected(f"{label} subject names no patient (no reference or identifier)")
+        keys = self._subject_keys(subject)
+        if not keys:
+            raise Rejected(f"{label} subject names no patient (no reference or identifier)")
+        self._link(batch, keys, _meta_time(obs.meta))
+        person = self.register.person(keys[0])
+        return PatientContext(person.key, person.birth_date, person.location)
+
+    def _specimen(self, obs: r.Observation) -> Specimen | None:
+        """What Observation.specimen says (contained or referenced Specimen, else the
+        reference's display words), or None."""
+        ref = obs.specimen
+        if ref is None:
+            return None
+        found: Specimen | None = None
+        target = ref.reference or ""
+        if target.startswith("#"):
+            for res in obs.contained:
+                if res.get("resourceType") == "Specimen" and f"#{res.get('id')}" == target:
+                    try:
+                        spec = r.Specimen.model_validate(res)
+                    except ValidationError:
+                        continue
+                    found = specimen_of_type(self.codes, spec.type)
+        elif target:
+            found = self.specimens.get(reference_key(target) or "") or self.specimens.get(target)
+        if found is None and ref.display:
+            found = specimen_from_text(ref.display)
+        return found
+
+    def _censored(
+        self, batch: FhirBatch, q: r.Quantity, kind: Kind, where: str, patient_key: str,
+        effective: datetime, logical_id: str, code: str,
+    ) -> None:
+        comparator = (q.comparator or "").strip()
+        if comparator not in COMPARATORS:
+            raise Rejected(f"{where} valueQuantity.comparator {comparator!r} is not a FHIR "
+                           "comparator (<, <=, >=, >)")
+        unit = q.code if q.code and q.system in (None, UCUM) else q.unit
+        limit: float | None = None
+        if q.value is not None:
+            try:
+                limit = to_canonical(kind, q.value, unit)
+            except InvalidReading:
+                limit = None
+        batch.censored.append(CensoredValue(
+            patient_key=patient_key, kind=kind, comparator=comparator, limit=limit,
+            original_value=_num(q.value) if q.value is not None else "",
+            original_unit=unit or "", effective_at=effective,
+            source_system=self.source_system, logical_id=logical_id, code=code,
+        ))
 
     def _value(
         self, item: _Item, entry: CodeEntry, status: Status, where: str, obs: r.Observation
@@ -577,6 +807,17 @@ class FhirReadingBuilder:
         if status is Status.RETRACTED:
             return Kind.O2_DEVICE, None, None, "", ""
         raise Rejected(f"{where} valueCodeableConcept is missing: an O2 device reading needs one")
+
+
+def _meta_time(meta: r.Meta | None) -> datetime | None:
+    return _instant_or_none(meta.lastUpdated) if meta and meta.lastUpdated else None
+
+
+def _instant_or_none(text: str) -> datetime | None:
+    try:
+        return fhir_instant(text, "time")
+    except Rejected:
+        return None
 
 
 def _has_value(item: _Item) -> bool:

@@ -34,6 +34,7 @@ class CodeableConcept(_Element):
 
 class Quantity(_Element):
     value: float | None = None
+    comparator: str | None = None
     unit: str | None = None
     system: str | None = None
     code: str | None = None
@@ -101,6 +102,18 @@ class Patient(_Element):
     birthDate: str | None = None
 
 
+class Specimen(_Element):
+    resourceType: str = "Specimen"
+    id: str | None = None
+    type: CodeableConcept | None = None
+
+
+class DiagnosticReport(_Element):
+    resourceType: str = "DiagnosticReport"
+    id: str | None = None
+    result: list[Reference] = Field(default_factory=list)
+
+
 class EncounterLocation(_Element):
     location: Reference
     status: str | None = None
@@ -113,4 +126,5 @@ class Encounter(_Element):
     id: str | None = None
     meta: Meta | None = None
     subject: Reference | None = None
+    period: Period | None = None
     location: list[EncounterLocation] = Field(default_factory=list)

@@ -44,9 +44,19 @@ from datetime import UTC, date, datetime, timedelta, timezone, tzinfo
 
 import hl7
 
-from adapters.codes import CodeEntry, CodeTable, normalise_system, parse_number, to_canonical
+from adapters.codes import (
+    COMPARATORS,
+    CensoredValue,
+    CodeEntry,
+    CodeTable,
+    normalise_system,
+    parse_number,
+    to_canonical,
+)
 from adapters.hl7v2.ack import Hl7Error
+from monitor.engine import identity
 from monitor.engine.errors import InvalidReading
+from monitor.engine.identity import PatientFacts, PatientLink, RegisterSettings
 from monitor.engine.model import Kind, Location, Reading, Specimen, Status
 
 SUPPORTED_VERSIONS = frozenset({"2.3", "2.3.1", "2.4", "2.5", "2.5.1"})
@@ -96,6 +106,12 @@ class ParsedMessage:
     rejected: list[Rejection] = field(default_factory=list)
     ignored: Counter[str] = field(default_factory=Counter)
     warnings: list[Rejection] = field(default_factory=list)
+    #: One link per PID: every PID-3 identifier names the same person (for the register).
+    links: list[PatientLink] = field(default_factory=list)
+    #: Birth date (PID-7) and location (PV1-3) as of the message time.
+    facts: list[PatientFacts] = field(default_factory=list)
+    #: SN values with a comparator ("<^20"): kept, never used as exact numbers.
+    censored: list[CensoredValue] = field(default_factory=list)
 
 
 # --- text and structure -------------------------------------------------------------
@@ -357,6 +373,8 @@ class _Context:
     patient_id_system: str | None
     oximetry_in_message: bool
     seg: _Segments
+    register: RegisterSettings
+    message_time: datetime | None
 
 
 def parse_oru(
@@ -367,12 +385,15 @@ def parse_oru(
     source_system: str,
     site_tz: tzinfo,
     patient_id_system: str | None = None,
+    register_settings: RegisterSettings | None = None,
 ) -> ParsedMessage:
     """Read one ORU^R01 message into canonical Readings.
 
     ``received_at`` (aware) is when gasgap received it; ``site_tz`` is the zone of
     HL7 times sent without an offset; ``patient_id_system`` picks the PID-3
-    identifier whose assigning authority matches (else the first is used).
+    identifier whose assigning authority matches; every PID-3 identifier becomes a key
+    (``monitor.engine.identity.hl7_identifier_key``, with ``register_settings`` for
+    authority names) and the reading's ``patient_key`` is the best of them.
     Raises Hl7Error when the message as a whole cannot be taken (AE: malformed; AR:
     not an ORU^R01 or a version outside 2.3-2.5.1).
     """
@@ -398,8 +419,13 @@ def parse_oru(
     if not any(_name(s) == "PID" for s in segments):
         raise Hl7Error("no PID segment: results cannot be linked to a patient", "AE", "100")
     oximetry = any(_is_oximetry(seg, s, codes) for s in segments if _name(s) == "OBX")
+    settings = register_settings or RegisterSettings(patient_id_system=patient_id_system)
+    try:
+        message_time: datetime | None = parse_dtm(seg.get(msh, 7), site_tz)
+    except ValueError:
+        message_time = None
     ctx = _Context(codes, source_system, site_tz, received_at.astimezone(UTC), control_id,
-                   patient_id_system, oximetry, seg)
+                   settings.patient_id_system, oximetry, seg, settings, message_time)
     result = ParsedMessage(control_id, message_type, version)
     taken: list[tuple[str, Reading]] = []
     for order in _orders(segments):
@@ -482,7 +508,8 @@ def _order_facts(ctx: _Context, order: _Order, out: ParsedMessage) -> _OrderFact
         raise ValueError("no PID before this OBX: it cannot be linked to a patient")
     if order.obr is None:
         raise ValueError("no OBR before this OBX: it has no order")
-    patient_key = _patient_key(seg, order.pid, ctx.patient_id_system)
+    keys = _patient_keys(seg, order.pid, ctx)
+    patient_key = identity.best_key(keys)
     filler = seg.get(order.obr, 3) or (seg.get(order.orc, 3) if order.orc else "")
     if not filler:
         raise ValueError("OBR-3 (and ORC-3): no filler order number to identify the result")
@@ -501,35 +528,37 @@ def _order_facts(ctx: _Context, order: _Order, out: ParsedMessage) -> _OrderFact
     birth = _parse_date(birth_raw) if birth_raw else None
     if birth_raw and birth is None:
         out.warnings.append(Rejection("PID-7", "birth date is not a full date; age unknown"))
+    location = _location(seg, order.pv1)
+    link = PatientLink(tuple(keys), f"hl7:{ctx.source_system}", ctx.message_time)
+    if link not in out.links:
+        out.links.append(link)
+        if birth is not None or location is not None:
+            out.facts.append(PatientFacts(patient_key, birth, location, ctx.message_time))
     return _OrderFacts(
         patient_key=patient_key,
         filler_order=filler,
         collected_at=collected,
         specimen=combine_specimens(*signs),
-        location=_location(seg, order.pv1),
+        location=location,
         birth_date=birth,
         encounter_id=(seg.get(order.pv1, 19) or None) if order.pv1 else None,
     )
 
 
-def _patient_key(seg: _Segments, pid: hl7.Segment, wanted: str | None) -> str:
-    ids: list[tuple[str, set[str]]] = []
+def _patient_keys(seg: _Segments, pid: hl7.Segment, ctx: _Context) -> list[str]:
+    """A key for each PID-3 repetition (CX: ID^^^namespace&universal id&type), best first."""
+    keys: list[str] = []
     for rep in seg.reps(pid, 3):
         value = rep[0][0].strip() if rep and rep[0] else ""
         if not value:
             continue
         authority = rep[3] if len(rep) > 3 else []
-        names = {a.strip() for a in authority if a.strip()}
-        if len(authority) > 1 and authority[1].strip():
-            names.add(f"urn:oid:{authority[1].strip()}")
-        ids.append((value, names))
-    if not ids:
+        parts = [a.strip() for a in authority] + ["", "", ""]
+        keys.append(identity.hl7_identifier_key(
+            value, parts[0], parts[1], parts[2], ctx.register, ctx.source_system))
+    if not keys:
         raise ValueError("PID-3: no patient identifier")
-    if wanted:
-        for value, names in ids:
-            if wanted in names:
-                return value
-    return ids[0][0]
+    return sorted(dict.fromkeys(keys), key=lambda k: (identity.key_rank(k), k))
 
 
 def _location(seg: _Segments, pv1: hl7.Segment | None) -> Location | None:
@@ -574,8 +603,12 @@ def _read_obx(
     if effective is None:
         raise _Bad(f"{where}-14", "no observation time here nor in OBR-7")
     logical_id = f"hl7:{ctx.source_system}:{facts.filler_order}:{code}:{seg.get(obx, 4)}"
-    value, code_value, original_value, original_unit = _value(
-        ctx, obx, where, kind, status, value_reps)
+    try:
+        value, code_value, original_value, original_unit = _value(
+            ctx, obx, where, kind, status, value_reps)
+    except _CensoredSN as sn:
+        out.censored.append(_censored(ctx, facts, kind, code, logical_id, effective, sn))
+        return None
     return Reading(
         patient_key=facts.patient_key, kind=kind, value=value, effective_at=effective,
         received_at=ctx.received_at, source_system=ctx.source_system, logical_id=logical_id,
@@ -584,6 +617,30 @@ def _read_obx(
         code=code, code_system=normalise_system(system) if system else "",
         code_value=code_value, panel_id=facts.filler_order, from_ventilator=entry.ventilator,
         encounter_id=facts.encounter_id, location=facts.location, birth_date=facts.birth_date,
+    )
+
+
+class _CensoredSN(Exception):
+    """An SN value with a comparator: not a number to use, but kept as censored."""
+
+    def __init__(self, comparator: str, number: str, unit: str) -> None:
+        super().__init__(comparator)
+        self.comparator, self.number, self.unit = comparator, number, unit
+
+
+def _censored(
+    ctx: _Context, facts: _OrderFacts, kind: Kind, code: str, logical_id: str,
+    effective: datetime, sn: _CensoredSN,
+) -> CensoredValue:
+    limit: float | None = None
+    try:
+        limit = to_canonical(kind, parse_number(sn.number)[0], sn.unit)
+    except InvalidReading:
+        limit = None
+    return CensoredValue(
+        patient_key=facts.patient_key, kind=kind, comparator=sn.comparator, limit=limit,
+        original_value=sn.number, original_unit=sn.unit, effective_at=effective,
+        source_system=ctx.source_system, logical_id=logical_id, code=code,
     )
 
 
@@ -624,8 +681,11 @@ def _value(
     number_text = first
     if value_type == "SN":
         comparator = comps[0][0].strip() if comps[0] else ""
+        if comparator in COMPARATORS:
+            raise _CensoredSN(comparator, comps[1][0].strip() if len(comps) > 1 else "", unit)
         if comparator not in ("", "="):
-            raise _Bad(f"{where}-5", f"censored value {original!r} is not a measured number")
+            raise _Bad(f"{where}-5", f"comparator {comparator!r} of {original!r} is not an "
+                       "HL7 SN comparator")
         if len(comps) > 2 and any(c[0].strip() for c in comps[2:]):
             raise _Bad(f"{where}-5", f"ratio or range {original!r} is not a single number")
         number_text = comps[1][0].strip() if len(comps) > 1 else ""

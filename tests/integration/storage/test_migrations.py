@@ -24,6 +24,7 @@ EXPECTED_TABLES = {
     "alerts",
     "alert_events",
     "outbox",
+    "patient_links",
 }
 
 

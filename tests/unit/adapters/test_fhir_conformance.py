@@ -73,7 +73,8 @@ def test_lean_and_strict_paths_read_the_same_values(obs: dict) -> None:
     assert (reading.code_system, reading.code) == oracle.codes[0]
     assert oracle.effective is not None and reading.effective_at == oracle.effective
     assert reading.status.value == {"amended": "corrected"}.get(oracle.status, oracle.status)
-    assert reading.patient_key == oracle.subject
+    assert oracle.subject is not None
+    assert reading.patient_key == f"ref:h:{oracle.subject}"  # provisional: no Patient read
 
 
 @pytest.mark.parametrize(

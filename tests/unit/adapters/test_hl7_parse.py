@@ -230,11 +230,16 @@ def test_a_pressure_without_a_unit_is_rejected_not_guessed() -> None:
     assert not result.readings and result.rejected[0].where == "OBX[1]-6"
 
 
-def test_structured_numeric_is_read_and_a_censored_value_refused() -> None:
+def test_structured_numeric_is_read_and_a_censored_value_kept_apart() -> None:
+    # HL7 v2 SN = comparator^num1^separator^num2 (v2.5 chapter 2A, from memory): a
+    # comparator makes the value censored, never an exact number
     result = parse(single_obx(s.obx(1, "2744-1", "^7.41", "[pH]", value_type="SN"),
-                              s.obx(2, "2019-8", "<^20", "mm[Hg]", value_type="SN")))
+                              s.obx(2, "2019-8", "<^20", "mm[Hg]", value_type="SN"),
+                              s.obx(3, "2703-7", ">^500", "mm[Hg]", value_type="SN")))
     assert [r.value for r in result.readings] == [pytest.approx(7.41)]
-    assert result.rejected[0].where == "OBX[2]-5" and "censored" in result.rejected[0].reason
+    assert not result.rejected
+    assert [(c.kind, c.comparator, c.limit) for c in result.censored] == [
+        (Kind.PACO2, "<", 20.0), (Kind.PAO2, ">", 500.0)]
 
 
 # --- bad parts of a message ---------------------------------------------------------------
@@ -374,7 +379,8 @@ def test_the_identifier_of_the_configured_system_is_the_patient_key() -> None:
     raw = s.message(s.msh(), s.pid(extra_ids="X77^^^OTHERLAB^PI"), s.obr(),
                     s.obx(1, "2703-7", "70", "mm[Hg]"))
     assert one(raw).patient_key == "HM100234"
-    assert one(raw, patient_id_system=None).patient_key == "X77"
+    # without a configured system, the best key among identifiers by text
+    assert one(raw, patient_id_system=None).patient_key == "OTHERLAB|X77"
     assert one(raw).location is None
 
 
