@@ -1,8 +1,8 @@
 """Patient register: the links that name one person (storage/register.py).
 
-Revision ID: 0002_identity
-Revises: 0001
-Create Date: 2026-12-09
+Revision ID: 0003_identity
+Revises: 0002_timeline
+Create Date: 2026-12-02
 """
 
 from collections.abc import Sequence
