@@ -30,6 +30,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 import pydantic
 from pydantic import BaseModel, ConfigDict, Field
 
+from adapters.fhir.smart import SmartSettings
 from adapters.notify.email import EmailOptions
 from adapters.notify.fhir import FhirOptions
 from adapters.notify.log import LogOptions
@@ -339,6 +340,8 @@ class FhirSource(_Section):
     auth: Annotated[NoAuth | BearerAuth | BasicAuth, Field(discriminator="type")] = NoAuth(
         type="none"
     )
+    #: SMART Backend Services (``[sources.fhir.smart]``); when given, ``auth`` stays "none".
+    smart: SmartSettings | None = None
 
     @pydantic.field_validator("base_url")
     @classmethod

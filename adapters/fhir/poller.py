@@ -38,6 +38,7 @@ from adapters.fhir.observations import (
     fhir_instant,
     reference_key,
 )
+from adapters.fhir.smart import SmartAuth, SmartAuthError
 from monitor.engine.model import Kind, Reading
 
 log = logging.getLogger("gasgap.fhir.poller")
@@ -94,7 +95,7 @@ class FhirPoller:
         base_url: str,
         *,
         codes: CodeTable,
-        auth: BearerAuth | BasicAuth | None = None,
+        auth: BearerAuth | BasicAuth | SmartAuth | None = None,
         page_size: int = 100,
         client: httpx.Client | None = None,
         sleep: Callable[[float], None] = time.sleep,
@@ -111,7 +112,10 @@ class FhirPoller:
         self.max_retries = max_retries
         self.include_panels = include_panels
         self._sleep = sleep
-        self._headers = {"Accept": "application/fhir+json", **(auth.headers() if auth else {})}
+        # SMART tokens change over time: they are added per request by the httpx.Auth
+        self._auth: SmartAuth | None = auth if isinstance(auth, SmartAuth) else None
+        static = auth.headers() if isinstance(auth, BearerAuth | BasicAuth) else {}
+        self._headers = {"Accept": "application/fhir+json", **static}
         self._client = client or httpx.Client(timeout=timeout_s)
         self._origin = urlsplit(self.base_url)[:2]
         self.builder = FhirReadingBuilder(
@@ -124,6 +128,8 @@ class FhirPoller:
     def close(self) -> None:
         """Close the HTTP client (also when it was given: the poller owns it from then on)."""
         self._client.close()
+        if self._auth is not None:
+            self._auth.close()
 
     def __enter__(self) -> FhirPoller:
         return self
@@ -238,7 +244,13 @@ class FhirPoller:
             problem: str
             wait: float | None = None
             try:
-                response = self._client.get(url, params=params, headers=self._headers)
+                response = self._client.get(
+                    url, params=params, headers=self._headers, auth=self._auth
+                )
+            except SmartAuthError as exc:
+                if not exc.retryable:
+                    raise FhirSourceError(f"GET {where}: no access token: {exc}") from None
+                problem = f"no access token ({exc})"
             except httpx.TimeoutException as exc:
                 problem = f"timed out ({type(exc).__name__})"
             except httpx.TransportError as exc:

@@ -8,10 +8,19 @@ A FHIR R4 rest-hook subscription delivers either
 
 ``parse_notification`` only sorts these apart; the resources go through
 ``FhirReadingBuilder`` like any others.
+
+Topic-based notifications (R4 Subscriptions Backport IG) number their events:
+``events-since-subscription-start`` in the status, and an ``event-number`` per
+``notification-event`` (kebab-case in the R4 Parameters form, camelCase accepted too;
+``eventsSinceSubscriptionStart`` / ``notificationEvent.eventNumber`` in the R4B
+SubscriptionStatus). ``EventGapTracker`` remembers the last number seen per
+subscription and says when one was missed (a notification lost on the way, or sent
+while gasgap was down): the caller then polls the source to fill the gap.
 """
 
 from __future__ import annotations
 
+import threading
 from collections import Counter
 from dataclasses import dataclass, field
 from enum import StrEnum
@@ -46,6 +55,12 @@ class HookDelivery:
     full_urls: tuple[str | None, ...] = ()
     subscription: str | None = None
     skipped: Counter[str] = field(default_factory=Counter)
+    #: Topic-based notifications only: the notification type (handshake, heartbeat,
+    #: event-notification, query-status), the events since the subscription started,
+    #: and the numbers of the events this notification carries.
+    notification_type: str | None = None
+    events_since_start: int | None = None
+    event_numbers: tuple[int, ...] = ()
 
 
 def parse_notification(body: bytes, content_type: str | None) -> HookDelivery:
@@ -73,32 +88,134 @@ def parse_notification(body: bytes, content_type: str | None) -> HookDelivery:
     entries = list(bundle_entries(data, skipped))
     status = next((res for res, _ in entries if res.get("resourceType") in _STATUS_TYPES), None)
     payload = [(res, url) for res, url in entries if res.get("resourceType") not in _STATUS_TYPES]
-    note_type, subscription = _status_of(status) if status else (None, None)
-    if note_type in ("handshake", "heartbeat"):
-        return HookDelivery(HookKind.HEARTBEAT, subscription=subscription, skipped=skipped)
+    note = _status_of(status) if status else _Status()
+    if note.type in ("handshake", "heartbeat", "query-status"):
+        return _delivery(HookKind.HEARTBEAT, note, skipped)
     if not payload:
-        return HookDelivery(HookKind.PING, subscription=subscription, skipped=skipped)
+        return _delivery(HookKind.PING, note, skipped)
+    return _delivery(HookKind.RESOURCES, note, skipped, payload)
+
+
+def _delivery(
+    kind: HookKind,
+    note: _Status,
+    skipped: Counter[str],
+    payload: list[tuple[dict[str, Any], str | None]] | None = None,
+) -> HookDelivery:
     return HookDelivery(
-        HookKind.RESOURCES,
-        tuple(res for res, _ in payload),
-        tuple(url for _, url in payload),
-        subscription,
+        kind,
+        tuple(res for res, _ in payload or []),
+        tuple(url for _, url in payload or []),
+        note.subscription,
         skipped,
+        note.type,
+        note.events_since,
+        note.numbers,
     )
 
 
-def _status_of(status: dict[str, Any]) -> tuple[str | None, str | None]:
-    """(notification type, subscription reference) from a SubscriptionStatus or the
-    R4 backport's Parameters form of it."""
+@dataclass(slots=True)
+class _Status:
+    type: str | None = None
+    subscription: str | None = None
+    events_since: int | None = None
+    numbers: tuple[int, ...] = ()
+
+
+def _status_of(status: dict[str, Any]) -> _Status:
+    """What a SubscriptionStatus (R4B) or the R4 backport's Parameters form of it says.
+    An event number that is not a whole number is left out (and then the notification
+    reads as unnumbered, which never claims a gap)."""
+    out = _Status()
     if status.get("resourceType") == "SubscriptionStatus":
-        return status.get("type"), (status.get("subscription") or {}).get("reference")
-    note_type = subscription = None
+        out.type = status.get("type")
+        out.subscription = (status.get("subscription") or {}).get("reference")
+        out.events_since = _count(status.get("eventsSinceSubscriptionStart"))
+        numbers = [_count(e.get("eventNumber")) for e in status.get("notificationEvent") or []]
+        out.numbers = tuple(n for n in numbers if n is not None)
+        return out
+    found: list[int | None] = []
     for param in status.get("parameter") or []:
-        if param.get("name") == "type":
-            note_type = param.get("valueCode")
-        elif param.get("name") == "subscription":
-            subscription = (param.get("valueReference") or {}).get("reference")
-    return note_type, subscription
+        name = param.get("name")
+        if name == "type":
+            out.type = param.get("valueCode")
+        elif name == "subscription":
+            out.subscription = (param.get("valueReference") or {}).get("reference")
+        elif name in ("events-since-subscription-start", "eventsSinceSubscriptionStart"):
+            out.events_since = _count(_value(param))
+        elif name in ("notification-event", "notificationEvent"):
+            for part in param.get("part") or []:
+                if part.get("name") in ("event-number", "eventNumber"):
+                    found.append(_count(_value(part)))
+    out.numbers = tuple(n for n in found if n is not None)
+    return out
+
+
+def _value(node: dict[str, Any]) -> object:
+    return next((v for k, v in node.items() if k.startswith("value")), None)
+
+
+def _count(value: object) -> int | None:
+    """A non-negative whole number from an integer or a string (R4 backport sends
+    ``valueString``, R4B ``integer64`` as a string), else None."""
+    if isinstance(value, bool):
+        return None
+    if isinstance(value, int):
+        return value if value >= 0 else None
+    if isinstance(value, str) and value.strip().isdigit():
+        return int(value.strip())
+    return None
+
+
+@dataclass(frozen=True, slots=True)
+class GapCheck:
+    """Whether a notification shows events gasgap did not receive."""
+
+    missed_from: int | None = None
+    missed_to: int | None = None
+    reason: str = ""
+
+    @property
+    def poll_needed(self) -> bool:
+        return bool(self.reason)
+
+
+class EventGapTracker:
+    """The last event number seen per (source, subscription), in this process.
+
+    A gap (a number skipped, a heartbeat counting more events than were seen) means a
+    notification was lost: poll to fill it. The first numbered notification after a
+    start says nothing about what came before, so it asks for one poll too (unless it
+    is event 1 or a handshake). Older or repeated numbers are no gap: the resources are
+    read again and storage drops the repeats. Thread-safe. With several processes each
+    sees only its share of notifications and polls more often than needed, never less.
+    """
+
+    def __init__(self) -> None:
+        self._last: dict[tuple[str, str], int] = {}
+        self._lock = threading.Lock()
+
+    def check(self, source: str, delivery: HookDelivery) -> GapCheck:
+        numbers = delivery.event_numbers
+        since = delivery.events_since_start
+        if delivery.subscription is None or (since is None and not numbers):
+            return GapCheck()  # a plain rest-hook notification: nothing to count
+        key = (source, delivery.subscription)
+        newest = max([*numbers, *([since] if since is not None else [])])
+        with self._lock:
+            last = self._last.get(key)
+            self._last[key] = newest if last is None else max(last, newest)
+        if delivery.notification_type == "handshake":
+            return GapCheck()
+        first = min(numbers) if numbers else newest + 1  # a heartbeat carries no event
+        if last is None:
+            if first <= 1:
+                return GapCheck()
+            return GapCheck(None, first - 1, "first notification since gasgap started "
+                            f"(events up to {first - 1} may have been missed)")
+        if first > last + 1:
+            return GapCheck(last + 1, first - 1, f"events {last + 1}..{first - 1} not received")
+        return GapCheck()
 
 
 def read_delivery(builder: FhirReadingBuilder, delivery: HookDelivery) -> FhirBatch:

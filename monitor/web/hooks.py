@@ -5,7 +5,9 @@ A FHIR server with a rest-hook Subscription posts here when something changed:
   hook answers 202 at once;
 - a resource or a Bundle: read like any other FHIR input and given to the pipeline;
   the answer (200) comes after the batch is committed;
-- a handshake or heartbeat: 200, nothing to do.
+- a handshake or heartbeat: 200, nothing to do;
+- a topic-based notification (R4 Subscriptions Backport) whose event numbers show one
+  was missed: the source is polled as well, to fill the gap.
 
 When a shared secret is configured the header must carry it (constant-time check), or
 the answer is 401. A body that is not FHIR JSON gets 400 with the reason.
@@ -20,11 +22,18 @@ from fastapi import APIRouter, Depends, HTTPException, Request
 from fastapi.responses import JSONResponse
 from starlette.concurrency import run_in_threadpool
 
-from adapters.fhir.subscription import HookKind, HookPayloadError, parse_notification
+from adapters.fhir.subscription import (
+    EventGapTracker,
+    HookKind,
+    HookPayloadError,
+    parse_notification,
+)
 from monitor.web.security import check_hook_secret
 
 log = logging.getLogger("gasgap.hooks")
 router = APIRouter(tags=["subscription"], dependencies=[Depends(check_hook_secret)])
+#: Event numbers of topic-based (R4 backport) subscriptions seen by this process.
+EVENT_GAPS = EventGapTracker()
 
 
 @router.post("/hooks/fhir/{source}", summary="FHIR R4 rest-hook subscription delivery")
@@ -37,6 +46,10 @@ async def fhir_hook(request: Request, source: str) -> JSONResponse:
         delivery = parse_notification(body, request.headers.get("content-type"))
     except HookPayloadError as exc:
         raise HTTPException(400, str(exc)) from None
+    gap = EVENT_GAPS.check(source, delivery)
+    if gap.poll_needed and delivery.kind is not HookKind.PING and source in ctx.poll_now:
+        ctx.poll_now[source]()  # a lost notification: the poll fills the gap
+        log.warning("subscription %s: %s; poll started", source, gap.reason)
     if delivery.kind is HookKind.HEARTBEAT:
         return JSONResponse({"outcome": "heartbeat noted"})
     if delivery.kind is HookKind.PING:
