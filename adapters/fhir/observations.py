@@ -593,6 +593,11 @@ class FhirReadingBuilder:
         if obs.hasMember:
             self._panel_members(resource, batch)
         received = received_at or self._received_at_fn()
+        # When the result became available: Observation.issued, else the version's
+        # meta.lastUpdated; neither, the receipt time stands in.
+        known_at = (
+            _instant_or_none(obs.issued) if obs.issued else None
+        ) or _meta_time(obs.meta)
         by_specimen = self._specimen(obs)
         for item, entry, coding in known:
             where = f"{label}{item.where}"
@@ -633,6 +638,7 @@ class FhirReadingBuilder:
                         location=(encounter.location if encounter else None)
                         or patient.location,
                         birth_date=patient.birth_date,
+                        known_at=known_at,
                     )
                 )
             except Rejected as exc:

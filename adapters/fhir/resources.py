@@ -82,6 +82,7 @@ class Observation(_Element):
     effectiveDateTime: str | None = None
     effectivePeriod: Period | None = None
     effectiveInstant: str | None = None
+    issued: str | None = None
     valueQuantity: Quantity | None = None
     valueCodeableConcept: CodeableConcept | None = None
     valueString: str | None = None

@@ -75,6 +75,8 @@ def recover_header(message: bytes | str | None) -> Header:
     if start < 0 or len(text) < start + 8:
         return Header()
     first = text[start:].replace("\n", "\r").split("\r", 1)[0]
+    if len(first) < 4:
+        return Header()  # a bare "MSH" line: no separator to read
     sep = first[3]
     if sep.isalnum() or sep.isspace():
         return Header()

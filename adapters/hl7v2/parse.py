@@ -603,6 +603,14 @@ def _read_obx(
     if effective is None:
         raise _Bad(f"{where}-14", "no observation time here nor in OBR-7")
     logical_id = f"hl7:{ctx.source_system}:{facts.filler_order}:{code}:{seg.get(obx, 4)}"
+    # When the result became available: OBX-19 (date/time of the analysis, v2.5),
+    # else the message time MSH-7; unreadable, the receipt time stands in.
+    known_at = ctx.message_time
+    if seg.get(obx, 19):
+        try:
+            known_at = parse_dtm(seg.get(obx, 19), ctx.site_tz)
+        except ValueError:
+            known_at = ctx.message_time
     try:
         value, code_value, original_value, original_unit = _value(
             ctx, obx, where, kind, status, value_reps)
@@ -617,6 +625,7 @@ def _read_obx(
         code=code, code_system=normalise_system(system) if system else "",
         code_value=code_value, panel_id=facts.filler_order, from_ventilator=entry.ventilator,
         encounter_id=facts.encounter_id, location=facts.location, birth_date=facts.birth_date,
+        known_at=known_at,
     )
 
 
