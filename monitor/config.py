@@ -35,6 +35,7 @@ from adapters.notify.fhir import FhirOptions
 from adapters.notify.log import LogOptions
 from adapters.notify.webhook import WebhookOptions
 from monitor.engine.alerts import AlertSettings
+from monitor.engine.errors import MonitorError
 from monitor.engine.model import Priority
 from monitor.engine.rules import (
     AaRiseRule,
@@ -63,7 +64,7 @@ _SECRET_KEYS = re.compile(
 )
 
 
-class ConfigError(ValueError):
+class ConfigError(MonitorError, ValueError):
     """The configuration cannot be used. ``problems`` lists each as "key.path: what"."""
 
     def __init__(self, source: str, problems: list[str]) -> None:

@@ -13,7 +13,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from adapters.notify.base import DeliveryFailed, DeliveryResult
-from monitor.dispatch import (
+from monitor.outbox.retry import (
     DispatchPolicy,
     Outcome,
     backoff_delay,
