@@ -96,13 +96,6 @@ def open_db(config: SiteConfig, secrets: Secrets, override: str | None = None) -
 # --- the engine's settings and the pipeline ------------------------------------------------
 
 
-def _history_window(config: SiteConfig) -> timedelta:
-    """How far back the enabled rules look (at least 24 h)."""
-    spans = [timedelta(hours=24)]
-    spans += [getattr(r, "window", timedelta(0)) for r in config.to_rule_set().enabled]
-    return max(spans)
-
-
 def pipeline_settings(config: SiteConfig) -> PipelineSettings:
     """Everything the pipeline needs from the site configuration, converted once."""
     return PipelineSettings(
@@ -117,7 +110,7 @@ def pipeline_settings(config: SiteConfig) -> PipelineSettings:
         ),
         display_key=config.site.display_key,
         site_tz=config.zone(),
-        history=_history_window(config),
+        history=config.history_window(),
         retention=timedelta(days=config.retention_days) if config.retention_days else None,
     )
 

@@ -95,8 +95,10 @@ def _run_db_upgrade(args: argparse.Namespace) -> int:
 
 
 def _run_config_check(args: argparse.Namespace) -> int:
-    from monitor.config import check_config
+    from monitor.config import check_config, file_notes
 
+    for note in file_notes(args.file):
+        print(f"{args.file}: note: {note}", file=sys.stderr)
     problems = check_config(args.file)
     if problems:
         for problem in problems:

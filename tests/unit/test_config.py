@@ -18,6 +18,7 @@ from monitor.config import (
     ConfigError,
     SiteConfig,
     check_config,
+    file_notes,
     default_config,
     load_config,
     secret,
@@ -265,3 +266,31 @@ def test_site_config_is_frozen():
     with pytest.raises(Exception):  # pydantic's ValidationError for a frozen model
         config.retention_days = 5  # type: ignore[misc]
     assert isinstance(config, SiteConfig)
+
+
+# --- [flags], formerly [alerts] -----------------------------------------------------------
+
+
+def test_old_alerts_section_still_loads_with_a_note(tmp_path, caplog):
+    path = tmp_path / "site.toml"
+    path.write_text("[alerts]\ncooldown_min = 45\n", encoding="utf-8")
+    with caplog.at_level("WARNING", logger="gasgap.config"):
+        config = load_config(path)
+    assert config.flags.cooldown_min == 45
+    assert config.to_alert_settings().cooldown == timedelta(minutes=45)
+    assert any("renamed to [flags]" in r.getMessage() for r in caplog.records)
+    assert file_notes(path) == [
+        "alerts: renamed to [flags]; the old name still loads but will stop working"
+    ]
+
+
+def test_flags_section_is_the_name_now(tmp_path):
+    path = tmp_path / "site.toml"
+    path.write_text("[flags]\nescalate_after_min = 20\n", encoding="utf-8")
+    assert load_config(path).flags.escalate_after_min == 20
+    assert file_notes(path) == []
+
+
+def test_a_file_with_both_names_is_refused():
+    problems = problems_of({"alerts": {"cooldown_min": 10}, "flags": {"cooldown_min": 20}})
+    assert problems == ["alerts: unknown key"]
