@@ -21,8 +21,20 @@ def iso_utc(value: datetime | None, *, z: bool = False) -> str | None:
 
 #: Fields of a derivation that are not one of its values (identity, provenance, marks).
 _NOT_VALUES = frozenset(
-    {"patient_key", "sample_id", "drawn_at", "specimen", "equation", "fio2_source",
-     "location", "estimated", "preliminary", "constants", "inputs", "flags"}
+    {
+        "patient_key",
+        "sample_id",
+        "drawn_at",
+        "specimen",
+        "equation",
+        "fio2_source",
+        "location",
+        "estimated",
+        "preliminary",
+        "constants",
+        "inputs",
+        "flags",
+    }
 )
 
 #: The derived values of a ``Derivation``, in the dataclass's order: read from the

@@ -326,8 +326,14 @@ def _jobs(
             continue
         every = timedelta(seconds=s.poll_seconds)
         poll = PollJob(
-            s.name, pollers[s.name], db=db, every=every, accept=late.accept_from(s.name),
-            to_inbound=_poll_inbound(s.name), clock=clock, metrics=metrics,
+            s.name,
+            pollers[s.name],
+            db=db,
+            every=every,
+            accept=late.accept_from(s.name),
+            to_inbound=_poll_inbound(s.name),
+            clock=clock,
+            metrics=metrics,
         )
         jobs.append(Job(f"poll:{s.name}", every, poll, lock=f"poll:{s.name}", run_at_start=True))
     jobs.append(Job(DISPATCH_JOB, DISPATCH_EVERY, dispatcher.drain, lock="outbox"))
@@ -336,8 +342,11 @@ def _jobs(
     )
     jobs.append(
         Job(
-            "retention", RETENTION_EVERY, lambda: pipeline.purge(now=clock()),
-            lock="retention", run_at_start=config.retention_days is not None,
+            "retention",
+            RETENTION_EVERY,
+            lambda: pipeline.purge(now=clock()),
+            lock="retention",
+            run_at_start=config.retention_days is not None,
         )
     )
     return jobs

@@ -60,9 +60,7 @@ def add_calc_command(sub: Subparsers) -> None:
     )
     where = p.add_mutually_exclusive_group()
     where.add_argument("--pb", type=_number, help="barometric pressure (default 760 mmHg)")
-    where.add_argument(
-        "--elevation-m", type=_number, help="site elevation; PB from ISA"
-    )
+    where.add_argument("--elevation-m", type=_number, help="site elevation; PB from ISA")
     p.add_argument("--temp-c", type=_number, default=37.0, help="body temperature, C")
     p.add_argument("--rq", type=_number, default=0.8, help="respiratory quotient (0.8)")
     p.add_argument("--age", type=_number, help="age in years (age-expected A-a)")
@@ -73,7 +71,9 @@ def add_calc_command(sub: Subparsers) -> None:
     p.add_argument("--sao2", type=_number, help="measured SaO2, %%")
     p.add_argument("--units", choices=["mmHg", "kPa"], default="mmHg", help="inputs and outputs")
     p.add_argument(
-        "--equation", choices=[e.value for e in phys.Equation], default="full",
+        "--equation",
+        choices=[e.value for e in phys.Equation],
+        default="full",
         help="alveolar gas equation form (full)",
     )
     p.add_argument("--json", action="store_true", help="print one JSON object")

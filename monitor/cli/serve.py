@@ -50,8 +50,9 @@ def add_serve_commands(sub: Subparsers) -> None:
     check.set_defaults(run=_run_config_check)
 
     flags = sub.add_parser(
-        "flags", aliases=["alerts"], help="list open flags, or acknowledge one ('alerts' is "
-        "the old name)"
+        "flags",
+        aliases=["alerts"],
+        help="list open flags, or acknowledge one ('alerts' is the old name)",
     )
     flags.add_argument("--unit", help="only this unit")
     flags.add_argument("--json", action="store_true", help="one JSON object")

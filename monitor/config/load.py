@@ -54,7 +54,6 @@ def _secrets_in_clear(node: object, path: str = "") -> list[str]:
     return problems
 
 
-
 #: Keys of older site files and their names now: ``{old: new}`` (top-level sections).
 RENAMED_KEYS = {"alerts": "flags"}
 

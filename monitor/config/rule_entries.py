@@ -57,8 +57,12 @@ class PfFallEntry(_RuleEntry):
 
     def to_spec(self) -> RuleSpec:
         return PfFallRule(
-            self.id, self.enabled, self.fall_percent / 100.0,
-            timedelta(hours=self.window_hours), self.min_gases, Priority(self.priority),
+            self.id,
+            self.enabled,
+            self.fall_percent / 100.0,
+            timedelta(hours=self.window_hours),
+            self.min_gases,
+            Priority(self.priority),
         )
 
 
@@ -82,8 +86,12 @@ class AaRiseEntry(_RuleEntry):
 
     def to_spec(self) -> RuleSpec:
         return AaRiseRule(
-            self.id, self.enabled, self.rise_mmhg, timedelta(hours=self.window_hours),
-            self.fio2_tolerance, Priority(self.priority),
+            self.id,
+            self.enabled,
+            self.rise_mmhg,
+            timedelta(hours=self.window_hours),
+            self.fio2_tolerance,
+            Priority(self.priority),
         )
 
 
@@ -96,7 +104,10 @@ class OxygenEscalationEntry(_RuleEntry):
 
     def to_spec(self) -> RuleSpec:
         return OxygenEscalationRule(
-            self.id, self.enabled, self.rise, timedelta(hours=self.window_hours),
+            self.id,
+            self.enabled,
+            self.rise,
+            timedelta(hours=self.window_hours),
             Priority(self.priority),
         )
 
@@ -117,8 +128,12 @@ class SfLowEntry(_RuleEntry):
 
     def to_spec(self) -> RuleSpec:
         return SfLowRule(
-            self.id, self.enabled, self.threshold, timedelta(minutes=self.min_apart_min),
-            timedelta(hours=self.window_hours), Priority(self.priority),
+            self.id,
+            self.enabled,
+            self.threshold,
+            timedelta(minutes=self.min_apart_min),
+            timedelta(hours=self.window_hours),
+            Priority(self.priority),
         )
 
 

@@ -71,7 +71,6 @@ class PairingSection(_Section):
     spo2_window_min: _Minutes = 15
 
 
-
 class FlagsSection(_Section):
     """Flag timing, ``[flags]`` (``[alerts]`` in older files): cooldown and escalation
     (``monitor.engine.alerts.AlertSettings``) and the hysteresis by which a condition

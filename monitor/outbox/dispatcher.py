@@ -102,7 +102,11 @@ class OutboxDispatcher:
                 outbox.mark_sent(conn, item.id, now)
             else:
                 outbox.mark_failed(
-                    conn, item.id, now, step.detail, step.retry_at or now,
+                    conn,
+                    item.id,
+                    now,
+                    step.detail,
+                    step.retry_at or now,
                     dead=step.outcome is Outcome.DEAD,
                 )
         self._count(item, step.outcome, report)
@@ -110,11 +114,22 @@ class OutboxDispatcher:
         if step.outcome is Outcome.SENT:
             log.info("notification %s sent via %s", ref, item.channel)
         elif step.outcome is Outcome.RETRY:
-            log.warning("notification %s via %s failed (attempt %d), retry at %s: %s", ref,
-                        item.channel, item.attempts, step.retry_at, step.detail)
+            log.warning(
+                "notification %s via %s failed (attempt %d), retry at %s: %s",
+                ref,
+                item.channel,
+                item.attempts,
+                step.retry_at,
+                step.detail,
+            )
         else:
-            log.error("notification %s via %s given up after %d attempts: %s", ref,
-                      item.channel, item.attempts, step.detail)
+            log.error(
+                "notification %s via %s given up after %d attempts: %s",
+                ref,
+                item.channel,
+                item.attempts,
+                step.detail,
+            )
 
     def _count(self, item: outbox.OutboxItem, outcome: Outcome, report: RoundReport) -> None:
         if outcome is Outcome.SENT:

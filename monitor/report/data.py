@@ -38,9 +38,7 @@ class ReportData:
     outbox: Counter[tuple[str, str]] = field(default_factory=Counter)
 
 
-def _time_to_flag(
-    series: PatientSeries, e: ReplayEvent, spec: RuleSpec | None
-) -> TimeToFlag:
+def _time_to_flag(series: PatientSeries, e: ReplayEvent, spec: RuleSpec | None) -> TimeToFlag:
     # the gases of the flag's own kind (gases, or SpO2 estimates), not withdrawn, plus
     # the raising sample itself even if it was withdrawn later
     raising = next((d for d, _ in series.derivations if d.sample_id == e.sample_id), None)

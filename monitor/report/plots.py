@@ -63,21 +63,38 @@ def _crossed(ax: Any, gases: Points, attr: str, tz: tzinfo) -> None:
     ]
     if pts:
         ax.scatter(
-            [t for t, _ in pts], [v for _, v in pts], marker="x", s=70, color="#b23a48",
-            label="withdrawn result", zorder=4,
+            [t for t, _ in pts],
+            [v for _, v in pts],
+            marker="x",
+            s=70,
+            color="#b23a48",
+            label="withdrawn result",
+            zorder=4,
         )
 
 
 def _pf_panel(ax: Any, gases: Points, estimates: Points, tz: tzinfo) -> None:
     _line(ax, gases, "pf_ratio", tz, marker="o", color="#555555", label="P/F measured")
     _line(
-        ax, gases, "pf_ratio_adjusted", tz, marker="s", color="#2a6f97",
+        ax,
+        gases,
+        "pf_ratio_adjusted",
+        tz,
+        marker="s",
+        color="#2a6f97",
         label="P/F altitude-adjusted",
     )
     _crossed(ax, gases, "pf_ratio", tz)
     _line(
-        ax, estimates, "sf_ratio", tz, linestyle="none", marker=".", color="#a0a0a0",
-        label="S/F (estimate)", alpha=0.6,
+        ax,
+        estimates,
+        "sf_ratio",
+        tz,
+        linestyle="none",
+        marker=".",
+        color="#a0a0a0",
+        label="S/F (estimate)",
+        alpha=0.6,
     )
     ax.set_ylabel("ratio (mmHg)")
 
@@ -85,8 +102,15 @@ def _pf_panel(ax: Any, gases: Points, estimates: Points, tz: tzinfo) -> None:
 def _aa_panel(ax: Any, gases: Points, tz: tzinfo) -> None:
     _line(ax, gases, "aa_gradient", tz, marker="o", color="#7b4f9d", label="A–a gradient")
     _line(
-        ax, gases, "aa_gradient_expected", tz, linestyle="--", marker="_", markersize=14,
-        color="#9b7fb5", label="age-expected (room air)",
+        ax,
+        gases,
+        "aa_gradient_expected",
+        tz,
+        linestyle="--",
+        marker="_",
+        markersize=14,
+        color="#9b7fb5",
+        label="age-expected (room air)",
     )
     _crossed(ax, gases, "aa_gradient", tz)
     ax.set_ylabel("A–a (mmHg)")
@@ -95,8 +119,15 @@ def _aa_panel(ax: Any, gases: Points, tz: tzinfo) -> None:
 def _fio2_panel(ax: Any, gases: Points, estimates: Points, tz: tzinfo) -> None:
     _line(ax, gases, "fio2", tz, marker="o", color="#3c8d5a", label="FiO2 at gas")
     _line(
-        ax, estimates, "fio2", tz, linestyle="none", marker=".", color="#9cc9a8",
-        label="FiO2 at SpO2", alpha=0.6,
+        ax,
+        estimates,
+        "fio2",
+        tz,
+        linestyle="none",
+        marker=".",
+        color="#9cc9a8",
+        label="FiO2 at SpO2",
+        alpha=0.6,
     )
     ax.set_ylabel("FiO2")
     ax.set_ylim(0.15, 1.05)
@@ -117,8 +148,15 @@ def _mark_events(axes: Sequence[Any], series: PatientSeries, tz: tzinfo) -> None
         marker = EVENT_MARKER.get(e.event, "*")
         edge = {} if marker == "x" else {"edgecolors": "black", "linewidths": 0.4}
         ax_pf.scatter(
-            [at], [top], marker=marker, s=60, color=colour, label=label, zorder=5,
-            clip_on=False, **edge,
+            [at],
+            [top],
+            marker=marker,
+            s=60,
+            color=colour,
+            label=label,
+            zorder=5,
+            clip_on=False,
+            **edge,
         )
 
 
@@ -244,5 +282,3 @@ def plot_retracted(share: dict[str, tuple[int, int]], path: Path) -> None:
     fig.tight_layout()
     fig.savefig(path, dpi=90)
     plt.close(fig)
-
-

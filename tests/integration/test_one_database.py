@@ -40,7 +40,11 @@ def _gasgap(cwd: Path, env_url: str, *args: str) -> subprocess.CompletedProcess[
     env = dict(os.environ, GASGAP_TEST_ONE_DB_URL=env_url, PYTHONPATH=str(ROOT))
     return subprocess.run(
         [sys.executable, "-m", "monitor.cli", *args],
-        capture_output=True, text=True, timeout=600, cwd=cwd, env=env,
+        capture_output=True,
+        text=True,
+        timeout=600,
+        cwd=cwd,
+        env=env,
     )
 
 
@@ -90,7 +94,11 @@ def test_an_unset_url_env_is_one_line_naming_it(tmp_path: Path) -> None:
     for command in (["flags"], ["ingest", str(LAB_FEED)], ["db", "upgrade"], ["outbox"]):
         done = subprocess.run(
             [sys.executable, "-m", "monitor.cli", *command, "--config", str(_site(tmp_path))],
-            capture_output=True, text=True, timeout=120, cwd=tmp_path, env=env,
+            capture_output=True,
+            text=True,
+            timeout=120,
+            cwd=tmp_path,
+            env=env,
         )
         assert done.returncode == 2, (command, done.stderr)
         assert "GASGAP_TEST_ONE_DB_URL" in done.stderr, command

@@ -13,6 +13,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from adapters.notify.base import DeliveryFailed, DeliveryResult
+from monitor.engine.model import ADVISORY, Notification, Priority
 from monitor.outbox.retry import (
     DispatchPolicy,
     Outcome,
@@ -21,7 +22,6 @@ from monitor.outbox.retry import (
     next_attempt,
     plan,
 )
-from monitor.engine.model import ADVISORY, Notification, Priority
 
 NOW = datetime(2026, 3, 14, 7, 0, tzinfo=UTC)
 BASE = timedelta(seconds=30)
