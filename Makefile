@@ -29,10 +29,15 @@ test: $(VENV)/.installed .fhir-venv/bin/sekmet
 bench: $(VENV)/.installed
 	$(PY) -m bench
 
-# Lint and types: ruff and mypy --strict over the product code.
+# Lint, format, types and dead code: ruff (rules and formatting) over the product code,
+# the tests, fixtures and benchmarks; mypy --strict over the product code; vulture at
+# 80 % confidence or more (paths and threshold in pyproject.toml, [tool.vulture]).
+LINTED := monitor adapters storage fixtures bench tests vulture_whitelist.py
 lint: $(VENV)/.installed
-	$(PY) -m ruff check monitor adapters storage fixtures bench
+	$(PY) -m ruff check $(LINTED)
+	$(PY) -m ruff format --check $(LINTED)
 	$(PY) -m mypy monitor adapters storage
+	$(PY) -m vulture
 
 clean:
 	rm -rf $(VENV) demo-out test-artifacts .pytest_cache .hypothesis

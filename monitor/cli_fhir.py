@@ -284,22 +284,18 @@ def _run_backfill(args: argparse.Namespace) -> int:
 
 
 def _load(args: argparse.Namespace, config: Any, source: Any, codes: Any, path: Path) -> Any:
-    from monitor.ingest import SourceContext, ingest_files
-    from monitor.pipeline import Pipeline
-    from monitor.service import database_url
-    from storage.db import open_database
+    from dataclasses import replace
 
-    db = open_database(args.db_url or database_url(config, args.secrets_file))
-    context = SourceContext(
-        codes=codes,
-        site_tz=config.zone(),
-        patient_id_system=config.site.patient_id_system,
-        fhir_source=source.name,  # the poll's identity: backfill and poll meet, not repeat
-    )
+    from monitor.bootstrap import Secrets, build_pipeline, open_db, source_context
+    from monitor.ingest import ingest_files
+
+    db = open_db(config, Secrets(args.secrets_file), args.db_url)
+    # the poll's identity: backfill and poll meet, not repeat
+    context = replace(source_context(config, codes), fhir_source=source.name)
     try:
         return ingest_files(
             [path],
-            Pipeline(db, config.to_pipeline_settings()),
+            build_pipeline(db, config),
             context,
             now=lambda: datetime.now(UTC),
             progress=not args.no_progress and sys.stderr.isatty(),
@@ -317,7 +313,7 @@ def _summary(report: Any, result: Any, lines: int) -> dict[str, Any]:
             except (ValueError, AttributeError):
                 continue
             errors += [str(i.get("diagnostics") or i.get("code")) for i in issues]
-    historical = getattr(report, "historical", None)
+    historical = report.historical_events
     return {
         "files": [p.name for p in result.data_files],
         "lines": lines,

@@ -1,5 +1,8 @@
-"""Commands on recorded data: ``gasgap ingest`` (files in) and ``gasgap patient`` (one
-patient's series out, as a table, JSON or a plot)."""
+"""Commands on recorded data: ``gasgap ingest`` (files in), ``gasgap patient`` (one
+patient's series out, as a table, JSON or a plot) and ``gasgap outbox``.
+
+The site's database, secrets, pipeline and channels come from ``monitor.bootstrap``
+(through ``monitor.cli.common.open_site``), as for every command."""
 
 from __future__ import annotations
 
@@ -8,14 +11,17 @@ import json
 import sys
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
+from monitor.cli.common import Subparsers, add_site_options, fail, open_site
 from monitor.engine.model import ADVISORY, Derivation
 
-EXIT_USAGE = 2
+if TYPE_CHECKING:
+    from monitor.bootstrap import Shell
+    from monitor.outbox import RoundReport
 
 
-def add_record_commands(sub: Any) -> None:
+def add_record_commands(sub: Subparsers) -> None:
     ingest = sub.add_parser(
         "ingest",
         help="load FHIR NDJSON/Bundle and HL7 v2 files",
@@ -23,7 +29,7 @@ def add_record_commands(sub: Any) -> None:
         "record time. Re-loading a file stores nothing new.",
     )
     ingest.add_argument("paths", nargs="+", type=Path, metavar="PATH")
-    _add_target(ingest)
+    add_site_options(ingest)
     ingest.add_argument("--no-progress", action="store_true", help="no progress bar")
     ingest.add_argument("--json", action="store_true", help="print the summary as JSON")
     ingest.set_defaults(run=_run_ingest)
@@ -35,7 +41,7 @@ def add_record_commands(sub: Any) -> None:
         "a/A, P/F and the quality flags. " + ADVISORY,
     )
     patient.add_argument("patient_key", metavar="PATIENT")
-    _add_target(patient)
+    add_site_options(patient)
     patient.add_argument("--json", action="store_true", help="one JSON object")
     patient.add_argument("--plot", type=Path, metavar="FILE", help="write a trend plot (PNG)")
     patient.add_argument(
@@ -49,58 +55,31 @@ def add_record_commands(sub: Any) -> None:
         description="Show the outbox by status and channel, or (with `send`) deliver what "
         "is due through the configured channels once, as the service's dispatcher does.",
     )
-    _add_target(box)
+    add_site_options(box)
     box.add_argument("--json", action="store_true", help="one JSON object")
     box.add_argument("action", nargs="?", choices=["show", "send"], default="show")
     box.set_defaults(run=_run_outbox)
 
 
-def _add_target(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--db", dest="db_url", help="database URL (default sqlite:///gasgap.db)")
-    parser.add_argument("--config", type=Path, help="site configuration (TOML)")
-
-
-def _setup(args: argparse.Namespace) -> tuple[Any, Any]:
-    from monitor.config import ConfigError, default_config, load_config
-    from storage.db import open_database
-
-    try:
-        config = load_config(args.config) if args.config else default_config()
-    except ConfigError as exc:
-        raise SystemExit(_fail(f"--config: {exc}")) from None
-    except OSError as exc:
-        raise SystemExit(_fail(f"--config: {exc.strerror}: {args.config}")) from None
-    url = args.db_url or config.database.url
-    return config, open_database(url)
-
-
-def _fail(message: str) -> int:
-    print(f"gasgap: {message}", file=sys.stderr)
-    return EXIT_USAGE
-
-
 def _run_ingest(args: argparse.Namespace) -> int:
-    from monitor.ingest import FileKindError, SourceContext, ingest_files
-    from monitor.pipeline import Pipeline
+    from monitor.ingest import FileKindError, ingest_files
 
     missing = [str(p) for p in args.paths if not p.is_file()]
     if missing:
-        return _fail(f"PATH: no such file: {', '.join(missing)}")
-    config, db = _setup(args)
-    context = SourceContext(site_tz=config.zone(), patient_id_system=config.site.patient_id_system)
-    pipeline = Pipeline(db, config.to_pipeline_settings())
+        return fail(f"PATH: no such file: {', '.join(missing)}")
+    shell = open_site(args)
     try:
         report = ingest_files(
             args.paths,
-            pipeline,
-            context,
+            shell.pipeline,
+            shell.context,
             now=lambda: datetime.now(UTC),
             progress=not args.no_progress and sys.stderr.isatty(),
         )
     except FileKindError as exc:
-        return _fail(f"PATH: {exc}")
+        return fail(f"PATH: {exc}")
     finally:
-        db.dispose()
+        shell.close()
     summary = {
         "read": report.read,
         "stored": report.stored,
@@ -136,24 +115,17 @@ def _run_outbox(args: argparse.Namespace) -> int:
 
     from storage.outbox import outbox_items
 
-    config, db = _setup(args)
-    sent = None
-    if args.action == "send":
-        from adapters.notify import build_channel
-        from monitor.delivery import OutboxDispatcher
-
-        channels = {a: build_channel(a, config.channel_options(a)) for a in config.channels}
-        dispatcher = OutboxDispatcher(db, channels, clock=lambda: datetime.now(UTC))
-        try:
-            sent = dispatcher.drain()
-        finally:
-            dispatcher.close()
-    with db.begin(read_only=True) as conn:
-        items = outbox_items(conn)
-    db.dispose()
+    shell = open_site(args)
+    try:
+        sent = _send(shell) if args.action == "send" else None
+        with shell.db.begin(read_only=True) as conn:
+            items = outbox_items(conn)
+    finally:
+        shell.close()
     counts = Counter((i.channel, i.status.value) for i in items)
-    summary: dict[str, Any] = {
-        "by_channel": {f"{c}/{s}": n for (c, s), n in sorted(counts.items())},
+    by_channel = {f"{c}/{s}": n for (c, s), n in sorted(counts.items())}
+    summary: dict[str, object] = {
+        "by_channel": by_channel,
     }
     if sent is not None:
         summary["this_round"] = {
@@ -165,7 +137,7 @@ def _run_outbox(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
-    for key, n in summary["by_channel"].items():
+    for key, n in by_channel.items():
         print(f"{key:40} {n}")
     if sent is not None:
         print(
@@ -173,6 +145,19 @@ def _run_outbox(args: argparse.Namespace) -> int:
             f"retrying {sent.retrying}, dead {sent.dead}"
         )
     return 0
+
+
+def _send(shell: Shell) -> RoundReport:
+    """One drain of the outbox through the site's channels, as the service's job does."""
+    from monitor.bootstrap import build_channels
+    from monitor.outbox import OutboxDispatcher
+
+    channels = build_channels(shell.config, shell.secrets)
+    dispatcher = OutboxDispatcher(shell.db, channels, clock=lambda: datetime.now(UTC))
+    try:
+        return dispatcher.drain()
+    finally:
+        dispatcher.close()
 
 
 # --- patient -------------------------------------------------------------------------------
@@ -187,7 +172,8 @@ def series_row(derivation: Derivation, version: int) -> dict[str, Any]:
 def _run_patient(args: argparse.Namespace) -> int:
     from storage.derivations import current_derivations
 
-    config, db = _setup(args)
+    shell = open_site(args)
+    config, db = shell.config, shell.db
     with db.begin(read_only=True) as conn:
         stored = [
             s
@@ -196,7 +182,7 @@ def _run_patient(args: argparse.Namespace) -> int:
         ]
     db.dispose()
     if not stored:
-        return _fail(f"PATIENT: no derivations for {args.patient_key!r} in this database")
+        return fail(f"PATIENT: no derivations for {args.patient_key!r} in this database")
     rows = [series_row(s.derivation, s.version) for s in stored]
     if args.plot:
         write_trend_plot([s.derivation for s in stored], args.plot, title=args.patient_key)

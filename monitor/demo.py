@@ -35,8 +35,8 @@ def demo_config() -> SiteConfig:
 
 
 def run(out_dir: Path, *, progress: bool = False) -> int:
-    from monitor.cli_replay import flag_table
-    from monitor.ingest import SourceContext
+    from monitor.bootstrap import pipeline_settings, source_context
+    from monitor.cli.replay import flag_table
     from monitor.replay import replay
     from monitor.report import write_report
 
@@ -45,16 +45,12 @@ def run(out_dir: Path, *, progress: bool = False) -> int:
     for stale in (db_file, db_file.with_name("demo.db-wal"), db_file.with_name("demo.db-shm")):
         stale.unlink(missing_ok=True)  # a demo starts from nothing
     config = demo_config()
-    context = SourceContext(
-        site_tz=config.zone(),
-        patient_id_system=config.site.patient_id_system,
-    )
     print("gasgap demo: three invented days at Hollowmere General Hospital (1,600 m)")
     print(f"replaying {', '.join(FEEDS)} on SQLite ({db_file}) ...", flush=True)
     result = replay(
         [FEED_DIR / name for name in FEEDS],
-        config.to_pipeline_settings(),
-        context,
+        pipeline_settings(config),
+        source_context(config),
         db_url=f"sqlite:///{db_file}",
         progress=progress,
         label=SITE_CONFIG.name,

@@ -23,7 +23,6 @@ import logging
 import sys
 import threading
 from collections import OrderedDict
-from collections.abc import Iterable
 from datetime import UTC, datetime
 from typing import Any, TextIO
 
@@ -68,10 +67,6 @@ class IdentifierGuard(logging.Filter):
                 self._known.move_to_end(value)
             while len(self._known) > self._capacity:
                 self._known.popitem(last=False)
-
-    def register_many(self, pairs: Iterable[tuple[str, str]]) -> None:
-        for key, display in pairs:
-            self.register(key, display)
 
     def scrub(self, text: str) -> str:
         """``text`` with every known patient key replaced by its display key."""
@@ -123,7 +118,10 @@ class JsonFormatter(logging.Formatter):
 
 
 def setup_logging(
-    level: str = "INFO", *, stream: TextIO | None = None, guard: IdentifierGuard | None = None,
+    level: str = "INFO",
+    *,
+    stream: TextIO | None = None,
+    guard: IdentifierGuard | None = None,
     json_lines: bool = True,
 ) -> IdentifierGuard:
     """Send every logger's records to ``stream`` (stderr) through the guard: JSON lines,
@@ -135,7 +133,8 @@ def setup_logging(
     guard = guard or IdentifierGuard()
     handler = logging.StreamHandler(stream or sys.stderr)
     handler.setFormatter(
-        JsonFormatter() if json_lines
+        JsonFormatter()
+        if json_lines
         else logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
     )
     handler.addFilter(guard)

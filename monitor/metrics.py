@@ -29,45 +29,59 @@ class Metrics:
         self.registry = CollectorRegistry(auto_describe=True)
         r = self.registry
         self.readings = Counter(
-            "gasgap_readings", "Readings received, by source and kind", ["source", "kind"],
+            "gasgap_readings",
+            "Readings received, by source and kind",
+            ["source", "kind"],
             registry=r,
         )
         self.duplicates = Counter(
-            "gasgap_duplicate_readings", "Deliveries received again (no change)", ["source"],
+            "gasgap_duplicate_readings",
+            "Deliveries received again (no change)",
+            ["source"],
             registry=r,
         )
         self.quarantined = Counter(
             "gasgap_quarantined", "Inputs refused and kept in quarantine", ["source"], registry=r
         )
-        self.derivations = Counter(
-            "gasgap_derivations", "Derivations computed", registry=r
-        )
+        self.derivations = Counter("gasgap_derivations", "Derivations computed", registry=r)
         self.flags = Counter(
-            "gasgap_flag_events", "Flag events, by rule, priority and event",
-            ["rule", "priority", "event"], registry=r,
+            "gasgap_flag_events",
+            "Flag events, by rule, priority and event",
+            ["rule", "priority", "event"],
+            registry=r,
         )
         self.deliveries = Counter(
-            "gasgap_deliveries", "Notification send attempts, by channel and outcome",
-            ["channel", "outcome"], registry=r,
+            "gasgap_deliveries",
+            "Notification send attempts, by channel and outcome",
+            ["channel", "outcome"],
+            registry=r,
         )
         self.delivery_failures = Counter(
-            "gasgap_delivery_failures", "Notification sends that failed, by channel",
-            ["channel"], registry=r,
+            "gasgap_delivery_failures",
+            "Notification sends that failed, by channel",
+            ["channel"],
+            registry=r,
         )
         self.source_errors = Counter(
-            "gasgap_source_errors", "Polls or messages that failed, by source", ["source"],
+            "gasgap_source_errors",
+            "Polls or messages that failed, by source",
+            ["source"],
             registry=r,
         )
         self.draw_to_flag = Histogram(
-            "gasgap_draw_to_flag_seconds", "Time from the sample's draw to its flag being raised",
-            buckets=DRAW_TO_FLAG_BUCKETS, registry=r,
+            "gasgap_draw_to_flag_seconds",
+            "Time from the sample's draw to its flag being raised",
+            buckets=DRAW_TO_FLAG_BUCKETS,
+            registry=r,
         )
         self.outbox_backlog = Gauge(
             "gasgap_outbox_backlog", "Notifications waiting to be sent", registry=r
         )
         self.jobs = Counter(
-            "gasgap_scheduled_runs", "Scheduled job runs, by job and outcome",
-            ["job", "outcome"], registry=r,
+            "gasgap_scheduled_runs",
+            "Scheduled job runs, by job and outcome",
+            ["job", "outcome"],
+            registry=r,
         )
 
     def count_inbound(self, source: str, readings: list[Reading], quarantined: int) -> None:
@@ -77,7 +91,12 @@ class Metrics:
             self.quarantined.labels(source=source).inc(quarantined)
 
     def count_report(
-        self, source: str, *, duplicates: int, derivations: int, events: list[AlertEvent],
+        self,
+        source: str,
+        *,
+        duplicates: int,
+        derivations: int,
+        events: list[AlertEvent],
         drawn_at: dict[str, datetime] | None = None,
     ) -> None:
         """Count what one pipeline batch did. ``drawn_at`` maps sample ids to their

@@ -1,6 +1,7 @@
-"""The composition root: one running gasgap service, built from one site configuration.
+"""One running gasgap service, built from one site configuration.
 
-``build_service(config)`` makes every part once: the database, the pipeline, the
+``build_service(config)`` makes every part once, through the composition root
+(``monitor.bootstrap``: database, secrets, pipeline, channels): the database, the pipeline, the
 notification channels and the outbox dispatcher, the FHIR pollers, the scheduled jobs,
 the MLLP listener and the HTTP application. Tests pass fakes (``clock``, ``channels``,
 ``db``) through it. ``run(config_path)`` serves until SIGTERM or SIGINT, then stops in
@@ -20,24 +21,27 @@ from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import Any
 
 import uvicorn
 from fastapi import FastAPI
 
 from adapters.codes import CodeTable
+from adapters.fhir.observations import FhirBatch
 from adapters.fhir.poller import BasicAuth, BearerAuth, FhirPoller, PollBatch
+from adapters.fhir.smart import SmartAuth
 from adapters.fhir.subscription import HookDelivery, read_delivery
 from adapters.hl7v2 import Hl7Error
 from adapters.hl7v2.mllp import AckDecision, MllpListener
-from adapters.notify import Channel, build_channel
-from monitor.config import ConfigError, SiteConfig, load_config, secret
-from monitor.delivery import OutboxDispatcher
+from adapters.notify import Channel
+from monitor import bootstrap
+from monitor.bootstrap import Secrets
+from monitor.config import ConfigError, FhirSource, SiteConfig, load_config
 from monitor.engine.model import Reading
 from monitor.engine.wording import patient_display
 from monitor.ingest import SourceContext, inbound_from_hl7
 from monitor.logs import IdentifierGuard, setup_logging
 from monitor.metrics import Metrics
+from monitor.outbox import OutboxDispatcher
 from monitor.pipeline import BatchReport, Inbound, Pipeline, Rejected
 from monitor.scheduling import (
     DISPATCH_EVERY,
@@ -49,7 +53,7 @@ from monitor.scheduling import (
 )
 from monitor.web.app import WebContext, create_app
 from monitor.web.security import WebSecurity
-from storage.db import Database, open_database
+from storage.db import Database
 
 log = logging.getLogger("gasgap.service")
 Clock = Callable[[], datetime]
@@ -61,23 +65,17 @@ def wall_clock() -> datetime:
 
 
 class _Secrets(Mapping[str, str]):
-    """Environment variables as the channels read them, falling back to the secrets file
-    (through ``monitor.config.secret``, the one place that reads them)."""
+    """Kept only for ``monitor.replay.deliver_captured`` until it calls
+    ``monitor.bootstrap.build_channels``; nothing else uses it."""
 
     def __init__(self, secrets_file: Path | None) -> None:
-        self._file = secrets_file
+        self._secrets = Secrets(secrets_file)
 
     def __getitem__(self, name: str) -> str:
         try:
-            return secret(name, secrets_file=self._file)
+            return self._secrets.get(name)
         except ConfigError:
             raise KeyError(name) from None
-
-    def get(self, name: str, default: Any = None) -> Any:
-        try:
-            return self[name]
-        except KeyError:
-            return default
 
     def __iter__(self) -> Iterator[str]:
         return iter(())
@@ -86,31 +84,22 @@ class _Secrets(Mapping[str, str]):
         return 0
 
 
-def _optional_secret(env_name: str | None, secrets_file: Path | None) -> str | None:
-    return None if env_name is None else secret(env_name, secrets_file=secrets_file)
+_LOOPBACK = ("127.0.0.1", "localhost", "::1")
 
 
-def web_security(config: SiteConfig, secrets_file: Path | None) -> WebSecurity:
+def web_security(config: SiteConfig, secrets: Secrets) -> WebSecurity:
     """The HTTP side's secrets, read once. Cookies are marked Secure unless the service
     listens on loopback only (then a TLS proxy in front is the only way in)."""
     http = config.http
     return WebSecurity(
-        api_token=_optional_secret(http.api_token_env, secrets_file),
-        board_token=_optional_secret(http.board_token_env, secrets_file),
+        api_token=secrets.optional(http.api_token_env),
+        board_token=secrets.optional(http.board_token_env),
         board_user=http.board_user,
-        board_password=_optional_secret(http.board_password_env, secrets_file),
-        hook_secret=_optional_secret(http.hook_secret_env, secrets_file),
+        board_password=secrets.optional(http.board_password_env),
+        hook_secret=secrets.optional(http.hook_secret_env),
         max_body_bytes=http.max_request_bytes,
-        secure_cookies=getattr(
-            http, "secure_cookies", http.host not in ("127.0.0.1", "localhost", "::1")
-        ),
+        secure_cookies=http.host not in _LOOPBACK,
     )
-
-
-def database_url(config: SiteConfig, secrets_file: Path | None) -> str:
-    if config.database.url_env:
-        return secret(config.database.url_env, secrets_file=secrets_file)
-    return config.database.url
 
 
 @dataclass
@@ -247,7 +236,7 @@ class _QuietServer(uvicorn.Server):
         yield
 
 
-def _fhir_inbound(source: str, batch: Any) -> Inbound:
+def _fhir_inbound(source: str, batch: FhirBatch | PollBatch) -> Inbound:
     return Inbound(
         readings=list(batch.readings),
         rejected=[Rejected(f"fhir:{source}", r.raw, r.reason) for r in batch.rejections],
@@ -272,12 +261,16 @@ def _mllp_ssl(config: SiteConfig) -> ssl.SSLContext | None:
     return context
 
 
-def _fhir_auth(source: Any, secrets_file: Path | None) -> BearerAuth | BasicAuth | None:
+def _fhir_auth(
+    source: FhirSource, secrets: Secrets
+) -> BearerAuth | BasicAuth | SmartAuth | None:
+    if source.smart is not None:
+        return SmartAuth(source.smart, source.base_url, lookup=secrets.get)
     auth = source.auth
     if auth.type == "bearer":
-        return BearerAuth(secret(auth.token_env, secrets_file=secrets_file))
+        return BearerAuth(secrets.get(auth.token_env))
     if auth.type == "basic":
-        return BasicAuth(auth.user, secret(auth.password_env, secrets_file=secrets_file))
+        return BasicAuth(auth.user, secrets.get(auth.password_env))
     return None
 
 
@@ -290,39 +283,14 @@ def _poll_trigger(scheduler: Scheduler, source: str) -> Callable[[], None]:
     return trigger
 
 
-def build_service(
-    config: SiteConfig,
-    *,
-    clock: Clock | None = None,
-    channels: Mapping[str, Channel] | None = None,
-    db: Database | None = None,
-    secrets_file: Path | None = None,
-    guard: IdentifierGuard | None = None,
-    codes: CodeTable | None = None,
-) -> Service:
-    """Build every part of the service from ``config`` (nothing starts yet)."""
-    clock = clock or wall_clock
-    db = db or open_database(database_url(config, secrets_file))
-    metrics = Metrics()
-    guard = guard or IdentifierGuard()
-    context = SourceContext(
-        codes=codes or CodeTable.load(),
-        site_tz=config.zone(),
-        patient_id_system=config.site.patient_id_system,
-    )
-    pipeline = Pipeline(db, config.to_pipeline_settings())
-    if channels is None:
-        environ = _Secrets(secrets_file)
-        channels = {
-            alias: build_channel(alias, config.channel_options(alias), environ=environ)
-            for alias in config.channels
-        }
-    dispatcher = OutboxDispatcher(db, channels, clock=clock, metrics=metrics)
-    pollers = {
+def _pollers(
+    config: SiteConfig, codes: CodeTable, secrets: Secrets, clock: Clock
+) -> dict[str, FhirPoller]:
+    return {
         s.name: FhirPoller(
             s.base_url,
-            codes=context.codes,
-            auth=_fhir_auth(s, secrets_file),
+            codes=codes,
+            auth=_fhir_auth(s, secrets),
             source_system=s.name,
             patient_id_system=config.site.patient_id_system,
             clock=clock,
@@ -330,34 +298,52 @@ def build_service(
         for s in config.sources.fhir
         if s.enabled
     }
-    service_ref: dict[str, Service] = {}
 
-    def accept_from(source: str) -> Callable[[Inbound], BatchReport]:
-        return lambda inbound: service_ref["s"].accept(source, inbound)
 
-    jobs = [
-        Job(
-            f"poll:{s.name}",
-            timedelta(seconds=s.poll_seconds),
-            PollJob(
-                s.name,
-                pollers[s.name],
-                db=db,
-                every=timedelta(seconds=s.poll_seconds),
-                accept=accept_from(s.name),
-                to_inbound=_poll_inbound(s.name),
-                clock=clock,
-                metrics=metrics,
-            ),
-            lock=f"poll:{s.name}",
-            run_at_start=True,
+@dataclass
+class _Late:
+    """The service, once built: the jobs are made before it exists and call it later."""
+
+    service: Service | None = None
+
+    def accept_from(self, source: str) -> Callable[[Inbound], BatchReport]:
+        return lambda inbound: self.get().accept(source, inbound)
+
+    def get(self) -> Service:
+        if self.service is None:
+            raise RuntimeError("a job ran before the service was built")
+        return self.service
+
+
+def _jobs(
+    config: SiteConfig,
+    db: Database,
+    pipeline: Pipeline,
+    pollers: Mapping[str, FhirPoller],
+    dispatcher: OutboxDispatcher,
+    late: _Late,
+    clock: Clock,
+    metrics: Metrics,
+) -> list[Job]:
+    jobs = []
+    for s in config.sources.fhir:
+        if not s.enabled:
+            continue
+        every = timedelta(seconds=s.poll_seconds)
+        poll = PollJob(
+            s.name,
+            pollers[s.name],
+            db=db,
+            every=every,
+            accept=late.accept_from(s.name),
+            to_inbound=_poll_inbound(s.name),
+            clock=clock,
+            metrics=metrics,
         )
-        for s in config.sources.fhir
-        if s.enabled
-    ]
+        jobs.append(Job(f"poll:{s.name}", every, poll, lock=f"poll:{s.name}", run_at_start=True))
     jobs.append(Job(DISPATCH_JOB, DISPATCH_EVERY, dispatcher.drain, lock="outbox"))
     jobs.append(
-        Job("escalation", ESCALATION_EVERY, lambda: service_ref["s"].escalate(), lock="escalation")
+        Job("escalation", ESCALATION_EVERY, lambda: late.get().escalate(), lock="escalation")
     )
     jobs.append(
         Job(
@@ -368,6 +354,50 @@ def build_service(
             run_at_start=config.retention_days is not None,
         )
     )
+    return jobs
+
+
+def _listener(config: SiteConfig, service: Service) -> MllpListener | None:
+    mllp = config.sources.mllp
+    if mllp is None or not mllp.enabled:
+        return None
+    return MllpListener(
+        service.on_hl7,
+        host=mllp.host,
+        port=mllp.port,
+        max_message_bytes=mllp.max_message_bytes,
+        ssl=_mllp_ssl(config),
+        read_timeout=mllp.idle_timeout_s,
+        max_connections=mllp.max_connections,
+    )
+
+
+def build_service(
+    config: SiteConfig,
+    *,
+    clock: Clock | None = None,
+    channels: Mapping[str, Channel] | None = None,
+    db: Database | None = None,
+    secrets_file: Path | None = None,
+    guard: IdentifierGuard | None = None,
+    codes: CodeTable | None = None,
+) -> Service:
+    """Build every part of the service from ``config`` (nothing starts yet). The
+    database, secrets, pipeline and channels come from ``monitor.bootstrap``, as for
+    every command."""
+    clock = clock or wall_clock
+    secrets = Secrets(secrets_file)
+    db = db or bootstrap.open_db(config, secrets)
+    metrics = Metrics()
+    guard = guard or IdentifierGuard()
+    context = bootstrap.source_context(config, codes)
+    pipeline = bootstrap.build_pipeline(db, config)
+    if channels is None:
+        channels = bootstrap.build_channels(config, secrets)
+    dispatcher = OutboxDispatcher(db, channels, clock=clock, metrics=metrics)
+    pollers = _pollers(config, context.codes, secrets, clock)
+    late = _Late()
+    jobs = _jobs(config, db, pipeline, pollers, dispatcher, late, clock, metrics)
     scheduler = Scheduler(db, jobs, metrics=metrics)
     ctx = WebContext(
         db=db,
@@ -381,24 +411,14 @@ def build_service(
         poll_now={name: _poll_trigger(scheduler, name) for name in pollers},
     )
     app = create_app(
-        config, db, pipeline, clock=clock, security=web_security(config, secrets_file), context=ctx
+        config, db, pipeline, clock=clock, security=web_security(config, secrets), context=ctx
     )
     service = Service(
         config, db, pipeline, clock, metrics, guard, context, dispatcher, scheduler, app, pollers
     )
-    service_ref["s"] = service
+    late.service = service
     ctx.hook_sources = {name: service.hook_reader(name) for name in pollers}
-    mllp = config.sources.mllp
-    if mllp is not None and mllp.enabled:
-        service.listener = MllpListener(
-            service.on_hl7,
-            host=mllp.host,
-            port=mllp.port,
-            max_message_bytes=mllp.max_message_bytes,
-            ssl=_mllp_ssl(config),
-            read_timeout=mllp.idle_timeout_s,
-            max_connections=mllp.max_connections,
-        )
+    service.listener = _listener(config, service)
     return service
 
 

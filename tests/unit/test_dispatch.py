@@ -13,7 +13,8 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from adapters.notify.base import DeliveryFailed, DeliveryResult
-from monitor.dispatch import (
+from monitor.engine.model import ADVISORY, Notification, Priority
+from monitor.outbox.retry import (
     DispatchPolicy,
     Outcome,
     backoff_delay,
@@ -21,7 +22,6 @@ from monitor.dispatch import (
     next_attempt,
     plan,
 )
-from monitor.engine.model import ADVISORY, Notification, Priority
 
 NOW = datetime(2026, 3, 14, 7, 0, tzinfo=UTC)
 BASE = timedelta(seconds=30)

@@ -1,45 +1,28 @@
-"""The ``gasgap`` command. It parses arguments and calls the shell's functions; the work
-is done elsewhere.
+"""``gasgap calc``: the oxygenation indices of one blood gas, typed in by hand.
 
-Bad input gets one line on stderr naming the option and what was wrong, and exit code 2.
+Only argument parsing and printing: ``monitor.calc`` does the work.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
-import sys
-from collections.abc import Callable, Sequence
-from typing import NoReturn
 
 from monitor import calc
+from monitor.cli.common import Subparsers, UsageError
 from monitor.engine import physiology as phys
 from monitor.engine.errors import InvalidInput
 from monitor.engine.model import ADVISORY
 
-EXIT_USAGE = 2
 
-
-class UsageError(Exception):
-    """A command-line input is wrong; the message names the option."""
-
-
-def _number(option: str) -> Callable[[str], float]:
-    def parse(text: str) -> float:
-        try:
-            value = float(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
-        if value != value or value in (float("inf"), float("-inf")):
-            raise argparse.ArgumentTypeError(f"{text!r} is not a finite number")
-        return value
-
-    return parse
-
-
-class _Parser(argparse.ArgumentParser):
-    def error(self, message: str) -> NoReturn:  # one line, exit 2, no usage dump
-        self.exit(EXIT_USAGE, f"gasgap: {message}\n")
+def _number(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if value != value or value in (float("inf"), float("-inf")):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a finite number")
+    return value
 
 
 # --- calc ----------------------------------------------------------------------------
@@ -63,34 +46,34 @@ _OPTION_FOR_INPUT = {
 }
 
 
-def _add_calc(sub: argparse._SubParsersAction[_Parser]) -> None:
+def add_calc_command(sub: Subparsers) -> None:
     p = sub.add_parser(
         "calc",
         help="compute the oxygenation indices of one blood gas by hand",
         description="Compute alveolar PO2, the A-a gradient and related indices of one "
         "blood gas. " + ADVISORY,
     )
-    p.add_argument("--pao2", type=_number("--pao2"), help="arterial PO2 (mmHg, or kPa)")
-    p.add_argument("--paco2", type=_number("--paco2"), help="arterial PCO2 (mmHg, or kPa)")
+    p.add_argument("--pao2", type=_number, help="arterial PO2 (mmHg, or kPa)")
+    p.add_argument("--paco2", type=_number, help="arterial PCO2 (mmHg, or kPa)")
     p.add_argument(
-        "--fio2", type=_number("--fio2"), help="inspired O2 fraction (0.21-1.0; above 1 read as %%)"
+        "--fio2", type=_number, help="inspired O2 fraction (0.21-1.0; above 1 read as %%)"
     )
     where = p.add_mutually_exclusive_group()
-    where.add_argument("--pb", type=_number("--pb"), help="barometric pressure (default 760 mmHg)")
-    where.add_argument(
-        "--elevation-m", type=_number("--elevation-m"), help="site elevation; PB from ISA"
-    )
-    p.add_argument("--temp-c", type=_number("--temp-c"), default=37.0, help="body temperature, C")
-    p.add_argument("--rq", type=_number("--rq"), default=0.8, help="respiratory quotient (0.8)")
-    p.add_argument("--age", type=_number("--age"), help="age in years (age-expected A-a)")
-    p.add_argument("--spo2", type=_number("--spo2"), help="pulse oximetry SpO2, %%")
-    p.add_argument("--peep", type=_number("--peep"), help="PEEP or CPAP, cmH2O")
-    p.add_argument("--map", type=_number("--map"), help="mean airway pressure, cmH2O")
-    p.add_argument("--hb", type=_number("--hb"), help="haemoglobin, g/dL")
-    p.add_argument("--sao2", type=_number("--sao2"), help="measured SaO2, %%")
+    where.add_argument("--pb", type=_number, help="barometric pressure (default 760 mmHg)")
+    where.add_argument("--elevation-m", type=_number, help="site elevation; PB from ISA")
+    p.add_argument("--temp-c", type=_number, default=37.0, help="body temperature, C")
+    p.add_argument("--rq", type=_number, default=0.8, help="respiratory quotient (0.8)")
+    p.add_argument("--age", type=_number, help="age in years (age-expected A-a)")
+    p.add_argument("--spo2", type=_number, help="pulse oximetry SpO2, %%")
+    p.add_argument("--peep", type=_number, help="PEEP or CPAP, cmH2O")
+    p.add_argument("--map", type=_number, help="mean airway pressure, cmH2O")
+    p.add_argument("--hb", type=_number, help="haemoglobin, g/dL")
+    p.add_argument("--sao2", type=_number, help="measured SaO2, %%")
     p.add_argument("--units", choices=["mmHg", "kPa"], default="mmHg", help="inputs and outputs")
     p.add_argument(
-        "--equation", choices=[e.value for e in phys.Equation], default="full",
+        "--equation",
+        choices=[e.value for e in phys.Equation],
+        default="full",
         help="alveolar gas equation form (full)",
     )
     p.add_argument("--json", action="store_true", help="print one JSON object")
@@ -204,49 +187,3 @@ def _calc_table(
         rows.append(f"{label:26}{shown:>10}  {formulas.get(key, '')}")
     rows.append(f"{'Equation':26}{gas.equation.value:>10}  R = {gas.rq:g}")
     return "\n".join(rows)
-
-
-# --- entry point ---------------------------------------------------------------------
-
-
-def build_parser() -> _Parser:
-    parser = _Parser(prog="gasgap", description="Blood-gas oxygenation indices. " + ADVISORY)
-    sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
-    _add_calc(sub)
-    for register in _command_modules():
-        register(sub)
-    return parser
-
-
-def _command_modules() -> list[Callable[[argparse._SubParsersAction[_Parser]], None]]:
-    """The other commands, each registered by the module that runs it."""
-    from monitor.cli_fhir import add_fhir_commands
-    from monitor.cli_records import add_record_commands
-    from monitor.cli_serve import add_serve_commands
-
-    found: list[Callable[[argparse._SubParsersAction[_Parser]], None]] = [
-        add_record_commands, add_serve_commands, add_fhir_commands,
-    ]
-    try:
-        from monitor.cli_replay import add_replay_command
-    except ImportError:  # replay lands with its own module
-        pass
-    else:
-        found.append(add_replay_command)
-    return found
-
-
-def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    try:
-        return int(args.run(args))
-    except UsageError as exc:
-        print(f"gasgap: {exc}", file=sys.stderr)
-        return EXIT_USAGE
-    except KeyboardInterrupt:
-        return 130
-
-
-if __name__ == "__main__":
-    sys.exit(main())
