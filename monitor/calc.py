@@ -13,7 +13,6 @@ from monitor.engine import physiology as phys
 from monitor.engine.errors import InvalidInput
 from monitor.engine.model import ADVISORY
 
-
 #: Below these (mmHg) a PaO2 or PaCO2 is not seen in a living patient but is a typical
 #: kPa value (PaO2 12 kPa, PaCO2 5.3 kPa): warn that kPa may have been typed as mmHg.
 #: Common practice, no source.

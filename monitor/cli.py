@@ -74,7 +74,7 @@ def _add_calc(sub: argparse._SubParsersAction[_Parser]) -> None:
     p.add_argument("--pao2", type=_number("--pao2"), help="arterial PO2 (mmHg, or kPa)")
     p.add_argument("--paco2", type=_number("--paco2"), help="arterial PCO2 (mmHg, or kPa)")
     p.add_argument(
-        "--fio2", type=_number("--fio2"), help="inspired O2 fraction (0.209-1.0; above 1 read as %%)"
+        "--fio2", type=_number("--fio2"), help="inspired O2 fraction (0.209-1; above 1 read as %%)"
     )
     where = p.add_mutually_exclusive_group()
     where.add_argument("--pb", type=_number("--pb"), help="barometric pressure (default 760 mmHg)")
