@@ -550,6 +550,7 @@ def _pf_fall(rule: PfFallRule, d: Derivation, history: PatientHistory, h: float)
     numbers: dict[str, object] = {
         "pf": _r(counted.value),
         "adjusted": counted.adjusted,
+        **({"pf_measured": _r(counted.measured)} if counted.adjusted else {}),
         "pf_at": _at(d.drawn_at),
         "best_pf": _r(best_value),
         "best_pf_at": _at(best.drawn_at),

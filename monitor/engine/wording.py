@@ -164,9 +164,9 @@ def what_changed(numbers: Mapping[str, object], now: datetime, tz: tzinfo = UTC)
 def _key_text(n: Mapping[str, object]) -> str:
     """What fired, with its unit and, for trends, the value before."""
     if "best_pf" in n:
-        return (
-            f"{_pf_text(n)}, was {_num(n['best_pf'])} ({_num(n.get('change_percent'))} %)"
-        )
+        change = n.get("change_percent")
+        shown = f"{change:+.0f}" if isinstance(change, int | float) else "?"
+        return f"{_pf_text(n)}, was {_num(n['best_pf'])} ({shown} %)"
     if "aa_rise" in n:
         return (
             f"A–a {_num(n['aa_gradient'])} mmHg, was {_num(n['previous_aa'])} "

@@ -256,6 +256,15 @@ def test_pf_fall_reports_the_change_with_its_times():
     assert outcome.numbers["best_pf_at"] == T0.isoformat()
 
 
+def test_pf_fall_at_altitude_gives_the_measured_value_too():
+    # Issue 12 point 5: "adjusted for altitude (measured N)" needs the measured N.
+    history = PatientHistory(derivations=[gas(T0, pf_ratio=290.0, barometric_pressure=626.5)])
+    d = gas(T0 + timedelta(hours=4), pf_ratio=182.0, barometric_pressure=626.5)
+    outcome = only(FALL, d, history)
+    assert outcome.numbers["adjusted"] is True and outcome.numbers["pf_measured"] == 182.0
+    assert outcome.numbers["pf"] == pytest.approx(182.0 * 760 / 626.5, abs=0.05)
+
+
 def test_pf_fall_ignores_gases_older_than_24_h():
     history = PatientHistory(
         derivations=[gas(T0 - timedelta(hours=24, minutes=1), pf_ratio=500.0),
