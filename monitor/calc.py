@@ -13,6 +13,25 @@ from monitor.engine import physiology as phys
 from monitor.engine.errors import InvalidInput
 from monitor.engine.model import ADVISORY
 
+#: Below these (mmHg) a PaO2 or PaCO2 is not seen in a living patient but is a typical
+#: kPa value (PaO2 12 kPa, PaCO2 5.3 kPa): warn that kPa may have been typed as mmHg.
+#: Common practice, no source.
+IMPLAUSIBLE_PAO2_MMHG = 20.0
+IMPLAUSIBLE_PACO2_MMHG = 10.0
+
+
+def read_fio2(typed: float) -> tuple[float, str | None]:
+    """FiO2 as typed: a fraction in [0.209, 1.0] as it is, a percentage in [20.9, 100]
+    divided by 100 (with a note saying so). Anything else raises ``InvalidInput`` naming
+    the value as typed, never a converted one."""
+    if phys.FIO2_MIN <= typed <= 1.0:
+        return typed, None
+    if phys.FIO2_MIN * 100.0 <= typed <= 100.0:
+        return typed / 100.0, f"--fio2 {typed:g} read as a percentage: FiO2 {typed / 100:g}"
+    raise InvalidInput(
+        "fio2", typed, "must be a fraction in [0.209, 1.0] or a percentage in [20.9, 100]"
+    )
+
 
 @dataclass(frozen=True, slots=True)
 class GasInput:
@@ -68,13 +87,23 @@ def calculate(gas: GasInput) -> GasResult:
     valid. Raises InvalidInput for an impossible input (naming it)."""
     v: dict[str, float | str | None] = dict.fromkeys(KEYS)
     f: dict[str, str] = {}
-    flags: list[str] = []
+    flags: list[str] = _plausibility(gas)
+    if gas.peep is not None and not 0.0 <= gas.peep <= 40.0:
+        raise InvalidInput("peep", gas.peep, "must be in [0, 40] cmH2O")
 
     if gas.barometric_pressure is not None:
         pb = gas.barometric_pressure
         f["barometric_pressure"] = "given"
     elif gas.elevation_m is not None:
         pb = phys.barometric_pressure_at_elevation(gas.elevation_m)
+        if pb < 250.0:
+            # The formulas stop at 250 mmHg; say so about the elevation the user typed.
+            raise InvalidInput(
+                "elevation",
+                gas.elevation_m,
+                f"gives a standard-atmosphere pressure of {pb:.0f} mmHg, below the 250 mmHg "
+                "the formulas accept (about 8,500 m is the highest)",
+            )
         f["barometric_pressure"] = f"standard atmosphere at {gas.elevation_m:g} m (US 1976 / ISA)"
         flags.append("barometric pressure estimated from elevation")
     else:
@@ -92,6 +121,14 @@ def calculate(gas: GasInput) -> GasResult:
         f["inspired_po2"] = "FiO2 x (PB - PH2O)"
         if gas.paco2 is not None:
             alveolar = phys.alveolar_po2(gas.fio2, gas.paco2, pb, ph2o, gas.rq, gas.equation)
+            if alveolar <= 0.0:
+                # Name the input the user typed, with its own value, not the computed PAO2.
+                raise InvalidInput(
+                    "paco2",
+                    gas.paco2,
+                    f"at FiO2 {gas.fio2:g} and PB {pb:.0f} mmHg leaves no alveolar oxygen "
+                    f"(PAO2 would be {alveolar:.1f} mmHg): check --paco2 and --fio2",
+                )
             v["alveolar_po2"] = alveolar
             f["alveolar_po2"] = (
                 "PIO2 - PaCO2 x [FiO2 + (1 - FiO2)/R]"
@@ -113,9 +150,14 @@ def calculate(gas: GasInput) -> GasResult:
         flags.append("FiO2 missing: no alveolar PO2, no P/F")
 
     if gas.age_years is not None:
-        if gas.fio2 is not None and abs(gas.fio2 - phys.ROOM_AIR_FIO2) < 1e-9:
+        if phys.is_room_air(gas.fio2):
             v["aa_gradient_expected"] = phys.expected_aa_gradient(gas.age_years, gas.age_normal)
             f["aa_gradient_expected"] = _AGE_FORMULA[gas.age_normal]
+            if gas.age_years < phys.ADULT_AGE_YEARS:
+                flags.append(
+                    f"age-expected A-a is an adult formula; the patient is {gas.age_years:g} "
+                    "years old"
+                )
         else:
             flags.append("age-expected A-a applies to room air only")
 
@@ -123,12 +165,17 @@ def calculate(gas: GasInput) -> GasResult:
         pf = phys.pf_ratio(gas.pao2, gas.fio2)
         v["pf_ratio"] = pf
         f["pf_ratio"] = "PaO2 / FiO2"
-        v["pf_ratio_altitude_adjusted"] = phys.pf_ratio_altitude_adjusted(pf, pb)
-        f["pf_ratio_altitude_adjusted"] = "P/F x 760 / PB (ARDS Network practice)"
+        counted, adjusted = phys.pf_for_bands(pf, pb)  # the one decision, as the service
+        v["pf_ratio_altitude_adjusted"] = counted if adjusted else None
+        f["pf_ratio_altitude_adjusted"] = (
+            "P/F x 760 / PB (ARDS Network practice), PB below 674 mmHg"
+            if adjusted
+            else "not adjusted: PB at or above 674 mmHg (Berlin adjusts above 1000 m)"
+        )
         band = phys.berlin_band(pf, gas.peep, pb)
         v["berlin_band"] = None if band is None else band.value
         f["berlin_band"] = "Berlin 2012, needs PEEP/CPAP >= 5 cmH2O" + (
-            "; altitude-adjusted ratio" if pb < phys.ALTITUDE_ADJUSTMENT_BELOW_MMHG else ""
+            "; altitude-adjusted ratio" if adjusted else ""
         )
         if gas.mean_airway_pressure is not None:
             v["oxygenation_index"] = phys.oxygenation_index(
@@ -159,6 +206,22 @@ def calculate(gas: GasInput) -> GasResult:
             v["arterial_o2_content"] = phys.arterial_o2_content(gas.haemoglobin, sat, gas.pao2)
             f["arterial_o2_content"] = "1.34 x Hb x SaO2 + 0.003 x PaO2 (mL/dL)"
     return GasResult(values=v, formulas=f, flags=flags)
+
+
+def _plausibility(gas: GasInput) -> list[str]:
+    """Warnings for values that look like kPa typed as mmHg (they are computed anyway)."""
+    notes = []
+    for name, value, limit in (
+        ("PaO2", gas.pao2, IMPLAUSIBLE_PAO2_MMHG),
+        ("PaCO2", gas.paco2, IMPLAUSIBLE_PACO2_MMHG),
+    ):
+        if value is not None and value < limit:
+            notes.append(
+                f"{name} {value:g} mmHg is below {limit:g} mmHg, not seen in a living "
+                f"patient: if it is in kPa ({value:g} kPa = "
+                f"{phys.kpa_to_mmhg(value):.1f} mmHg), use --units kPa"
+            )
+    return notes
 
 
 _AGE_FORMULA = {
@@ -198,4 +261,4 @@ def in_units(result: GasResult, units: str) -> dict[str, float | str | None]:
     return out
 
 
-__all__ = ["ADVISORY", "GasInput", "GasResult", "KEYS", "calculate", "in_units"]
+__all__ = ["ADVISORY", "GasInput", "GasResult", "KEYS", "calculate", "in_units", "read_fio2"]

@@ -274,6 +274,7 @@ def alert_to_row(alert: Alert) -> dict[str, Any]:
         "estimated": alert.estimated,
         "historical": alert.historical,
         "seen_at": alert.seen_at,
+        "resolved_drawn_at": alert.resolved_drawn_at,
     }
 
 
@@ -296,6 +297,7 @@ def row_to_alert(row: Row) -> Alert:
         estimated=bool(row["estimated"]),
         historical=bool(row.get("historical", False)),
         seen_at=row.get("seen_at"),
+        resolved_drawn_at=row.get("resolved_drawn_at"),
     )
 
 

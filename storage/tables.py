@@ -260,6 +260,7 @@ alerts = sa.Table(
     sa.Column("estimated", sa.Boolean, nullable=False),
     sa.Column("historical", sa.Boolean, nullable=False, server_default=sa.false()),
     sa.Column("seen_at", UTCDateTime, nullable=True),
+    sa.Column("resolved_drawn_at", UTCDateTime, nullable=True),
     sa.Index(None, "patient_key", "rule"),
     sa.Index(None, "updated_at"),
     sa.Index(

@@ -43,6 +43,7 @@ _OPTION_FOR_INPUT = {
     "sao2": "--sao2",
     "water vapour pressure": "--temp-c",
     "alveolar po2": "--paco2",
+    "peep": "--peep",
 }
 
 
@@ -56,7 +57,7 @@ def add_calc_command(sub: Subparsers) -> None:
     p.add_argument("--pao2", type=_number, help="arterial PO2 (mmHg, or kPa)")
     p.add_argument("--paco2", type=_number, help="arterial PCO2 (mmHg, or kPa)")
     p.add_argument(
-        "--fio2", type=_number, help="inspired O2 fraction (0.21-1.0; above 1 read as %%)"
+        "--fio2", type=_number, help="inspired O2 fraction (0.209-1; above 1 read as %%)"
     )
     where = p.add_mutually_exclusive_group()
     where.add_argument("--pb", type=_number, help="barometric pressure (default 760 mmHg)")
@@ -88,13 +89,9 @@ def _calc_input(args: argparse.Namespace) -> tuple[calc.GasInput, list[str]]:
         return None if value is None else to_mmhg(value)
 
     fio2 = args.fio2
-    if fio2 is not None and 1.0 < fio2 < 21.0:
-        raise UsageError(
-            f"--fio2: {fio2:g} is neither a fraction in [0.21, 1.0] nor a percentage in [21, 100]"
-        )
-    if fio2 is not None and fio2 > 1.0:
-        notes.append(f"--fio2 {fio2:g} read as a percentage: FiO2 {fio2 / 100:g}")
-        fio2 = fio2 / 100.0
+    if fio2 is not None:
+        fio2, note = calc.read_fio2(fio2)  # errors name the value as typed
+        notes.extend([note] if note else [])
     sao2 = args.sao2
     gas = calc.GasInput(
         pao2=pressure(args.pao2),

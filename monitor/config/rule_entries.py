@@ -12,6 +12,7 @@ from monitor.engine.model import Priority
 from monitor.engine.rules import (
     AaRiseRule,
     AaRoomAirRule,
+    HypoxaemiaRule,
     OxygenationBandRule,
     OxygenEscalationRule,
     PfFallRule,
@@ -83,6 +84,7 @@ class AaRiseEntry(_RuleEntry):
     window_hours: float = Field(default=12, gt=0, le=168)
     fio2_tolerance: float = Field(default=0.05, gt=0, le=0.79)
     priority: PriorityWord = "medium"
+    aa_ratio_fall: float = Field(default=0.08, gt=0, le=1)
 
     def to_spec(self) -> RuleSpec:
         return AaRiseRule(
@@ -92,6 +94,7 @@ class AaRiseEntry(_RuleEntry):
             timedelta(hours=self.window_hours),
             self.fio2_tolerance,
             Priority(self.priority),
+            self.aa_ratio_fall,
         )
 
 
@@ -137,13 +140,29 @@ class SfLowEntry(_RuleEntry):
         )
 
 
+class HypoxaemiaEntry(_RuleEntry):
+    type: Literal["hypoxaemia"]
+    id: str = Field(default="hypoxaemia", pattern=RULE_ID.pattern)
+    pao2_mmhg: float = Field(default=60, gt=0, le=200)
+    pao2_medium_mmhg: float = Field(default=40, gt=0, le=200)
+    sao2_percent: float = Field(default=90, gt=0, le=100)
+    sao2_medium_percent: float = Field(default=75, gt=0, le=100)
+
+    def to_spec(self) -> RuleSpec:
+        return HypoxaemiaRule(
+            self.id, self.enabled, self.pao2_mmhg, self.pao2_medium_mmhg, self.sao2_percent,
+            self.sao2_medium_percent,
+        )
+
+
 RuleEntry = Annotated[
     OxygenationBandEntry
     | PfFallEntry
     | AaRoomAirEntry
     | AaRiseEntry
     | OxygenEscalationEntry
-    | SfLowEntry,
+    | SfLowEntry
+    | HypoxaemiaEntry,
     Field(discriminator="type"),
 ]
 
@@ -156,4 +175,5 @@ def _default_rule_entries() -> list[Any]:
         AaRiseEntry(type="aa_rise"),
         OxygenEscalationEntry(type="oxygen_escalation"),
         SfLowEntry(type="sf_low"),
+        HypoxaemiaEntry(type="hypoxaemia"),
     ]

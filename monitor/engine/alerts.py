@@ -11,17 +11,29 @@ open flag", the only state from which a flag can be raised.
     None --raised--> RAISED --acknowledged--> ACKNOWLEDGED
     RAISED --escalated--> ESCALATED   (medium/high not acknowledged in time)
     RAISED|ACKNOWLEDGED|ESCALATED --worsened--> RAISED|RAISED|ESCALATED
+    RAISED|ACKNOWLEDGED|ESCALATED --lowered--> RAISED|ACKNOWLEDGED|ESCALATED
     RAISED|ACKNOWLEDGED|ESCALATED --resolved--> RESOLVED    (cleared on a later sample)
     RAISED|ACKNOWLEDGED|ESCALATED --retracted--> RETRACTED  (its data withdrawn)
     RESOLVED, RETRACTED: final. A closed flag never reopens; a new flag gets a new id.
 
 Why these choices:
 - A worse priority is news: the flag takes the new priority, notifies, and (if it had
-  been acknowledged) asks to be acknowledged again. The same or a better priority
-  changes nothing and notifies nobody, so a steady bad value does not nag.
+  been acknowledged) asks to be acknowledged again. The same priority changes nothing
+  and notifies nobody, so a steady bad value does not nag.
+- A better priority is recorded (``lowered``): the open flag takes the new priority
+  and short text, so the board shows the patient's current state, and the audit trail
+  keeps the step down. It does not notify: nothing needs doing because of it, a push
+  that says "better" competes for the charge nurse's attention with those that say
+  "worse", and the board shows it where she looks next. An acknowledgement stands.
+  An outcome marked ``uncertain`` (FiO2 estimated or charted after the draw) never
+  lowers a flag: a guess cannot say the patient is better.
 - A flag resolves only on a sample other than the one that raised it, and only when the
-  rule says the condition has cleared by its hysteresis margin.
-- After a resolution the same rule stays quiet for the patient for ``cooldown``.
+  rule says the condition has cleared by its hysteresis margin. The resolved flag's
+  short text quotes the clearing value.
+- After a resolution the same rule stays quiet for ``cooldown``, measured on the
+  patient's clinical clock: from the draw of the sample that resolved the flag to the
+  draw of the sample now judged. The cooldown holds back only the same or a lower
+  priority than the flag had when it resolved; a worse result raises at once.
 - Retraction is not followed by a cooldown: the data behind it never existed, and a
   later valid sample must be able to raise.
 
@@ -47,6 +59,7 @@ class Trigger(StrEnum):
 
     RAISED = "raised"
     WORSENED = "worsened"
+    LOWERED = "lowered"
     ACKNOWLEDGED = "acknowledged"
     ESCALATED = "escalated"
     RESOLVED = "resolved"
@@ -60,6 +73,7 @@ TRANSITIONS: dict[AlertState | None, dict[Trigger, AlertState]] = {
     None: {_T.RAISED: _S.RAISED},
     _S.RAISED: {
         _T.WORSENED: _S.RAISED,
+        _T.LOWERED: _S.RAISED,
         _T.ACKNOWLEDGED: _S.ACKNOWLEDGED,
         _T.ESCALATED: _S.ESCALATED,
         _T.RESOLVED: _S.RESOLVED,
@@ -67,11 +81,13 @@ TRANSITIONS: dict[AlertState | None, dict[Trigger, AlertState]] = {
     },
     _S.ACKNOWLEDGED: {
         _T.WORSENED: _S.RAISED,
+        _T.LOWERED: _S.ACKNOWLEDGED,
         _T.RESOLVED: _S.RESOLVED,
         _T.RETRACTED: _S.RETRACTED,
     },
     _S.ESCALATED: {
         _T.WORSENED: _S.ESCALATED,
+        _T.LOWERED: _S.ESCALATED,
         _T.ACKNOWLEDGED: _S.ACKNOWLEDGED,
         _T.RESOLVED: _S.RESOLVED,
         _T.RETRACTED: _S.RETRACTED,
@@ -80,7 +96,8 @@ TRANSITIONS: dict[AlertState | None, dict[Trigger, AlertState]] = {
     _S.RETRACTED: {},
 }
 
-#: Triggers that send a notification (an acknowledgement is recorded, not broadcast).
+#: Triggers that send a notification (an acknowledgement and a lowered priority are
+#: recorded and shown on the board, not broadcast).
 NOTIFYING: frozenset[Trigger] = frozenset(
     {_T.RAISED, _T.WORSENED, _T.ESCALATED, _T.RESOLVED, _T.RETRACTED}
 )
@@ -99,7 +116,8 @@ class AlertSettings:
     """Timing of the lifecycle. Defaults are common practice, no source.
 
     ``cooldown``: quiet time after a resolution before the same rule raises again for
-    the patient (default 60 min). ``escalate_after``: a medium or high flag not
+    the patient at the same or a lower priority (default 60 min, on the clinical clock:
+    draw to draw). ``escalate_after``: a medium or high flag not
     acknowledged within this is escalated (default 30 min). ``hysteresis``: the fraction
     by which a condition must have cleared to resolve (default 0.10); the rules apply
     it (``RuleSet.hysteresis``), it is kept here so one settings object describes the
@@ -174,9 +192,26 @@ def _move(
     return Decision(alert=moved, events=[event], notify=notify)
 
 
-def _in_cooldown(last_closed: Alert | None, now: datetime, settings: AlertSettings) -> bool:
+def _in_cooldown(
+    last_closed: Alert | None,
+    priority: Priority,
+    derivation: Derivation | None,
+    now: datetime,
+    settings: AlertSettings,
+) -> bool:
+    """Whether a resolved flag's cooldown holds back a new one at ``priority``.
+
+    Only the same or a lower priority than the resolved flag's is held back. Time is the
+    clinical clock: the draw of the sample judged now minus the draw of the sample that
+    resolved the flag. A flag resolved before ``resolved_drawn_at`` was recorded (or a
+    call without a derivation) falls back to ``now`` minus its closing time.
+    """
     if last_closed is None or last_closed.state is not _S.RESOLVED:
         return False
+    if priority.rank > last_closed.priority.rank:
+        return False
+    if derivation is not None and last_closed.resolved_drawn_at is not None:
+        return derivation.drawn_at - last_closed.resolved_drawn_at < settings.cooldown
     closed = last_closed.closed_at or last_closed.updated_at
     return now - closed < settings.cooldown
 
@@ -192,10 +227,13 @@ def apply_outcome(
     """Apply one rule outcome to the patient's open flag for that rule.
 
     ``open_alert``: the open flag for (patient, rule), or None. ``last_closed``: the
-    most recently closed one, for the cooldown. Raises when the rule fired and no flag
-    is open (unless in cooldown); worsens when it fired at a higher priority; resolves
-    when it cleared on another sample than the one that raised or last changed the flag.
-    An outcome on an unreliable derivation changes nothing.
+    most recently closed one, for the cooldown. ``now``: when the result became known
+    (the events' time); the cooldown is measured between draw times. Raises when the
+    rule fired and no flag is open (unless a cooldown holds back that priority); worsens
+    when it fired at a higher priority; lowers when it fired at a lower one (unless the
+    outcome is ``uncertain``); resolves when it cleared on another sample than the one
+    that raised or last changed the flag. An outcome on an unreliable derivation changes
+    nothing.
     """
     _require_aware(now)
     if open_alert is not None and not open_alert.state.is_open:
@@ -208,24 +246,33 @@ def apply_outcome(
         return NO_CHANGE
     if outcome.fired and outcome.priority is not None:
         if open_alert is None:
-            if _in_cooldown(last_closed, now, settings):
+            if _in_cooldown(last_closed, outcome.priority, derivation, now, settings):
                 return NO_CHANGE
             return _raise(outcome, outcome.priority, derivation, now)
+        restated = replace(
+            open_alert,
+            priority=outcome.priority,
+            sample_id=outcome.sample_id,
+            summary=outcome_summary(outcome),
+            preliminary=outcome.preliminary,
+            estimated=outcome.estimated,
+        )
         if outcome.priority.rank > open_alert.priority.rank:
-            worse = replace(
-                open_alert,
-                priority=outcome.priority,
-                sample_id=outcome.sample_id,
-                summary=outcome_summary(outcome),
-                acknowledged_by=None,
-                acknowledged_at=None,
-                preliminary=outcome.preliminary,
-                estimated=outcome.estimated,
-            )
+            worse = replace(restated, acknowledged_by=None, acknowledged_at=None)
             return _move(open_alert, _T.WORSENED, now, worse, sample_id=outcome.sample_id)
+        if outcome.priority.rank < open_alert.priority.rank and not outcome.uncertain:
+            note = f"priority {open_alert.priority.value} -> {outcome.priority.value}"
+            return _move(
+                open_alert, _T.LOWERED, now, restated, sample_id=outcome.sample_id, note=note
+            )
         return NO_CHANGE
     if outcome.cleared and open_alert is not None and outcome.sample_id != open_alert.sample_id:
-        return _move(open_alert, _T.RESOLVED, now, open_alert, sample_id=outcome.sample_id)
+        cleared = replace(
+            open_alert,
+            summary=f"cleared: {outcome_summary(outcome)}",
+            resolved_drawn_at=derivation.drawn_at if derivation is not None else None,
+        )
+        return _move(open_alert, _T.RESOLVED, now, cleared, sample_id=outcome.sample_id)
     return NO_CHANGE
 
 

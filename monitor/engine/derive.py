@@ -10,8 +10,14 @@ the site's ``DerivationSettings`` and returns a ``Derivation``. Every number com
   PIO2, S/F and OSI do not use the sample's PO2 and are still given;
 - no FiO2: nothing that needs it (FIO2_UNKNOWN comes from pairing);
 - no PaCO2: no PAO2 and nothing built on it (PACO2_MISSING);
-- age-expected A-a only on room air (FiO2 0.21), else NOT_ON_ROOM_AIR
-  (reference sheet section 4: age-normal formulas apply to room air only);
+- age-expected A-a only on room air (FiO2 0.21, ``physiology.is_room_air``), else
+  NOT_ON_ROOM_AIR (reference sheet section 4: age-normal formulas apply to room air
+  only); below 18 years it is still given but flagged PAEDIATRIC_AGE_NORMAL, as the
+  formulas come from adults;
+- the altitude-adjusted P/F only where it counts (``physiology.pf_for_bands``: PB
+  below 674 mmHg), else None; ``counted_pf`` is the one answer to "which P/F counts";
+- FiO2 changed less than 15 min before the draw: pairing hands over the FiO2 the blood
+  reflects (the one before the change); every index uses it;
 - Berlin band only with PEEP >= 5 cmH2O and a FiO2 that is not estimated from device
   and flow (reference sheet section 8);
 - PaO2 more than ``unreliable_margin_mmhg`` above PAO2 is impossible in a correct
@@ -43,7 +49,7 @@ from monitor.engine.model import (
 )
 from monitor.engine.pairing import PairingSettings, current_readings, fio2_in_effect
 
-__all__ = ["DerivationSettings", "derive", "derive_spo2_series"]
+__all__ = ["CountedPf", "DerivationSettings", "counted_pf", "derive", "derive_spo2_series"]
 
 _T = TypeVar("_T")
 
@@ -113,7 +119,47 @@ def _constants(settings: DerivationSettings, ph2o: float | None) -> dict[str, fl
 
 
 def _is_room_air(fio2: float | None) -> bool:
-    return fio2 is not None and abs(fio2 - physiology.ROOM_AIR_FIO2) <= 1e-9
+    return physiology.is_room_air(fio2)
+
+
+@dataclass(frozen=True, slots=True)
+class CountedPf:
+    """The P/F that counts for a derivation (mmHg), as every rule, the stored band and
+    the wording use it.
+
+    ``value`` is the altitude-adjusted ratio where ``adjusted`` (PB below 674 mmHg,
+    ``physiology.pf_for_bands``), else the measured one; ``measured`` is PaO2/FiO2
+    unadjusted. Both use the FiO2 the blood reflects (``Derivation.fio2``).
+    ``on_fio2_set`` is the same ratio on a FiO2 set less than 15 min before the draw
+    (None when the FiO2 was steady): shown beside, never judged.
+    """
+
+    value: float
+    measured: float
+    adjusted: bool
+    on_fio2_set: float | None = None
+
+
+def counted_pf(d: Derivation) -> CountedPf | None:
+    """The P/F that counts for ``d`` (see ``CountedPf``); None without a P/F."""
+    if d.pf_ratio is None:
+        return None
+    pb = d.barometric_pressure
+    try:
+        value, adjusted = (
+            physiology.pf_for_bands(d.pf_ratio, pb) if pb is not None else (d.pf_ratio, False)
+        )
+    except InvalidInput:
+        value, adjusted = d.pf_ratio, False
+    on_set = None
+    fio2_set = d.fio2_set
+    if fio2_set is not None and d.pao2 is not None and d.pf_ratio > 0:
+        try:
+            raw = physiology.pf_ratio(d.pao2, fio2_set)
+            on_set = raw * value / d.pf_ratio  # the same altitude factor, if any
+        except InvalidInput:
+            on_set = None
+    return CountedPf(value=value, measured=d.pf_ratio, adjusted=adjusted, on_fio2_set=on_set)
 
 
 @dataclass(frozen=True, slots=True)
@@ -143,6 +189,15 @@ def _alveolar(
         expected = notes.attempt(
             "age-expected A-a", lambda: physiology.expected_aa_gradient(age, settings.age_normal)
         )
+        if expected is not None and age < physiology.ADULT_AGE_YEARS:
+            notes.items.append(
+                InputUsed(
+                    "note",
+                    None,
+                    f"age-expected A-a {expected:.1f} mmHg is an adult formula; the "
+                    f"patient is {age:g} years old",
+                )
+            )
     return _Alveolar(
         alveolar_po2=alveolar,
         aa_gradient=notes.attempt("A-a gradient", lambda: physiology.aa_gradient(alveolar, s.pao2)),
@@ -177,11 +232,10 @@ def _ratios(s: Snapshot, flags: set[QualityFlag], notes: _Notes) -> _Ratios:
     band = None
     if QualityFlag.ESTIMATED_FIO2 not in flags:  # reference sheet section 8
         band = notes.attempt("Berlin band", lambda: physiology.berlin_band(pf, s.peep, pb))
+    counted = notes.attempt("altitude-adjusted P/F", lambda: physiology.pf_for_bands(pf, pb))
     return _Ratios(
         pf_ratio=pf,
-        pf_ratio_adjusted=notes.attempt(
-            "altitude-adjusted P/F", lambda: physiology.pf_ratio_altitude_adjusted(pf, pb)
-        ),
+        pf_ratio_adjusted=counted[0] if counted is not None and counted[1] else None,
         berlin_band=None if band is None else band.value,
         oxygenation_index=oi,
     )
@@ -245,6 +299,10 @@ def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
     margin = settings.unreliable_margin_mmhg
     if alv.alveolar_po2 is not None and s.pao2 > alv.alveolar_po2 + margin:
         flags.add(QualityFlag.PAO2_ABOVE_ALVEOLAR)
+    if alv.aa_gradient_expected is not None and (s.age_years or 0.0) < (
+        physiology.ADULT_AGE_YEARS
+    ):
+        flags.add(QualityFlag.PAEDIATRIC_AGE_NORMAL)
     ratios = _ratios(s, flags, notes) if arterial else _Ratios()
     cao2 = _content(s, settings, notes) if arterial else None
     sf, osi = _saturation(s, flags, notes)

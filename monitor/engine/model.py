@@ -1,7 +1,7 @@
 """The shared types of the core.
 
 Canonical units inside the engine (see DEVELOPERS.md): pressures in mmHg, FiO2 as a
-fraction 0.21-1.0, saturations in %, temperature in degrees Celsius, PEEP and mean
+fraction 0.209-1.0, saturations in %, temperature in degrees Celsius, PEEP and mean
 airway pressure in cmH2O, haemoglobin in g/dL, flows in L/min, times timezone-aware
 UTC. Adapters convert once, at the edge, and keep the original value and unit.
 
@@ -98,7 +98,7 @@ PLAUSIBLE_RANGE: dict[Kind, tuple[float, float]] = {
     Kind.PH: (6.3, 8.0),
     Kind.SAO2: (5.0, 100.0),
     Kind.SPO2: (5.0, 100.0),
-    Kind.FIO2: (0.21, 1.0),
+    Kind.FIO2: (0.209, 1.0),  # 20.9 % is room air as often written as 21 %
     Kind.O2_FLOW: (0.0, 80.0),
     Kind.PEEP: (0.0, 40.0),
     Kind.MEAN_AIRWAY_PRESSURE: (0.0, 60.0),
@@ -259,6 +259,7 @@ class QualityFlag(StrEnum):
     NOT_ARTERIAL = "not an arterial sample"
     SPO2_ABOVE_97 = "SpO2 above 97 %"
     ESTIMATED_FROM_SPO2 = "estimated from SpO2"
+    PAEDIATRIC_AGE_NORMAL = "age-expected A-a is an adult formula (patient under 18)"
 
 
 #: Flags that make a derivation unreliable: it is kept and shown, but no rule fires on it.
@@ -400,6 +401,30 @@ class Derivation:
     def unreliable(self) -> bool:
         return bool(self.flags & UNRELIABLE_FLAGS)
 
+    def _input(self, role: str) -> InputUsed | None:
+        return next((i for i in self.inputs if i.role == role), None)
+
+    @property
+    def fio2_set(self) -> float | None:
+        """The FiO2 set less than 15 min before the draw (FIO2_NOT_STEADY), which the
+        indices do *not* use: ``fio2`` is the one in effect before the change, the one
+        the blood reflects. None when the FiO2 was steady. Kept as an input (role
+        ``fio2_set``), so it survives storage with the provenance."""
+        found = self._input("fio2_set")
+        return found.value if found is not None and isinstance(found.value, float) else None
+
+    @property
+    def fio2_changed_at(self) -> datetime | None:
+        """When the FiO2 was changed shortly before the draw (see ``fio2_set``)."""
+        found = self._input("fio2_set")
+        return None if found is None else found.at
+
+    @property
+    def sao2(self) -> float | None:
+        """The measured SaO2 (%) of the same sample, from the inputs, if any."""
+        found = self._input("sao2")
+        return found.value if found is not None and isinstance(found.value, float) else None
+
     @property
     def reading_ids(self) -> tuple[str, ...]:
         return tuple(i.reading_id for i in self.inputs if i.reading_id)
@@ -424,7 +449,10 @@ class Alert:
     """One flag: a rule that fired for a patient, from raise to resolve or retract.
 
     ``alert_id`` is made by the engine from patient, rule and raise time, so the same
-    feed replayed gives the same ids.
+    feed replayed gives the same ids. ``priority`` and ``summary`` say the patient's
+    current state (they follow the latest sample that fired, up or down);
+    ``resolved_drawn_at`` is the draw time of the sample that resolved the flag, from
+    which the cooldown is measured on the patient's clinical clock.
     """
 
     alert_id: str
@@ -448,6 +476,9 @@ class Alert:
     #: When the flag (or its last worsening) could first be seen: the clock for
     #: escalation, the one timer about people rather than blood. None: ``updated_at``.
     seen_at: datetime | None = None
+    #: Draw time of the sample that resolved the flag: the cooldown runs on the
+    #: patient's clinical clock from it.
+    resolved_drawn_at: datetime | None = None
 
 
 @dataclass(frozen=True, slots=True)

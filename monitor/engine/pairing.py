@@ -16,12 +16,19 @@ Rules, in brief (the settings hold every window):
   panel never joins by time.
 - FiO2 in effect, first that applies: (1) reported with the gas (same panel);
   (2) the latest charted FiO2 (or ventilator setting) at or before ``t`` that is not
-  stale (4 h ventilator, 2 h otherwise) and not superseded by a later room-air
-  charting; (3) room air charted (latest O2 device, not stale); (4) an FiO2 charted up
-  to 10 min *after* ``t``, only when nothing at or before ``t`` documents the FiO2
-  (flag FIO2_CHARTED_AFTER_DRAW); (5) estimated from device and flow (flag
-  ESTIMATED_FIO2); (6) unknown (flag FIO2_UNKNOWN). FIO2_NOT_STEADY when a charted
-  FiO2 or a room-air charting changed the value less than 15 min before ``t``.
+  stale (4 h ventilator, 2 h otherwise) and not ended by a later oxygen-therapy
+  charting: room air, a low-flow device, a device of another kind (a ventilator setting
+  does not carry over to a mask or a high-flow cannula), or an O2 flow of a device
+  without a set FiO2 (with no device known, a flow ends a ventilator setting);
+  (3) room air charted (latest O2 device, not stale); (4) an FiO2 charted up to 10 min
+  *after* ``t``, only when nothing at or before ``t`` documents the FiO2 (flag
+  FIO2_CHARTED_AFTER_DRAW); (5) estimated from device and flow (flag ESTIMATED_FIO2);
+  (6) unknown (flag FIO2_UNKNOWN).
+- FiO2 changed less than 15 min before ``t`` (flag FIO2_NOT_STEADY): the blood has not
+  settled on the new value, so the snapshot carries the FiO2 in effect *before* the
+  change (the one the blood reflects) and records the new one as the input
+  ``fio2_set``, with its time. Every index is then computed on the value the blood
+  reflects; the rules and the wording show both.
 - Barometric pressure: measured with the sample > site setting > standard atmosphere
   at the site elevation (ESTIMATED_PRESSURE) > 760 mmHg (DEFAULT_PRESSURE).
 - Temperature: with the sample, else charted within 4 h before ``t``, else 37 C
@@ -36,7 +43,7 @@ order of ``context`` never changes the result.
 """
 
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, date, datetime, timedelta
 
 from monitor.engine import physiology
@@ -231,38 +238,189 @@ def _same_sample(
 
 @dataclass(frozen=True, slots=True)
 class FiO2InEffect:
-    """The FiO2 (fraction) in effect at a time, where it came from, and why."""
+    """The FiO2 (fraction) in effect at a time, where it came from, and why.
+
+    When the FiO2 changed less than ``steady_state`` before the time asked about,
+    ``value`` is the FiO2 in effect *before* the change (the one the blood reflects)
+    and ``changed_to``/``changed_at`` say what was set and when; the inputs carry both,
+    the new value under the role ``fio2_set``.
+    """
 
     value: float | None
     source: FiO2Source
     flags: frozenset[QualityFlag] = frozenset()
     inputs: tuple[InputUsed, ...] = ()
     used: tuple[Reading, ...] = field(default=(), compare=False)
+    changed_to: float | None = None
+    changed_at: datetime | None = None
+
+
+#: Devices that carry no set FiO2: what they give is estimated from their flow.
+_LOW_FLOW = frozenset({O2Device.NASAL_CANNULA, O2Device.SIMPLE_MASK, O2Device.RESERVOIR_MASK})
+#: Devices whose FiO2 is a ventilator setting.
+_VENTILATOR = frozenset({O2Device.NON_INVASIVE_VENTILATION, O2Device.INVASIVE_VENTILATION})
+
+
+def _device(r: Reading) -> O2Device:
+    try:
+        return O2Device(r.code_value or "")
+    except ValueError:
+        return O2Device.OTHER
 
 
 def _is_room_air(r: Reading) -> bool:
     return r.code_value == O2Device.ROOM_AIR.value
 
 
-def _not_steady(
-    charted: Sequence[Reading], devices: Sequence[Reading], at: datetime, settings: PairingSettings
-) -> bool:
-    """True when a charted FiO2 or a room-air charting changed the value in effect less
-    than ``steady_state`` before ``at``. A value is a change only against a previous
-    value still within its staleness when the new one was charted: a first value, or one
-    after a gap, says nothing about a change."""
-    room_air = [(d, physiology.ROOM_AIR_FIO2) for d in devices if _is_room_air(d)]
-    timeline = sorted(
-        [(r, r.value) for r in charted if r.effective_at <= at]
-        + [(d, v) for d, v in room_air if d.effective_at <= at],
-        key=lambda item: _order(item[0]),
+def _later(r: Reading, than: Reading, settings: PairingSettings) -> bool:
+    """``r`` was charted after ``than`` as a separate charting: more than the
+    same-sample window later (readings charted together document one therapy)."""
+    return r.effective_at - than.effective_at > settings.same_sample_window
+
+
+def _device_ends(fio2: Reading, device: Reading) -> bool:
+    """A device charted after a FiO2 ends it unless it is the kind of device that FiO2
+    belongs to: room air and the low-flow devices have no set FiO2; a ventilator setting
+    does not carry over to a mask or high-flow cannula, nor a mask's FiO2 to a
+    ventilator."""
+    kind = _device(device)
+    if kind is O2Device.ROOM_AIR or kind in _LOW_FLOW:
+        return True
+    return (kind in _VENTILATOR) is not fio2.from_ventilator
+
+
+def _flow_ends(fio2: Reading, device: Reading | None) -> bool:
+    """An O2 flow charted after a FiO2 ends it when it belongs to a device without a set
+    FiO2 (room air, low-flow), or, with no device known, when the FiO2 was a ventilator
+    setting (a ventilator is not charted by an O2 flow)."""
+    if device is None:
+        return fio2.from_ventilator
+    return _is_room_air(device) or _device(device) in _LOW_FLOW
+
+
+@dataclass(frozen=True, slots=True)
+class _Therapy:
+    """What one moment's charting says about the FiO2 (no after-draw or with-gas value)."""
+
+    value: float | None
+    source: FiO2Source
+    inputs: tuple[InputUsed, ...]
+    used: tuple[Reading, ...]
+    notes: tuple[InputUsed, ...] = ()
+
+
+def _in_effect(
+    at: datetime,
+    charted: Sequence[Reading],
+    devices: Sequence[Reading],
+    flows: Sequence[Reading],
+    settings: PairingSettings,
+) -> _Therapy:
+    """The FiO2 in effect at ``at`` from what was charted at or before it.
+
+    The latest charted FiO2 (or ventilator setting) that is not stale holds until a
+    later oxygen-therapy charting ends it: a device (``_device_ends``), an O2 flow
+    (``_flow_ends``), room air. Then the latest device decides: room air (unless an O2
+    flow was charted after it), or an estimate from a low-flow device and the latest
+    flow. Readings are sorted, so the order of the context never matters.
+    """
+    fio2 = next((r for r in reversed(charted) if r.effective_at <= at), None)
+    device = next((d for d in reversed(devices) if d.effective_at <= at), None)
+    if device is not None and not _fresh(device, at, settings):
+        device = None
+    flow = next((f for f in reversed(flows) if _fresh(f, at, settings)), None)
+    notes: list[InputUsed] = []
+    if fio2 is not None and _fresh(fio2, at, settings):
+        ended_by: Reading | None = None
+        if device is not None and _later(device, fio2, settings) and _device_ends(fio2, device):
+            ended_by = device
+        for f in flows:
+            if ended_by is not None or not (f.effective_at <= at and _later(f, fio2, settings)):
+                continue
+            owner = next((d for d in reversed(devices) if d.effective_at <= f.effective_at), None)
+            if owner is not None and not _fresh(owner, at, settings):
+                owner = None
+            if _flow_ends(fio2, owner):
+                ended_by = f
+        if ended_by is None:
+            setting = " (ventilator setting)" if fio2.from_ventilator else ""
+            why = _when("charted", fio2, at) + setting + ", no later change before the draw"
+            return _Therapy(fio2.value, FiO2Source.CHARTED, (_used("fio2", fio2, why),), (fio2,))
+        what = "device" if ended_by.kind is Kind.O2_DEVICE else "O2 flow"
+        notes.append(
+            _used(
+                "fio2",
+                fio2,
+                f"{_when('charted', fio2, at)}, no longer in effect: ended by the {what} "
+                f"{_when('charted', ended_by, at)}",
+            )
+        )
+    if device is not None and _is_room_air(device):
+        if flow is not None and _later(flow, device, settings) and (flow.value or 0.0) > 0.0:
+            notes.append(_used("fio2", device, "room air charted, then an O2 flow: device unknown"))
+            return _Therapy(None, FiO2Source.UNKNOWN, (), (), tuple(notes))
+        why = _when("room air charted", device, at)
+        return _Therapy(
+            physiology.ROOM_AIR_FIO2,
+            FiO2Source.ROOM_AIR,
+            (_used("fio2", device, why, physiology.ROOM_AIR_FIO2),),
+            (device,),
+        )
+    if device is not None:
+        try:
+            value = physiology.estimated_fio2(
+                str(device.code_value), flow.value if flow is not None else None
+            )
+        except (InvalidInput, ValueError) as exc:
+            notes.append(_used("fio2", device, f"not estimated from the device: {exc}"))
+        else:
+            used = (device,) if flow is None else (device, flow)
+            inputs = [_used("o2_device", device, _when("device charted", device, at))]
+            if flow is not None:
+                inputs.append(_used("o2_flow", flow, _when("flow charted", flow, at)))
+            given = f" at {flow.value:g} L/min" if flow is not None else ""
+            why = (
+                f"estimated from {device.code_value}{given}: a rule of thumb, "
+                "uncertain by 0.1 or more"
+            )
+            inputs.append(InputUsed("fio2", value, why, None, at))
+            return _Therapy(
+                value, FiO2Source.DEVICE_ESTIMATE, tuple(inputs), used, tuple(notes)
+            )
+    return _Therapy(None, FiO2Source.UNKNOWN, (), (), tuple(notes))
+
+
+def _recent_change(
+    at: datetime,
+    charted: Sequence[Reading],
+    devices: Sequence[Reading],
+    flows: Sequence[Reading],
+    settings: PairingSettings,
+) -> tuple[datetime, _Therapy, _Therapy] | None:
+    """The latest change of the FiO2 in effect less than ``steady_state`` before ``at``:
+    (when, what was in effect before, what after). A value counts as a change only
+    against a previous value still in effect (not stale) just before it: a first value,
+    or one after a gap, says nothing about a change. Chartings within the same-sample
+    window of each other count as one."""
+    moments = sorted(
+        {
+            r.effective_at
+            for r in (*charted, *devices, *flows)
+            if r.effective_at <= at and at - r.effective_at < settings.steady_state
+        },
+        reverse=True,
     )
-    for (previous, before), (r, after) in zip(timeline, timeline[1:], strict=False):
-        recent = at - r.effective_at < settings.steady_state
-        if recent and before is not None and after is not None and abs(after - before) > 1e-9:
-            if _fresh(previous, r.effective_at, settings):
-                return True
-    return False
+    tick = timedelta(microseconds=1)
+    for moment in moments:
+        after = _in_effect(moment, charted, devices, flows, settings)
+        before = _in_effect(
+            moment - settings.same_sample_window - tick, charted, devices, flows, settings
+        )
+        if after.value is None or before.value is None:
+            continue
+        if abs(after.value - before.value) > 1e-9:
+            return moment, before, after
+    return None
 
 
 def _choose_fio2(
@@ -272,82 +430,70 @@ def _choose_fio2(
     with_gas = [r for r in fio2s if panel_id is not None and r.panel_id == panel_id]
     charted = [r for r in fio2s if r not in with_gas]
     devices = _of(readings, Kind.O2_DEVICE)
-    flags: set[QualityFlag] = set()
-    if _not_steady(charted, devices, at, settings):
-        flags.add(QualityFlag.FIO2_NOT_STEADY)  # whatever the source: the lung had no time
+    flows = _of(readings, Kind.O2_FLOW)
+    change = _recent_change(at, charted, devices, flows, settings)
+    if change is not None:
+        # The lung had no time to settle: the blood reflects the FiO2 in effect before
+        # the change. Judge on that one and show the new one beside it.
+        moment, before, after = change
+        new_value = after.value
+        if with_gas:
+            new_value = min(with_gas, key=lambda x: (abs(x.effective_at - at), _order(x))).value
+        flags = {QualityFlag.FIO2_NOT_STEADY}
+        if before.source is FiO2Source.DEVICE_ESTIMATE:
+            flags.add(QualityFlag.ESTIMATED_FIO2)
+        why_set = (
+            f"set {_clock(moment)}, {_relative(moment, at)}: not used for the indices, "
+            f"the blood reflects the FiO2 before the change (less than "
+            f"{_span(settings.steady_state)} to settle)"
+        )
+        inputs = (
+            *(
+                replace(i, reason=f"{i.reason}; in effect until {_clock(moment)}, the value "
+                        "the blood reflects")
+                if i.role == "fio2" else i
+                for i in before.inputs
+            ),
+            InputUsed("fio2_set", new_value, why_set, None, moment),
+        )
+        return FiO2InEffect(
+            before.value, before.source, frozenset(flags), inputs, before.used + after.used,
+            changed_to=new_value, changed_at=moment,
+        )
     if with_gas:
         r = min(with_gas, key=lambda x: (abs(x.effective_at - at), _order(x)))
         why = "reported with the gas (same panel)"
+        used = (_used("fio2", r, why),)
+        return FiO2InEffect(r.value, FiO2Source.WITH_GAS, frozenset(), used, (r,))
+    therapy = _in_effect(at, charted, devices, flows, settings)
+    if therapy.value is not None and therapy.source is not FiO2Source.DEVICE_ESTIMATE:
         return FiO2InEffect(
-            r.value, FiO2Source.WITH_GAS, frozenset(flags), (_used("fio2", r, why),), (r,)
+            therapy.value, therapy.source, frozenset(), therapy.notes + therapy.inputs,
+            therapy.used,
         )
-    before = [r for r in charted if r.effective_at <= at]
-    last_fio2 = before[-1] if before else None
-    last_device = next((d for d in reversed(devices) if d.effective_at <= at), None)
-    device_fresh = last_device is not None and _fresh(last_device, at, settings)
-    room_air = last_device if device_fresh and last_device and _is_room_air(last_device) else None
-
-    if last_fio2 is not None and _fresh(last_fio2, at, settings):
-        superseded = room_air is not None and _order(room_air) > _order(last_fio2)
-        if not superseded:
-            setting = " (ventilator setting)" if last_fio2.from_ventilator else ""
-            why = _when("charted", last_fio2, at) + setting + ", no later change before the draw"
-            return FiO2InEffect(
-                last_fio2.value,
-                FiO2Source.CHARTED,
-                frozenset(flags),
-                (_used("fio2", last_fio2, why),),
-                (last_fio2,),
-            )
-    if room_air is not None:
-        why = _when("room air charted", room_air, at)
-        return FiO2InEffect(
-            physiology.ROOM_AIR_FIO2,
-            FiO2Source.ROOM_AIR,
-            frozenset(flags),
-            (_used("fio2", room_air, why, physiology.ROOM_AIR_FIO2),),
-            (room_air,),
-        )
-    after = [r for r in charted if at < r.effective_at <= at + settings.charted_after_grace]
-    if after:
-        r = after[0]
+    after_draw = [r for r in charted if at < r.effective_at <= at + settings.charted_after_grace]
+    if after_draw:
+        r = after_draw[0]
         why = _when("charted", r, at) + ": nothing valid at or before the draw"
-        flags.add(QualityFlag.FIO2_CHARTED_AFTER_DRAW)
         return FiO2InEffect(
-            r.value, FiO2Source.CHARTED_AFTER, frozenset(flags), (_used("fio2", r, why),), (r,)
+            r.value,
+            FiO2Source.CHARTED_AFTER,
+            frozenset({QualityFlag.FIO2_CHARTED_AFTER_DRAW}),
+            therapy.notes + (_used("fio2", r, why),),
+            (r,),
         )
-    notes: list[InputUsed] = []
-    if device_fresh and last_device is not None:
-        flows = [f for f in _of(readings, Kind.O2_FLOW) if _fresh(f, at, settings)]
-        flow = flows[-1] if flows else None
-        try:
-            value = physiology.estimated_fio2(
-                str(last_device.code_value), flow.value if flow is not None else None
-            )
-        except (InvalidInput, ValueError) as exc:
-            notes.append(_used("fio2", last_device, f"not estimated from the device: {exc}"))
-        else:
-            used = (last_device,) if flow is None else (last_device, flow)
-            inputs = [_used("o2_device", last_device, _when("device charted", last_device, at))]
-            if flow is not None:
-                inputs.append(_used("o2_flow", flow, _when("flow charted", flow, at)))
-            given = f" at {flow.value:g} L/min" if flow is not None else ""
-            why = (
-                f"estimated from {last_device.code_value}{given}: a rule of thumb, "
-                "uncertain by 0.1 or more"
-            )
-            inputs.append(InputUsed("fio2", value, why, None, at))
-            flags.add(QualityFlag.ESTIMATED_FIO2)
-            return FiO2InEffect(
-                value, FiO2Source.DEVICE_ESTIMATE, frozenset(flags), tuple(inputs), used
-            )
-    flags.add(QualityFlag.FIO2_UNKNOWN)
-    notes.append(
-        InputUsed(
-            "fio2", None, "no FiO2, room air or device charted within its staleness limit", None, at
+    if therapy.value is not None:
+        return FiO2InEffect(
+            therapy.value, therapy.source, frozenset({QualityFlag.ESTIMATED_FIO2}),
+            therapy.notes + therapy.inputs, therapy.used,
         )
+    note = InputUsed(
+        "fio2", None, "no FiO2, room air or device charted within its staleness limit", None, at
     )
-    return FiO2InEffect(None, FiO2Source.UNKNOWN, frozenset(flags), tuple(notes), ())
+    return FiO2InEffect(
+        None, FiO2Source.UNKNOWN, frozenset({QualityFlag.FIO2_UNKNOWN}),
+        (*therapy.notes, note), (),
+    )
 
 
 def fio2_in_effect(
@@ -597,7 +743,8 @@ def context_window(settings: PairingSettings) -> tuple[timedelta, timedelta]:
     longest look-ahead (after-draw grace, same-sample and SpO2 windows)."""
     staleness = max(settings.fio2_staleness, settings.ventilator_staleness)
     before = max(
-        staleness + settings.steady_state,  # the value a recent change replaced
+        # the value a recent change replaced, looked up just before that charting
+        staleness + settings.steady_state + settings.same_sample_window,
         settings.temperature_window,
         settings.ventilator_window,
         settings.spo2_window,
@@ -616,10 +763,11 @@ def influence_window(kind: Kind, settings: PairingSettings) -> tuple[timedelta, 
       A panel member joins its PaO2 by ``panel_id`` whatever the times, so the caller
       also re-pairs the samples of the reading's own panel.
     - FiO2: ``charted_after_grace`` before (charted after the draw); after, the
-      longest staleness plus ``steady_state`` (it stays in effect that long, and a
-      change from it within that time raises FIO2_NOT_STEADY).
-    - O2 device: the same after (room air counts as a FiO2 of 0.21); nothing before.
-    - O2 flow: nothing before, the longest staleness after.
+      longest staleness plus ``steady_state`` plus the same-sample window (it stays in
+      effect that long, and a change from it within that time raises FIO2_NOT_STEADY;
+      the value before a change is looked up just before that charting).
+    - O2 device and O2 flow: nothing before, the same after (a device or a flow can
+      end a charted FiO2, give room air or an estimate, and make a change).
     - Body temperature: the same-sample window before, the temperature window after.
     - PEEP, mean airway pressure: nothing before, the ventilator window after.
     - SpO2: the SpO2 window either side.
@@ -629,6 +777,7 @@ def influence_window(kind: Kind, settings: PairingSettings) -> tuple[timedelta, 
     """
     staleness = max(settings.fio2_staleness, settings.ventilator_staleness)
     same = settings.same_sample_window
+    therapy = staleness + settings.steady_state + same
     windows: dict[Kind, tuple[timedelta, timedelta]] = {
         Kind.PAO2: (timedelta(0), timedelta(0)),
         Kind.PACO2: (same, same),
@@ -636,9 +785,9 @@ def influence_window(kind: Kind, settings: PairingSettings) -> tuple[timedelta, 
         Kind.SAO2: (same, same),
         Kind.HAEMOGLOBIN: (same, same),
         Kind.BAROMETRIC_PRESSURE: (same, same),
-        Kind.FIO2: (settings.charted_after_grace, staleness + settings.steady_state),
-        Kind.O2_DEVICE: (timedelta(0), staleness + settings.steady_state),
-        Kind.O2_FLOW: (timedelta(0), staleness),
+        Kind.FIO2: (settings.charted_after_grace, therapy),
+        Kind.O2_DEVICE: (timedelta(0), therapy),
+        Kind.O2_FLOW: (timedelta(0), therapy),
         Kind.BODY_TEMPERATURE: (same, max(same, settings.temperature_window)),
         Kind.PEEP: (timedelta(0), settings.ventilator_window),
         Kind.MEAN_AIRWAY_PRESSURE: (timedelta(0), settings.ventilator_window),

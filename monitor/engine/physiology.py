@@ -1,6 +1,6 @@
 """The formulas: one place for each, in canonical units.
 
-Pressures in mmHg, FiO2 as a fraction 0.21-1.0, saturations in %, temperatures in
+Pressures in mmHg, FiO2 as a fraction 0.209-1.0, saturations in %, temperatures in
 degrees Celsius, PEEP and mean airway pressure in cmH2O, haemoglobin in g/dL. Every
 function is pure, names its published source, and raises ``InvalidInput`` (naming the
 argument and the rule it broke) for input that is impossible or outside the range the
@@ -28,6 +28,13 @@ STANDARD_PRESSURE_MMHG = 760.0
 DEFAULT_RQ = 0.8
 DEFAULT_TEMPERATURE_C = 37.0
 ROOM_AIR_FIO2 = 0.21
+#: The lowest FiO2 accepted: 20.9 %, the usual rounding of the O2 fraction of dry air
+#: (20.95 % by volume, US Standard Atmosphere 1976, from memory). Feeds and people write
+#: room air as 20.9 % as often as 21 %; both are room air (the reference sheet's own
+#: check case uses 0.2093).
+FIO2_MIN = 0.209
+#: A FiO2 within this of 0.21 is room air (0.209 ... 0.215). Common practice, no source.
+ROOM_AIR_TOLERANCE = 0.005
 #: Berlin's altitude footnote applies above 1000 m; the ISA pressure there is 674.13 mmHg.
 ALTITUDE_ADJUSTMENT_BELOW_MMHG = 674.0
 
@@ -51,9 +58,17 @@ def cmh2o_to_mmhg(cmh2o: float) -> float:
 
 
 def _fio2(fio2: float) -> float:
-    if not (isinstance(fio2, int | float) and math.isfinite(fio2)) or not 0.21 <= fio2 <= 1.0:
-        raise InvalidInput("fio2", fio2, "must be a fraction in [0.21, 1.0]")
+    if not (isinstance(fio2, int | float) and math.isfinite(fio2)) or not (
+        FIO2_MIN <= fio2 <= 1.0
+    ):
+        raise InvalidInput("fio2", fio2, "must be a fraction in [0.209, 1.0]")
     return float(fio2)
+
+
+def is_room_air(fio2: float | None) -> bool:
+    """True for a FiO2 (fraction) that is room air: within ``ROOM_AIR_TOLERANCE`` of 0.21.
+    The one test every module uses, so 0.209, 0.21 and 0.2093 are treated alike."""
+    return fio2 is not None and abs(fio2 - ROOM_AIR_FIO2) <= ROOM_AIR_TOLERANCE + 1e-12
 
 
 def _positive(name: str, value: float, high: float | None = None) -> float:
@@ -203,6 +218,13 @@ class AgeNormal(StrEnum):
     MELLEMGAARD = "mellemgaard"
 
 
+#: The age-normal formulas come from adults (Mellemgaard's subjects were adults; the
+#: StatPearls formula is written for adults): below this age (years) the value is given
+#: but marked as an adult formula (derive adds PAEDIATRIC_AGE_NORMAL). Common practice,
+#: no source, for the cut at 18.
+ADULT_AGE_YEARS = 18.0
+
+
 def expected_aa_gradient(
     age_years: float, formula: AgeNormal | str = AgeNormal.AGE_PLUS_10_OVER_4
 ) -> float:
@@ -252,6 +274,23 @@ def pf_ratio_altitude_adjusted(pf: float, barometric_pressure: float) -> float:
     return _positive("pf ratio", pf) * STANDARD_PRESSURE_MMHG / _pressure(barometric_pressure)
 
 
+def pf_for_bands(pf: float, barometric_pressure: float) -> tuple[float, bool]:
+    """The P/F that counts against the band thresholds, and whether it was adjusted.
+
+    The one place that decides (rules, the stored Berlin band, ``gasgap calc`` and the
+    wording all call it): below ``ALTITUDE_ADJUSTMENT_BELOW_MMHG`` (674 mmHg, the ISA
+    pressure at 1000 m) the altitude-adjusted ratio P/F x 760/PB, as the Berlin
+    definition's footnote asks "if altitude is higher than 1000 m" (JAMA
+    2012;307:2526-2533; direction as in ``pf_ratio_altitude_adjusted``); at or above it
+    the measured P/F, unadjusted: a site at 600 m is judged as Berlin wrote the bands.
+    """
+    pb = _pressure(barometric_pressure)
+    ratio = _positive("pf ratio", pf)
+    if pb < ALTITUDE_ADJUSTMENT_BELOW_MMHG:
+        return pf_ratio_altitude_adjusted(ratio, pb), True
+    return ratio, False
+
+
 class BerlinBand(StrEnum):
     NONE = "none"
     MILD = "mild"
@@ -265,14 +304,16 @@ def berlin_band(
     """Berlin oxygenation band (JAMA 2012;307:2526-2533), or None when it does not apply.
 
     The definition needs PEEP or CPAP of at least 5 cmH2O; without it the bands are not
-    given. Where PB is below 674 mmHg (above about 1000 m) the altitude-adjusted ratio
-    is used. Mild 200 < P/F <= 300, moderate 100 < P/F <= 200, severe P/F <= 100.
-    Only the oxygenation criterion: onset, imaging and cause are for clinicians.
+    given. The ratio judged is ``pf_for_bands`` (altitude-adjusted only where PB is
+    below 674 mmHg). Mild 200 < P/F <= 300, moderate 100 < P/F <= 200, severe
+    P/F <= 100. Only the oxygenation criterion: onset, imaging and cause are for
+    clinicians. A negative PEEP is impossible and raises ``InvalidInput``.
     """
+    if peep is not None and (not math.isfinite(peep) or not 0.0 <= peep <= 40.0):
+        raise InvalidInput("peep", peep, "must be in [0, 40] cmH2O")
     if peep is None or peep < 5.0:
         return None
-    pb = _pressure(barometric_pressure)
-    ratio = pf_ratio_altitude_adjusted(pf, pb) if pb < ALTITUDE_ADJUSTMENT_BELOW_MMHG else pf
+    ratio, _ = pf_for_bands(pf, barometric_pressure)
     if ratio <= 100.0:
         return BerlinBand.SEVERE
     if ratio <= 200.0:

@@ -12,6 +12,16 @@ Guards shared by every rule: nothing fires on a derivation marked unreliable
 preliminary results gives a flag marked preliminary; one built on SpO2 gives a flag
 marked estimated.
 
+No flag claims more certainty than its inputs. Every outcome carries in ``numbers`` how
+the FiO2 behind it was known (``fio2_basis``: with the gas, charted, room air,
+estimated from device and flow, charted after the draw, changed shortly before the
+draw, unknown). Where the FiO2 was not documented at or before the draw (estimated, or
+charted after), the band rule's priority is only what the inputs make certain (see
+``OxygenationBandRule``) and the outcome is marked ``uncertain``: it may raise or
+worsen a flag, never lower one. Which P/F counts is decided once, by
+``derive.counted_pf`` (altitude-adjusted only below 674 mmHg, on the FiO2 the blood
+reflects).
+
 Windows are measured back from the derivation's draw time, not from ``now``, so that a
 replay of a feed judges each sample exactly as the live service did. History entries
 drawn after the derivation are ignored.
@@ -27,7 +37,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
-from monitor.engine import trends
+from monitor.engine import physiology, trends
+from monitor.engine.derive import counted_pf
 from monitor.engine.errors import InvalidInput
 from monitor.engine.model import (
     Derivation,
@@ -40,8 +51,11 @@ from monitor.engine.model import (
 #: Berlin band name for each tier of the band rule (JAMA 2012;307:2526-2533).
 _BERLIN_WORD = {Priority.LOW: "mild", Priority.MEDIUM: "moderate", Priority.HIGH: "severe"}
 
-#: FiO2 within this of 0.21 counts as room air (feeds round 21 % differently).
-_ROOM_AIR_TOLERANCE = 0.005
+#: How far a FiO2 estimated from device and flow may be above the estimate: the largest
+#: standard deviation measured for nasal cannulae, 0.15 (Wettstein RB et al., Respir Care
+#: 2005;50:604-609; reference sheet section 8). Used only to decide whether a good P/F
+#: on an estimated FiO2 is good enough to clear a flag.
+ESTIMATE_UNCERTAINTY = 0.15
 
 
 # --- rule specifications ---------------------------------------------------------------
@@ -62,12 +76,25 @@ class OxygenationBandRule:
     """Rule 1. P/F at or below a band threshold: <= 300 low, <= 200 medium, <= 100 high.
 
     Thresholds in mmHg, from the Berlin definition's oxygenation bands (ARDS Definition
-    Task Force, JAMA 2012;307:2526-2533). The P/F compared is the altitude-adjusted one
-    (``Derivation.pf_ratio_adjusted``, P/F x 760/PB, set where PB < 674 mmHg) when there
-    is one, else the measured P/F. Labelled with the Berlin band only when PEEP/CPAP of
-    at least 5 cmH2O is known (``Derivation.berlin_band`` not None) and the thresholds
-    are Berlin's own; otherwise "P/F <= N". Cleared when P/F is above the low threshold
-    by the hysteresis fraction.
+    Task Force, JAMA 2012;307:2526-2533). The P/F compared is ``derive.counted_pf``: the
+    altitude-adjusted ratio (P/F x 760/PB) only where PB < 674 mmHg (Berlin: "if
+    altitude is higher than 1000 m"), else the measured one, always on the FiO2 the
+    blood reflects (the one before a change less than 15 min before the draw; the P/F on
+    the new FiO2 is shown beside it). Labelled with the Berlin band only when PEEP/CPAP
+    of at least 5 cmH2O is known (``Derivation.berlin_band`` not None) and the
+    thresholds are Berlin's own; otherwise "P/F <= N". Cleared when P/F is above the low
+    threshold by the hysteresis fraction.
+
+    On a FiO2 not documented at or before the draw (estimated from device and flow, or
+    charted only after the draw) the priority is what the inputs make certain, and no
+    more. The patient breathes at least room air, so the P/F is at most PaO2/0.21: the
+    tier that bound reaches is certain; the tier the estimate reaches is only "worth a
+    look", held at ``uncertain_max`` (LOW by default). Why: the estimate scatters by
+    0.04-0.15 (Wettstein 2005), enough to move P/F across a whole band; the Berlin
+    authors call a FiO2 without an endotracheal tube unreliable and the bands are not
+    computed on it (reference sheet section 8). The flag says the FiO2 is estimated in
+    its short text. It clears only if the P/F clears even at the estimate plus 0.15 (a
+    FiO2 charted after the draw: at 1.0).
     """
 
     rule_id: str = "oxygenation-band"
@@ -75,6 +102,7 @@ class OxygenationBandRule:
     low: float = 300.0
     medium: float = 200.0
     high: float = 100.0
+    uncertain_max: Priority = Priority.LOW
 
     def __post_init__(self) -> None:
         for name in ("low", "medium", "high"):
@@ -97,7 +125,8 @@ class PfFallRule:
     the prior ``window`` (default 24 h), counting at least ``min_gases`` gases including
     this one (default 2). Medium. Common practice, no source.
 
-    The fall is relative, so the measured P/F is used (an altitude factor cancels out).
+    Both P/F are ``derive.counted_pf`` (so a sample with a measured pressure and one on
+    the site pressure compare like with like).
     """
 
     rule_id: str = "pf-fall"
@@ -133,10 +162,18 @@ class AaRoomAirRule:
 
 @dataclass(frozen=True, slots=True)
 class AaRiseRule:
-    """Rule 4. A-a gradient at least ``rise`` mmHg (default 20) above the previous gas
-    drawn within ``window`` (default 12 h), when the two FiO2 differ by no more than
-    ``fio2_tolerance`` (default 0.05; the gradient grows with FiO2). Medium.
-    Common practice, no source.
+    """Rule 4. Gas exchange worse than the previous gas drawn within ``window`` (default
+    12 h) at a comparable FiO2 (the two differ by no more than ``fio2_tolerance``,
+    default 0.05): the A-a gradient rose by at least ``rise`` mmHg (default 20) *and*
+    the a/A ratio fell by at least ``ratio_fall`` (default 0.08, absolute). Medium.
+
+    Why both: the normal A-a grows with FiO2 (reference sheet section 4), so a fixed
+    mmHg rise is noise at a high FiO2 (at 0.80 an A-a of 408 -> 428 is 5 %), while the
+    a/A ratio is fairly stable across FiO2 (Gilbert and Keighley, Am Rev Respir Dis
+    1974;109:142-145, from memory; sheet section 5). A rise of A-a by x at a steady FiO2
+    lowers a/A by x / PAO2, so the a/A criterion asks for about 20 mmHg at FiO2 0.35
+    (PAO2 ~200 at sea level) and about 40 mmHg at 0.80 (PAO2 ~530). The thresholds
+    20 mmHg and 0.08 are common practice, no source.
     """
 
     rule_id: str = "aa-rise"
@@ -145,11 +182,13 @@ class AaRiseRule:
     window: timedelta = timedelta(hours=12)
     fio2_tolerance: float = 0.05
     priority: Priority = Priority.MEDIUM
+    ratio_fall: float = 0.08
 
     def __post_init__(self) -> None:
         _check(self.rule_id, "rise", self.rise, 0.0, 500.0)
         _check_window(self.rule_id, "window", self.window)
         _check(self.rule_id, "fio2_tolerance", self.fio2_tolerance, 0.0, 0.79)
+        _check(self.rule_id, "ratio_fall", self.ratio_fall, 0.0, 1.0)
 
 
 @dataclass(frozen=True, slots=True)
@@ -197,6 +236,39 @@ class SfLowRule:
             )
 
 
+@dataclass(frozen=True, slots=True)
+class HypoxaemiaRule:
+    """Rule 7. An arterial gas with PaO2 below ``pao2`` (default 60 mmHg) or SaO2 below
+    ``sao2`` (default 90 %) when the FiO2 is unknown, so no P/F can be judged: low; below
+    ``pao2_medium`` (40 mmHg) or ``sao2_medium`` (75 %): medium. The flag says the FiO2
+    is unknown.
+
+    PaO2 < 60 mmHg (8 kPa) is the usual definition of hypoxaemic respiratory failure
+    (textbook, from memory); SaO2 90 % and 75 % are PaO2 60 and 40 on the standard
+    dissociation curve (Severinghaus, J Appl Physiol 1979;46:599-602, Eq. 1: 0.906 and
+    0.749; reference sheet section 7). Priorities follow what is certain: the patient
+    breathes at least room air, so the P/F is at most PaO2/0.21: at PaO2 60 at most 286
+    (mild band or worse, low), at 40 at most 190 (moderate or worse, medium).
+
+    With a known FiO2 the band rule judges the P/F instead and this rule never fires;
+    it still clears on any gas whose PaO2 is above ``pao2`` by the hysteresis and whose
+    SaO2 (if measured) is at least ``sao2``.
+    """
+
+    rule_id: str = "hypoxaemia"
+    enabled: bool = True
+    pao2: float = 60.0
+    pao2_medium: float = 40.0
+    sao2: float = 90.0
+    sao2_medium: float = 75.0
+
+    def __post_init__(self) -> None:
+        _check(self.rule_id, "pao2", self.pao2, 0.0, 200.0)
+        _check(self.rule_id, "pao2_medium", self.pao2_medium, 0.0, self.pao2)
+        _check(self.rule_id, "sao2", self.sao2, 0.0, 100.0)
+        _check(self.rule_id, "sao2_medium", self.sao2_medium, 0.0, self.sao2)
+
+
 RuleSpec = (
     OxygenationBandRule
     | PfFallRule
@@ -204,6 +276,7 @@ RuleSpec = (
     | AaRiseRule
     | OxygenEscalationRule
     | SfLowRule
+    | HypoxaemiaRule
 )
 
 
@@ -229,7 +302,7 @@ class RuleSet:
 
 
 def default_rules() -> RuleSet:
-    """The six built-in rules with their default thresholds (see each rule's source)."""
+    """The seven built-in rules with their default thresholds (see each rule's source)."""
     return RuleSet(
         rules=(
             OxygenationBandRule(),
@@ -238,6 +311,7 @@ def default_rules() -> RuleSet:
             AaRiseRule(),
             OxygenEscalationRule(),
             SfLowRule(),
+            HypoxaemiaRule(),
         )
     )
 
@@ -271,8 +345,10 @@ class RuleOutcome:
     """What one rule says about one derivation.
 
     ``numbers`` holds the key numbers with their times (ISO 8601 strings), ready for a
-    notification. ``reason`` says why the rule could not judge, when neither fired nor
-    cleared.
+    notification, and how the FiO2 was known (``fio2_basis``). ``reason`` says why the
+    rule could not judge, when neither fired nor cleared. ``uncertain``: the priority is
+    a floor held down because the FiO2 was not documented at or before the draw; such an
+    outcome may raise or worsen a flag but never lowers one.
     """
 
     rule_id: str
@@ -286,6 +362,7 @@ class RuleOutcome:
     preliminary: bool = False
     estimated: bool = False
     reason: str = ""
+    uncertain: bool = False
 
 
 # --- shared guards and trend helpers ----------------------------------------------------
@@ -300,10 +377,41 @@ def _is_preliminary(*ds: Derivation) -> bool:
     return any(d.preliminary or QualityFlag.PRELIMINARY_INPUTS in d.flags for d in ds)
 
 
-def _pf_for_band(d: Derivation) -> tuple[float | None, bool]:
-    if d.pf_ratio_adjusted is not None:
-        return d.pf_ratio_adjusted, True
-    return d.pf_ratio, False
+def _counted(d: Derivation) -> float | None:
+    found = counted_pf(d)
+    return None if found is None else found.value
+
+
+#: How each FiO2 source is said in a flag's short text.
+FIO2_BASIS: dict[FiO2Source, str] = {
+    FiO2Source.WITH_GAS: "measured with the gas",
+    FiO2Source.CHARTED: "charted",
+    FiO2Source.ROOM_AIR: "room air",
+    FiO2Source.DEVICE_ESTIMATE: "estimated from device and flow",
+    FiO2Source.CHARTED_AFTER: "charted after the draw",
+    FiO2Source.UNKNOWN: "unknown",
+}
+
+
+def _fio2_uncertain(d: Derivation) -> bool:
+    """The FiO2 was not documented at or before the draw: estimated or charted after."""
+    return bool(
+        d.flags & {QualityFlag.ESTIMATED_FIO2, QualityFlag.FIO2_CHARTED_AFTER_DRAW}
+    ) or d.fio2_source in (FiO2Source.DEVICE_ESTIMATE, FiO2Source.CHARTED_AFTER)
+
+
+def _fio2_numbers(d: Derivation) -> dict[str, object]:
+    """How the FiO2 behind an outcome was known, for the short text and the detail."""
+    numbers: dict[str, object] = {
+        "fio2": d.fio2,
+        "fio2_source": d.fio2_source.value,
+        "fio2_basis": FIO2_BASIS[d.fio2_source],
+    }
+    if d.fio2_set is not None and d.fio2_changed_at is not None:
+        numbers["fio2_set"] = d.fio2_set
+        numbers["fio2_set_at"] = _at(d.fio2_changed_at)
+        numbers["fio2_set_minutes"] = round((d.drawn_at - d.fio2_changed_at).total_seconds() / 60)
+    return numbers
 
 
 def _prior(
@@ -321,8 +429,9 @@ def _prior(
 def _fio2_points(points: Sequence[FiO2Point], d: Derivation) -> list[tuple[datetime, float]]:
     """FiO2-in-effect points up to the draw, with the derivation's own FiO2 at the draw."""
     known = [(p.at, p.fio2) for p in points if p.at <= d.drawn_at]
-    if d.fio2 is not None:
-        known.append((d.drawn_at, d.fio2))
+    in_effect = d.fio2_set if d.fio2_set is not None else d.fio2  # set, not reflected
+    if in_effect is not None:
+        known.append((d.drawn_at, in_effect))
     return sorted(known)
 
 
@@ -349,9 +458,11 @@ def _outcome(
     used: Sequence[Derivation] = (),
     reason: str = "",
     estimated: bool | None = None,
+    uncertain: bool = False,
 ) -> RuleOutcome:
     if estimated is None:
         estimated = d.estimated or QualityFlag.ESTIMATED_FROM_SPO2 in d.flags
+    numbers = {**_fio2_numbers(d), **(numbers or {})}
     return RuleOutcome(
         rule_id=rule.rule_id,
         patient_key=d.patient_key,
@@ -360,32 +471,63 @@ def _outcome(
         priority=priority if fired else None,
         cleared=cleared and not fired,
         label=label,
-        numbers=numbers or {},
+        numbers=numbers,
         preliminary=_is_preliminary(d, *used),
         estimated=estimated,
         reason=reason,
+        uncertain=uncertain and fired,
     )
 
 
-def _band(rule: OxygenationBandRule, d: Derivation, h: float) -> RuleOutcome:
-    pf, adjusted = _pf_for_band(d)
-    if pf is None:
-        return _outcome(rule, d, label="P/F", reason="no P/F for this sample")
+def _tier(rule: OxygenationBandRule, pf: float) -> tuple[float, Priority] | None:
     tiers = ((rule.high, Priority.HIGH), (rule.medium, Priority.MEDIUM), (rule.low, Priority.LOW))
-    hit = next(((t, p) for t, p in tiers if pf <= t), None)
-    numbers: dict[str, object] = {"pf": _r(pf), "pf_at": _at(d.drawn_at), "adjusted": adjusted}
-    if adjusted and d.pf_ratio is not None:
-        numbers["pf_measured"] = _r(d.pf_ratio)
+    return next(((t, p) for t, p in tiers if pf <= t), None)
+
+
+def _band(rule: OxygenationBandRule, d: Derivation, h: float) -> RuleOutcome:
+    counted = counted_pf(d)
+    if counted is None:
+        return _outcome(rule, d, label="P/F", reason="no P/F for this sample")
+    pf = counted.value
+    numbers: dict[str, object] = {
+        "pf": _r(pf), "pf_at": _at(d.drawn_at), "adjusted": counted.adjusted,
+    }
+    if counted.adjusted:
+        numbers["pf_measured"] = _r(counted.measured)
+    if counted.on_fio2_set is not None:
+        numbers["pf_on_fio2_set"] = _r(counted.on_fio2_set)
+    uncertain = _fio2_uncertain(d)
+    factor = pf / counted.measured if counted.measured else 1.0
+    hit = _tier(rule, pf)
     if hit is None:
         cleared = pf > rule.low * (1.0 + h)
+        if cleared and uncertain and d.pao2 is not None and d.fio2 is not None:
+            # Clear only if the P/F clears at the highest FiO2 the inputs allow.
+            top = 1.0 if d.fio2_source is FiO2Source.CHARTED_AFTER else min(
+                1.0, d.fio2 + ESTIMATE_UNCERTAINTY
+            )
+            worst = d.pao2 / top * factor
+            numbers["pf_at_highest_fio2"] = _r(worst)
+            cleared = worst > rule.low * (1.0 + h)
         return _outcome(rule, d, cleared=cleared, label=f"P/F > {rule.low:g}", numbers=numbers)
     threshold, priority = hit
     label = f"P/F <= {threshold:g}"
-    if d.berlin_band is not None and rule.berlin_thresholds:
+    if uncertain and d.pao2 is not None:
+        # What is certain: the patient breathes at least room air.
+        best = d.pao2 / physiology.ROOM_AIR_FIO2 * factor
+        certain = _tier(rule, best)
+        numbers["pf_at_room_air"] = _r(best)
+        held = min(priority, rule.uncertain_max, key=lambda p: p.rank)
+        priority = held if certain is None else max(held, certain[1], key=lambda p: p.rank)
+        numbers["priority_held"] = priority is not hit[1]
+    elif d.berlin_band is not None and rule.berlin_thresholds:
         # PEEP/CPAP >= 5 is known, so the Berlin words apply; the band follows our tier.
         label = f"Berlin {_BERLIN_WORD[priority]}"
     numbers["threshold"] = threshold
-    return _outcome(rule, d, fired=True, priority=priority, label=label, numbers=numbers)
+    return _outcome(
+        rule, d, fired=True, priority=priority, label=label, numbers=numbers,
+        uncertain=uncertain,
+    )
 
 
 def _pf_fall(rule: PfFallRule, d: Derivation, history: PatientHistory, h: float) -> RuleOutcome:
@@ -397,15 +539,18 @@ def _pf_fall(rule: PfFallRule, d: Derivation, history: PatientHistory, h: float)
         for g in _prior(history.derivations, d, rule.window)
         if trends.is_trendable(g) and g.pf_ratio is not None
     ]
-    found = trends.best_pf(prior, d.drawn_at, rule.window)
-    if d.pf_ratio is None or found is None:
+    found = trends.best_pf(prior, d.drawn_at, rule.window, value=_counted)
+    counted = counted_pf(d)
+    if counted is None or found is None:
         return _outcome(rule, d, label=label, reason="no P/F to compare with")
     if len(prior) + 1 < rule.min_gases:
         return _outcome(rule, d, label=label, reason=f"fewer than {rule.min_gases} gases")
     best_value, best = found
-    fall = (best_value - d.pf_ratio) / best_value
+    fall = (best_value - counted.value) / best_value
     numbers: dict[str, object] = {
-        "pf": _r(d.pf_ratio),
+        "pf": _r(counted.value),
+        "adjusted": counted.adjusted,
+        **({"pf_measured": _r(counted.measured)} if counted.adjusted else {}),
         "pf_at": _at(d.drawn_at),
         "best_pf": _r(best_value),
         "best_pf_at": _at(best.drawn_at),
@@ -421,7 +566,7 @@ def _pf_fall(rule: PfFallRule, d: Derivation, history: PatientHistory, h: float)
 
 def _aa_room_air(rule: AaRoomAirRule, d: Derivation, h: float) -> RuleOutcome:
     label = f"A-a > age-normal + {rule.margin:g} mmHg"
-    if d.fio2 is None or abs(d.fio2 - 0.21) > _ROOM_AIR_TOLERANCE:
+    if not physiology.is_room_air(d.fio2):
         return _outcome(rule, d, label=label, reason="not on room air")
     if d.aa_gradient is None or d.aa_gradient_expected is None:
         return _outcome(rule, d, label=label, reason="A-a or its age-expected normal unknown")
@@ -432,6 +577,9 @@ def _aa_room_air(rule: AaRoomAirRule, d: Derivation, h: float) -> RuleOutcome:
         "aa_excess": _r(excess),
         "aa_at": _at(d.drawn_at),
     }
+    if QualityFlag.PAEDIATRIC_AGE_NORMAL in d.flags and d.age_years is not None:
+        numbers["adult_formula_age"] = d.age_years
+        label += " (adult formula)"
     return _outcome(
         rule, d, fired=excess > rule.margin, cleared=excess < rule.margin * (1.0 - h),
         priority=rule.priority, label=label, numbers=numbers,
@@ -439,7 +587,7 @@ def _aa_room_air(rule: AaRoomAirRule, d: Derivation, h: float) -> RuleOutcome:
 
 
 def _aa_rise(rule: AaRiseRule, d: Derivation, history: PatientHistory, h: float) -> RuleOutcome:
-    label = f"A-a rise >= {rule.rise:g} mmHg"
+    label = f"A-a rise >= {rule.rise:g} mmHg and a/A fall >= {rule.ratio_fall:g}"
     found = trends.aa_change_vs_previous(
         d, _prior(history.derivations, d, rule.window), rule.window, rule.fio2_tolerance
     )
@@ -449,18 +597,26 @@ def _aa_rise(rule: AaRiseRule, d: Derivation, history: PatientHistory, h: float)
             reason="no previous trendable gas with an A-a at a comparable FiO2",
         )
     rise, previous = found
+    ratio, previous_ratio = d.arterial_alveolar_ratio, previous.arterial_alveolar_ratio
+    if ratio is None or previous_ratio is None:
+        return _outcome(rule, d, label=label, reason="a/A ratio unknown", used=(previous,))
+    fall = previous_ratio - ratio
     numbers: dict[str, object] = {
         "aa_gradient": _r(d.aa_gradient or 0.0),
         "aa_at": _at(d.drawn_at),
         "previous_aa": _r(previous.aa_gradient or 0.0),
         "previous_aa_at": _at(previous.drawn_at),
         "aa_rise": _r(rise),
-        "fio2": d.fio2,
+        "aa_ratio": round(ratio, 3),
+        "previous_aa_ratio": round(previous_ratio, 3),
+        "aa_ratio_fall": round(fall, 3),
         "previous_fio2": previous.fio2,
     }
+    fired = rise >= rule.rise and fall >= rule.ratio_fall - 1e-12
+    cleared = rise < rule.rise * (1.0 - h) or fall < rule.ratio_fall * (1.0 - h)
     return _outcome(
-        rule, d, fired=rise >= rule.rise, cleared=rise < rule.rise * (1.0 - h),
-        priority=rule.priority, label=label, numbers=numbers, used=(previous,),
+        rule, d, fired=fired, cleared=cleared, priority=rule.priority, label=label,
+        numbers=numbers, used=(previous,),
     )
 
 
@@ -523,6 +679,32 @@ def _sf_low(rule: SfLowRule, d: Derivation, history: PatientHistory, h: float) -
     )
 
 
+def _hypoxaemia(rule: HypoxaemiaRule, d: Derivation, h: float) -> RuleOutcome:
+    label = f"PaO2 < {rule.pao2:g} mmHg with FiO2 unknown"
+    pao2, sao2 = d.pao2, d.sao2
+    if pao2 is None:
+        return _outcome(rule, d, label=label, reason="no PaO2")
+    numbers: dict[str, object] = {"pao2": _r(pao2), "pao2_at": _at(d.drawn_at)}
+    if sao2 is not None:
+        numbers["sao2"] = _r(sao2)
+    low = pao2 < rule.pao2 or (sao2 is not None and sao2 < rule.sao2)
+    cleared = pao2 > rule.pao2 * (1.0 + h) and (sao2 is None or sao2 >= rule.sao2)
+    if d.fio2 is not None:
+        return _outcome(
+            rule, d, label=label, cleared=cleared, numbers=numbers,
+            reason="" if cleared else "FiO2 known: the oxygenation band judges the P/F",
+        )
+    if not low:
+        return _outcome(rule, d, label=label, cleared=cleared, numbers=numbers)
+    medium = pao2 < rule.pao2_medium or (sao2 is not None and sao2 < rule.sao2_medium)
+    if sao2 is not None and sao2 < rule.sao2 and pao2 >= rule.pao2:
+        label = f"SaO2 < {rule.sao2:g} % with FiO2 unknown"
+    return _outcome(
+        rule, d, fired=True, priority=Priority.MEDIUM if medium else Priority.LOW,
+        label=label, numbers=numbers,
+    )
+
+
 # --- the entry point --------------------------------------------------------------------
 
 
@@ -548,6 +730,8 @@ def _judge(rule: RuleSpec, d: Derivation, history: PatientHistory, h: float) -> 
             return _o2_escalation(rule, d, history, h)
         case SfLowRule():
             return _sf_low(rule, d, history, h)
+        case HypoxaemiaRule():
+            return _hypoxaemia(rule, d, h)
 
 
 def _unjudgeable(d: Derivation) -> str:
@@ -561,8 +745,9 @@ def _unjudgeable(d: Derivation) -> str:
 def evaluate(
     rules: RuleSet, derivation: Derivation, history: PatientHistory, now: datetime
 ) -> list[RuleOutcome]:
-    """Run every enabled rule that applies to ``derivation`` (gas rules to arterial
-    gases, the S/F rule to derivations estimated from SpO2, the oxygen rule to both).
+    """Run every enabled rule that applies to ``derivation`` (gas rules, the hypoxaemia
+    rule among them, to arterial gases, the S/F rule to derivations estimated from SpO2,
+    the oxygen rule to both).
 
     ``now`` (timezone-aware) bounds the history: entries recorded as drawn after it are
     not looked at. On an unreliable or non-arterial derivation every applicable rule

@@ -4,7 +4,8 @@ Pure: the series and ``now`` are arguments; nothing here reads a clock or a stor
 Functions that compare numbers across samples use only *trendable* derivations:
 arterial, reliable (no PAO2_ABOVE_ALVEOLAR or NOT_ARTERIAL), not estimated from SpO2,
 and not on a FiO2 estimated from device and flow (reference sheet section 8: such a
-FiO2 scatters by +/-0.04-0.15, enough to fake a trend). Samples drawn after ``now``
+FiO2 scatters by +/-0.04-0.15, enough to fake a trend) or charted only after the draw
+(it may describe a change made after the sample). Samples drawn after ``now``
 are ignored, so a replay sees only what had happened.
 
 Slopes are Theil-Sen estimates (the median of all pairwise slopes; Theil 1950, Sen
@@ -13,7 +14,7 @@ least-squares line.
 """
 
 import math
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from datetime import datetime, timedelta
 from statistics import median
 
@@ -36,12 +37,14 @@ _HOUR_SECONDS = 3600.0
 
 
 def is_trendable(d: Derivation) -> bool:
-    """Arterial, reliable, not estimated and not on an estimated FiO2."""
+    """Arterial, reliable, not estimated and on a FiO2 documented at or before the draw
+    (not estimated from device and flow, not charted after the draw)."""
     return (
         d.specimen is Specimen.ARTERIAL
         and not d.unreliable
         and not d.estimated
         and QualityFlag.ESTIMATED_FIO2 not in d.flags
+        and QualityFlag.FIO2_CHARTED_AFTER_DRAW not in d.flags
     )
 
 
@@ -54,15 +57,19 @@ def _in_window(
 
 
 def best_pf(
-    derivations: Iterable[Derivation], now: datetime, window: timedelta = timedelta(hours=24)
+    derivations: Iterable[Derivation],
+    now: datetime,
+    window: timedelta = timedelta(hours=24),
+    *,
+    value: Callable[[Derivation], float | None] | None = None,
 ) -> tuple[float, Derivation] | None:
     """The highest P/F (mmHg) among trendable samples drawn in [now - window, now], with
-    its derivation (the latest one on a tie); None if there is none."""
-    with_pf = [
-        (d.pf_ratio, d.drawn_at, d.sample_id, d)
-        for d in _in_window(derivations, now, window)
-        if d.pf_ratio is not None
-    ]
+    its derivation (the latest one on a tie); None if there is none. ``value`` picks
+    which P/F of a derivation counts (default ``pf_ratio``; the rules pass
+    ``derive.counted_pf``)."""
+    pick = value or (lambda d: d.pf_ratio)
+    rows = [(pick(d), d) for d in _in_window(derivations, now, window)]
+    with_pf = [(pf, d.drawn_at, d.sample_id, d) for pf, d in rows if pf is not None]
     if not with_pf:
         return None
     pf, _, _, best = max(with_pf, key=lambda row: row[:3])

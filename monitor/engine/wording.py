@@ -16,7 +16,15 @@ from collections.abc import Mapping
 from datetime import UTC, datetime, tzinfo
 
 from monitor.engine.errors import InvalidInput
-from monitor.engine.model import ADVISORY, Alert, Derivation, Location, Notification
+from monitor.engine.model import (
+    ADVISORY,
+    Alert,
+    Derivation,
+    FiO2Source,
+    Location,
+    Notification,
+    QualityFlag,
+)
 from monitor.engine.rules import RuleOutcome
 
 #: A CDS Hooks card summary must be under 140 characters.
@@ -26,6 +34,7 @@ SUMMARY_MAX = 140
 EVENT_WORDS: dict[str, str] = {
     "raised": "New flag",
     "worsened": "Flag now worse",
+    "lowered": "Flag priority lowered",
     "escalated": "Still not acknowledged",
     "resolved": "Condition cleared",
     "retracted": "Flag withdrawn, its data was withdrawn",
@@ -74,27 +83,60 @@ def _num(value: object, digits: int = 0) -> str:
     return f"{value:.{digits}f}"
 
 
+def _fio2_phrase(n: Mapping[str, object], *, with_pf: bool = False) -> str:
+    """How the FiO2 behind a flag was known, e.g. "FiO2 0.28 estimated from device and
+    flow" or "FiO2 0.40 charted, 0.80 set 5 min before the draw (P/F 88 on it)"."""
+    basis = n.get("fio2_basis")
+    if not isinstance(basis, str):
+        return ""
+    if basis == "unknown" or n.get("fio2") is None:
+        return "FiO2 unknown"
+    text = "room air" if basis == "room air" else f"FiO2 {_num(n.get('fio2'), 2)} {basis}"
+    if "fio2_set" in n:
+        text += (
+            f", {_num(n['fio2_set'], 2)} set {_num(n.get('fio2_set_minutes'))} min before "
+            "the draw"
+        )
+        if with_pf and "pf_on_fio2_set" in n:
+            text += f" (P/F {_num(n['pf_on_fio2_set'])} on it)"
+    return text
+
+
+def _pf_text(n: Mapping[str, object]) -> str:
+    text = f"P/F {_num(n['pf'])} mmHg"
+    if n.get("adjusted"):
+        text += f" adjusted for altitude (measured {_num(n.get('pf_measured'))})"
+    return text
+
+
 def what_changed(numbers: Mapping[str, object], now: datetime, tz: tzinfo = UTC) -> str:
     """One line saying what changed, from a rule's key numbers, e.g.
-    "P/F 182, was 290 at 06:10, -37 %"."""
+    "P/F 182 mmHg, was 290 at 06:10 (best of the window), -37 %"."""
     n = numbers
     if "best_pf" in n:
         return (
-            f"P/F {_num(n['pf'])}, was {_num(n['best_pf'])} at "
+            f"{_pf_text(n)}, was {_num(n['best_pf'])} at "
             f"{_when(n.get('best_pf_at'), now, tz)} (best of the window), "
             f"{_num(n.get('change_percent'))} %"
         )
     if "aa_rise" in n:
         return (
             f"A–a gradient {_num(n['aa_gradient'])} mmHg, was {_num(n['previous_aa'])} at "
-            f"{_when(n.get('previous_aa_at'), now, tz)}, +{_num(n['aa_rise'])} mmHg "
+            f"{_when(n.get('previous_aa_at'), now, tz)}, +{_num(n['aa_rise'])} mmHg; "
+            f"a/A {_num(n.get('aa_ratio'), 2)}, was {_num(n.get('previous_aa_ratio'), 2)} "
             f"(FiO2 {_num(n.get('fio2'), 2)}, then {_num(n.get('previous_fio2'), 2)})"
         )
     if "aa_excess" in n:
-        return (
+        text = (
             f"A–a gradient {_num(n['aa_gradient'])} mmHg on room air, age-expected up to "
             f"{_num(n['aa_expected'])}, {_num(n['aa_excess'])} mmHg above"
         )
+        if "adult_formula_age" in n:
+            text += (
+                f" (the age-expected value is an adult formula; the patient is "
+                f"{_num(n['adult_formula_age'])} years old)"
+            )
+        return text
     if "fio2_rise" in n:
         return (
             f"FiO2 {_num(n['fio2'], 2)} at {_when(n.get('fio2_at'), now, tz)}, was "
@@ -107,36 +149,72 @@ def what_changed(numbers: Mapping[str, object], now: datetime, tz: tzinfo = UTC)
             at = _when(n.get("earlier_sf_at"), now, tz)
             text += f", also {_num(n['earlier_sf'])} at {at}"
         return text
+    if "pao2" in n and "pf" not in n:
+        text = f"PaO2 {_num(n['pao2'])} mmHg at {_when(n.get('pao2_at'), now, tz)}"
+        if "sao2" in n:
+            text += f", SaO2 {_num(n['sao2'])} %"
+        return text + ", FiO2 unknown, so no P/F"
     if "pf" in n:
-        text = f"P/F {_num(n['pf'])} at {_when(n.get('pf_at'), now, tz)}"
-        if n.get("adjusted"):
-            text += f" (adjusted to sea level; measured {_num(n.get('pf_measured'))})"
-        return text
+        text = f"{_pf_text(n)} at {_when(n.get('pf_at'), now, tz)}"
+        fio2 = _fio2_phrase(n, with_pf=True)
+        return f"{text}, {fio2}" if fio2 else text
     return "no numbers recorded"
 
 
+def _key_text(n: Mapping[str, object]) -> str:
+    """What fired, with its unit and, for trends, the value before."""
+    if "best_pf" in n:
+        change = n.get("change_percent")
+        shown = f"{change:+.0f}" if isinstance(change, int | float) else "?"
+        return f"{_pf_text(n)}, was {_num(n['best_pf'])} ({shown} %)"
+    if "aa_rise" in n:
+        return (
+            f"A–a {_num(n['aa_gradient'])} mmHg, was {_num(n['previous_aa'])} "
+            f"(+{_num(n['aa_rise'])}); a/A {_num(n.get('aa_ratio'), 2)}, was "
+            f"{_num(n.get('previous_aa_ratio'), 2)}"
+        )
+    if "aa_excess" in n:
+        return (
+            f"A–a {_num(n['aa_gradient'])} mmHg, age-normal up to {_num(n['aa_expected'])} "
+            f"(+{_num(n['aa_excess'])})"
+        )
+    if "fio2_rise" in n:
+        return (
+            f"FiO2 {_num(n['fio2'], 2)}, was {_num(n['fio2_lowest'], 2)} "
+            f"(+{_num(n['fio2_rise'], 2)})"
+        )
+    if "sf" in n:
+        text = f"S/F {_num(n['sf'])}"
+        return text + (f", earlier {_num(n['earlier_sf'])}" if "earlier_sf" in n else "")
+    if "pao2" in n and "pf" not in n:
+        text = f"PaO2 {_num(n['pao2'])} mmHg"
+        return text + (f", SaO2 {_num(n['sao2'])} %" if "sao2" in n else "")
+    if "pf" in n:
+        return _pf_text(n)
+    return ""
+
+
 def outcome_summary(outcome: RuleOutcome) -> str:
-    """The short line a flag carries (``Alert.summary``): the rule's label and its key
-    number, with "estimated" or "preliminary" where that applies."""
+    """The short line a flag carries (``Alert.summary``, shown on the board, in every
+    channel and the API): the rule's label, what fired with its unit (before and after
+    for trends), whether P/F was adjusted for altitude, how the FiO2 was known
+    (measured, charted, estimated, charted after the draw, changed just before the draw,
+    unknown), and "estimated"/"preliminary" where that applies."""
     n = outcome.numbers
-    key = next(
-        (
-            f"{name} {_num(n[k], digits)}"
-            for k, name, digits in (
-                ("change_percent", "change %", 0),
-                ("aa_rise", "A–a rise", 0),
-                ("aa_excess", "A–a excess", 0),
-                ("fio2_rise", "FiO2 rise", 2),
-                ("sf", "S/F", 0),
-                ("pf", "P/F", 0),
-            )
-            if k in n
-        ),
-        "",
-    )
+    key = _key_text(n)
+    parts = [f"{outcome.label}: {key}" if key else outcome.label]
+    if "fio2_rise" not in n:
+        fio2 = _fio2_phrase(n, with_pf="pf" in n and "best_pf" not in n)
+    else:
+        basis = n.get("fio2_basis")
+        fio2 = f"FiO2 {basis}" if basis not in (None, "unknown") else ""
+    if fio2:
+        parts.append(fio2)
+    if n.get("priority_held"):
+        parts.append("priority held: FiO2 not documented at the draw")
     flags = (("estimated", outcome.estimated), ("preliminary", outcome.preliminary))
     marks = [m for m, on in flags if on]
-    text = f"{outcome.label}: {key}" if key else outcome.label
+    text = "; ".join(parts)
     return f"{text} ({', '.join(marks)})" if marks else text
 
 
@@ -162,6 +240,49 @@ def inputs_text(derivation: Derivation, now: datetime, tz: tzinfo = UTC) -> list
         lines.append(f"barometric pressure {_num(derivation.barometric_pressure, 1)} mmHg{tail}")
     if derivation.peep is not None:
         lines.append(f"PEEP {_num(derivation.peep)} cmH2O")
+    return lines
+
+
+def _certainty_lines(
+    alert: Alert,
+    derivation: Derivation | None,
+    numbers: Mapping[str, object],
+    now: datetime,
+    tz: tzinfo,
+) -> list[str]:
+    """What the numbers are less sure of: preliminary results, SpO2 in place of a gas, a
+    FiO2 estimated, charted after the draw, changed just before it, or unknown."""
+    lines = []
+    if alert.preliminary:
+        lines.append("Based on preliminary results, which may still change.")
+    from_spo2 = derivation.estimated if derivation is not None else "sf" in numbers
+    if alert.estimated and from_spo2:
+        lines.append("Estimated from pulse oximetry (SpO2), not from an arterial gas.")
+    source = numbers.get("fio2_source")
+    flags = derivation.flags if derivation is not None else frozenset()
+    if source == FiO2Source.DEVICE_ESTIMATE.value or QualityFlag.ESTIMATED_FIO2 in flags:
+        lines.append(
+            "The FiO2 was estimated from the oxygen device and flow (a rule of thumb, "
+            "uncertain by 0.1 or more), not measured."
+        )
+    if source == FiO2Source.CHARTED_AFTER.value:
+        lines.append("The FiO2 was charted only after the draw; it may describe a later change.")
+    if "fio2_set" in numbers:
+        lines.append(
+            f"The FiO2 was changed to {_num(numbers['fio2_set'], 2)} at "
+            f"{_when(numbers.get('fio2_set_at'), now, tz)}, "
+            f"{_num(numbers.get('fio2_set_minutes'))} min before the draw: the numbers use "
+            f"{_num(numbers.get('fio2'), 2)}, the FiO2 the blood reflects (it takes about "
+            "15 min to settle)."
+        )
+    if source == FiO2Source.UNKNOWN.value:
+        lines.append("No FiO2 was documented for this sample, so no P/F could be judged.")
+    if numbers.get("priority_held"):
+        lines.append(
+            f"Priority held at {alert.priority.value}: with the FiO2 not documented at the "
+            f"draw, only that much is certain (on room air the P/F would be "
+            f"{_num(numbers.get('pf_at_room_air'))})."
+        )
     return lines
 
 
@@ -196,7 +317,8 @@ def notification_for(
     opening = EVENT_WORDS[event]
     if event == "acknowledged" and alert.acknowledged_by:
         opening += f" by {alert.acknowledged_by}"
-    summary = f"{alert.priority.value.upper()} {opening}: {alert.summary} ({display_key}, {where})"
+    # Patient and place first, so a long short text never pushes them out of the card.
+    summary = f"{alert.priority.value.upper()} {opening} ({display_key}, {where}): {alert.summary}"
     if len(summary) > SUMMARY_MAX:
         summary = summary[: SUMMARY_MAX - 1] + "…"
     lines = [
@@ -207,10 +329,7 @@ def notification_for(
         lines.append("Inputs: " + "; ".join(inputs_text(derivation, now, tz)) + ".")
         flags = sorted(f.value for f in derivation.flags)
         lines.append("Data quality: " + ("; ".join(flags) if flags else "no warnings") + ".")
-    if alert.preliminary:
-        lines.append("Based on preliminary results, which may still change.")
-    if alert.estimated:
-        lines.append("Estimated from pulse oximetry (SpO2), not from an arterial gas.")
+    lines.extend(_certainty_lines(alert, derivation, numbers, now, tz))
     lines.append(ADVISORY)
     return Notification(
         idempotency_key=idempotency_key(alert, event),

@@ -56,12 +56,8 @@ def test_alveolar_po2_matches_reference_table(
 def test_alveolar_po2_more_reference_cases(
     fio2: float, paco2: float, rq: float, simplified: float, full: float
 ) -> None:
-    # Sheet s.1 "More cases"; FiO2 0.2093 is below our 0.21 guard, so that case goes
-    # through the formula with the guard's own minimum excluded.
-    if fio2 < 0.21:
-        with pytest.raises(InvalidInput, match="fio2"):
-            phys.alveolar_po2(fio2, paco2, 760, 47, rq)
-        return
+    # Sheet s.1 "More cases", including room air written as FiO2 0.2093 (accepted since
+    # the guard's floor is 0.209, dry air's 20.95 % O2 rounded down; issue 12 point 9).
     assert phys.alveolar_po2(fio2, paco2, 760, 47, rq, "simplified") == pytest.approx(
         simplified, abs=0.005
     )
@@ -369,3 +365,57 @@ def test_estimate_refuses_flows_outside_the_table_and_set_fio2_devices() -> None
         phys.estimated_fio2("simple_mask", 3)  # "do not use below 5 L/min" (sheet s.8)
     with pytest.raises(InvalidInput, match="set FiO2"):
         phys.estimated_fio2("invasive_ventilation", 10)
+
+
+# --- issue 12, point 9: room air written as 20.9 % ---------------------------------------
+
+
+@pytest.mark.parametrize(("fio2", "accepted"), [(0.209, True), (0.2093, True), (0.2089, False)])
+def test_fio2_floor_is_20_9_percent(fio2: float, accepted: bool) -> None:
+    # Dry air is 20.95 % O2 by volume (US Standard Atmosphere 1976, from memory); 20.9 %
+    # is its usual rounding, and the sheet's own check case uses 0.2093 (s.1).
+    if accepted:
+        assert phys.pf_ratio(90, fio2) == pytest.approx(90 / fio2)
+        assert phys.is_room_air(fio2)
+    else:
+        with pytest.raises(InvalidInput, match=r"fio2 must be a fraction in \[0.209, 1.0\]"):
+            phys.pf_ratio(90, fio2)
+
+
+@pytest.mark.parametrize(("fio2", "room_air"), [(0.21, True), (0.215, True), (0.216, False),
+                                                (0.24, False)])
+def test_room_air_is_one_test_with_a_tolerance(fio2: float, room_air: bool) -> None:
+    # Feeds round 21 % differently; 0.005 is common practice, no source.
+    assert phys.is_room_air(fio2) is room_air
+
+
+# --- issue 12, point 5: which P/F counts --------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("pb", "adjusted"),
+    [(760.0, False), (716.02, False), (674.13, False), (674.0, False), (673.9, True),
+     (626.51, True)],
+)
+def test_pf_is_adjusted_only_above_1000_m(pb: float, adjusted: bool) -> None:
+    # Berlin footnote "if altitude is higher than 1000 m" (JAMA 2012, sheet s.5); the ISA
+    # pressure at 1000 m is 674.13 mmHg and at 500 m 716.02 (sheet s.3, fluids/ambiance).
+    value, was_adjusted = phys.pf_for_bands(150.0, pb)
+    assert was_adjusted is adjusted
+    assert value == pytest.approx(150.0 * 760.0 / pb if adjusted else 150.0)
+
+
+def test_at_600_m_a_pf_of_190_is_moderate_not_mild() -> None:
+    # Issue 12 point 5: 600 m is below Berlin's 1000 m, so P/F 190 stays moderate
+    # (100 < P/F <= 200, JAMA 2012). ISA at 600 m from the sheet's formula (s.3).
+    pb = phys.barometric_pressure_at_elevation(600.0)
+    assert pb > 674.13
+    assert phys.berlin_band(190.0, 8.0, pb) is phys.BerlinBand.MODERATE
+    # above 1000 m the adjusted ratio decides: 190 x 760/626.51 = 230.5, mild
+    assert phys.berlin_band(190.0, 8.0, 626.51) is phys.BerlinBand.MILD
+
+
+@pytest.mark.parametrize("peep", [-0.1, -5.0, 40.1])
+def test_berlin_band_refuses_an_impossible_peep(peep: float) -> None:
+    with pytest.raises(InvalidInput, match="peep"):
+        phys.berlin_band(150.0, peep)

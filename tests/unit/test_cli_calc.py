@@ -108,8 +108,18 @@ def test_table_output_shows_formulas_and_the_caution() -> None:
     ("args", "option", "problem"),
     [
         (["--pao2", "abc"], "--pao2", "not a number"),
-        (["--pao2", "85", "--paco2", "40", "--fio2", "1.4"], "--fio2", "neither a fraction"),
-        (["--pao2", "85", "--paco2", "40", "--fio2", "0.1"], "--fio2", "[0.21, 1.0]"),
+        (["--pao2", "85", "--paco2", "40", "--fio2", "1.4"], "--fio2", "not 1.4"),
+        (["--pao2", "85", "--paco2", "40", "--fio2", "0.1"], "--fio2", "[0.209, 1.0]"),
+        (["--pao2", "85", "--paco2", "40", "--fio2", "0.2089"], "--fio2", "not 0.2089"),
+        # issue 12 point 9: the value as typed, never the converted "1.5"
+        (["--pao2", "85", "--paco2", "40", "--fio2", "150"], "--fio2", "not 150.0"),
+        (["--pao2", "85", "--paco2", "40", "--fio2", "0.3", "--peep", "-1"], "--peep",
+         "[0, 40] cmH2O"),
+        # PaCO2 140 on room air leaves no alveolar O2 (sheet s.1 formula: 149.7 - 167.6)
+        (["--pao2", "40", "--paco2", "140", "--fio2", "0.21"], "--paco2", "not 140.0"),
+        # ISA at 9000 m is 231 mmHg, below the 250 mmHg guard (sheet s.3 formula)
+        (["--pao2", "85", "--paco2", "40", "--fio2", "0.3", "--elevation-m", "9000"],
+         "--elevation-m", "not 9000.0"),
         (["--pao2", "85", "--paco2", "720", "--fio2", "0.3"], "--paco2", "below PB - PH2O"),
         (["--pao2", "85", "--paco2", "40", "--fio2", "0.3", "--temp-c", "50"], "--temp-c", "[25, 45]"),
         (["--pao2", "85", "--paco2", "40", "--fio2", "0.3", "--elevation-m", "20000"],
@@ -126,3 +136,54 @@ def test_bad_input_gets_one_line_naming_the_option_and_exit_2(
     lines = done.stderr.strip().splitlines()
     assert len(lines) == 1, done.stderr
     assert option in lines[0] and problem in lines[0]
+
+
+def test_messages_blame_the_option_typed_not_a_computed_value() -> None:
+    # Issue 12 point 9: no computed alveolar value shown as the user's --paco2, and a
+    # too-high elevation is not blamed on --pb.
+    paco2 = gasgap("calc", "--pao2", "40", "--paco2", "140", "--fio2", "0.21").stderr
+    assert "leaves no alveolar oxygen" in paco2 and "not -17.9" not in paco2
+    elevation = gasgap("calc", "--pao2", "85", "--paco2", "40", "--fio2", "0.3",
+                       "--elevation-m", "9000").stderr
+    assert "--pb" not in elevation and "231 mmHg" in elevation
+    assert "not 1.5" not in gasgap("calc", "--pao2", "85", "--fio2", "150").stderr
+
+
+@pytest.mark.parametrize("fio2", ["0.209", "20.9"])
+def test_room_air_written_as_20_9_percent_is_accepted(fio2: str) -> None:
+    # 20.9 % is dry air's 20.95 % O2 rounded (from memory); sheet s.1 uses 0.2093.
+    out = calc_json("--pao2", "85", "--paco2", "40", "--fio2", fio2, "--age", "40")
+    assert out["pf_ratio"] == pytest.approx(85 / 0.209)
+    assert out["aa_gradient_expected"] == pytest.approx(12.5)  # (40 + 10)/4, StatPearls
+
+
+@pytest.mark.parametrize(("pao2", "paco2", "warned"), [
+    ("12", "5.3", {"PaO2", "PaCO2"}),  # a normal gas in kPa, typed as mmHg
+    ("19.9", "40", {"PaO2"}),
+    ("20", "10", set()),                # the limits themselves: common practice, no source
+    ("85", "40", set()),
+])
+def test_kpa_typed_as_mmhg_gets_a_plausibility_warning(pao2: str, paco2: str,
+                                                        warned: set[str]) -> None:
+    flags = calc_json("--pao2", pao2, "--paco2", paco2, "--fio2", "0.21")["flags"]
+    hits = {name for name in ("PaO2", "PaCO2")
+            for f in flags if f.startswith(f"{name} ") and "kPa" in f}  # type: ignore[union-attr]
+    assert hits == warned
+
+
+def test_a_child_gets_a_note_that_the_age_normal_is_an_adult_formula() -> None:
+    out = calc_json("--pao2", "90", "--paco2", "40", "--fio2", "0.21", "--age", "5")
+    assert out["aa_gradient_expected"] == pytest.approx(3.75)  # (5 + 10)/4, StatPearls
+    assert any("adult formula" in f for f in out["flags"])  # type: ignore[union-attr]
+    adult = calc_json("--pao2", "90", "--paco2", "40", "--fio2", "0.21", "--age", "18")
+    assert not any("adult formula" in f for f in adult["flags"])  # type: ignore[union-attr]
+
+
+@pytest.mark.parametrize(("elevation", "adjusted"), [("600", False), ("1000", False),
+                                                     ("1600", True)])
+def test_calc_adjusts_pf_as_the_service_does(elevation: str, adjusted: bool) -> None:
+    # Issue 12 point 5: Berlin adjusts above 1000 m (ISA 674.13 mmHg at 1000 m, sheet s.3).
+    out = calc_json("--pao2", "95", "--paco2", "40", "--fio2", "0.5", "--peep", "8",
+                    "--elevation-m", elevation)
+    assert (out["pf_ratio_altitude_adjusted"] is not None) is adjusted
+    assert out["berlin_band"] == ("mild" if adjusted else "moderate")  # 190 -> 230.5 at 1600

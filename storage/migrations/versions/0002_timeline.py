@@ -1,6 +1,6 @@
 """Patient timelines: when each reading became known, a revision per patient (so a
-cached timeline knows when another process changed it), historical flags and the time
-a flag could first be seen.
+cached timeline knows when another process changed it), historical flags, the time
+a flag could first be seen, and the draw time of the sample that resolved it.
 
 Revision ID: 0002_timeline
 Revises: 0001
@@ -39,10 +39,12 @@ def upgrade() -> None:
             sa.Column("historical", sa.Boolean(), nullable=False, server_default=sa.false())
         )
         batch.add_column(sa.Column("seen_at", TIME, nullable=True))
+        batch.add_column(sa.Column("resolved_drawn_at", TIME, nullable=True))
 
 
 def downgrade() -> None:
     with op.batch_alter_table("alerts") as batch:
+        batch.drop_column("resolved_drawn_at")
         batch.drop_column("seen_at")
         batch.drop_column("historical")
     with op.batch_alter_table("patients") as batch:

@@ -3,7 +3,9 @@ for any sequence of outcomes, acknowledgements, escalations and retractions.
 
 The lifecycle (one open flag per patient and rule; raised -> acknowledged -> resolved;
 escalated; retracted; 60 min cooldown; 30 min escalation) is the issue's design:
-common practice, no source.
+common practice, no source. Issue 12 adds: a cooldown never holds back a worse result
+and runs on the clinical clock (draw to draw); a better priority is recorded as
+"lowered" and shown, not sent; the resolved flag quotes the clearing value.
 """
 
 from datetime import UTC, datetime, timedelta
@@ -47,14 +49,17 @@ T = Trigger
 LEGAL: dict[tuple[AlertState | None, Trigger], AlertState] = {
     (None, T.RAISED): S.RAISED,
     (S.RAISED, T.WORSENED): S.RAISED,
+    (S.RAISED, T.LOWERED): S.RAISED,
     (S.RAISED, T.ACKNOWLEDGED): S.ACKNOWLEDGED,
     (S.RAISED, T.ESCALATED): S.ESCALATED,
     (S.RAISED, T.RESOLVED): S.RESOLVED,
     (S.RAISED, T.RETRACTED): S.RETRACTED,
     (S.ACKNOWLEDGED, T.WORSENED): S.RAISED,
+    (S.ACKNOWLEDGED, T.LOWERED): S.ACKNOWLEDGED,
     (S.ACKNOWLEDGED, T.RESOLVED): S.RESOLVED,
     (S.ACKNOWLEDGED, T.RETRACTED): S.RETRACTED,
     (S.ESCALATED, T.WORSENED): S.ESCALATED,
+    (S.ESCALATED, T.LOWERED): S.ESCALATED,
     (S.ESCALATED, T.ACKNOWLEDGED): S.ACKNOWLEDGED,
     (S.ESCALATED, T.RESOLVED): S.RESOLVED,
     (S.ESCALATED, T.RETRACTED): S.RETRACTED,
@@ -90,6 +95,8 @@ def outcome(
     priority: Priority | None = None,
     cleared: bool = False,
     preliminary: bool = False,
+    pf: float = 182.0,
+    uncertain: bool = False,
 ) -> RuleOutcome:
     return RuleOutcome(
         rule_id=RULE,
@@ -98,9 +105,10 @@ def outcome(
         fired=priority is not None,
         priority=priority,
         cleared=cleared,
-        label="P/F <= 200",
-        numbers={"pf": 182.0},
+        label="P/F > 300" if cleared else "P/F <= 200",
+        numbers={"pf": pf},
         preliminary=preliminary,
+        uncertain=uncertain,
     )
 
 
@@ -152,12 +160,52 @@ def test_a_worse_priority_updates_and_notifies():
     assert decision.notify == ["worsened"]
 
 
-@pytest.mark.parametrize("priority", [Priority.MEDIUM, Priority.LOW])
-def test_the_same_or_a_better_priority_changes_nothing(priority):
+def test_the_same_priority_changes_nothing():
     alert = raised(Priority.MEDIUM)
-    decision = apply_outcome(alert, None, outcome("s2", priority=priority), derivation("s2"),
-                             T0 + timedelta(hours=1), SETTINGS)
+    decision = apply_outcome(alert, None, outcome("s2", priority=Priority.MEDIUM),
+                             derivation("s2"), T0 + timedelta(hours=1), SETTINGS)
     assert decision.alert is None and decision.events == [] and decision.notify == []
+
+
+def test_a_better_priority_lowers_the_flag_with_an_event_and_no_message():
+    # Issue 12 point 7: P/F 90 (high) then 240 (low): the open flag shows the present.
+    alert = raised(Priority.HIGH)
+    later = T0 + timedelta(hours=6)
+    decision = apply_outcome(alert, None, outcome("s2", priority=Priority.LOW, pf=240.0),
+                             derivation("s2"), later, SETTINGS)
+    assert decision.alert is not None
+    assert decision.alert.priority is Priority.LOW and decision.alert.state is S.RAISED
+    assert decision.alert.sample_id == "s2" and "P/F 240" in decision.alert.summary
+    assert decision.alert.alert_id == alert.alert_id
+    [event] = decision.events
+    assert (event.event, event.priority, event.note) == ("lowered", Priority.LOW,
+                                                          "priority high -> low")
+    assert decision.notify == []
+
+
+def test_lowering_keeps_an_acknowledgement():
+    acked = acknowledge(raised(Priority.HIGH), "charge.nurse", T0 + timedelta(minutes=5)).alert
+    assert acked is not None
+    decision = apply_outcome(acked, None, outcome("s2", priority=Priority.MEDIUM),
+                             derivation("s2"), T0 + timedelta(hours=1), SETTINGS)
+    assert decision.alert is not None and decision.alert.state is S.ACKNOWLEDGED
+    assert decision.alert.acknowledged_by == "charge.nurse"
+
+
+def test_an_uncertain_outcome_never_lowers_a_flag():
+    alert = raised(Priority.HIGH)
+    decision = apply_outcome(alert, None,
+                             outcome("s2", priority=Priority.LOW, uncertain=True),
+                             derivation("s2"), T0 + timedelta(hours=1), SETTINGS)
+    assert decision.alert is None and decision.events == []
+
+
+def test_a_lowered_flag_is_not_escalated_at_low():
+    alert = raised(Priority.HIGH)
+    lowered = apply_outcome(alert, None, outcome("s2", priority=Priority.LOW),
+                            derivation("s2"), T0 + timedelta(minutes=10), SETTINGS).alert
+    assert lowered is not None
+    assert escalate_due([lowered], T0 + timedelta(hours=2), SETTINGS) == []
 
 
 def test_worsening_an_acknowledged_flag_asks_for_a_new_acknowledgement():
@@ -195,12 +243,17 @@ def test_apply_outcome_refuses_a_closed_flag_as_open():
 def test_a_cleared_condition_on_the_next_sample_resolves():
     alert = raised()
     at = T0 + timedelta(hours=2)
-    decision = apply_outcome(alert, None, outcome("s2", cleared=True), derivation("s2"), at,
-                             SETTINGS)
+    drawn = T0 + timedelta(hours=1, minutes=40)
+    decision = apply_outcome(alert, None, outcome("s2", cleared=True, pf=345.0),
+                             derivation("s2", drawn_at=drawn), at, SETTINGS)
     assert decision.alert is not None
     assert decision.alert.state is S.RESOLVED and decision.alert.closed_at == at
+    assert decision.alert.resolved_drawn_at == drawn
     assert decision.notify == ["resolved"]
     assert decision.events[0].sample_id == "s2"
+    # Issue 12 point 9: the message quotes the clearing value, not the old one.
+    assert decision.alert.summary.startswith("cleared: P/F > 300: P/F 345")
+    assert "182" not in decision.alert.summary
 
 
 def test_a_cleared_outcome_on_the_raising_sample_does_not_resolve():
@@ -215,15 +268,67 @@ def test_neither_fired_nor_cleared_keeps_the_flag_open():
     assert decision.alert is None
 
 
+def resolved_flag(priority: Priority = Priority.MEDIUM, drawn: datetime = T0) -> Alert:
+    """A flag at ``priority`` resolved by sample s2 drawn at ``drawn``, known 20 min later."""
+    resolved = apply_outcome(raised(priority), None, outcome("s2", cleared=True),
+                             derivation("s2", drawn_at=drawn), drawn + timedelta(minutes=20),
+                             SETTINGS).alert
+    assert resolved is not None
+    return resolved
+
+
 @pytest.mark.parametrize(("minutes", "raises"), [(59, False), (60, True), (61, True)])
-def test_cooldown_of_60_minutes_after_resolution(minutes, raises):
-    closed_at = T0 + timedelta(hours=1)
-    resolved = apply_outcome(raised(), None, outcome("s2", cleared=True), derivation("s2"),
-                             closed_at, SETTINGS).alert
-    at = closed_at + timedelta(minutes=minutes)
-    decision = apply_outcome(None, resolved, outcome("s3", priority=Priority.HIGH),
-                             derivation("s3"), at, SETTINGS)
+def test_cooldown_of_60_minutes_draw_to_draw(minutes, raises):
+    # The cooldown runs on the clinical clock: from the resolving draw to the new draw,
+    # whatever time each result became known.
+    drawn = T0 + timedelta(hours=1)
+    new_draw = drawn + timedelta(minutes=minutes)
+    decision = apply_outcome(None, resolved_flag(drawn=drawn),
+                             outcome("s3", priority=Priority.MEDIUM),
+                             derivation("s3", drawn_at=new_draw),
+                             new_draw + timedelta(hours=3), SETTINGS)
     assert (decision.alert is not None) is raises
+
+
+def test_cooldown_ignores_when_the_result_arrived():
+    # Resolving gas drawn 07:10, known 07:30; the next drawn 07:20 (10 min later) but
+    # known 09:00: processing time says 90 min, the patient's clock says 10.
+    drawn = T0 + timedelta(hours=1)
+    decision = apply_outcome(None, resolved_flag(drawn=drawn),
+                             outcome("s3", priority=Priority.MEDIUM),
+                             derivation("s3", drawn_at=drawn + timedelta(minutes=10)),
+                             drawn + timedelta(minutes=110), SETTINGS)
+    assert decision.alert is None
+
+
+@pytest.mark.parametrize(
+    ("before", "now", "raises"),
+    [(Priority.LOW, Priority.HIGH, True), (Priority.LOW, Priority.MEDIUM, True),
+     (Priority.MEDIUM, Priority.HIGH, True), (Priority.MEDIUM, Priority.MEDIUM, False),
+     (Priority.MEDIUM, Priority.LOW, False), (Priority.HIGH, Priority.HIGH, False)],
+)
+def test_a_cooldown_never_holds_back_a_worse_result(before, now, raises):
+    # Issue 12 point 1: a low P/F flag resolves; 40 min later a gas with P/F 90 arrives.
+    drawn = T0 + timedelta(hours=1)
+    later = drawn + timedelta(minutes=40)
+    decision = apply_outcome(None, resolved_flag(before, drawn),
+                             outcome("s3", priority=now, pf=90.0),
+                             derivation("s3", drawn_at=later), later + timedelta(minutes=20),
+                             SETTINGS)
+    assert (decision.alert is not None) is raises
+    if raises:
+        assert decision.notify == ["raised"] and decision.alert.priority is now
+
+
+def test_cooldown_without_a_resolving_draw_time_falls_back_to_the_closing_time():
+    closed_at = T0 + timedelta(hours=1)
+    resolved = apply_outcome(raised(), None, outcome("s2", cleared=True), None, closed_at,
+                             SETTINGS).alert
+    assert resolved is not None and resolved.resolved_drawn_at is None
+    for minutes, raises in ((59, False), (60, True)):
+        decision = apply_outcome(None, resolved, outcome("s3", priority=Priority.MEDIUM),
+                                 None, closed_at + timedelta(minutes=minutes), SETTINGS)
+        assert (decision.alert is not None) is raises
 
 
 def test_no_cooldown_after_a_retraction():
@@ -327,11 +432,24 @@ def test_lifecycle_properties_hold_for_any_sequence(sequence):
         if kind in ("fire", "clear", "neither"):
             o = outcome(sample, priority=priority if kind == "fire" else None,
                         cleared=kind == "clear")
-            decision = apply_outcome(current, last_closed, o, derivation(sample), now, SETTINGS)
+            decision = apply_outcome(current, last_closed, o,
+                                     derivation(sample, drawn_at=now), now, SETTINGS)
             if kind == "fire" and current is not None and priority.rank <= current.priority.rank:
-                assert decision.notify == [] and decision.alert is None
+                assert decision.notify == []
+                if priority.rank == current.priority.rank:
+                    assert decision.alert is None
+                else:
+                    assert decision.alert is not None and decision.alert.priority is priority
+            if kind == "fire" and current is None and last_closed is not None and (
+                last_closed.state is S.RESOLVED and priority.rank > last_closed.priority.rank
+            ):
+                assert decision.alert is not None, "a cooldown never holds back a worse result"
             if decision.alert is not None and decision.alert.state is S.RAISED and current is None:
-                assert all(now - t >= SETTINGS.cooldown for t in resolved_at), "cooldown"
+                held = last_closed is not None and last_closed.state is S.RESOLVED and (
+                    priority.rank <= last_closed.priority.rank
+                )
+                if held:
+                    assert all(now - t >= SETTINGS.cooldown for t in resolved_at), "cooldown"
         elif current is None:
             continue
         elif kind == "ack":

@@ -8,13 +8,14 @@ room air that lowers PAO2 by 0.21 x 0.12 = 0.025 mmHg, hence the tolerances belo
 """
 
 from dataclasses import replace
+from datetime import date
 
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from monitor.engine import physiology
-from monitor.engine.derive import DerivationSettings, derive, derive_spo2_series
+from monitor.engine.derive import DerivationSettings, counted_pf, derive, derive_spo2_series
 from monitor.engine.errors import InvalidInput
 from monitor.engine.model import (
     FiO2Source,
@@ -482,3 +483,45 @@ def test_reordering_the_readings_gives_the_same_derivation(data: st.DataObject) 
     assert derive(pair(sample, shuffled, site), DEFAULTS) == derive(
         pair(sample, context, site), DEFAULTS
     )
+
+
+# --- issue 12 ---------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(("elevation", "adjusted"), [(0.0, False), (600.0, False),
+                                                     (1600.0, True)])
+def test_the_adjusted_pf_is_stored_only_where_it_counts(elevation: float, adjusted: bool) -> None:
+    # Berlin footnote: adjust "if altitude is higher than 1000 m" (sheet s.5); ISA at
+    # 600 m is above 674 mmHg, at 1600 m it is 626.5 (sheet s.3). P/F 190 with PEEP 8.
+    site = PairingSettings(site_elevation_m=elevation)
+    context = [lab(Kind.PACO2, 40.0), fio2(0.5, T0 - minutes(30), from_ventilator=True),
+               reading(Kind.PEEP, 8.0, T0 - minutes(20))]
+    d = derive(pair(pao2(95.0), context, site), DEFAULTS)
+    assert (d.pf_ratio_adjusted is not None) is adjusted
+    assert d.berlin_band == ("mild" if adjusted else "moderate")  # 190 x 760/626.5 = 230.5
+    counted = counted_pf(d)
+    assert counted is not None and counted.adjusted is adjusted
+
+
+def test_a_change_just_before_the_draw_derives_on_the_fio2_the_blood_reflects() -> None:
+    # Issue 12 point 3: FiO2 0.40 raised to 0.80 5 min before a PaO2 of 70: P/F 175
+    # (moderate), and 88 on the new value, shown beside it.
+    context = [lab(Kind.PACO2, 40.0), fio2(0.4, T0 - hours(1)), fio2(0.8, T0 - minutes(5))]
+    d = derive(pair(pao2(70.0), context, PairingSettings()), DEFAULTS)
+    assert d.fio2 == pytest.approx(0.4) and d.pf_ratio == pytest.approx(175.0)
+    assert d.fio2_set == pytest.approx(0.8) and d.fio2_changed_at == T0 - minutes(5)
+    counted = counted_pf(d)
+    assert counted is not None and counted.on_fio2_set == pytest.approx(87.5)
+
+
+@pytest.mark.parametrize(("born", "flagged"), [(date(2021, 3, 1), True),
+                                               (date(2008, 3, 14), False)])
+def test_the_adult_age_normal_on_a_child_is_flagged(born: date, flagged: bool) -> None:
+    # (age + 10)/4 (StatPearls, sheet s.4) is an adult formula: 5 years gives 3.75.
+    context = [lab(Kind.PACO2, 40.0), device("room_air", T0 - hours(1))]
+    d = derive(pair(pao2(90.0, birth_date=born), context, PairingSettings()), DEFAULTS)
+    assert d.aa_gradient_expected is not None
+    assert (FLAG.PAEDIATRIC_AGE_NORMAL in d.flags) is flagged
+    if flagged:
+        assert d.aa_gradient_expected == pytest.approx(3.75)
+        assert any("adult formula" in i.reason for i in d.inputs)

@@ -816,3 +816,152 @@ def test_an_estimated_fio2_names_device_flow_and_uncertainty() -> None:
     assert roles["o2_flow"].value == 2.0
     assert "nasal_cannula at 2 L/min" in roles["fio2"].reason
     assert "rule of thumb" in roles["fio2"].reason
+
+
+# --- issue 12, point 4: a later oxygen-therapy charting ends what was in effect ----------
+
+THERAPY_CASES = [
+    # id, context (draw at T0), expected value, expected source
+    (
+        "extubated to a nasal cannula: the ventilator FiO2 is over",
+        [fio2(0.5, T0 - hours(2), from_ventilator=True),
+         device("nasal_cannula", T0 - hours(1)), flow(2.0, T0 - hours(1))],
+        0.28,  # 2 L/min nasal cannula, 0.20 + 0.04 x 2 (sheet s.8 [C])
+        FiO2Source.DEVICE_ESTIMATE,
+    ),
+    (
+        "a nasal cannula without a flow still ends the ventilator FiO2",
+        [fio2(0.5, T0 - hours(2), from_ventilator=True), device("nasal_cannula", T0 - hours(1))],
+        None,
+        FiO2Source.UNKNOWN,
+    ),
+    (
+        "an O2 flow alone ends a ventilator setting",
+        [fio2(0.5, T0 - hours(2), from_ventilator=True), flow(2.0, T0 - hours(1))],
+        None,
+        FiO2Source.UNKNOWN,
+    ),
+    (
+        "extubated to high-flow: the ventilator setting does not carry over",
+        [fio2(0.5, T0 - hours(2), from_ventilator=True), device("high_flow_nasal", T0 - hours(1))],
+        None,
+        FiO2Source.UNKNOWN,
+    ),
+    (
+        "a new ventilator setting replaces the old one",
+        [fio2(0.5, T0 - hours(2), from_ventilator=True),
+         fio2(0.35, T0 - hours(1), from_ventilator=True)],
+        0.35,
+        FiO2Source.CHARTED,
+    ),
+    (
+        "the ventilator re-documented keeps its setting",
+        [fio2(0.5, T0 - hours(2), from_ventilator=True),
+         device("invasive_ventilation", T0 - hours(1))],
+        0.5,
+        FiO2Source.CHARTED,
+    ),
+    (
+        "device charted with the FiO2 (within 2 min) is one charting",
+        [fio2(0.5, T0 - hours(1), from_ventilator=True),
+         device("nasal_cannula", T0 - hours(1) + minutes(2))],
+        0.5,
+        FiO2Source.CHARTED,
+    ),
+    (
+        "device charted 2 min 1 s after the FiO2 is a new charting",
+        [fio2(0.5, T0 - hours(1), from_ventilator=True),
+         device("nasal_cannula", T0 - hours(1) + minutes(2) + timedelta(seconds=1))],
+        None,
+        FiO2Source.UNKNOWN,
+    ),
+    (
+        "a flow change on a nasal cannula ends a nurse-charted FiO2",
+        [device("nasal_cannula", T0 - hours(1)), fio2(0.28, T0 - minutes(50)),
+         flow(4.0, T0 - minutes(30))],
+        0.36,  # 0.20 + 0.04 x 4 (sheet s.8 [C])
+        FiO2Source.DEVICE_ESTIMATE,
+    ),
+    (
+        "a high-flow flow change keeps the charted FiO2",
+        [device("high_flow_nasal", T0 - hours(1)), fio2(0.6, T0 - minutes(50)),
+         flow(50.0, T0 - minutes(30))],
+        0.6,
+        FiO2Source.CHARTED,
+    ),
+    (
+        "a Venturi FiO2 re-documented by its device stays",
+        [fio2(0.4, T0 - hours(1)), device("venturi_mask", T0 - minutes(30))],
+        0.4,
+        FiO2Source.CHARTED,
+    ),
+    (
+        "room air then an O2 flow: the device is unknown",
+        [device("room_air", T0 - hours(1)), flow(2.0, T0 - minutes(30))],
+        None,
+        FiO2Source.UNKNOWN,
+    ),
+]
+
+
+@pytest.mark.parametrize(
+    ("context", "value", "source"),
+    [case[1:] for case in THERAPY_CASES],
+    ids=[case[0] for case in THERAPY_CASES],
+)
+def test_a_later_oxygen_therapy_charting_ends_the_fio2_before(
+    context: list[Reading], value: float | None, source: FiO2Source
+) -> None:
+    snap = pair(pao2(), context, SETTINGS)
+    assert snap.fio2 == (pytest.approx(value) if value is not None else None)
+    assert snap.fio2_source is source
+
+
+def test_the_ended_fio2_is_named_with_what_ended_it() -> None:
+    context = [fio2(0.5, T0 - hours(2), from_ventilator=True),
+               device("nasal_cannula", T0 - hours(1)), flow(2.0, T0 - hours(1))]
+    reasons = " | ".join(i.reason for i in pair(pao2(), context, SETTINGS).inputs)
+    assert "no longer in effect: ended by the device charted 06:00 UTC" in reasons
+
+
+# --- issue 12, point 3: the FiO2 the blood reflects ----------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("minutes_before", "fio2_used", "fio2_set"),
+    [(5, 0.4, 0.8), (14, 0.4, 0.8), (15, 0.8, None), (16, 0.8, None)],
+)
+def test_a_change_shortly_before_the_draw_keeps_the_fio2_the_blood_reflects(
+    minutes_before: int, fio2_used: float, fio2_set: float | None
+) -> None:
+    # 15 min steady state: the project's pairing setting (common practice, no source).
+    context = [fio2(0.4, T0 - hours(1)), fio2(0.8, T0 - minutes(minutes_before))]
+    snap = pair(pao2(), context, SETTINGS)
+    assert snap.fio2 == pytest.approx(fio2_used)
+    set_inputs = [i for i in snap.inputs if i.role == "fio2_set"]
+    if fio2_set is None:
+        assert not set_inputs and FLAG.FIO2_NOT_STEADY not in snap.flags
+    else:
+        (new,) = set_inputs
+        assert new.value == pytest.approx(fio2_set)
+        assert new.at == T0 - minutes(minutes_before)
+        assert "not used for the indices" in new.reason
+        assert FLAG.FIO2_NOT_STEADY in snap.flags
+
+
+def test_a_change_onto_a_device_estimate_is_a_change_too() -> None:
+    # Extubated onto 2 L/min 5 min before the draw: the blood still reflects 0.5.
+    context = [fio2(0.5, T0 - hours(2), from_ventilator=True),
+               device("nasal_cannula", T0 - minutes(5)), flow(2.0, T0 - minutes(4))]
+    snap = pair(pao2(), context, SETTINGS)
+    assert snap.fio2 == pytest.approx(0.5)
+    assert FLAG.FIO2_NOT_STEADY in snap.flags
+    assert [i.value for i in snap.inputs if i.role == "fio2_set"] == [pytest.approx(0.28)]
+
+
+def test_with_the_gas_after_a_change_keeps_the_value_before_and_shows_the_gas_value() -> None:
+    context = [fio2(0.4, T0 - minutes(60)), fio2(0.6, T0 - minutes(5)),
+               fio2(0.6, T0, panel_id="ABG-1")]
+    snap = pair(pao2(), context, SETTINGS)
+    assert snap.fio2 == pytest.approx(0.4) and snap.fio2_source is FiO2Source.CHARTED
+    assert [i.value for i in snap.inputs if i.role == "fio2_set"] == [pytest.approx(0.6)]

@@ -19,11 +19,19 @@ from hypothesis import strategies as st
 
 from monitor.engine import physiology
 from monitor.engine.errors import InvalidInput
-from monitor.engine.model import Derivation, FiO2Source, Priority, QualityFlag, Specimen
+from monitor.engine.model import (
+    Derivation,
+    FiO2Source,
+    InputUsed,
+    Priority,
+    QualityFlag,
+    Specimen,
+)
 from monitor.engine.rules import (
     AaRiseRule,
     AaRoomAirRule,
     FiO2Point,
+    HypoxaemiaRule,
     OxygenationBandRule,
     OxygenEscalationRule,
     PatientHistory,
@@ -182,10 +190,10 @@ def test_disabled_rules_give_no_outcome():
     assert [o.rule_id for o in outcomes] == ["pf-fall"]
 
 
-def test_default_rules_are_the_six_of_the_issue():
+def test_default_rules_are_the_six_of_the_issue_and_hypoxaemia():
     ids = [r.rule_id for r in default_rules().rules]
     assert ids == ["oxygenation-band", "pf-fall", "aa-room-air", "aa-rise",
-                   "oxygen-escalation", "sf-low"]
+                   "oxygen-escalation", "sf-low", "hypoxaemia"]
 
 
 def test_now_must_be_timezone_aware():
@@ -246,6 +254,15 @@ def test_pf_fall_reports_the_change_with_its_times():
     assert outcome.fired
     assert outcome.numbers["change_percent"] == pytest.approx(-37.2, abs=0.05)
     assert outcome.numbers["best_pf_at"] == T0.isoformat()
+
+
+def test_pf_fall_at_altitude_gives_the_measured_value_too():
+    # Issue 12 point 5: "adjusted for altitude (measured N)" needs the measured N.
+    history = PatientHistory(derivations=[gas(T0, pf_ratio=290.0, barometric_pressure=626.5)])
+    d = gas(T0 + timedelta(hours=4), pf_ratio=182.0, barometric_pressure=626.5)
+    outcome = only(FALL, d, history)
+    assert outcome.numbers["adjusted"] is True and outcome.numbers["pf_measured"] == 182.0
+    assert outcome.numbers["pf"] == pytest.approx(182.0 * 760 / 626.5, abs=0.05)
 
 
 def test_pf_fall_ignores_gases_older_than_24_h():
@@ -331,51 +348,96 @@ def test_aa_room_air_clears_below_hysteresis():
 
 RISE = AaRiseRule()
 
+#: Alveolar PO2 at PB 760, PH2O 47, PaCO2 40, R 0.8, full form: 0.50 -> 311.50 (sheet s.1
+#: table); 0.35 and 0.80 worked by hand from the sheet's formula, PIO2 - PaCO2 x [FiO2 +
+#: (1 - FiO2)/R]: 0.35 x 713 - 40 x 1.1625 = 203.05; 0.80 x 713 - 40 x 1.05 = 528.40.
+PAO2_AT = {0.35: 203.05, 0.45: 275.35, 0.5: 311.50, 0.55: 347.65, 0.8: 528.40}
+
+
+def aa_gas(aa: float, fio2: float = 0.5, at: datetime = T0, **kw: object) -> Derivation:
+    """A gas whose A-a and a/A agree with its alveolar PO2 (a/A = (PAO2 - A-a)/PAO2)."""
+    alveolar = PAO2_AT[fio2]
+    return gas(at, fio2=fio2, alveolar_po2=alveolar, aa_gradient=aa, pao2=alveolar - aa,
+               arterial_alveolar_ratio=(alveolar - aa) / alveolar, **kw)
+
 
 def rise_history(aa: float = 100.0, fio2: float = 0.5, hours: float = 4) -> PatientHistory:
-    return PatientHistory(derivations=[gas(T0 - timedelta(hours=hours), aa_gradient=aa,
-                                           fio2=fio2)])
+    return PatientHistory(derivations=[aa_gas(aa, fio2, T0 - timedelta(hours=hours))])
 
 
-@pytest.mark.parametrize(("aa", "fired"), [(120.0, True), (119.9, False), (120.1, True)])
-def test_aa_rise_fires_at_20_mmhg_over_the_previous_gas(aa, fired):
-    outcome = only(RISE, gas(aa_gradient=aa), rise_history())
+def test_aa_rise_at_a_steady_high_fio2_is_not_fired_by_noise():
+    # Issue 12 point 6: FiO2 0.80, A-a 408 -> 428 (+20 mmHg, 5 %): a/A 0.228 -> 0.190.
+    outcome = only(RISE, aa_gas(428.0, 0.8), rise_history(408.0, 0.8))
+    assert outcome.numbers["aa_rise"] == 20.0
+    assert outcome.numbers["aa_ratio_fall"] == pytest.approx(0.038, abs=0.001)
+    assert not outcome.fired
+
+
+@pytest.mark.parametrize(
+    ("fio2", "before", "after", "fired"),
+    [
+        (0.8, 408.0, 451.0, True),    # a/A falls 43/528.4 = 0.081
+        (0.8, 408.0, 450.0, False),   # 42/528.4 = 0.0795
+        (0.35, 100.0, 120.0, True),   # a real fall at 0.35: 20/203.05 = 0.098
+        (0.35, 100.0, 119.9, False),  # under 20 mmHg
+        (0.35, 60.0, 76.0, False),    # a/A down 0.079 but only 16 mmHg
+        (0.5, 100.0, 125.0, True),    # 25/311.5 = 0.080
+        (0.5, 100.0, 124.0, False),   # 24/311.5 = 0.077
+        (0.5, 100.0, 120.0, False),   # 20 mmHg at 0.50 is 0.064 of a/A: not enough
+    ],
+)
+def test_aa_rise_needs_20_mmhg_and_an_aa_ratio_fall_of_008(fio2, before, after, fired):
+    # 20 mmHg and 0.08: common practice, no source; a/A stable across FiO2 (Gilbert and
+    # Keighley 1974, from memory; sheet s.5).
+    outcome = only(RISE, aa_gas(after, fio2), rise_history(before, fio2))
     assert outcome.fired is fired
+    if fired:
+        assert outcome.priority is Priority.MEDIUM
 
 
-@pytest.mark.parametrize(("previous_fio2", "judged"), [(0.45, True), (0.55, True),
-                                                       (0.44, False), (0.56, False)])
-def test_aa_rise_needs_comparable_fio2_within_005(previous_fio2, judged):
-    outcome = only(RISE, gas(aa_gradient=130.0), rise_history(fio2=previous_fio2))
+@pytest.mark.parametrize(("previous_fio2", "judged"), [(0.45, True), (0.55, True)])
+def test_aa_rise_compares_fio2_within_005(previous_fio2, judged):
+    outcome = only(RISE, aa_gas(200.0, 0.5), rise_history(100.0, previous_fio2))
     assert outcome.fired is judged
-    if not judged:
-        assert "comparable FiO2" in outcome.reason
+
+
+def test_aa_rise_does_not_compare_across_fio2_beyond_005():
+    history = PatientHistory(derivations=[aa_gas(100.0, 0.35, T0 - timedelta(hours=4))])
+    outcome = only(RISE, aa_gas(200.0, 0.5), history)
+    assert not outcome.fired and "comparable FiO2" in outcome.reason
 
 
 @pytest.mark.parametrize(("hours", "judged"), [(11.9, True), (12.0, True), (12.1, False)])
 def test_aa_rise_looks_back_12_h(hours, judged):
-    outcome = only(RISE, gas(aa_gradient=130.0), rise_history(hours=hours))
+    outcome = only(RISE, aa_gas(140.0), rise_history(hours=hours))
     assert outcome.fired is judged
 
 
 def test_aa_rise_compares_with_the_latest_previous_gas():
     history = PatientHistory(derivations=[
-        gas(T0 - timedelta(hours=6), aa_gradient=80.0),
-        gas(T0 - timedelta(hours=2), aa_gradient=115.0),
+        aa_gas(80.0, at=T0 - timedelta(hours=6)),
+        aa_gas(115.0, at=T0 - timedelta(hours=2)),
     ])
-    outcome = only(RISE, gas(aa_gradient=130.0), history)
+    outcome = only(RISE, aa_gas(130.0), history)
     assert outcome.numbers["previous_aa"] == 115.0
     assert not outcome.fired
 
 
 def test_aa_rise_skips_a_gas_at_another_fio2_for_the_latest_comparable_one():
     history = PatientHistory(derivations=[
-        gas(T0 - timedelta(hours=6), aa_gradient=90.0, fio2=0.5),
-        gas(T0 - timedelta(hours=2), aa_gradient=200.0, fio2=0.8),
+        aa_gas(90.0, 0.5, T0 - timedelta(hours=6)),
+        aa_gas(200.0, 0.8, T0 - timedelta(hours=2)),
     ])
-    outcome = only(RISE, gas(aa_gradient=115.0, fio2=0.5), history)
+    outcome = only(RISE, aa_gas(120.0, 0.5), history)
     assert outcome.numbers["previous_aa"] == 90.0
-    assert outcome.fired  # +25 mmHg at the same FiO2
+    assert outcome.fired  # +30 mmHg, a/A -0.096 at the same FiO2
+
+
+def test_aa_rise_clears_below_either_threshold_less_hysteresis():
+    # 0.08 x 0.9 = 0.072 of a/A; 20 x 0.9 = 18 mmHg.
+    assert only(RISE, aa_gas(430.0, 0.8), rise_history(408.0, 0.8)).cleared is True
+    margin = only(RISE, aa_gas(447.0, 0.8), rise_history(408.0, 0.8))  # 0.0738
+    assert not margin.fired and not margin.cleared
 
 
 def test_trend_rules_do_not_compare_gases_on_an_estimated_fio2():
@@ -530,3 +592,160 @@ def test_nothing_fires_on_unreliable_data_whatever_the_numbers(pf, flag):
     d = gas(pf_ratio=pf, aa_gradient=400.0, fio2=1.0, flags=frozenset({flag}))
     history = PatientHistory(fio2_points=[FiO2Point(T0 - timedelta(hours=1), 0.21)])
     assert not any(o.fired for o in evaluate(default_rules(), d, history, NOW))
+
+
+# --- issue 12, point 5: which P/F counts --------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("pb", "priority", "label", "adjusted"),
+    [
+        # 600 m: ISA 707 mmHg, above 674: P/F 190 stays moderate (Berlin, JAMA 2012).
+        (707.0, Priority.MEDIUM, "Berlin moderate", False),
+        (674.0, Priority.MEDIUM, "Berlin moderate", False),
+        # just above 1000 m: 190 x 760/673.9 = 214.3, mild
+        (673.9, Priority.LOW, "Berlin mild", True),
+    ],
+)
+def test_band_rule_adjusts_for_altitude_only_above_1000_m(pb, priority, label, adjusted):
+    d = gas(pao2=95.0, fio2=0.5, pf_ratio=190.0, peep=8.0, barometric_pressure=pb,
+            berlin_band="moderate" if not adjusted else "mild",
+            pf_ratio_adjusted=190.0 * 760 / pb)  # even if a stored row says "adjusted"
+    outcome = only(BAND, d)
+    assert outcome.priority is priority and outcome.label == label
+    assert outcome.numbers["adjusted"] is adjusted
+    assert ("pf_measured" in outcome.numbers) is adjusted
+
+
+# --- issue 12, point 2: an estimated FiO2 ---------------------------------------------------
+
+ESTIMATE = dict(fio2_source=FiO2Source.DEVICE_ESTIMATE,
+                flags=frozenset({QualityFlag.ESTIMATED_FIO2}))
+
+
+def test_band_on_an_estimated_fio2_is_marked_and_held_at_low():
+    # Reservoir mask 15 L/min, FiO2 estimated 0.90 (top of 0.60-0.90, sheet s.8 [C]);
+    # PaO2 70.2 gives P/F 78; on room air the same PaO2 would be P/F 334.
+    d = gas(pao2=70.2, fio2=0.9, pf_ratio=78.0, barometric_pressure=760.0, **ESTIMATE)
+    outcome = only(BAND, d)
+    assert outcome.fired and outcome.priority is Priority.LOW
+    assert outcome.uncertain is True
+    assert outcome.numbers["fio2_basis"] == "estimated from device and flow"
+    assert outcome.numbers["priority_held"] is True
+    assert outcome.label == "P/F <= 100"
+
+
+def test_band_on_an_estimated_fio2_keeps_what_room_air_makes_certain():
+    # PaO2 38 on a 2 L/min cannula (0.28): even on room air P/F would be 181 <= 200.
+    d = gas(pao2=38.0, fio2=0.28, pf_ratio=135.7, barometric_pressure=760.0, **ESTIMATE)
+    outcome = only(BAND, d)
+    assert outcome.priority is Priority.MEDIUM
+    assert outcome.numbers["pf_at_room_air"] == pytest.approx(181.0, abs=0.05)
+
+
+@pytest.mark.parametrize(("pao2", "cleared"), [(141.8, False), (142.0, True)])
+def test_a_good_pf_on_an_estimated_fio2_clears_only_at_estimate_plus_015(pao2, cleared):
+    # Estimate 0.28 + 0.15 = 0.43 (Wettstein 2005: SD up to 0.15); clears above 330
+    # (hysteresis 10 %), i.e. PaO2 above 330 x 0.43 = 141.9. At 0.28 both are "P/F > 500".
+    d = gas(pao2=pao2, fio2=0.28, pf_ratio=pao2 / 0.28, barometric_pressure=760.0, **ESTIMATE)
+    assert only(BAND, d).cleared is cleared
+
+
+def test_band_on_a_fio2_charted_after_the_draw_is_held_too():
+    d = gas(pao2=70.0, fio2=0.8, pf_ratio=87.5, barometric_pressure=760.0,
+            fio2_source=FiO2Source.CHARTED_AFTER,
+            flags=frozenset({QualityFlag.FIO2_CHARTED_AFTER_DRAW}))
+    outcome = only(BAND, d)
+    assert outcome.priority is Priority.LOW and outcome.uncertain
+    assert outcome.numbers["fio2_basis"] == "charted after the draw"
+
+
+def test_a_measured_fio2_gives_the_full_priority_and_is_not_uncertain():
+    outcome = only(BAND, gas(pao2=70.2, fio2=0.9, pf_ratio=78.0, barometric_pressure=760.0))
+    assert outcome.priority is Priority.HIGH and not outcome.uncertain
+    assert outcome.numbers["fio2_basis"] == "charted"
+
+
+# --- issue 12, point 3: FiO2 changed just before the draw ------------------------------------
+
+
+def changed_gas(**kw: object) -> Derivation:
+    """FiO2 0.40 raised to 0.80 five minutes before a PaO2 of 70 (the issue's case):
+    pairing hands over 0.40 and the new 0.80 as input ``fio2_set``."""
+    return gas(pao2=70.0, fio2=0.4, pf_ratio=175.0, barometric_pressure=760.0,
+               flags=frozenset({QualityFlag.FIO2_NOT_STEADY}),
+               inputs=(InputUsed("fio2_set", 0.8, "set 5 min before", None,
+                                 T0 - timedelta(minutes=5)),), **kw)
+
+
+def test_band_judges_on_the_fio2_the_blood_reflects_and_shows_both():
+    outcome = only(BAND, changed_gas())
+    assert outcome.priority is Priority.MEDIUM  # 70/0.40 = 175, not 70/0.80 = 88
+    assert outcome.numbers["pf"] == 175.0
+    assert outcome.numbers["pf_on_fio2_set"] == 87.5
+    assert outcome.numbers["fio2_set"] == 0.8 and outcome.numbers["fio2_set_minutes"] == 5
+
+
+def test_oxygen_escalation_sees_the_fio2_set_not_the_one_reflected():
+    history = PatientHistory(fio2_points=[FiO2Point(T0 - timedelta(hours=2), 0.4)])
+    outcome = only(ESC, changed_gas(), history)
+    assert outcome.fired and outcome.numbers["fio2"] == 0.8
+
+
+# --- issue 12, point 8: hypoxaemia with FiO2 unknown -----------------------------------------
+
+HYPOX = HypoxaemiaRule()
+UNKNOWN = dict(fio2=None, fio2_source=FiO2Source.UNKNOWN, pf_ratio=None,
+               flags=frozenset({QualityFlag.FIO2_UNKNOWN}))
+
+
+@pytest.mark.parametrize(
+    ("pao2", "priority"),
+    [(60.0, None), (59.9, Priority.LOW), (40.0, Priority.LOW), (39.9, Priority.MEDIUM)],
+)
+def test_a_low_pao2_with_fio2_unknown_flags_on_its_own(pao2, priority):
+    # PaO2 < 60 mmHg: hypoxaemic respiratory failure (textbook, from memory); < 40:
+    # P/F <= 190 even on room air (Berlin moderate).
+    outcome = only(HYPOX, gas(pao2=pao2, **UNKNOWN))
+    assert outcome.priority is priority
+    if priority:
+        assert outcome.numbers["fio2_basis"] == "unknown"
+        assert "FiO2 unknown" in outcome.label
+
+
+@pytest.mark.parametrize(
+    ("sao2", "priority"),
+    [(90.0, None), (89.9, Priority.LOW), (75.0, Priority.LOW), (74.9, Priority.MEDIUM)],
+)
+def test_a_low_sao2_with_fio2_unknown_flags_too(sao2, priority):
+    # SaO2 90 % and 75 % are PaO2 60 and 40 on Severinghaus Eq. 1 (sheet s.7: 0.906, 0.749).
+    assert physiology.so2_from_po2(60.0) == pytest.approx(90.58, abs=0.01)
+    assert physiology.so2_from_po2(40.0) == pytest.approx(74.95, abs=0.01)
+    d = gas(pao2=65.0, inputs=(InputUsed("sao2", sao2, "same panel"),), **UNKNOWN)
+    assert only(HYPOX, d).priority is priority
+
+
+def test_hypoxaemia_leaves_a_known_fio2_to_the_band_rule_and_clears_on_a_good_pao2():
+    low_known = only(HYPOX, gas(pao2=50.0, fio2=0.21, pf_ratio=238.0))
+    assert not low_known.fired and not low_known.cleared and "band" in low_known.reason
+    assert only(HYPOX, gas(pao2=66.1, fio2=0.21, pf_ratio=315.0)).cleared is True
+    assert only(HYPOX, gas(pao2=65.9, **UNKNOWN)).cleared is False  # 60 x 1.1 = 66
+
+
+def test_the_46_low_gases_of_a_third_party_feed_each_raise_a_flag():
+    # Issue 12 point 8: third-party feed, FiO2 never sent; every PaO2 under 60 flags.
+    lows = [gas(T0 + timedelta(minutes=10 * i), pao2=58.0 - i * 0.2, **UNKNOWN)
+            for i in range(46)]
+    assert all(any(o.fired for o in evaluate(default_rules(), d, NO_HISTORY, NOW))
+               for d in lows)
+
+
+# --- issue 12, point 9: the adult age-normal on a child ------------------------------------
+
+
+def test_aa_room_air_on_a_child_says_it_used_an_adult_formula():
+    d = room_air(20.0, expected=3.75, age_years=5.0,
+                 flags=frozenset({QualityFlag.PAEDIATRIC_AGE_NORMAL}))
+    outcome = only(ROOM, d)
+    assert outcome.fired and "adult formula" in outcome.label
+    assert outcome.numbers["adult_formula_age"] == 5.0

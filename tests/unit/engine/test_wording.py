@@ -86,7 +86,7 @@ def note(event: str = "raised", alert=None, derivation=sample(), tz=UTC):
 
 def test_what_changed_says_the_fall_with_its_time():
     assert what_changed(NUMBERS, NOW) == (
-        "P/F 182, was 290 at 06:10 (best of the window), -37 %"
+        "P/F 182 mmHg, was 290 at 06:10 (best of the window), -37 %"
     )
 
 
@@ -100,14 +100,14 @@ def test_notification_names_patient_location_inputs_flags_and_advisory():
     n = note()
     assert n.patient_display == "…0042"
     assert "ICU-North N3 B2" in n.detail
-    assert "P/F 182, was 290 at 06:10" in n.detail
+    assert "P/F 182 mmHg, was 290 at 06:10" in n.detail
     assert "FiO2 0.50 (charted before the draw, 09:58)" in n.detail
     assert "PaCO2 41 mmHg" in n.detail
     assert "barometric pressure 626.5 mmHg" in n.detail
     assert QualityFlag.ESTIMATED_PRESSURE.value in n.detail
     assert n.detail.endswith(ADVISORY)
     assert n.advisory == ADVISORY
-    assert n.summary.startswith("MEDIUM New flag")
+    assert n.summary.startswith("MEDIUM New flag (…0042, ICU-North N3 B2): P/F fall")
     assert len(n.summary) <= SUMMARY_MAX
 
 
@@ -117,9 +117,29 @@ def test_the_mrn_never_appears_when_the_display_key_hides_it():
 
 
 def test_preliminary_and_estimated_flags_say_so():
-    n = note(alert=raised_alert(preliminary=True, estimated=True))
+    from_spo2 = replace(sample(), estimated=True, specimen=Specimen.UNKNOWN,
+                        flags=frozenset({QualityFlag.ESTIMATED_FROM_SPO2}))
+    n = note(alert=raised_alert(preliminary=True, estimated=True), derivation=from_spo2)
     assert "preliminary" in n.detail and "pulse oximetry" in n.detail
     assert n.preliminary and n.estimated
+
+
+def test_an_estimated_fio2_on_a_gas_is_not_called_pulse_oximetry():
+    # Issue 12 point 9: oxygen escalation on a device-and-flow FiO2, a gas was drawn.
+    gas = replace(sample(), fio2_source=FiO2Source.DEVICE_ESTIMATE,
+                  flags=frozenset({QualityFlag.ESTIMATED_FIO2}))
+    numbers = {"fio2": 0.9, "fio2_at": NOW.isoformat(), "fio2_lowest": 0.4,
+               "fio2_lowest_at": T0.isoformat(), "fio2_rise": 0.5,
+               "fio2_source": "estimated from device and flow",
+               "fio2_basis": "estimated from device and flow"}
+    outcome = fall_outcome(rule_id="oxygen-escalation", label="FiO2 up >= 0.20 in 6 h",
+                           numbers=numbers, estimated=True)
+    alert = apply_outcome(None, None, outcome, gas, NOW, AlertSettings()).alert
+    n = notification_for(alert, "raised", gas, display_key="…0042", now=NOW, numbers=numbers)
+    assert "pulse oximetry" not in n.detail
+    assert "estimated from the oxygen device and flow" in n.detail
+    assert alert.summary == ("FiO2 up >= 0.20 in 6 h: FiO2 0.90, was 0.40 (+0.50); "
+                             "FiO2 estimated from device and flow (estimated)")
 
 
 def test_idempotency_key_is_stable_per_change_and_differs_between_changes():
@@ -159,7 +179,7 @@ def test_patient_display_refuses_unknown_mode():
 
 def test_outcome_summary_marks_estimates():
     text = outcome_summary(fall_outcome(estimated=True))
-    assert text == "P/F fall >= 25 %: change % -37 (estimated)"
+    assert text == "P/F fall >= 25 %: P/F 182 mmHg, was 290 (-37 %) (estimated)"
 
 
 def test_plain_text_body_holds_summary_and_advisory():
@@ -182,3 +202,73 @@ def test_other_rules_read_well():
                          "fio2_lowest_at": (T0 - timedelta(hours=3)).isoformat(),
                          "fio2_rise": 0.3}, NOW) == "FiO2 0.60 at 06:10, was 0.30 at 03:10, +0.30"
     assert what_changed({}, NOW) == "no numbers recorded"
+
+
+# --- issue 12: every short text says what fired, its unit and how the FiO2 was known ------
+
+
+def band(**numbers: object) -> RuleOutcome:
+    return fall_outcome(rule_id="oxygenation-band", label="P/F <= 200",
+                        numbers={"pf": 175.0, "pf_at": T0.isoformat(), "adjusted": False,
+                                 "fio2": 0.4, "fio2_source": "charted before the draw",
+                                 "fio2_basis": "charted", **numbers})
+
+
+def test_band_short_text_with_a_charted_fio2():
+    assert outcome_summary(band()) == "P/F <= 200: P/F 175 mmHg; FiO2 0.40 charted"
+
+
+def test_band_short_text_says_adjusted_for_altitude_with_the_measured_value():
+    # Issue 12 point 5: "adjusted for altitude (measured N)", never "to sea level".
+    text = outcome_summary(band(pf=182.0, adjusted=True, pf_measured=150.0))
+    assert "P/F 182 mmHg adjusted for altitude (measured 150)" in text
+    assert "sea level" not in text
+    assert "adjusted" not in outcome_summary(band())
+
+
+def test_band_short_text_shows_both_fio2_when_it_changed_just_before_the_draw():
+    # Issue 12 point 3: 0.40 -> 0.80 five minutes before a PaO2 of 70.
+    text = outcome_summary(band(fio2_set=0.8, fio2_set_minutes=5, pf_on_fio2_set=87.5,
+                                fio2_set_at=(T0 - timedelta(minutes=5)).isoformat()))
+    assert text == ("P/F <= 200: P/F 175 mmHg; FiO2 0.40 charted, 0.80 set 5 min before "
+                    "the draw (P/F 88 on it)")
+
+
+def test_band_short_text_on_an_estimated_fio2_says_estimated_and_held():
+    # Issue 12 point 2: the estimate is in the short text, not only in a detail line.
+    text = outcome_summary(band(pf=78.0, fio2=0.9, fio2_basis="estimated from device and flow",
+                                fio2_source="estimated from device and flow",
+                                priority_held=True, pf_at_room_air=334.3))
+    assert text.startswith("P/F <= 200: P/F 78 mmHg; FiO2 0.90 estimated from device and flow")
+    assert "priority held" in text
+
+
+def test_hypoxaemia_short_text_says_fio2_unknown():
+    outcome = fall_outcome(rule_id="hypoxaemia", label="PaO2 < 60 mmHg with FiO2 unknown",
+                           numbers={"pao2": 52.0, "pao2_at": T0.isoformat(), "fio2": None,
+                                    "fio2_source": "unknown", "fio2_basis": "unknown"})
+    assert outcome_summary(outcome) == (
+        "PaO2 < 60 mmHg with FiO2 unknown: PaO2 52 mmHg; FiO2 unknown")
+    assert what_changed(outcome.numbers, NOW).endswith("FiO2 unknown, so no P/F")
+
+
+def test_a_rise_short_text_gives_before_and_after_with_units():
+    outcome = fall_outcome(rule_id="aa-rise", label="A-a rise >= 20 mmHg and a/A fall >= 0.08",
+                           numbers={"aa_gradient": 451.0, "previous_aa": 408.0, "aa_rise": 43.0,
+                                    "aa_ratio": 0.147, "previous_aa_ratio": 0.228,
+                                    "fio2": 0.8, "fio2_basis": "charted"})
+    assert outcome_summary(outcome) == (
+        "A-a rise >= 20 mmHg and a/A fall >= 0.08: A–a 451 mmHg, was 408 (+43); "
+        "a/A 0.15, was 0.23; FiO2 0.80 charted")
+
+
+def test_the_patient_stays_in_a_truncated_card_summary():
+    long = fall_outcome(label="P/F fall >= 25 % " + "x" * 200)
+    n = notification_for(raised_alert(label=long.label), "raised", sample(),
+                         display_key="…0042", now=NOW, numbers=NUMBERS)
+    assert len(n.summary) == SUMMARY_MAX and "…0042" in n.summary
+
+
+def test_a_lowered_flag_can_be_worded():
+    n = note("lowered")
+    assert "priority lowered" in n.summary and n.detail.endswith(ADVISORY)
