@@ -253,3 +253,18 @@ def test_axe_finds_no_serious_or_critical_violation(browser: Any, board: Board) 
     _shot(page, "board-index.png")
     page.close()
     assert not found, found
+
+
+def test_docs_and_board_load_nothing_from_elsewhere(browser: Any, board: Board) -> None:
+    """A ward workstation may have no internet: every request the pages make stays on
+    this server (Chromium's own record of the requests)."""
+    page = _page(browser, board)
+    hosts: set[str] = set()
+    page.on("request", lambda r: hosts.add(r.url.split("/")[2]))
+    for path in ("/docs", f"/board/unit/{UNIT}", "/board"):
+        response = page.goto(board.base + path)
+        assert response is not None and response.status == 200, path
+    assert "/api/flags" in page.goto(board.base + "/docs").text()
+    assert page.locator("script[src^=http]").count() == 0
+    assert hosts == {board.base.split("/")[2]}, hosts
+    page.close()
