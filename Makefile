@@ -23,7 +23,13 @@ demo: $(VENV)/.installed
 .fhir-venv/bin/sekmet:
 	PYTHON=$(PYTHON) bash scripts/fhir-test-server.sh install
 
-test: $(VENV)/.installed .fhir-venv/bin/sekmet
+# axe-core for the board's accessibility test, from the npm registry, pinned in
+# tests/browser/package.json; the test injects this file, nothing is fetched at run time.
+tests/browser/node_modules/axe-core/axe.min.js: tests/browser/package.json tests/browser/package-lock.json
+	npm ci --prefix tests/browser --no-audit --no-fund
+	touch $@
+
+test: $(VENV)/.installed .fhir-venv/bin/sekmet tests/browser/node_modules/axe-core/axe.min.js
 	$(PY) -m pytest $(PYTEST_ARGS)
 
 bench: $(VENV)/.installed
@@ -40,4 +46,4 @@ lint: $(VENV)/.installed
 	$(PY) -m vulture
 
 clean:
-	rm -rf $(VENV) demo-out test-artifacts .pytest_cache .hypothesis
+	rm -rf $(VENV) demo-out test-artifacts .pytest_cache .hypothesis tests/browser/node_modules

@@ -185,7 +185,9 @@ def _run_patient(args: argparse.Namespace) -> int:
         return fail(f"PATIENT: no derivations for {args.patient_key!r} in this database")
     rows = [series_row(s.derivation, s.version) for s in stored]
     if args.plot:
-        write_trend_plot([s.derivation for s in stored], args.plot, title=args.patient_key)
+        write_trend_plot(
+            [s.derivation for s in stored], args.plot, title=args.patient_key, tz=config.zone()
+        )
     if args.json:
         print(
             json.dumps(
@@ -210,73 +212,177 @@ def _fmt(value: Any, digits: int = 0) -> str:
     return str(value)
 
 
+def _zone_label(tz: Any, at: datetime) -> str:
+    """"site time, UTC-07:00": the offset written so its sign reads the right way
+    round (an Etc/GMT-2 zone is UTC+02:00)."""
+    delta = at.astimezone(tz).utcoffset() or timedelta(0)
+    minutes = int(delta.total_seconds() // 60)
+    if not minutes:
+        return "site time, UTC"
+    sign = "+" if minutes > 0 else "-"
+    hours, mins = divmod(abs(minutes), 60)
+    return f"site time, UTC{sign}{hours:02d}:{mins:02d}"
+
+
 def _table(rows: list[dict[str, Any]], tz: Any) -> str:
+    """Gases first, then SpO2 estimates in a table of their own: an estimate never sits
+    in a PaO2 or P/F column. A note on every row is said once above the table."""
+    gases = [r for r in rows if not r["estimated"]]
+    estimates = [r for r in rows if r["estimated"]]
+    out: list[str] = []
+    if gases:
+        out.extend(_gas_table(gases, tz))
+    if estimates:
+        out.append("")
+        out.extend(_estimate_table(estimates, tz))
+    return "\n".join(out)
+
+
+def _marks(r: dict[str, Any]) -> list[str]:
+    marks = list(r["flags"])
+    if r["specimen"] != "arterial" and not r["estimated"]:
+        marks.insert(0, f"{r['specimen']} sample")
+    return [m for m in marks if m != "estimated from SpO2"]
+
+
+def _drawn(r: dict[str, Any], tz: Any) -> str:
+    return str(datetime.fromisoformat(r["drawn_at"]).astimezone(tz).strftime("%Y-%m-%d %H:%M"))
+
+
+def _gas_table(rows: list[dict[str, Any]], tz: Any) -> list[str]:
+    adjusted = any(r["pf_ratio_adjusted"] is not None for r in rows)
+    zone = _zone_label(tz, datetime.fromisoformat(rows[-1]["drawn_at"]))
+    marks = [_marks(r) for r in rows]
+    common = set.intersection(*(set(m) for m in marks)) if len(rows) > 1 else set()
     head = (
-        f"{'drawn (site time)':17} {'PaO2':>5} {'FiO2':>5} {'FiO2 from':<30} "
-        f"{'PAO2':>5} {'A-a':>5} {'a/A':>5} {'P/F':>5} {'P/F sl':>6}  flags"
+        f"{'drawn':16} {'PaO2':>5} {'FiO2':>5} {'FiO2 from':<30} {'PAO2':>5} {'A-a':>5} "
+        f"{'a/A':>5} {'P/F':>5}" + (f" {'P/F alt.':>8}" if adjusted else "") + "  notes"
     )
-    lines = [head, "-" * len(head)]
-    for r in rows:
-        when = datetime.fromisoformat(r["drawn_at"]).astimezone(tz).strftime("%Y-%m-%d %H:%M")
-        marks = list(r["flags"])
-        if r["specimen"] != "arterial" and not r["estimated"]:
-            marks.insert(0, f"{r['specimen']} sample")
+    lines = [f"Blood gases (measured). Times: {zone}. Pressures in mmHg."]
+    if adjusted:
         lines.append(
-            f"{when:17} {_fmt(r['pao2']):>5} {_fmt(r['fio2'], 2):>5} {r['fio2_source'][:30]:<30} "
-            f"{_fmt(r['alveolar_po2']):>5} {_fmt(r['aa_gradient']):>5} "
-            f"{_fmt(r['arterial_alveolar_ratio'], 2):>5} {_fmt(r['pf_ratio']):>5} "
-            f"{_fmt(r['pf_ratio_adjusted']):>6}  {'; '.join(marks)}"
+            "P/F is PaO2/FiO2 as measured; 'P/F alt.' is it adjusted for altitude "
+            "(x 760 / barometric pressure), the value the rules compare."
         )
+    if common:
+        lines.append("On every gas: " + "; ".join(sorted(common)) + ".")
+    lines += [head, "-" * len(head)]
+    for r, m in zip(rows, marks, strict=True):
+        alt = f" {_fmt(r['pf_ratio_adjusted']):>8}" if adjusted else ""
+        lines.append(
+            f"{_drawn(r, tz):16} {_fmt(r['pao2']):>5} {_fmt(r['fio2'], 2):>5} "
+            f"{r['fio2_source'][:30]:<30} {_fmt(r['alveolar_po2']):>5} "
+            f"{_fmt(r['aa_gradient']):>5} {_fmt(r['arterial_alveolar_ratio'], 2):>5} "
+            f"{_fmt(r['pf_ratio']):>5}{alt}  {'; '.join(x for x in m if x not in common)}"
+        )
+    return lines
+
+
+def _estimate_table(rows: list[dict[str, Any]], tz: Any) -> list[str]:
+    zone = _zone_label(tz, datetime.fromisoformat(rows[-1]["drawn_at"]))
+    head = f"{'read':16} {'SpO2 %':>6} {'FiO2':>5} {'FiO2 from':<30} {'S/F est.':>8}  notes"
+    lines = [f"Estimates from SpO2 (not blood gases; S/F has no unit). Times: {zone}.",
+             head, "-" * len(head)]
+    for r in rows:
+        lines.append(
+            f"{_drawn(r, tz):16} {_fmt(r.get('spo2')):>6} {_fmt(r['fio2'], 2):>5} "
+            f"{r['fio2_source'][:30]:<30} {_fmt(r.get('sf_ratio')):>8}  {'; '.join(_marks(r))}"
+        )
+    return lines
+
+
+def alerts_table(alerts: list[Any], tz: Any, now: datetime) -> str:
+    """``gasgap alerts``: one line a flag with its priority in words, the rule in words,
+    when it was raised and when its gas was drawn (both with dates, site time), where,
+    and the summary; the id last, for ``alerts ack``. ``alerts`` are open flags."""
+    from adapters.notify.render import rule_words
+
+    zone = _zone_label(tz, now)
+    head = f"{'priority':8} {'state':12} {'raised':16} {'rule':40} {'where':18} id"
+    lines = [f"Open flags. Times: {zone}.", head, "-" * len(head)]
+    for a in alerts:
+        where = a.location.label() if a.location else "location unknown"
+        raised = a.raised_at.astimezone(tz).strftime("%Y-%m-%d %H:%M")
+        lines.append(
+            f"{a.priority.value:8} {a.state.value:12} {raised:16} {rule_words(a.rule)[:40]:40} "
+            f"{where[:18]:18} {a.alert_id}"
+        )
+        lines.append(f"{'':8} {a.summary}")
     return "\n".join(lines)
 
 
-def write_trend_plot(derivations: list[Derivation], path: Path, *, title: str) -> None:
-    """P/F (measured and at sea level), A-a and FiO2 over time, in one PNG."""
+def unit_problem(known_units: list[str], unit: str | None) -> str | None:
+    """``alerts --unit X`` for a unit no record names: say so (and the near miss in
+    case), never "no open flags"."""
+    if unit is None or unit in known_units:
+        return None
+    near = [u for u in known_units if u.casefold() == unit.casefold()]
+    hint = f" (did you mean {near[0]}?)" if near else ""
+    return f"--unit: unknown unit {unit!r}{hint}; known units: {', '.join(known_units) or 'none'}"
+
+
+def database_problem(url: str | None) -> str | None:
+    """A SQLite file that does not exist: say so instead of creating an empty one (which
+    would then answer "no open flags")."""
+    from storage.db import DEFAULT_URL
+
+    parsed = (url or DEFAULT_URL).split("///", 1)
+    if not parsed[0].startswith("sqlite") or len(parsed) < 2 or parsed[1] in ("", ":memory:"):
+        return None
+    path = Path(parsed[1].split("?", 1)[0])
+    if path.exists():
+        return None
+    return f"no database at {path} (give --db or --config, or run gasgap ingest first)"
+
+
+def write_trend_plot(
+    derivations: list[Derivation], path: Path, *, title: str, tz: Any = UTC
+) -> None:
+    """P/F from gases (measured, and adjusted for altitude where that applies), FiO2 as
+    steps, and S/F estimated from SpO2 on its own axis, over one time axis in site time
+    (labelled)."""
     import matplotlib
 
     matplotlib.use("Agg")
+    import matplotlib.dates as mdates
     import matplotlib.pyplot as plt
 
     gases = [d for d in derivations if not d.estimated and d.pf_ratio is not None]
     estimates = [d for d in derivations if d.estimated and d.sf_ratio is not None]
-    fig, (ax_pf, ax_aa, ax_fio2) = plt.subplots(3, 1, figsize=(9, 7), sharex=True)
-    if gases:
-        ax_pf.plot([d.drawn_at for d in gases], [d.pf_ratio for d in gases], "o-", label="P/F")
-        adjusted = [d for d in gases if d.pf_ratio_adjusted is not None]
-        ax_pf.plot(
-            [d.drawn_at for d in adjusted],
-            [d.pf_ratio_adjusted for d in adjusted],
-            "s--",
-            label="P/F at sea level (x 760/PB)",
-        )
-    if estimates:
-        ax_pf.plot(
-            [d.drawn_at for d in estimates],
-            [d.sf_ratio for d in estimates],
-            ".",
-            alpha=0.5,
-            label="S/F (estimate)",
-        )
+    panels = 3 if estimates else 2
+    fig, axes = plt.subplots(panels, 1, figsize=(9, 2.6 * panels), sharex=True)
+    ax_pf, ax_fio2 = axes[0], axes[1]
+
+    def local(ds: list[Derivation]) -> list[datetime]:
+        return [d.drawn_at.astimezone(tz) for d in ds]
+
+    adjusted = [d for d in gases if d.pf_ratio_adjusted is not None]
+    if adjusted:
+        ax_pf.plot(local(adjusted), [d.pf_ratio_adjusted for d in adjusted], "o-",
+                   color="black", label="P/F adjusted for altitude (rules compare this)")
+        ax_pf.plot(local(gases), [d.pf_ratio for d in gases], "o:", color="grey",
+                   markerfacecolor="white", label="P/F as measured")
+    elif gases:
+        ax_pf.plot(local(gases), [d.pf_ratio for d in gases], "o-", color="black", label="P/F")
     for level in (300, 200, 100):
-        ax_pf.axhline(level, color="grey", linewidth=0.6, linestyle=":")
-    ax_pf.set_ylabel("ratio")
+        ax_pf.axhline(level, color="grey", linewidth=0.6, linestyle="--")
+    ax_pf.set_ylabel("P/F (mmHg)")
     ax_pf.legend(loc="best", fontsize=8)
-    with_aa = [d for d in derivations if d.aa_gradient is not None]
-    ax_aa.plot(
-        [d.drawn_at for d in with_aa], [d.aa_gradient for d in with_aa], "o-", color="tab:red"
-    )
-    ax_aa.set_ylabel("A-a (mmHg)")
     with_fio2 = [d for d in derivations if d.fio2 is not None]
-    ax_fio2.step(
-        [d.drawn_at for d in with_fio2],
-        [d.fio2 for d in with_fio2],
-        where="post",
-        color="tab:green",
-    )
-    ax_fio2.set_ylabel("FiO2")
+    ax_fio2.step(local(with_fio2), [d.fio2 for d in with_fio2], where="post", color="tab:green")
+    ax_fio2.set_ylabel("FiO2 (fraction)")
     ax_fio2.set_ylim(0.15, 1.05)
+    if estimates:
+        ax_sf = axes[2]
+        ax_sf.plot(local(estimates), [d.sf_ratio for d in estimates], "s--",
+                   color="tab:purple", markerfacecolor="white", label="S/F estimate")
+        ax_sf.set_ylabel("S/F from SpO2\n(estimate, no unit)")
+        ax_sf.legend(loc="best", fontsize=8)
     first = min((d.drawn_at for d in derivations), default=datetime.now(UTC))
-    ax_fio2.set_xlim(first - timedelta(hours=1), None)
+    axes[-1].set_xlim(first.astimezone(tz) - timedelta(hours=1), None)
+    formatter = mdates.DateFormatter("%d %b %H:%M", tz=tz)  # type: ignore[no-untyped-call]
+    axes[-1].xaxis.set_major_formatter(formatter)
+    axes[-1].set_xlabel("Time: " + _zone_label(tz, first))
     fig.suptitle(f"{title}: oxygenation trend (advisory; clinicians decide)")
     fig.autofmt_xdate()
     fig.tight_layout()

@@ -10,13 +10,14 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 from dataclasses import dataclass
+from datetime import datetime
 
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection
 
-from monitor.engine.model import Alert, Location
+from monitor.engine.model import Alert, Location, Priority
 from storage.serialize import row_to_alert, row_to_location
-from storage.tables import alerts, patients
+from storage.tables import OPEN_ALERT_STATES, alerts, derivations, patients
 
 
 @dataclass(frozen=True)
@@ -52,8 +53,49 @@ def known_units(conn: Connection) -> list[str]:
     query = sa.union(
         sa.select(patients.c.location_unit.label("unit")),
         sa.select(alerts.c.location_unit.label("unit")),
+        sa.select(derivations.c.location_unit.label("unit")).where(derivations.c.is_current),
     )
     return sorted(u for u in conn.execute(query).scalars() if u)
+
+
+def open_flag_counts(conn: Connection) -> dict[str, dict[Priority, int]]:
+    """Open flags (raised, acknowledged or escalated; never closed ones) by unit and
+    priority. Flags with no unit are counted under the empty string."""
+    query = (
+        sa.select(alerts.c.location_unit, alerts.c.priority, sa.func.count())
+        .where(alerts.c.state.in_(OPEN_ALERT_STATES))
+        .group_by(alerts.c.location_unit, alerts.c.priority)
+    )
+    counts: dict[str, dict[Priority, int]] = {}
+    for unit, priority, n in conn.execute(query):
+        counts.setdefault(unit or "", {})[Priority(priority)] = int(n)
+    return counts
+
+
+def patients_with_gases_since(conn: Connection, unit: str, since: datetime) -> list[str]:
+    """Patients whose latest known location is ``unit`` (or, with no patient record,
+    whose derivation was made there) with a current, unretracted derivation drawn at or
+    after ``since``: the board shows them even when no rule could judge (FiO2 unknown)."""
+    recent = (
+        sa.select(derivations.c.patient_key)
+        .where(
+            derivations.c.is_current,
+            sa.not_(derivations.c.retracted),
+            derivations.c.drawn_at >= since,
+        )
+        .distinct()
+        .subquery()
+    )
+    placed = sa.select(patients.c.patient_key).where(patients.c.location_unit == unit)
+    unplaced = (
+        sa.select(derivations.c.patient_key)
+        .where(derivations.c.location_unit == unit, derivations.c.drawn_at >= since)
+        .where(~derivations.c.patient_key.in_(sa.select(patients.c.patient_key)))
+    )
+    query = sa.select(recent.c.patient_key).where(
+        recent.c.patient_key.in_(sa.union(placed, unplaced))
+    )
+    return sorted(conn.execute(query).scalars())
 
 
 def patients_in_unit(

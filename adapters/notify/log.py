@@ -39,6 +39,20 @@ def log_record(n: Notification) -> dict[str, object]:
     }
 
 
+def log_fields(n: Notification) -> dict[str, object]:
+    """``log_record`` flattened to scalar log-record fields, prefixed ``flag_`` (so no
+    name clashes with the logging module's own), each key number as ``flag_number_<key>``."""
+    fields: dict[str, object] = {}
+    for key, value in log_record(n).items():
+        if key == "numbers" and isinstance(value, Mapping):
+            for name, number in value.items():
+                plain = number if isinstance(number, int | float | bool | str) else None
+                fields[f"flag_number_{name}"] = plain if plain is not None else json.dumps(number)
+        else:
+            fields[f"flag_{key}"] = value
+    return fields
+
+
 class LogChannel:
     """Write each notification as one JSON line to ``gasgap.notify.<alias>``.
 
@@ -60,8 +74,18 @@ class LogChannel:
         self._log = logging.getLogger(f"gasgap.notify.{alias}")
 
     def send(self, notification: Notification) -> DeliveryResult:
-        line = json.dumps(log_record(notification), sort_keys=True, ensure_ascii=False)
-        self._log.log(self._level, "%s", line)
+        # The record travels as the log record's own fields (plain JSON values under
+        # the JSON formatter), never as JSON text inside the message string.
+        self._log.log(
+            self._level,
+            "%s flag %s for %s (ref %s): %s",
+            notification.priority.value,
+            notification.event,
+            notification.patient_display,
+            log_ref(notification),
+            notification.summary,
+            extra=log_fields(notification),
+        )
         return DeliveryResult.delivered("logged")
 
     def close(self) -> None:

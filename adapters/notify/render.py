@@ -159,17 +159,102 @@ def cds_hooks_cards(
     return {"cards": [card]}
 
 
+#: Rule ids in words, for people (the same names as the unit board's).
+RULE_WORDS: dict[str, str] = {
+    "oxygenation-band": "P/F in a low band",
+    "pf-fall": "P/F fell from its 24 h best",
+    "aa-room-air": "A\u2013a above normal for age (room air)",
+    "aa-rise": "A\u2013a gradient widening",
+    "oxygen-escalation": "Oxygen turned up",
+    "sf-low": "S/F low twice, no gas (SpO2 estimate)",
+}
+
+
+def rule_words(rule_id: str) -> str:
+    return RULE_WORDS.get(rule_id, rule_id.replace("-", " ").replace("_", " ").capitalize())
+
+
+def offset_label(at: datetime) -> str:
+    """"UTC" or "UTC+02:00" / "UTC-07:00": the zone of a time, written so its sign reads
+    the right way round (unlike the Etc/GMT names)."""
+    delta = at.utcoffset()
+    if not delta:
+        return "UTC"
+    minutes = int(delta.total_seconds() // 60)
+    sign = "+" if minutes > 0 else "-"
+    hours, mins = divmod(abs(minutes), 60)
+    return f"UTC{sign}{hours:02d}:{mins:02d}"
+
+
 def _format_time(value: object) -> str:
+    """A time with its date and its zone, always: "2026-03-05 09:40 UTC+01:00"."""
+    if isinstance(value, str):
+        try:
+            parsed: object = datetime.fromisoformat(value)
+        except ValueError:
+            return value
+        value = parsed
     if isinstance(value, datetime):
-        return value.strftime("%Y-%m-%d %H:%M %Z").strip()
+        if value.tzinfo is None:
+            return value.strftime("%Y-%m-%d %H:%M") + " (zone not given)"
+        return f"{value.strftime('%Y-%m-%d %H:%M')} {offset_label(value)}"
     return str(value)
 
 
+def _num(value: object, digits: int = 0) -> str:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        return str(value)
+    return f"{value:.{digits}f}"
+
+
+#: How each key number reads: (words, digits, unit, key of its time). The order is the
+#: order of the lines. Keys not listed are written with their underscores as spaces.
+NUMBER_WORDS: dict[str, tuple[str, int, str, str | None]] = {
+    "pf": ("P/F", 0, "mmHg", "pf_at"),
+    "pf_measured": ("P/F as measured (before the altitude adjustment)", 0, "mmHg", None),
+    "best_pf": ("best P/F of the window", 0, "mmHg", "best_pf_at"),
+    "change_percent": ("change in P/F", 0, "%", None),
+    "aa_gradient": ("A\u2013a gradient", 0, "mmHg", "aa_at"),
+    "previous_aa": ("A\u2013a gradient of the gas before", 0, "mmHg", "previous_aa_at"),
+    "aa_rise": ("rise in A\u2013a gradient", 0, "mmHg", None),
+    "aa_expected": ("A\u2013a expected for age, up to", 0, "mmHg", None),
+    "aa_excess": ("above the age-expected A\u2013a by", 0, "mmHg", None),
+    "fio2": ("FiO2", 2, "", "fio2_at"),
+    "previous_fio2": ("FiO2 at the gas before", 2, "", None),
+    "fio2_lowest": ("lowest FiO2 in the window", 2, "", "fio2_lowest_at"),
+    "fio2_rise": ("rise in FiO2", 2, "", None),
+    "sf": ("S/F, estimated from SpO2 (no unit)", 0, "", "sf_at"),
+    "earlier_sf": ("earlier S/F, estimated from SpO2", 0, "", "earlier_sf_at"),
+    "threshold": ("threshold", 0, "", None),
+}
+_TIME_KEYS = {t for *_, t in NUMBER_WORDS.values() if t}
+
+
+def number_lines(numbers: Mapping[str, object]) -> list[str]:
+    """The key numbers in words, with units and their times, no raw keys:
+    "P/F 90 mmHg, adjusted for altitude (drawn 2026-03-05 09:40 UTC-07:00)"."""
+    lines = []
+    for key, (words, digits, unit, time_key) in NUMBER_WORDS.items():
+        if key not in numbers or numbers[key] is None:
+            continue
+        text = f"{words} {_num(numbers[key], digits)}{' ' + unit if unit else ''}"
+        if key == "pf" and numbers.get("adjusted"):
+            text += ", adjusted for altitude (x 760 / barometric pressure)"
+        if time_key and numbers.get(time_key):
+            text += f" (at {_format_time(numbers[time_key])})"
+        lines.append(text)
+    for key, value in numbers.items():
+        if key in NUMBER_WORDS or key in _TIME_KEYS or key == "adjusted":
+            continue
+        lines.append(number_line(key.replace("_", " "), value))
+    return lines
+
+
 def number_line(name: str, value: object) -> str:
-    """One key number as text: ``name: value unit at time (provenance)``."""
+    """One key number as text: ``name value unit at time (provenance)``."""
     if not isinstance(value, Mapping):
-        return f"{name}: {value}"
-    parts = [f"{name}: {value.get('value', '')}"]
+        return f"{name} {_describe(value)}"
+    parts = [f"{name} {value.get('value', '')}"]
     if value.get("unit"):
         parts.append(str(value["unit"]))
     if value.get("at"):
@@ -183,7 +268,7 @@ def number_line(name: str, value: object) -> str:
 
 def _describe(value: object) -> str:
     if isinstance(value, str):
-        return value
+        return _format_time(value) if _looks_like_time(value) else value
     if isinstance(value, Sequence):
         return ", ".join(_describe(v) for v in value)
     if isinstance(value, Mapping):
@@ -191,24 +276,59 @@ def _describe(value: object) -> str:
     return _format_time(value)
 
 
+def _looks_like_time(text: str) -> bool:
+    return len(text) >= 16 and text[4:5] == "-" and text[10:11] == "T"
+
+
+#: Lines of the engine's detail that the message says itself, in words, elsewhere.
+_SAID_ELSEWHERE = ("What changed: no numbers recorded",)
+
+
+def _detail_lines(n: Notification) -> list[str]:
+    """The engine's detail without the advisory sentence (said once, last) and without
+    lines that say nothing."""
+    advisory = " ".join(n.advisory.split())
+    out = []
+    for line in n.detail.splitlines():
+        flat = " ".join(line.split())
+        if not flat or flat == advisory or flat.startswith(_SAID_ELSEWHERE):
+            continue
+        out.append(line.replace(n.advisory, "").strip())
+    return [line for line in out if line]
+
+
+def retraction_line(n: Notification) -> str:
+    """What a withdrawn flag said and why it no longer stands."""
+    return (
+        f"Why withdrawn: the flag ({n.summary}) rested on a result that its source has "
+        "since withdrawn or marked as entered in error, so these numbers no longer stand. "
+        "Disregard the flag; a new result, if one comes, is judged afresh."
+    )
+
+
 def text_lines(n: Notification) -> list[str]:
-    """The message, one paragraph a line, before any escaping. Advisory sentence last."""
+    """The message, one paragraph a line, before any escaping. Advisory sentence last,
+    once."""
     location = n.location.label() if n.location else "unknown location"
     lines = [
         f"{PRIORITY_WORDS[n.priority]} flag {EVENT_WORDS.get(n.event, n.event)}.",
         f"Patient: {n.patient_display}. Location: {location}.",
-        f"Rule: {n.rule}. Time: {_format_time(n.created_at)}.",
+        f"Rule: {rule_words(n.rule)}. Time: {_format_time(n.created_at)}.",
         n.summary,
     ]
-    if n.detail:
-        lines.append(n.detail)
-    if n.preliminary:
+    if n.event == "retracted":
+        lines.append(retraction_line(n))
+    detail = _detail_lines(n)
+    lines.extend(detail)
+    said = " ".join(detail).lower()
+    if n.preliminary and "preliminary" not in said:
         lines.append("Based on preliminary results.")
-    if n.estimated:
+    if n.estimated and "pulse oximetry" not in said and "from spo2" not in said:
         lines.append("Estimated from SpO2, not from an arterial gas.")
-    if n.numbers:
+    numbers = number_lines(n.numbers)
+    if numbers:
         lines.append("Key numbers:")
-        lines.extend(f"- {number_line(k, v)}" for k, v in n.numbers.items())
+        lines.extend(f"- {line}" for line in numbers)
     # A digest, not the raw ids: they may be built from the patient key. The same
     # digest is in the log lines, so staff and operators can match the two.
     lines.append(f"Reference: {log_ref(n)}")

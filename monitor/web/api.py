@@ -12,6 +12,7 @@ from datetime import UTC, datetime
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, HTTPException, Query, Request
+from fastapi.responses import HTMLResponse
 from pydantic import BaseModel, Field, field_validator
 
 from monitor.engine.errors import MonitorError
@@ -25,6 +26,9 @@ from storage.derivations import current_derivations
 
 log = logging.getLogger("gasgap.api")
 router = APIRouter(prefix="/api", tags=["api"], dependencies=[Depends(require_api_token)])
+#: The API's reference page, made here from the OpenAPI document: plain HTML with no
+#: script and nothing loaded from elsewhere, so it works on a ward with no internet.
+docs_router = APIRouter(include_in_schema=False)
 
 
 class AcknowledgeBody(BaseModel):
@@ -162,3 +166,28 @@ def acknowledge(request: Request, alert_id: str, body: AcknowledgeBody) -> dict[
         raise HTTPException(409, f"flag {alert_id!r} cannot be acknowledged: {exc}") from None
     log.info("flag acknowledged through the API")
     return {"flag": alert_json(alert), "advisory": ADVISORY}
+
+
+@docs_router.get("/docs")
+def api_docs(request: Request) -> HTMLResponse:
+    """Every operation of the OpenAPI document: method, path, summary, parameters."""
+    from monitor.web.board import templates
+
+    schema = request.app.openapi()
+    operations = []
+    for path, methods in sorted(schema.get("paths", {}).items()):
+        for method, op in methods.items():
+            params = [
+                (p.get("name", ""), p.get("in", ""), bool(p.get("required")),
+                 p.get("description", ""))
+                for p in op.get("parameters", [])
+            ]
+            body = "requestBody" in op
+            operations.append((method.upper(), path, op.get("summary", ""), params, body))
+    return templates.TemplateResponse(
+        request,
+        "api_docs.html",
+        {"title": schema.get("info", {}).get("title", "gasgap"), "operations": operations,
+         "description": schema.get("info", {}).get("description", ""), "advisory": ADVISORY,
+         "site": request.app.state.ctx.site_name, "refresh": None, "now": "", "zone": ""},
+    )

@@ -78,13 +78,14 @@ def create_app(
         description="Oxygenation indices and advisory flags. " + ADVISORY,
         version="1",
         openapi_url="/openapi.json",
-        docs_url="/docs",
+        docs_url=None,  # our own page (api.docs_router): nothing fetched from a CDN
         redoc_url=None,
     )
     app.state.ctx = ctx
     app.state.config = config
     app.state.security = security
     app.include_router(api.router)
+    app.include_router(api.docs_router)
     app.include_router(board.router)
     app.include_router(hooks.router)
     app.add_api_route("/health", health, methods=["GET"], tags=["operations"])

@@ -1,24 +1,28 @@
 """The unit board: what the charge nurse looks at.
 
 Server-rendered pages (Jinja2, autoescape on: every value from a feed is text, never
-markup). One page a unit: one row a patient with an open flag or one closed within
-``recent_window``; the latest P/F, A-a and a/A with their draw time, the FiO2 and where
-it came from, a 24-hour P/F trace, the flag's priority in words (colour and shape only
-repeat it) and its age, and an acknowledge form that asks for the person's name. A
-patient page shows the full series, a larger trace and each flag's audit trail.
+markup). The unit page has one row a patient (an open flag, a flag closed within
+``recent_window``, or a gas in the last 24 h), the most urgent first: the priority in
+words and shape, the open flags named in words, what changed since the gas before with
+units, the latest gas (measured) and, in a column of its own, any later SpO2 estimate,
+each time with its date and age, and one acknowledge form a patient. The index lists
+the units with their open flags by priority; a patient page shows the whole series as
+tables and plots. Unknown units and patients are answered 404, never as empty.
 
-The pages refresh themselves (meta refresh); the acknowledge form is a plain POST, so
-the board works without JavaScript.
+What is shown is worked out in ``board_view`` (pure); this module reads and routes. The
+pages refresh themselves (meta refresh); the forms are plain POSTs, so the board works
+without JavaScript and with no internet.
 """
 
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass, field
+from collections.abc import Sequence
+from dataclasses import dataclass
 from datetime import datetime, timedelta, tzinfo
 from pathlib import Path
 from typing import Any
-from urllib.parse import parse_qs, quote
+from urllib.parse import parse_qs, quote, unquote
 
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
@@ -26,8 +30,18 @@ from fastapi.templating import Jinja2Templates
 from jinja2 import Environment, FileSystemLoader, select_autoescape
 
 from monitor.engine.errors import MonitorError
-from monitor.engine.model import ADVISORY, Alert, AlertEvent, Derivation, Location, Priority
+from monitor.engine.model import ADVISORY, Alert, Derivation, Location
 from monitor.engine.wording import patient_display
+from monitor.web.board_view import (
+    RowView,
+    build_row,
+    clock_words,
+    compared_pf,
+    flag_view,
+    unit_count,
+    urgency,
+    zone_words,
+)
 from monitor.web.security import BOARD_COOKIE, board_user, same, same_origin, uses_basic
 from storage import alerts as alerts_store
 from storage import board as board_store
@@ -37,12 +51,11 @@ log = logging.getLogger("gasgap.board")
 TEMPLATES_DIR = Path(__file__).resolve().parent / "templates"
 MAX_NAME_LENGTH = 80
 
-#: Words and shapes for each priority: the word is the signal, colour and shape repeat it.
-PRIORITY_LOOK = {
-    Priority.HIGH: ("High priority", "hi", "\u25b2"),  # triangle
-    Priority.MEDIUM: ("Medium priority", "med", "\u25c6"),  # diamond
-    Priority.LOW: ("Low priority", "lo", "\u25cf"),  # circle
-}
+NAME_COOKIE = "gasgap_ack_name"
+#: The acknowledger's name is remembered for a shift, then asked again.
+NAME_COOKIE_SECONDS = 12 * 3600
+#: Patients with a gas drawn this recently are on their unit's board even with no flag.
+RECENT_GASES = timedelta(hours=24)
 
 _env = Environment(
     loader=FileSystemLoader(TEMPLATES_DIR),
@@ -50,42 +63,6 @@ _env = Environment(
 )
 templates = Jinja2Templates(env=_env)
 router = APIRouter(include_in_schema=False)
-
-
-# --- view models ---------------------------------------------------------------------
-
-
-@dataclass
-class FlagView:
-    alert: Alert
-    word: str
-    css: str
-    shape: str
-    age: str
-    state: str
-    raised_local: str
-    events: list[AlertEvent] = field(default_factory=list)
-
-    @property
-    def is_open(self) -> bool:
-        return self.alert.state.is_open
-
-
-@dataclass
-class RowView:
-    patient_key: str
-    display: str
-    where: str
-    flags: list[FlagView]
-    latest: Derivation | None
-    latest_at: str
-    trace: Trace | None
-    patient_url: str
-
-    @property
-    def top(self) -> FlagView | None:
-        open_flags = [f for f in self.flags if f.is_open]
-        return open_flags[0] if open_flags else (self.flags[0] if self.flags else None)
 
 
 def display_for(patient_key: str, stored: str | None, location: Location | None, mode: str) -> str:
@@ -98,166 +75,160 @@ def display_for(patient_key: str, stored: str | None, location: Location | None,
         return patient_display(patient_key, location, "mrn-last4")
 
 
-def age_words(then: datetime, now: datetime) -> str:
-    """ "just now", "12 min", "3 h 05 min", "2 d 4 h": how long ago, at a glance."""
-    seconds = max(0, int((now - then).total_seconds()))
-    if seconds < 60:
-        return "just now"
-    minutes = seconds // 60
-    if minutes < 60:
-        return f"{minutes} min"
-    hours, minutes = divmod(minutes, 60)
-    if hours < 24:
-        return f"{hours} h {minutes:02d} min"
-    days, hours = divmod(hours, 24)
-    return f"{days} d {hours} h"
-
-
-def local_time(at: datetime | None, tz: tzinfo, now: datetime) -> str:
-    if at is None:
-        return "-"
-    local = at.astimezone(tz)
-    if local.date() == now.astimezone(tz).date():
-        return local.strftime("%H:%M")
-    return local.strftime("%d %b %H:%M")
-
-
-def flag_view(alert: Alert, now: datetime, tz: tzinfo) -> FlagView:
-    word, css, shape = PRIORITY_LOOK[alert.priority]
-    if alert.state.is_open:
-        age = age_words(alert.raised_at, now)
-        age = age if age == "just now" else f"{age} ago"
-    else:
-        age = f"closed {age_words(alert.closed_at or alert.updated_at, now)} ago"
-    return FlagView(
-        alert, word, css, shape, age, alert.state.value, local_time(alert.raised_at, tz, now)
-    )
-
-
-def patient_url(patient_key: str) -> str:
-    return "/board/patient/" + quote(patient_key, safe="")
-
-
 def unit_rows(conn: Any, unit: str, ctx: Any, now: datetime) -> list[RowView]:
-    """One row a patient of ``unit`` with an open or recently closed flag, the most
-    urgent first (priority, then the longest waiting)."""
+    """One row a patient of ``unit``: with an open flag, a flag closed within
+    ``recent_window``, or a gas drawn in the last 24 h; the most urgent first."""
     open_flags = alerts_store.open_alerts(conn, unit=unit)
     recent = alerts_store.recent_alerts(conn, now - ctx.recent_window, unit=unit)
     by_patient: dict[str, list[Alert]] = {}
     for alert in [*open_flags, *[a for a in recent if not a.state.is_open]]:
         by_patient.setdefault(alert.patient_key, []).append(alert)
+    for key in board_store.patients_with_gases_since(conn, unit, now - RECENT_GASES):
+        by_patient.setdefault(key, [])
     cards = board_store.patient_cards(conn, by_patient)
     rows = []
     for key, flags in by_patient.items():
         card = cards.get(key)
-        location = (card.location if card else None) or flags[0].location
-        series = current_derivations(conn, key, since=now - timedelta(hours=24))
-        latest = series[-1].derivation if series else _latest(conn, key)
-        rows.append(
-            RowView(
-                patient_key=key,
-                display=display_for(
-                    key, card.display_key if card else None, location, ctx.display_mode
-                ),
-                where=location.label() if location else "location unknown",
-                flags=[flag_view(a, now, ctx.site_tz) for a in flags],
-                latest=latest,
-                latest_at=local_time(latest.drawn_at if latest else None, ctx.site_tz, now),
-                trace=small_trace([s.derivation for s in series], now),
-                patient_url=patient_url(key),
-            )
-        )
+        series = [s.derivation for s in current_derivations(conn, key, since=now - RECENT_GASES)]
+        if not any(not d.estimated for d in series):
+            series = [s.derivation for s in current_derivations(conn, key)][-40:]
+        location = (card.location if card else None) or (flags[0].location if flags else None)
+        location = location or (series[-1].location if series else None)
+        display = display_for(key, card.display_key if card else None, location, ctx.display_mode)
+        where = location.label() if location else "location unknown"
+        rows.append(build_row(key, display, where, flags, series, ctx.site_tz, now))
         if ctx.guard is not None:
-            ctx.guard.register(key, rows[-1].display)
-    rows.sort(key=_urgency)
+            ctx.guard.register(key, display)
+    rows.sort(key=urgency)
     return rows
 
 
-def _latest(conn: Any, patient_key: str) -> Derivation | None:
-    series = current_derivations(conn, patient_key)
-    return series[-1].derivation if series else None
+# --- P/F plots (inline SVG, drawn here so the page needs no script) ---------------------
 
-
-def _urgency(row: RowView) -> tuple[int, int, float]:
-    top = row.top
-    if top is None:
-        return (1, 0, 0.0)
-    return (0 if top.is_open else 1, -top.alert.priority.rank, top.alert.raised_at.timestamp())
-
-
-# --- P/F traces (inline SVG, drawn here so the page needs no script) ---------------------
-
-#: P/F lines drawn on the traces: the bands of the site's rule table (P/F <= 300, 200,
-#: 100; the Berlin definition's cut-offs, reference sheet).
+#: P/F lines drawn on the plots: the bands of the site's rule table (P/F <= 300, 200,
+#: 100; the Berlin definition's cut-offs, reference sheet), against the same P/F the
+#: rule compares (adjusted for altitude when there is one).
 PF_LINES = (300.0, 200.0, 100.0)
-PF_TOP = 500.0
 
 
 @dataclass(frozen=True)
-class Trace:
-    """An SVG polyline's ``points`` in a ``width`` x ``height`` box, plus guide lines."""
+class Series:
+    """One plotted series: points, and how it is drawn (css class), and its name."""
 
-    width: int
-    height: int
+    name: str
+    css: str
     points: str
     dots: list[tuple[float, float, str]]
+    step: bool = False
+
+
+@dataclass(frozen=True)
+class Plot:
+    """One panel of the patient page's chart: an SVG box with series, guide lines and
+    time ticks in site time."""
+
+    title: str
+    width: int
+    height: int
+    series: list[Series]
     lines: list[tuple[float, str]]
     ticks: list[tuple[float, str]]
+    y_labels: list[tuple[float, str]]
+    axis: str
 
 
-def _y(value: float, height: int, pad: int) -> float:
-    clipped = min(max(value, 0.0), PF_TOP)
-    return round(pad + (1 - clipped / PF_TOP) * (height - 2 * pad), 1)
+def _scale(lo: float, hi: float, height: int, pad: int) -> Any:
+    def y(value: float) -> float:
+        clipped = min(max(value, lo), hi)
+        return round(pad + (1 - (clipped - lo) / (hi - lo)) * (height - 2 * pad), 1)
+
+    return y
 
 
-def _trace(
-    series: list[Derivation],
-    start: datetime,
-    end: datetime,
-    width: int,
-    height: int,
-    pad: int,
-    tz: tzinfo | None = None,
-) -> Trace | None:
-    """P/F against time in [start, end]; None when there is nothing to draw."""
-    points = [(d.drawn_at, d.pf_ratio) for d in series if d.pf_ratio is not None]
-    points = [(t, v) for t, v in points if start <= t <= end]
-    if not points:
-        return None
+def _x_axis(start: datetime, end: datetime, width: int, left: int, right: int) -> Any:
     span = max((end - start).total_seconds(), 1.0)
 
     def x(at: datetime) -> float:
-        return round(pad + (at - start).total_seconds() / span * (width - 2 * pad), 1)
+        return round(left + (at - start).total_seconds() / span * (width - left - right), 1)
 
-    xy = [(x(t), _y(v, height, pad), f"{v:.0f}") for t, v in points]
-    ticks: list[tuple[float, str]] = []
-    if tz is not None:
-        ticks = [
-            (x(start), start.astimezone(tz).strftime("%d %b %H:%M")),
-            (x(end), end.astimezone(tz).strftime("%d %b %H:%M")),
-        ]
-    return Trace(
-        width,
-        height,
-        " ".join(f"{a},{b}" for a, b, _ in xy),
-        xy,
-        [(_y(line, height, pad), f"{line:.0f}") for line in PF_LINES],
-        ticks,
-    )
+    return x
 
 
-def small_trace(series: list[Derivation], now: datetime) -> Trace | None:
-    """The last 24 h of P/F, small enough for a board row."""
-    return _trace(series, now - timedelta(hours=24), now, 200, 72, 5)
+def _ticks(start: datetime, end: datetime, x: Any, tz: tzinfo) -> list[tuple[float, str]]:
+    """Five ticks across the span, in site time with the date."""
+    step = (end - start) / 4
+    return [(x(start + step * i), clock_words(start + step * i, tz)) for i in range(5)]
 
 
-def full_plot(series: list[Derivation], now: datetime, tz: tzinfo | None = None) -> Trace | None:
-    """Every P/F of the patient, from the first draw to now, for the patient page."""
-    drawn = [d.drawn_at for d in series if d.pf_ratio is not None]
-    if not drawn:
-        return None
-    start = min(min(drawn), now - timedelta(hours=24))
-    return _trace(series, start, now, 720, 260, 24, tz)
+def patient_plots(
+    series: list[Derivation], now: datetime, tz: tzinfo
+) -> list[Plot]:
+    """Three panels over one time axis: the P/F the rules compare (measured P/F beside
+    it when an altitude adjustment applies), FiO2 as steps, and S/F estimated from SpO2
+    in its own panel with its own scale (S/F is not P/F)."""
+    gases = [d for d in series if not d.estimated]
+    estimates = [d for d in series if d.estimated and d.sf_ratio is not None]
+    times = [d.drawn_at for d in series]
+    if not times:
+        return []
+    start = min(min(times), now - timedelta(hours=24))
+    end = max(max(times), now)
+    width, left, right = 760, 46, 12
+    x = _x_axis(start, end, width, left, right)
+    ticks = _ticks(start, end, x, tz)
+    axis = "Time: " + zone_words(tz, now)
+    plots = []
+    pf_points = [(d.drawn_at, *compared_pf(d)) for d in gases if compared_pf(d)[0] is not None]
+    if pf_points:
+        y = _scale(0.0, 500.0, 200, 14)
+        adjusted = any(a for _, _, a in pf_points)
+        name = "P/F adjusted for altitude (rules compare this)" if adjusted else "P/F"
+        main = _series(name, "pf", [(t, v) for t, v, _ in pf_points], x, y)
+        shown = [main]
+        if adjusted:
+            measured = [(d.drawn_at, d.pf_ratio) for d in gases if d.pf_ratio is not None]
+            shown.append(_series("P/F as measured", "pf-measured", measured, x, y))
+        plots.append(Plot(
+            "P/F from blood gases, mmHg", width, 200, shown,
+            [(y(v), f"{v:.0f}") for v in PF_LINES], ticks,
+            [(y(v), f"{v:.0f}") for v in (0.0, 100.0, 200.0, 300.0, 400.0, 500.0)], axis,
+        ))
+    fio2 = sorted((d.drawn_at, d.fio2) for d in series if d.fio2 is not None)
+    if fio2:
+        y = _scale(0.2, 1.0, 110, 10)
+        points = fio2 + [(end, fio2[-1][1])]
+        plots.append(Plot(
+            "FiO2 in effect (fraction), drawn as steps", width, 110,
+            [_series("FiO2", "fio2", points, x, y, step=True, digits=2)], [], ticks,
+            [(y(v), f"{v:.1f}") for v in (0.2, 0.6, 1.0)], axis,
+        ))
+    if estimates:
+        y = _scale(0.0, 500.0, 140, 12)
+        sf_points = [(d.drawn_at, d.sf_ratio) for d in estimates]
+        plots.append(Plot(
+            "S/F estimated from SpO2 (not a blood gas; no unit)", width, 140,
+            [_series("S/F estimate", "sf", sf_points, x, y)], [], ticks,
+            [(y(v), f"{v:.0f}") for v in (0.0, 235.0, 500.0)], axis,
+        ))
+    return plots
+
+
+def _series(
+    name: str, css: str, points: Sequence[tuple[datetime, float | None]], x: Any, y: Any,
+    *, step: bool = False, digits: int = 0,
+) -> Series:
+    xy = [(x(t), y(v), f"{v:.{digits}f}") for t, v in points if v is not None]
+    if step:
+        path: list[str] = []
+        for i, (a, b, _) in enumerate(xy):
+            if i:
+                path.append(f"{a},{xy[i - 1][1]}")
+            path.append(f"{a},{b}")
+        line = " ".join(path)
+        xy = xy[:-1]  # the last point only carries the step to now
+    else:
+        line = " ".join(f"{a},{b}" for a, b, _ in xy)
+    return Series(name, css, line, xy, step)
 
 
 # --- routes --------------------------------------------------------------------------
@@ -274,20 +245,26 @@ def _login_redirect(request: Request) -> Response:
     return RedirectResponse("/board/login?next=" + quote(request.url.path, safe=""), 303)
 
 
-def _page(request: Request, name: str, status_code: int = 200, **values: Any) -> HTMLResponse:
+def _page(request: Request, template: str, status_code: int = 200, **values: Any) -> HTMLResponse:
     ctx = request.app.state.ctx
+    now = ctx.clock()
     return templates.TemplateResponse(
         request,
-        name,
+        template,
         {
             "site": ctx.site_name,
             "advisory": ADVISORY,
             "refresh": ctx.refresh_seconds,
-            "now": local_time(ctx.clock(), ctx.site_tz, ctx.clock()),
+            "now": clock_words(now, ctx.site_tz),
+            "zone": zone_words(ctx.site_tz, now),
             **values,
         },
         status_code=status_code,
     )
+
+
+def _missing(request: Request, what: str, hint: str = "") -> HTMLResponse:
+    return _page(request, "missing.html", 404, what=what, hint=hint, refresh=None)
 
 
 def _guarded(request: Request) -> Response | None:
@@ -347,9 +324,10 @@ def units(request: Request) -> Response:
     ctx = request.app.state.ctx
     with ctx.db.begin(read_only=True) as conn:
         names = board_store.known_units(conn)
-    return _page(
-        request, "units.html", units=[(u, "/board/unit/" + quote(u, safe="")) for u in names]
-    )
+        counts = board_store.open_flag_counts(conn)
+    shown = [unit_count(u, counts.get(u, {})) for u in names]
+    shown.sort(key=lambda u: (-u.total, u.name))
+    return _page(request, "units.html", units=shown, unplaced=sum(counts.get("", {}).values()))
 
 
 @router.get("/board/unit/{unit}")
@@ -359,16 +337,53 @@ def unit_page(request: Request, unit: str) -> Response:
     ctx = request.app.state.ctx
     now = ctx.clock()
     with ctx.db.begin(read_only=True) as conn:
+        names = board_store.known_units(conn)
+        if unit not in names:
+            near = [n for n in names if n.casefold() == unit.casefold()]
+            hint = f"Did you mean {near[0]}?" if near else ""
+            return _missing(request, "unknown unit", hint)
         rows = unit_rows(conn, unit, ctx, now)
+    open_rows = [r for r in rows if r.open_flags]
+    done = _done_note(request, rows)
     return _page(
         request,
         "unit.html",
         unit=unit,
         rows=rows,
-        now=local_time(now, ctx.site_tz, now),
+        open_rows=len(open_rows),
+        open_flags=sum(len(r.open_flags) for r in rows),
+        by_priority=_priority_totals(rows),
+        any_adjusted=any(r.gas and r.gas.pf_adjusted for r in rows),
         back=request.url.path,
+        done=done,
+        acked_row=request.query_params.get("row") if done else None,
+        ack_name=_ack_name(request),
         message=request.query_params.get("done"),
     )
+
+
+def _priority_totals(rows: Sequence[RowView]) -> list[tuple[str, int]]:
+    totals: dict[str, int] = {}
+    for row in rows:
+        for flag in row.open_flags:
+            totals[flag.word] = totals.get(flag.word, 0) + 1
+    order = ("High priority", "Medium priority", "Low priority")
+    return [(w, totals[w]) for w in order if totals.get(w)]
+
+
+def _done_note(request: Request, rows: Sequence[RowView]) -> str | None:
+    """After an acknowledgement: which patient's flags, by whom (from the query)."""
+    if request.query_params.get("done") != "acknowledged":
+        return None
+    target = request.query_params.get("row", "")
+    row = next((r for r in rows if r.anchor == target), None)
+    who = _ack_name(request)
+    count = request.query_params.get("n", "")
+    if row is None:
+        return "Acknowledgement recorded."
+    what = f"{count} flag{'' if count == '1' else 's'}" if count.isdigit() else "flags"
+    by = f" as {who}" if who else ""
+    return f"Acknowledged {what} for {row.display} ({row.where}){by}."
 
 
 @router.get("/board/patient/{patient_key:path}")
@@ -381,32 +396,88 @@ def patient_page(request: Request, patient_key: str) -> Response:
         card = board_store.patient_cards(conn, [patient_key]).get(patient_key)
         series = [s.derivation for s in current_derivations(conn, patient_key)]
         flags = board_store.patient_alerts(conn, patient_key)
-        views = [flag_view(a, now, ctx.site_tz) for a in flags]
+        views = [flag_view(a, ctx.site_tz, now) for a in flags]
         for view in views:
             view.events = alerts_store.alert_events(conn, alert_id=view.alert.alert_id)
     if card is None and not series and not flags:
-        return _page(request, "missing.html", 404)
+        return _missing(request, "unknown patient")
     location = card.location if card else (series[-1].location if series else None)
     display = display_for(
         patient_key, card.display_key if card else None, location, ctx.display_mode
     )
     if ctx.guard is not None:
         ctx.guard.register(patient_key, display)
-    rows = [(d, local_time(d.drawn_at, ctx.site_tz, now)) for d in reversed(series)]
+    where = location.label() if location else "location unknown"
+    row = build_row(patient_key, display, where, flags, series, ctx.site_tz, now)
+    gases = [d for d in reversed(series) if not d.estimated]
+    estimates = [d for d in reversed(series) if d.estimated]
+    common, notes = _notes(gases)
     return _page(
         request,
         "patient.html",
+        row=row,
         display=display,
-        where=location.label() if location else "location unknown",
-        rows=rows,
+        where=where,
         flags=views,
-        plot=full_plot(series, now, ctx.site_tz),
+        gases=[(d, clock_words(d.drawn_at, ctx.site_tz), compared_pf(d), n)
+               for d, n in zip(gases, notes, strict=True)],
+        common_notes=common,
+        estimates=[(d, clock_words(d.drawn_at, ctx.site_tz)) for d in estimates],
+        any_adjusted=any(d.pf_ratio_adjusted is not None for d in gases),
+        plots=patient_plots(series, now, ctx.site_tz),
         back=request.url.path,
+        ack_name=_ack_name(request),
+        message=request.query_params.get("done"),
         unit_url=("/board/unit/" + quote(location.unit, safe=""))
         if location and location.unit
         else "/board",
-        local=lambda at: local_time(at, ctx.site_tz, now),
+        local=lambda at: clock_words(at, ctx.site_tz),
     )
+
+
+def _notes(gases: Sequence[Derivation]) -> tuple[list[str], list[list[str]]]:
+    """Notes said on every gas go above the table once; the rest stay on their row."""
+    per_row = []
+    for d in gases:
+        marks = sorted(f.value for f in d.flags)
+        if d.preliminary:
+            marks.insert(0, "preliminary")
+        if d.specimen.value != "arterial":
+            marks.insert(0, f"{d.specimen.value} sample")
+        per_row.append(marks)
+    common = sorted(set.intersection(*(set(m) for m in per_row))) if len(per_row) > 1 else []
+    return common, [[m for m in marks if m not in common] for marks in per_row]
+
+
+@router.post("/board/acknowledge")
+async def acknowledge_patient(request: Request) -> Response:
+    """One acknowledgement for the flags a row showed (their ids travel with the form,
+    so a flag raised after the page was drawn is not acknowledged unseen)."""
+    if board_user(request) is None:
+        return _login_redirect(request)
+    if not same_origin(request):
+        return Response("form sent from another site", status_code=403)
+    form = _form_lists(await request.body())
+    back = _safe_next(_first(form, "back", "/board"))
+    row = _first(form, "row", "")
+    by = " ".join(_first(form, "by", "").split())[:MAX_NAME_LENGTH]
+    if not by:
+        return RedirectResponse(_with_note(back, "name-needed", row), 303)
+    ctx = request.app.state.ctx
+    done = 0
+    for alert_id in form.get("flag", [])[:50]:
+        try:
+            ctx.pipeline.acknowledge(alert_id, by, now=ctx.clock())
+            done += 1
+        except LookupError:
+            continue
+        except MonitorError:  # closed or already acknowledged meanwhile: nothing to do
+            continue
+    log.info("%d flag(s) acknowledged on the board", done)
+    note = "acknowledged" if done else "not-open"
+    response = RedirectResponse(_with_note(back, note, row, done), 303)
+    _remember_name(response, by, request.app.state.security)
+    return response
 
 
 @router.post("/board/flags/{alert_id}/acknowledge")
@@ -428,16 +499,47 @@ async def acknowledge(request: Request, alert_id: str) -> Response:
     except MonitorError:
         return RedirectResponse(_with_note(back, "not-open"), 303)
     log.info("flag acknowledged on the board")
-    return RedirectResponse(_with_note(back, "acknowledged"), 303)
+    response = RedirectResponse(_with_note(back, "acknowledged", n=1), 303)
+    _remember_name(response, by, request.app.state.security)
+    return response
 
 
-def _with_note(path: str, note: str) -> str:
-    return f"{path}?done={note}"
+def _ack_name(request: Request) -> str:
+    return unquote(request.cookies.get(NAME_COOKIE, ""))[:MAX_NAME_LENGTH]
+
+
+def _remember_name(response: Response, by: str, security: Any) -> None:
+    """The acknowledger's name, kept for a shift so the next form is filled in."""
+    response.set_cookie(
+        NAME_COOKIE,
+        quote(by, safe=" "),
+        httponly=True,
+        samesite="strict",
+        secure=security.secure_cookies,
+        max_age=NAME_COOKIE_SECONDS,
+    )
+
+
+def _with_note(path: str, note: str, row: str = "", n: int | None = None) -> str:
+    query = f"{path}?done={note}"
+    if n is not None:
+        query += f"&n={n}"
+    if row:
+        query += f"&row={quote(row, safe='')}#{quote(row, safe='')}"
+    return query
 
 
 def _form(body: bytes) -> dict[str, str]:
-    parsed = parse_qs(body.decode("utf-8", errors="replace"), keep_blank_values=True)
-    return {k: v[0] for k, v in parsed.items()}
+    return {k: v[0] for k, v in _form_lists(body).items()}
+
+
+def _form_lists(body: bytes) -> dict[str, list[str]]:
+    return parse_qs(body.decode("utf-8", errors="replace"), keep_blank_values=True)
+
+
+def _first(form: dict[str, list[str]], key: str, default: str) -> str:
+    values = form.get(key)
+    return values[0] if values else default
 
 
 def _safe_next(target: str) -> str:

@@ -107,19 +107,19 @@ def test_board_shows_flags_acknowledges_and_escapes(board: Running) -> None:
             ARTIFACTS.mkdir(exist_ok=True)
             page.screenshot(path=str(ARTIFACTS / "board.png"), full_page=True)
 
-            row = page.locator("li.row", has_text="HM700101")
-            row.locator("input[name=by]").first.fill("Mara Quenby")
-            row.locator("button", has_text="Acknowledge").first.click()
-            page.wait_for_url("**/board/unit/ICU-North?done=acknowledged")
-            assert "Acknowledgement recorded" in page.inner_text("body")
-            assert "by Mara Quenby" in page.locator("li.row", has_text="HM700101").inner_text()
+            row = page.locator("tr", has_text="HM700101")
+            row.locator("input[name=by]").fill("Mara Quenby")
+            row.locator("button", has_text="Acknowledge").click()
+            page.wait_for_url("**/board/unit/ICU-North?done=acknowledged*")
+            assert "Acknowledged 1 flag for HM700101" in page.inner_text("body")
+            assert "by Mara Quenby" in page.locator("tr", has_text="HM700101").inner_text()
 
             # The patient page of the hostile key: series, plot and audit trail, as text.
             page.locator("a.patient", has_text="<img").click()
             page.wait_for_load_state()
             assert HOSTILE in page.text_content("h1")
             assert page.evaluate("window.gasgapPwned") is None
-            assert page.locator("svg.plot polyline").count() == 1
+            assert page.locator("svg.plot polyline").count() >= 1
 
             page.goto(board.base + "/board/unit/ICU-North")
             page.locator("a.patient", has_text="HM700101").click()

@@ -35,7 +35,9 @@ class LogCounter(logging.Handler):
         self.lines: list[str] = []
 
     def emit(self, record: logging.LogRecord) -> None:
-        self.lines.append(record.getMessage())
+        from monitor.logs import JsonFormatter
+
+        self.lines.append(JsonFormatter().format(record))
 
 
 @dataclass
@@ -76,7 +78,7 @@ def peer(request: pytest.FixtureRequest) -> Iterator[Peer]:
         ref_to_key = {log_ref(n): n.idempotency_key for n in NOTIFICATIONS}
 
         def keys() -> Counter[str]:
-            return Counter(ref_to_key[json.loads(line)["ref"]] for line in handler.lines)
+            return Counter(ref_to_key[json.loads(line)["flag_ref"]] for line in handler.lines)
 
         yield Peer(channel, lambda: None, lambda: None, keys, can_go_down=False)
         logger.removeHandler(handler)

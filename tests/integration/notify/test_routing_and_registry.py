@@ -67,10 +67,16 @@ def test_log_channel_writes_one_json_line_without_the_patient_key(
         result = channel.send(n)
     assert result.ok
     [record] = [r for r in caplog.records if r.name == "gasgap.notify.house-log"]
-    line = json.loads(record.getMessage())
-    assert line["patient"] == "HGH bed ICU-N-1"
-    assert line["advisory"] == ADVISORY
-    assert line["numbers"]["pf_ratio"]["value"] == 155.0
-    assert "hgh-pt-0001" not in record.getMessage()
-    assert n.idempotency_key not in record.getMessage()  # it may embed the patient key
+    from monitor.logs import JsonFormatter
+
+    # Through the service's own JSON formatter: one object with plain fields, no JSON
+    # text nested inside a string.
+    text = JsonFormatter().format(record)
+    line = json.loads(text)
+    assert line["flag_patient"] == "HGH bed ICU-N-1"
+    assert line["flag_advisory"] == ADVISORY
+    assert json.loads(line["flag_number_pf_ratio"])["value"] == 155.0
+    assert not str(line["message"]).lstrip().startswith("{")
+    assert "hgh-pt-0001" not in text
+    assert n.idempotency_key not in text  # it may embed the patient key
     assert record.args  # lazy %s formatting, not a pre-built string

@@ -125,7 +125,7 @@ def test_board_uses_basic_auth_when_a_board_user_is_configured(service: Service)
     client = AppClient(service.app)
     assert client.get("/board/unit/ICU-North").status_code == 401
     assert client.get("/board/unit/ICU-North", auth=("charge", "wrong")).status_code == 401
-    page = client.get("/board/unit/ICU-North", auth=("charge", "board-password-in-process"))
+    page = client.get("/board", auth=("charge", "board-password-in-process"))
     assert page.status_code == 200
     assert "Advisory only" in page.text
 
