@@ -2,16 +2,23 @@
 resources, and files of either, streamed.
 
 Each unit carries its record time (when the source sent it: MSH-7 for HL7 v2,
-``meta.lastUpdated`` for FHIR), which replay uses to play a feed in the order it was
-sent, and ingest uses to stamp when it was received.
+``meta.lastUpdated`` for FHIR). Readings carry their own known time (OBX-19 / MSH-7,
+``issued`` / ``meta.lastUpdated``). A file load goes through ``monitor.history``:
+everything is stored first and each patient's timeline is then stepped in known-time
+order, so neither the order of the files nor the order of their lines matters.
+
+One ``SourceContext`` carries one patient register (``monitor.engine.identity``):
+every reader of a load learns from it and into it, so a Patient read from one file
+names the person of an Observation read from another.
 """
 
 from __future__ import annotations
 
 import heapq
 import logging
+from collections import Counter
 from collections.abc import Callable, Iterable, Iterator, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, tzinfo
 from pathlib import Path
 from typing import Any
@@ -24,6 +31,8 @@ from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, fhir_insta
 from adapters.hl7v2 import Hl7Error, parse_oru
 from adapters.hl7v2.files import iter_hl7_file
 from adapters.hl7v2.parse import parse_dtm
+from monitor.engine.identity import PatientRegister, Rekey, RegisterSettings
+from monitor.engine.model import Reading
 from monitor.pipeline import BatchReport, Inbound, Pipeline, Rejected
 
 log = logging.getLogger("gasgap.ingest")
@@ -51,6 +60,14 @@ class SourceContext:
     hl7_source: str = HL7_SOURCE
     fhir_source: str = FHIR_SOURCE
     strict_fhir: bool = False
+    #: The patient register every reader of this context shares (None: each reader
+    #: keeps its own, as before a load wires one in).
+    register: PatientRegister | None = None
+
+    def register_settings(self) -> RegisterSettings:
+        if self.register is not None:
+            return self.register.settings
+        return RegisterSettings(patient_id_system=self.patient_id_system)
 
 
 @dataclass(slots=True)
@@ -98,16 +115,30 @@ def inbound_from_hl7(
         source_system=name,
         site_tz=context.site_tz,
         patient_id_system=context.patient_id_system,
+        register_settings=context.register_settings(),
     )
     rejected = [
         Rejected(f"hl7:{name}", raw, f"message {parsed.control_id} {r}") for r in parsed.rejected
     ]
+    readings = list(parsed.readings)
+    rekeys: list[Rekey] = []
+    if context.register is not None:
+        for link in parsed.links:
+            rekeys += context.register.learn(link).rekeys
+        readings = [_canonical(r, context.register) for r in readings]
     return Inbound(
-        readings=list(parsed.readings),
+        readings=readings,
         rejected=rejected,
         skipped_codes=parsed.skipped_codes,
         ignored=sum(parsed.ignored.values()),
+        links=list(parsed.links),
+        rekeys=rekeys,
     )
+
+
+def _canonical(r: Reading, register: PatientRegister) -> Reading:
+    key = register.canonical(r.patient_key)
+    return r if key == r.patient_key else replace(r, patient_key=key)
 
 
 def hl7_units(
@@ -139,12 +170,16 @@ def hl7_units(
 # --- FHIR ----------------------------------------------------------------------------------
 
 
-def _inbound_from_fhir(batch: FhirBatch, source: str) -> Inbound:
+def inbound_from_fhir(batch: FhirBatch, source: str) -> Inbound:
+    """What a FHIR reader made of some resources, as one Inbound unit."""
     return Inbound(
         readings=list(batch.readings),
         rejected=[Rejected(f"fhir:{source}", r.raw, r.reason) for r in batch.rejections],
         skipped_codes=batch.skipped_codes,
         ignored=sum(batch.skipped.values()),
+        links=list(batch.links),
+        rekeys=list(batch.rekeys),
+        panel_members=list(batch.panel_members),
     )
 
 
@@ -165,6 +200,8 @@ def fhir_builder(context: SourceContext, received_at: Callable[[], datetime]) ->
         patient_id_system=context.patient_id_system,
         received_at_fn=received_at,
         strict=context.strict_fhir,
+        register=context.register,
+        register_settings=context.register_settings(),
     )
 
 
@@ -184,19 +221,6 @@ def ndjson_units(
                 path.name,
             )
             continue
-        rtype = item.get("resourceType")
-        if rtype not in TAKEN_RESOURCES:
-            reason = (
-                f"{path.name} line {number}: resourceType {rtype!r} is not taken "
-                f"(only {', '.join(TAKEN_RESOURCES)})"
-            )
-            raw_line = orjson.dumps(item)
-            yield Unit(
-                Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw_line, reason)]),
-                None,
-                path.name,
-            )
-            continue
         record_time = fhir_record_time(item)
         builder.note_panels([item])
         batch = builder.read(item, received_at=record_time or received_at())
@@ -204,11 +228,14 @@ def ndjson_units(
             batch.rejections[i] = type(rej)(
                 rej.source, f"{path.name} line {number}: {rej.reason}", rej.raw
             )
-        yield Unit(_inbound_from_fhir(batch, context.fhir_source), record_time, path.name)
+        yield Unit(inbound_from_fhir(batch, context.fhir_source), record_time, path.name)
 
 
 def json_units(
-    path: Path, context: SourceContext, received_at: Callable[[], datetime]
+    path: Path,
+    context: SourceContext,
+    received_at: Callable[[], datetime],
+    builder: FhirReadingBuilder | None = None,
 ) -> Iterator[Unit]:
     raw = path.read_bytes()
     try:
@@ -221,7 +248,7 @@ def json_units(
             path.name,
         )
         return
-    builder = fhir_builder(context, received_at)
+    builder = builder or fhir_builder(context, received_at)
     if isinstance(data, dict) and data.get("resourceType") == "Bundle":
         batch = FhirBatch()
         entries = list(bundle_entries(data, batch.skipped))
@@ -231,11 +258,11 @@ def json_units(
         ):
             builder.read(resource, full_url=full_url, into=batch)
         yield Unit(
-            _inbound_from_fhir(batch, context.fhir_source), fhir_record_time(data), path.name
+            inbound_from_fhir(batch, context.fhir_source), fhir_record_time(data), path.name
         )
     elif isinstance(data, dict):
         yield Unit(
-            _inbound_from_fhir(builder.read_all([data]), context.fhir_source),
+            inbound_from_fhir(builder.read_all([data]), context.fhir_source),
             fhir_record_time(data),
             path.name,
         )
@@ -270,16 +297,43 @@ def file_kind(path: Path) -> str:
 
 
 def file_units(
-    path: Path, context: SourceContext, received_at: Callable[[], datetime] | None = None
+    path: Path,
+    context: SourceContext,
+    received_at: Callable[[], datetime] | None = None,
+    builder: FhirReadingBuilder | None = None,
 ) -> Iterator[Unit]:
-    """The units of one file, streamed in file order."""
+    """The units of one file, streamed in file order (``builder``: the FHIR reader
+    shared by every file of a load)."""
     clock = received_at or (lambda: datetime.now(UTC))
     kind = file_kind(path)
     if kind == "hl7":
         return hl7_units(path, context, clock)
     if kind == "ndjson":
-        return ndjson_units(path, context, clock)
-    return json_units(path, context, clock)
+        return ndjson_units(path, context, clock, builder)
+    return json_units(path, context, clock, builder)
+
+
+def context_resources(path: Path) -> Iterator[dict[str, Any]]:
+    """The resources of a FHIR file that give context (Patient, Encounter, Specimen,
+    DiagnosticReport, panel Observations): a first pass over an export, so the
+    Observations read next find their patient whatever file holds it."""
+    kind = file_kind(path)
+    if kind == "hl7":
+        return
+    if kind == "ndjson":
+        for _, item in iter_ndjson(path):
+            if isinstance(item, dict):
+                yield item
+        return
+    try:
+        data = orjson.loads(path.read_bytes())
+    except orjson.JSONDecodeError:
+        return
+    if isinstance(data, dict) and data.get("resourceType") == "Bundle":
+        for resource, _ in bundle_entries(data, Counter()):
+            yield resource
+    elif isinstance(data, dict):
+        yield data
 
 
 def _timed(units: Iterator[Unit], index: int) -> Iterator[tuple[datetime, int, int, Unit]]:
@@ -313,40 +367,20 @@ def ingest_files(
     context: SourceContext,
     *,
     now: Callable[[], datetime],
-    batch_size: int = 200,
+    batch_size: int = 500,
     progress: bool = False,
+    workers: int = 1,
 ) -> BatchReport:
-    """Load files through the pipeline in order of record time, several units to a
-    transaction. Each unit is judged at its own record time (the wall clock when the
-    source gave none), exactly as the live service and replay judge it, so ingesting a
-    feed raises the same flags a replay of it shows."""
-    report = BatchReport()
-    files = list(paths)
-    bar = _progress(files, enabled=progress)
-    pending: list[tuple[Inbound, datetime]] = []
-    size = 0
-    try:
-        for unit in merged_units(files, context, now):
-            pending.append((unit.inbound, unit.record_time or now()))
-            size += len(unit.inbound.readings) + len(unit.inbound.rejected)
-            if size >= batch_size:
-                for one in pipeline.accept_many(pending):
-                    report.merge(one)
-                pending, size = [], 0
-            if bar is not None:
-                bar.update(1)
-        if pending:
-            for one in pipeline.accept_many(pending):
-                report.merge(one)
-    finally:
-        if bar is not None:
-            bar.close()
-    return report
+    """Load files into the database (``monitor.history``): every file read and stored
+    first, then each patient's timeline stepped in known-time order, so the order of
+    the files and of their lines changes nothing. Flags standing on data older than the
+    site's horizon when they are computed (``now()``) are recorded as historical and
+    never sent."""
+    from monitor.history import LoadOptions, load_files
 
-
-def _progress(files: list[Path], *, enabled: bool) -> Any:
-    if not enabled:
-        return None
-    from tqdm import tqdm
-
-    return tqdm(desc="ingest", unit=" units", dynamic_ncols=True, leave=False)
+    result = load_files(
+        list(paths), pipeline, context,
+        LoadOptions(seen_at=now(), workers=workers, batch_size=batch_size, progress=progress),
+        received_at=now,
+    )
+    return result.report

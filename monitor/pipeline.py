@@ -35,6 +35,7 @@ from adapters.notify.routing import route
 from monitor.engine import alerts
 from monitor.engine.alerts import AlertSettings
 from monitor.engine.derive import DerivationSettings
+from monitor.engine.identity import PatientLink, Rekey
 from monitor.engine.model import Alert, AlertEvent, Derivation, Reading
 from monitor.engine.pairing import PairingSettings
 from monitor.engine.rules import RuleSet, default_rules
@@ -50,6 +51,7 @@ from storage import alerts as alerts_store
 from storage import derivations as derivations_store
 from storage import outbox
 from storage import quarantine as quarantine_store
+from storage import register as register_store
 from storage import timelines as timelines_store
 from storage.db import Database
 from storage.locks import patient_lock
@@ -80,12 +82,21 @@ class Inbound:
     rejected: list[Rejected] = field(default_factory=list)
     skipped_codes: Counter[str] = field(default_factory=Counter)
     ignored: int = 0
+    #: What the patient register learnt from this input: names of one person, the
+    #: moves of rows from a provisional key to the person's key, and panel members
+    #: that arrived before their panel.
+    links: list[PatientLink] = field(default_factory=list)
+    rekeys: list[Rekey] = field(default_factory=list)
+    panel_members: list[tuple[str, str]] = field(default_factory=list)
 
     def extend(self, other: Inbound) -> None:
         self.readings.extend(other.readings)
         self.rejected.extend(other.rejected)
         self.skipped_codes.update(other.skipped_codes)
         self.ignored += other.ignored
+        self.links.extend(other.links)
+        self.rekeys.extend(other.rekeys)
+        self.panel_members.extend(other.panel_members)
 
 
 @dataclass(slots=True)
@@ -247,7 +258,103 @@ class Pipeline:
             self.write_step(conn, patient_key, step, now, report)
             revision = timelines_store.bump_revision(conn, patient_key)
             self._remember(patient_key, revision, timeline)
+        for joined in sorted(self._identity(conn, inbound, now)):
+            # rows of another key moved onto this patient: pair and derive them again
+            patient_lock(conn, joined)
+            self._cache.pop(joined, None)
+            timeline = self.restore(conn, joined, [])
+            self.write_step(conn, joined, timeline.refresh(seen_at=now), now, report)
+            self._remember(joined, timelines_store.bump_revision(conn, joined), timeline)
         return report
+
+    def _identity(self, conn: Connection, inbound: Inbound, now: datetime) -> set[str]:
+        """Keep what the register learnt; move rows of provisional keys onto the
+        person's key. Returns the keys that took rows from another key."""
+        if inbound.links:
+            register_store.save_links(conn, inbound.links, at=now)
+        joined: set[str] = set()
+        for move in inbound.rekeys:
+            if move.old == move.new:
+                continue
+            patient_lock(conn, move.new)
+            register_store.rekey_patient(conn, move.old, move.new, at=now)
+            self._cache.pop(move.old, None)
+            joined.add(move.new)
+        if inbound.panel_members:
+            register_store.assign_panels(conn, inbound.panel_members)
+        return joined
+
+    # --- the historical path: store first, step each patient once ----------------------
+
+    def stage(self, units: Sequence[tuple[Inbound, datetime]]) -> tuple[BatchReport, set[str]]:
+        """Historical loads: quarantine what was refused and store the readings as not
+        yet stepped, in one transaction; ``monitor.history`` then steps each patient's
+        timeline once. Returns the report and the keys that took rows of another key."""
+        report = BatchReport()
+        joined: set[str] = set()
+        with self.db.begin() as conn:
+            good: list[Reading] = []
+            for inbound, now in units:
+                report.read += len(inbound.readings) + len(inbound.rejected)
+                report.ignored += inbound.ignored
+                report.skipped_codes.update(inbound.skipped_codes)
+                for rejected in inbound.rejected:
+                    self._quarantine(conn, rejected, now, report)
+                good += self._screen_times(conn, inbound.readings, now, report)
+            if good:
+                self.note_patients(conn, good)
+                result = store_readings(conn, good, processed=False)
+                report.stored += result.stored
+                report.duplicates += result.duplicates
+            for inbound, now in units:
+                joined |= self._identity(conn, inbound, now)
+        return report, joined
+
+    def step_pending(
+        self,
+        conn: Connection,
+        patient_key: str,
+        *,
+        seen_at: datetime | None,
+        simulate_escalation: bool = False,
+        until: datetime | None = None,
+        refresh: bool = False,
+    ) -> tuple[StepResult, list[str]]:
+        """Step the patient's timeline with its readings stored but not yet stepped
+        (pure computation on what ``conn`` reads; nothing written). Returns what
+        changed and the deliveries stepped."""
+        new = timelines_store.unprocessed_readings(conn, patient_key)
+        settings = self.settings.timeline(simulate_escalation=simulate_escalation)
+        probe = PatientTimeline(patient_key, settings)
+        since = probe.needs_from(new) - timedelta(days=1) if new else _NEVER
+        state = timelines_store.timeline_state(conn, patient_key, since)
+        timeline = PatientTimeline.restore(
+            patient_key, settings,
+            readings=state.readings, derivations=state.derivations,
+            open_alerts=state.open_alerts, last_closed=state.last_closed,
+            birth_date=state.birth_date, instant=state.instant, covers_from=since,
+        )
+        step = timeline.refresh(seen_at=seen_at) if refresh else StepResult()
+        step.extend(timeline.advance(new, seen_at=seen_at))
+        if simulate_escalation and until is not None:
+            step.extend(timeline.escalate_until(until))
+        return step, [r.delivery_id for r in new]
+
+    def finish_pending(
+        self,
+        conn: Connection,
+        patient_key: str,
+        step: StepResult,
+        deliveries: Sequence[str],
+        *,
+        seen_at: datetime | None,
+        report: BatchReport,
+    ) -> None:
+        """Write what ``step_pending`` computed and mark its readings stepped."""
+        self.write_step(conn, patient_key, step, seen_at, report)
+        timelines_store.mark_processed(conn, patient_key, deliveries)
+        timelines_store.bump_revision(conn, patient_key)
+        self._cache.pop(patient_key, None)
 
     def _cached(
         self, conn: Connection, patient_key: str, new: Sequence[Reading]
@@ -353,7 +460,7 @@ class Pipeline:
         conn: Connection,
         patient_key: str,
         step: StepResult,
-        seen_at: datetime,
+        seen_at: datetime | None,
         report: BatchReport,
     ) -> None:
         """Write what a timeline step changed: derivation versions, flag changes, their
@@ -376,7 +483,7 @@ class Pipeline:
             self._apply(conn, change, seen_at, report)
 
     def _apply(
-        self, conn: Connection, change: FlagChange, seen_at: datetime, report: BatchReport
+        self, conn: Connection, change: FlagChange, seen_at: datetime | None, report: BatchReport
     ) -> None:
         """Save a flag change, its audit events and its notifications together."""
         alert = change.decision.alert
@@ -389,7 +496,8 @@ class Pipeline:
             report.historical_events += len(change.decision.events)
             return
         self._notify(conn, alert, change.decision.notify, change.derivation, change.numbers,
-                     at=change.at, seen_at=seen_at, report=report)
+                     at=change.at, seen_at=change.at if seen_at is None else seen_at,
+                     report=report)
 
     def _notify(
         self,

@@ -1,42 +1,46 @@
-"""Replay: play a recorded feed through the service's own pipeline on a simulated clock.
+"""Replay: play a recorded feed through the service's own timeline code.
 
 An analyst's replay must show what the live service would have done with the same
-input, so nothing here judges, pairs or derives: every unit goes through
-``Pipeline.accept`` exactly as the MLLP listener or the FHIR poller would hand it over
-(one unit, one transaction), in order of record time (``monitor.ingest.merged_units``).
+input, so nothing here judges, pairs or derives. By default the feed is loaded the way
+every historical load is (``monitor.history``): all files stored first, then each
+patient's timeline stepped in known-time order, each step seen at its own known
+instant, exactly as if the results had arrived at their own pace; the order of the
+files and of their lines changes nothing. Patients are independent, so ``workers``
+processes (or a Dask cluster) can compute them, with identical results.
 
-The simulated clock is the unit's record time (MSH-7 for HL7 v2, ``meta.lastUpdated``
-for FHIR): windows, cooldowns and the time stamps of flags follow from it. The live
-service checks for unacknowledged flags to escalate once a minute
-(``monitor.scheduling.ESCALATION_EVERY``); replay runs the same check at each whole
-minute of simulated time at which a flag falls due, before the next unit, so an
-escalation carries the time it would have carried live (to within that minute). Nobody
-acknowledges during a replay, so every medium and high flag still open
-``escalate_after`` after its last change is escalated. Checks stop at the record time of
-the last unit: what would have fallen due after the feed ends is not invented.
+Escalation is simulated on each patient's clock: nobody acknowledges during a replay,
+so every medium and high flag still raised ``escalate_after`` after it could first be
+seen is escalated at that moment, up to the record time of the feed's last unit (what
+would have fallen due after the feed ends is not invented). Resources without a record
+time never move any clock.
+
+``speed=N`` plays the feed instead unit by unit through ``Pipeline.accept`` (the live
+path), N times faster than its record times, sleeping between units.
 
 Notifications are captured, not sent: they stay in the replay database's outbox
 (``deliver=True`` hands them to the configured channels afterwards, as the service's
-dispatcher would).
-
-Memory stays flat however long the feed: units are streamed, counters aggregated as
-they come. Only the flag events (few, next to readings) and the set of patient-days
-are kept; everything else is read back from the database at the end.
+dispatcher would). The replay database is a temporary SQLite file unless ``db_url``
+names one, so memory stays flat however long the feed.
 """
 
 from __future__ import annotations
 
+import tempfile
 import time
 from collections import Counter
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from monitor.config import SiteConfig
 
 from monitor.engine.model import ADVISORY, AlertEvent, AlertState, Priority
 from monitor.ingest import SourceContext, Unit, file_kind, merged_units
 from monitor.pipeline import Pipeline, PipelineSettings
+from monitor.records import iso_utc
 from storage import derivations as derivations_store
 from storage import outbox as outbox_store
 from storage import readings as readings_store
@@ -45,16 +49,6 @@ from storage.db import Database, open_database
 #: How often the live service looks for flags to escalate (monitor.scheduling).
 ESCALATION_TICK = timedelta(seconds=60)
 
-#: Alert trigger names as gasgap records them, and as replay's output names them.
-#: "worsened" (a higher priority for an open flag) is reported as "updated".
-EVENT_NAMES = {
-    "raised": "raised",
-    "worsened": "updated",
-    "acknowledged": "acknowledged",
-    "escalated": "escalated",
-    "resolved": "resolved",
-    "retracted": "retracted",
-}
 
 
 @dataclass(frozen=True, slots=True)
@@ -141,6 +135,8 @@ class ReplayResult:
     events: list[ReplayEvent]
     label: str = ""
     delivered: int | None = None
+    #: The temporary folder of a replay database gasgap chose itself.
+    scratch: tempfile.TemporaryDirectory[str] | None = None
 
     def as_json(self) -> dict[str, Any]:
         return {
@@ -151,6 +147,9 @@ class ReplayResult:
 
     def close(self) -> None:
         self.db.dispose()
+        if self.scratch is not None:
+            self.scratch.cleanup()
+            self.scratch = None
 
 
 @dataclass(slots=True)
@@ -195,7 +194,7 @@ def _ceil_minute(at: datetime) -> datetime:
 
 
 def _iso(at: datetime | None) -> str | None:
-    return None if at is None else at.astimezone(UTC).isoformat().replace("+00:00", "Z")
+    return iso_utc(at, z=True)
 
 
 class _Recorder:
@@ -209,7 +208,7 @@ class _Recorder:
 
     def note(self, events: Sequence[AlertEvent]) -> None:
         for e in events:
-            name = EVENT_NAMES.get(e.event, e.event)
+            name = e.event
             self.counts.events[name] += 1
             self.escalation.note(e)
             known = self._highest.get(e.alert_id)
@@ -234,17 +233,22 @@ def replay(
     settings: PipelineSettings,
     context: SourceContext,
     *,
-    db_url: str = "sqlite://",
+    db_url: str | None = None,
     speed: float | None = None,
     progress: bool = False,
     label: str = "",
     sleep: Callable[[float], None] = time.sleep,
+    workers: int | None = 1,
+    dask: str | None = None,
 ) -> ReplayResult:
-    """Play ``paths`` through a fresh ``Pipeline`` on the database at ``db_url``.
+    """Play ``paths`` into a fresh database (``db_url``; None: a temporary SQLite
+    file, removed on ``close()``).
 
-    ``speed``: None plays as fast as the pipeline goes; N plays N times faster than the
-    feed's own record times (sleeping between units). ``progress`` shows a bar on
-    stderr. The returned result keeps the database open (``close()`` it).
+    ``speed``: None computes the feed as a historical load (module docstring); N plays
+    it unit by unit N times faster than its own record times. ``workers``/``dask``:
+    where patients are computed (None: the machine's cores). ``progress`` shows
+    progress on stderr (a bar on a terminal, lines otherwise). The returned result
+    keeps the database open (``close()`` it).
     """
     files = [Path(p) for p in paths]
     for p in files:
@@ -253,6 +257,10 @@ def replay(
         file_kind(p)  # names the file when its kind cannot be told
     if speed is not None and not speed > 0:
         raise ValueError(f"replay speed {speed!r}: must be a positive number")
+    scratch: tempfile.TemporaryDirectory[str] | None = None
+    if db_url is None:
+        scratch = tempfile.TemporaryDirectory(prefix="gasgap-replay-")
+        db_url = f"sqlite:///{Path(scratch.name) / 'replay.db'}"
     db = open_database(db_url)
     try:
         with db.begin(read_only=True) as conn:
@@ -264,10 +272,58 @@ def replay(
                 f"replay database {db.url.split('@')[-1]}: already holds {held} readings; "
                 "name a new or empty database"
             )
-        return _run(files, db, settings, context, speed, progress, label, sleep)
+        if speed is None:
+            result = _run_history(files, db, settings, context, progress, label, workers, dask)
+        else:
+            result = _run(files, db, settings, context, speed, progress, label, sleep)
+        result.scratch = scratch
+        return result
     except BaseException:
         db.dispose()
+        if scratch is not None:
+            scratch.cleanup()
         raise
+
+
+def _run_history(
+    files: list[Path],
+    db: Database,
+    settings: PipelineSettings,
+    context: SourceContext,
+    progress: bool,
+    label: str,
+    workers: int | None,
+    dask: str | None,
+) -> ReplayResult:
+    from monitor.history import LoadOptions, load_files
+
+    pipeline = Pipeline(db, settings)
+    loaded = load_files(
+        files, pipeline, context,
+        LoadOptions(seen_at=None, workers=workers, dask=dask, simulate_escalation=True,
+                    progress=progress),
+    )
+    report = loaded.report
+    counts = ReplayCounts(
+        units=loaded.units,
+        readings=report.read,
+        stored=report.stored,
+        duplicates=report.duplicates,
+        quarantined=report.quarantined,
+        ignored=report.ignored,
+        derivations=report.derivations,
+        retracted_derivations=report.retracted_derivations,
+        patient_days=len(loaded.patient_days),
+        first_record=loaded.first_record,
+        last_record=loaded.last_record,
+    )
+    recorder = _Recorder(counts, _EscalationClock(settings.alerts.escalate_after))
+    recorder.note(sorted(report.alert_events, key=lambda e: (e.at, e.patient_key, e.rule)))
+    recorder.finish()
+    with db.begin(read_only=True) as conn:
+        counts.notifications = outbox_store.backlog(conn)
+    events = _with_sample_times(db, recorder.events)
+    return ReplayResult(db=db, settings=settings, counts=counts, events=events, label=label)
 
 
 def _run(
@@ -454,19 +510,16 @@ def _progress_bar(files: Sequence[Path], label: str) -> Any:
 # --- delivery ------------------------------------------------------------------------------
 
 
-def deliver_captured(result: ReplayResult, config: Any, *, secrets_file: Path | None = None) -> int:
+def deliver_captured(
+    result: ReplayResult, config: SiteConfig, *, secrets_file: Path | None = None
+) -> int:
     """Send what the replay captured in its outbox through the configured channels
-    (``monitor.delivery.OutboxDispatcher``), as the service would; returns how many were
+    (``monitor.outbox.OutboxDispatcher``), as the service would; returns how many were
     sent. The clock is the end of the simulated feed, so every item is due."""
-    from adapters.notify import build_channel
+    from monitor.bootstrap import Secrets, build_channels
     from monitor.delivery import OutboxDispatcher
-    from monitor.service import _Secrets
 
-    environ = _Secrets(secrets_file)
-    channels = {
-        alias: build_channel(alias, config.channel_options(alias), environ=environ)
-        for alias in config.channels
-    }
+    channels = build_channels(config, Secrets(secrets_file))
     end = result.counts.last_record or datetime.now(UTC)
     dispatcher = OutboxDispatcher(result.db, channels, clock=lambda: end)
     sent = 0

@@ -36,6 +36,16 @@ def _speed(text: str) -> float | None:
     return value
 
 
+def _workers(text: str) -> int:
+    try:
+        n = int(text)
+    except ValueError:
+        n = 0
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"--workers {text!r}: must be a whole number >= 1")
+    return n
+
+
 def add_replay_command(sub: Subparsers) -> None:
     """Register ``replay`` on ``sub`` (the parser's sub-parsers)."""
     p = sub.add_parser(
@@ -56,8 +66,20 @@ def add_replay_command(sub: Subparsers) -> None:
     p.add_argument(
         "--db",
         dest="db_url",
-        default="sqlite://",
-        help="database URL to keep the replay in (default: in memory)",
+        default=None,
+        help="database URL to keep the replay in (default: a temporary SQLite file)",
+    )
+    p.add_argument(
+        "--workers",
+        type=_workers,
+        default=None,
+        metavar="N",
+        help="processes computing patients (default: the machine's cores)",
+    )
+    p.add_argument(
+        "--dask",
+        metavar="ADDRESS",
+        help="compute patients on this Dask scheduler ('local': a cluster on this machine)",
     )
     p.add_argument(
         "--report", type=Path, metavar="DIR", help="write the HTML report and plots here"
@@ -100,9 +122,9 @@ def run_replay(args: argparse.Namespace) -> int:
         other = load_site(args.compare) if args.compare else None
     except (ConfigError, OSError, ValueError) as exc:
         return fail(f"--config/--compare: {exc}")
-    progress = sys.stderr.isatty() and not args.json
+    progress = not args.json
 
-    def one(cfg: SiteConfig, url: str, label: str) -> ReplayResult:
+    def one(cfg: SiteConfig, url: str | None, label: str) -> ReplayResult:
         return replay(
             args.paths,
             pipeline_settings(cfg),
@@ -111,6 +133,8 @@ def run_replay(args: argparse.Namespace) -> int:
             speed=args.speed,
             progress=progress,
             label=label,
+            workers=args.workers,
+            dask=args.dask,
         )
 
     try:
@@ -121,8 +145,8 @@ def run_replay(args: argparse.Namespace) -> int:
     try:
         if args.deliver:
             first.delivered = deliver_captured(first, config, secrets_file=args.secrets_file)
-        if other is not None:  # the second replay runs in its own in-memory database
-            second = one(other, "sqlite://", str(args.compare))
+        if other is not None:  # the second replay runs in its own temporary database
+            second = one(other, None, str(args.compare))
         comparison = compare(first, second) if second is not None else None
         page = write_report(first, args.report, comparison=comparison) if args.report else None
         if args.json:

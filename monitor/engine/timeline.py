@@ -346,7 +346,36 @@ class PatientTimeline:
                                 datetime.max.replace(tzinfo=known.tzinfo)))
         if not windows:
             return result
+        result.extend(self._follow(windows, panels, withdrawn, touched_times, instant, seen_at))
+        return result
 
+    def refresh(self, *, seen_at: datetime | None) -> StepResult:
+        """Derive every held sample again and judge, at the last instant (readings of
+        another key were joined to this patient: the pairing may now find more)."""
+        if self.instant is None:
+            return StepResult()
+        tz = self.instant.tzinfo
+        everything = [(datetime.min.replace(tzinfo=tz), datetime.max.replace(tzinfo=tz))]
+        return self._follow(
+            everything, set(), set(), [], self.instant,
+            self.instant if seen_at is None else seen_at,
+        )
+
+    def _follow(
+        self,
+        windows: list[tuple[datetime, datetime]],
+        panels: set[str],
+        withdrawn: set[str],
+        touched_times: list[datetime],
+        instant: datetime,
+        seen_at: datetime,
+    ) -> StepResult:
+        """Re-derive what changed readings can affect, withdraw, judge."""
+        result = StepResult()
+        stood = {
+            sid for sid, d in self.derivations.items()
+            if sid in withdrawn or any(i.reading_id in withdrawn for i in d.inputs)
+        } if withdrawn else set()
         changed: dict[str, Derivation] = {}
         changed_times: list[datetime] = list(touched_times)
         for d, reason, retracted in self._rederive(windows, panels, withdrawn):
@@ -355,7 +384,7 @@ class PatientTimeline:
             if not retracted:
                 changed[d.sample_id] = d
 
-        self._withdraw_flags(withdrawn, instant, seen_at, result)
+        self._withdraw_flags(stood, instant, result)
         for judged in self._to_judge(changed, changed_times):
             self._judge(judged, instant, seen_at, result)
         return result
@@ -484,14 +513,12 @@ class PatientTimeline:
                 out.append((gone, "result withdrawn", True))
         return out
 
-    def _withdraw_flags(
-        self, withdrawn: set[str], instant: datetime, seen_at: datetime, result: StepResult
-    ) -> None:
-        if not withdrawn:
-            return
+    def _withdraw_flags(self, stood: set[str], instant: datetime, result: StepResult) -> None:
+        """Take back the open flags raised on samples that stood on a withdrawn result
+        (``stood``: those samples, read before they were derived again)."""
         for rule in sorted(self.open):
             alert = self.open[rule]
-            if alert.sample_id in withdrawn or self._stood_on(alert.sample_id, withdrawn):
+            if alert.sample_id in stood:
                 decision = alerts.retract(
                     alert, instant, "a result this flag stood on was withdrawn", alert.sample_id
                 )
@@ -499,12 +526,6 @@ class PatientTimeline:
                 result.flags.append(FlagChange(
                     decision, None, {}, instant, historical=_is_historical(alert)
                 ))
-
-    def _stood_on(self, sample_id: str, withdrawn: set[str]) -> bool:
-        d = self.derivations.get(sample_id)
-        if d is None:
-            return False
-        return any(i.reading_id in withdrawn for i in d.inputs)
 
     def _to_judge(self, changed: dict[str, Derivation], times: list[datetime]) -> list[_Judged]:
         """The newest gas and the newest estimate, when this step changed them or

@@ -105,15 +105,19 @@ def test_ward_pneumonia_raises_then_resolves_both_flags(demo: ReplayResult) -> N
     band = first(demo, "HGH-1003", "oxygenation-band", "raised", "low")
     assert_drawn(aa, local(2, 4))
     assert_drawn(band, local(2, 4))
-    # band resolves on the 3 Mar 12:00 gas (adj P/F 350 > 330); A-a on the 4 Mar 08:00 gas
-    assert_drawn(first(demo, "HGH-1003", "oxygenation-band", "resolved"), local(3, 12))
+    # The 3 Mar 12:00 gas clears only on the estimated FiO2, which cannot clear a band
+    # (issue 12: an estimate may raise but never lower); the 4 Mar 08:00 gas on room air
+    # clears both (SCENARIO.md)
+    assert_drawn(first(demo, "HGH-1003", "oxygenation-band", "resolved"), local(4, 8))
     assert_drawn(first(demo, "HGH-1003", "aa-room-air", "resolved"), local(4, 8))
-    assert not events(demo, "HGH-1003", "oxygenation-band", "updated")  # stays low
+    assert not events(demo, "HGH-1003", "oxygenation-band", "worsened")  # stays low
 
 
 def test_venturi_patient_worsens_to_medium_then_resolves(demo: ReplayResult) -> None:
     assert_drawn(first(demo, "HGH-1004", "oxygenation-band", "raised", "low"), local(2, 9))
-    assert_drawn(first(demo, "HGH-1004", "oxygenation-band", "updated", "medium"), local(3, 3))
+    # the 3 Mar 03:00 gas reaches the medium band only on an estimated FiO2 of 0.90,
+    # which is held at low (SCENARIO.md, issue 12 point 2)
+    assert not events(demo, "HGH-1004", "oxygenation-band", "worsened")
     assert_drawn(first(demo, "HGH-1004", "oxygenation-band", "resolved"), local(4, 9))
     assert "high" not in {e.priority for e in events(demo, "HGH-1004", "oxygenation-band")}
     # "Oxygen escalation at medium if the rule counts an estimated FiO2": only medium, if any
@@ -140,7 +144,9 @@ def test_withdrawn_result_retracts_its_flags_and_tells_the_nurse(demo: ReplayRes
 
 def test_high_flow_patient_band_fall_and_escalation(demo: ReplayResult) -> None:
     assert_drawn(first(demo, "HGH-1005", "oxygenation-band", "raised", "low"), local(2, 6))
-    assert_drawn(first(demo, "HGH-1005", "oxygenation-band", "updated", "medium"), local(2, 23))
+    assert_drawn(first(demo, "HGH-1005", "oxygenation-band", "worsened", "medium"), local(2, 23))
+    # the flag shows the patient's current state: lowered on the 3 Mar 18:00 gas
+    assert_drawn(first(demo, "HGH-1005", "oxygenation-band", "lowered", "low"), local(3, 18))
     assert_drawn(first(demo, "HGH-1005", "pf-fall", "raised", "medium"), local(2, 23))
     assert_drawn(first(demo, "HGH-1005", "pf-fall", "resolved"), local(3, 18))
     # FiO2 raised to 75 % at 22:00; the flag comes between that and the 23:00 gas's result
@@ -152,13 +158,16 @@ def test_high_flow_patient_band_fall_and_escalation(demo: ReplayResult) -> None:
 def test_ventilated_patient_reaches_high_band_on_day_two_morning(demo: ReplayResult) -> None:
     band = events(demo, "HGH-1007", "oxygenation-band")
     assert_drawn(first(demo, "HGH-1007", "oxygenation-band", "raised", "low"), local(2, 7))
-    assert_drawn(first(demo, "HGH-1007", "oxygenation-band", "updated", "medium"), local(2, 18, 30))
-    assert_drawn(first(demo, "HGH-1007", "oxygenation-band", "updated", "high"), local(3, 6))
+    assert_drawn(first(demo, "HGH-1007", "oxygenation-band", "worsened", "medium"), local(2, 18, 30))
+    assert_drawn(first(demo, "HGH-1007", "oxygenation-band", "worsened", "high"), local(3, 6))
+    assert_drawn(first(demo, "HGH-1007", "oxygenation-band", "lowered", "medium"), local(3, 18))
     # the altitude case: the 18:30 gas (unadjusted P/F 95) must not reach high
     assert all(e.priority != "high" for e in band if e.sample_time and e.sample_time < local(3, 6))
     assert_drawn(first(demo, "HGH-1007", "pf-fall", "raised", "medium"), local(2, 18, 30))
     assert_drawn(first(demo, "HGH-1007", "pf-fall", "resolved"), local(3, 18))
-    assert_drawn(first(demo, "HGH-1007", "aa-rise", "raised", "medium"), local(3, 6))
+    # A-a 314 -> 347 at FiO2 0.75 -> 0.80 lowers a/A by about 0.04 only: no A-a rise
+    # (the rule needs an a/A fall of 0.08 as well; SCENARIO.md)
+    assert not events(demo, "HGH-1007", "aa-rise")
     escalation = first(demo, "HGH-1007", "oxygen-escalation", "raised", "medium")
     assert local(2, 16) <= escalation.at <= local(2, 19)
 
@@ -176,7 +185,7 @@ def test_ventilated_patient_flag_is_labelled_berlin(demo: ReplayResult) -> None:
 
 def test_corrected_result_supersedes(demo: ReplayResult) -> None:
     assert_drawn(first(demo, "HGH-1009", "oxygenation-band", "raised", "low"), local(2, 12))
-    assert_drawn(first(demo, "HGH-1009", "oxygenation-band", "updated", "medium"), local(3, 9))
+    assert_drawn(first(demo, "HGH-1009", "oxygenation-band", "worsened", "medium"), local(3, 9))
     assert_drawn(first(demo, "HGH-1009", "pf-fall", "raised", "medium"), local(3, 9))
     with demo.db.begin(read_only=True) as conn:
         stored = derivations_store.current_derivations(conn, "HGH-1009", include_estimated=False)

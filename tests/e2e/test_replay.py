@@ -28,7 +28,9 @@ from storage.db import open_database
 ROOT = Path(__file__).resolve().parents[2]
 EXAMPLE = ROOT / "fixtures" / "site-example.toml"
 PATHS = [FEED_DIR / f for f in FEEDS]
-EVENTS = {"raised", "updated", "acknowledged", "resolved", "escalated", "retracted"}
+EVENTS = {
+    "raised", "worsened", "lowered", "acknowledged", "resolved", "escalated", "retracted",
+}
 
 
 def gasgap(argv: Sequence[str]) -> int:
@@ -65,8 +67,7 @@ def test_ingest_one_unit_per_transaction_gives_the_same_flags(
         )
     finally:
         db.dispose()
-    renamed = {"worsened": "updated"}
-    ingested = {(e.patient_key, e.rule, renamed.get(e.event, e.event), e.priority.value)
+    ingested = {(e.patient_key, e.rule, e.event, e.priority.value)
                 for e in report.alert_events}
     # ingest runs no escalation check (no clock passes between files): leave those out
     replayed = {(e.patient, e.rule, e.event, e.priority) for e in example_replay.events
@@ -89,8 +90,7 @@ def test_ingest_default_batches_give_the_same_flags(
         )
     finally:
         db.dispose()
-    renamed = {"worsened": "updated"}
-    ingested = {(e.patient_key, e.rule, renamed.get(e.event, e.event), e.priority.value)
+    ingested = {(e.patient_key, e.rule, e.event, e.priority.value)
                 for e in report.alert_events}
     replayed = {(e.patient, e.rule, e.event, e.priority) for e in example_replay.events
                 if e.event != "escalated"}
@@ -132,7 +132,7 @@ def test_escalation_comes_when_the_live_check_would_run_it(example_replay: Repla
     last_change: dict[str, datetime] = {}
     escalated = 0
     for e in example_replay.events:
-        if e.event in ("raised", "updated"):  # the engine's updated_at
+        if e.event in ("raised", "worsened"):  # when the flag could first be seen
             last_change[e.alert_id] = e.at
         if e.event == "escalated":
             escalated += 1

@@ -1,0 +1,337 @@
+"""Historical loads: files, replay and backfill, computed one patient timeline at a time.
+
+The live service steps a patient's timeline once per arriving unit. A historical load
+knows everything up front, so it works in two phases:
+
+1. **Store.** Every file is read (FHIR context resources first, so an Observation finds
+   its Patient in whatever file it is), refused input quarantined, and the readings
+   stored as *not yet stepped*, a few hundred to a transaction. Neither the order of
+   the files nor the order of their lines matters from here on.
+2. **Step.** Each patient with readings not yet stepped is restored from storage and
+   its timeline stepped through them in known-time order (``PatientTimeline.advance``,
+   the live path's own code); derivations, flags, audit events and notifications are
+   written per patient and the readings marked stepped. Patients are independent, so
+   they can be computed in worker processes (``workers``) or on a Dask cluster
+   (``dask``); the parent writes the results in patient order, so the database is the
+   same whichever computes them.
+
+A crash between or during the phases loses nothing: the readings stay marked as not
+stepped, and the next load (or ``gasgap ingest`` with no files) finishes them.
+
+Flags: ``seen_at`` is when the work is done. A file load into a live database passes
+the wall clock, so a flag on data older than the site's horizon is historical (kept,
+shown, never sent); a replay passes None, and each step is seen at its own known
+instant, as if the feed arrived at its own pace.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import Executor, ProcessPoolExecutor
+from dataclasses import dataclass, field, replace
+from datetime import UTC, date, datetime
+from pathlib import Path
+from typing import Any
+
+from monitor.engine.timeline import StepResult
+from monitor.ingest import SourceContext, Unit, context_resources, fhir_builder, file_units
+from monitor.pipeline import BatchReport, Inbound, Pipeline, PipelineSettings
+from monitor.progress import Progress
+from storage import timelines as timelines_store
+from storage.db import Database, is_memory_sqlite, open_database
+from storage.locks import patient_lock
+from storage.register import load_register, save_links
+
+log = logging.getLogger("gasgap.history")
+
+
+@dataclass(frozen=True, slots=True)
+class LoadOptions:
+    """How a historical load runs.
+
+    ``seen_at``: when the work is done (None: each step at its own known instant, as a
+    replay). ``workers``: processes computing patients (1: in this process; None: the
+    machine's cores). ``dask``: the address of a Dask scheduler, or "local" for a
+    cluster on this machine (patients are then computed there). ``simulate_escalation``
+    and ``until``: escalate unacknowledged flags on the simulated clock up to ``until``
+    (replay). ``batch_size``: readings stored per transaction.
+    """
+
+    seen_at: datetime | None = None
+    workers: int | None = 1
+    dask: str | None = None
+    simulate_escalation: bool = False
+    until: datetime | None = None
+    batch_size: int = 500
+    progress: bool = False
+
+
+@dataclass(slots=True)
+class LoadResult:
+    """What a historical load did."""
+
+    report: BatchReport = field(default_factory=BatchReport)
+    units: int = 0
+    patients: int = 0
+    first_record: datetime | None = None
+    last_record: datetime | None = None
+    #: (patient, site date) of every reading stored (canonical patient keys).
+    patient_days: set[tuple[str, date]] = field(default_factory=set)
+
+
+def load_files(
+    paths: Sequence[Path],
+    pipeline: Pipeline,
+    context: SourceContext,
+    options: LoadOptions,
+    *,
+    received_at: Callable[[], datetime] | None = None,
+    on_stored: Callable[[LoadResult], None] | None = None,
+) -> LoadResult:
+    """Store the files, then step every patient they touched (module docstring)."""
+    clock = received_at or (lambda: datetime.now(UTC))
+    context = _with_register(context, pipeline.db)
+    result = LoadResult()
+    _remember_context(paths, context, pipeline, clock)
+    builder = fhir_builder(context, clock)
+    bar = Progress("read", unit="units", enabled=options.progress)
+    try:
+        units = (u for p in paths for u in file_units(p, context, clock, builder))
+        store_units(units, pipeline, context, options, result, bar)
+    finally:
+        bar.close()
+    if on_stored is not None:
+        on_stored(result)
+    until = options.until or result.last_record
+    stepped = step_pending(pipeline, replace(options, until=until))
+    result.report.merge(stepped.report)
+    result.patients = stepped.patients
+    return result
+
+
+def _with_register(context: SourceContext, db: Database) -> SourceContext:
+    if context.register is not None:
+        return context
+    with db.begin(read_only=True) as conn:
+        register = load_register(conn, context.register_settings())
+    return replace(context, register=register)
+
+
+def _remember_context(
+    paths: Sequence[Path],
+    context: SourceContext,
+    pipeline: Pipeline,
+    clock: Callable[[], datetime],
+) -> None:
+    """First pass: learn every Patient, Encounter, Specimen and panel of the FHIR files
+    into the shared register and reader, and keep the links."""
+    from adapters.fhir.observations import FhirBatch
+
+    builder = fhir_builder(context, clock)
+    batch = FhirBatch()
+    for path in paths:
+        for resource in context_resources(path):
+            builder.remember(resource, into=batch)
+    if batch.links:
+        with pipeline.db.begin() as conn:
+            save_links(conn, batch.links, at=clock())
+
+
+def store_units(
+    units: Iterator[Unit],
+    pipeline: Pipeline,
+    context: SourceContext,
+    options: LoadOptions,
+    result: LoadResult,
+    bar: Progress,
+) -> None:
+    """Phase 1: quarantine and store, ``batch_size`` readings to a transaction."""
+    tz = pipeline.settings.site_tz
+    pending: list[tuple[Inbound, datetime]] = []
+    size = 0
+    clock_now = datetime.now(UTC)
+
+    def flush() -> None:
+        nonlocal pending, size
+        if pending:
+            report, _ = pipeline.stage(pending)
+            result.report.merge(report)
+            pending, size = [], 0
+
+    for unit in units:
+        result.units += 1
+        if unit.record_time is not None:
+            # resources without a record time never move any clock
+            if result.first_record is None or unit.record_time < result.first_record:
+                result.first_record = unit.record_time
+            if result.last_record is None or unit.record_time > result.last_record:
+                result.last_record = unit.record_time
+        for r in unit.inbound.readings:
+            result.patient_days.add((r.patient_key, r.effective_at.astimezone(tz).date()))
+        pending.append((unit.inbound, unit.record_time or options.seen_at or clock_now))
+        size += len(unit.inbound.readings) + len(unit.inbound.rejected) + 1
+        if size >= options.batch_size:
+            flush()
+        bar.update(1)
+    flush()
+    register = context.register
+    if register is not None:  # keys learnt late name the person now
+        result.patient_days = {(register.canonical(k), d) for k, d in result.patient_days}
+
+
+# --- phase 2: each patient's timeline -------------------------------------------------
+
+
+@dataclass(slots=True)
+class StepOutcome:
+    report: BatchReport = field(default_factory=BatchReport)
+    patients: int = 0
+
+
+def step_pending(pipeline: Pipeline, options: LoadOptions) -> StepOutcome:
+    """Step every patient with readings stored but not yet stepped; see the module
+    docstring. Results are written in patient order whatever computes them."""
+    with pipeline.db.begin(read_only=True) as conn:
+        patients = timelines_store.unprocessed_patients(conn)
+    outcome = StepOutcome()
+    if not patients:
+        return outcome
+    bar = Progress("patients", unit="patients", total=len(patients), enabled=options.progress)
+    try:
+        for key, step, deliveries, revision in _computed(pipeline, patients, options):
+            _write(pipeline, key, step, deliveries, revision, options, outcome)
+            outcome.patients += 1
+            bar.update(1)
+    finally:
+        bar.close()
+    return outcome
+
+
+def _write(
+    pipeline: Pipeline,
+    key: str,
+    step: StepResult,
+    deliveries: list[str],
+    revision: int,
+    options: LoadOptions,
+    outcome: StepOutcome,
+) -> None:
+    with pipeline.db.begin() as conn:
+        patient_lock(conn, key)
+        if timelines_store.revision(conn, key) != revision:
+            # another process stepped this patient meanwhile: compute again, locked
+            step, deliveries = pipeline.step_pending(
+                conn, key, seen_at=options.seen_at,
+                simulate_escalation=options.simulate_escalation, until=options.until,
+            )
+        pipeline.finish_pending(
+            conn, key, step, deliveries, seen_at=options.seen_at, report=outcome.report
+        )
+
+
+_Computed = tuple[str, StepResult, list[str], int]
+
+
+def _computed(
+    pipeline: Pipeline, patients: list[str], options: LoadOptions
+) -> Iterator[_Computed]:
+    """(patient, what stepping it changed, deliveries stepped, revision read), in
+    patient order: here, in worker processes, or on a Dask cluster."""
+    workers = options.workers if options.workers is not None else (os.cpu_count() or 1)
+    if options.dask:
+        yield from _on_dask(pipeline, patients, options)
+        return
+    if workers <= 1 or len(patients) < 2 or is_memory_sqlite(pipeline.db.url):
+        for key in patients:
+            yield _compute_here(pipeline, key, options)
+        return
+    job = _Job(pipeline.db.url, pipeline.settings, options)
+    chunk = max(1, min(64, len(patients) // (workers * 4)))
+    with _pool(workers, job) as pool:
+        yield from pool.map(_compute_in_worker, patients, chunksize=chunk)
+
+
+def _compute_here(pipeline: Pipeline, key: str, options: LoadOptions) -> _Computed:
+    with pipeline.db.begin(read_only=True) as conn:
+        revision = timelines_store.revision(conn, key) or 0
+        step, deliveries = pipeline.step_pending(
+            conn, key, seen_at=options.seen_at,
+            simulate_escalation=options.simulate_escalation, until=options.until,
+        )
+    return key, step, deliveries, revision
+
+
+@dataclass(frozen=True, slots=True)
+class _Job:
+    """What a worker needs to compute patients on its own: where the database is and
+    the settings (all picklable)."""
+
+    db_url: str
+    settings: PipelineSettings
+    options: LoadOptions
+
+
+_WORKER: dict[str, Any] = {}
+
+
+def _start_worker(job: _Job) -> None:
+    _WORKER["pipeline"] = Pipeline(open_database(job.db_url, create=False), job.settings)
+    _WORKER["options"] = job.options
+
+
+def _compute_in_worker(key: str) -> _Computed:
+    return _compute_here(_WORKER["pipeline"], key, _WORKER["options"])
+
+
+def _pool(workers: int, job: _Job) -> Executor:
+    import multiprocessing
+
+    return ProcessPoolExecutor(
+        max_workers=workers,
+        mp_context=multiprocessing.get_context("spawn"),
+        initializer=_start_worker,
+        initargs=(job,),
+    )
+
+
+def _on_dask(
+    pipeline: Pipeline, patients: list[str], options: LoadOptions
+) -> Iterator[_Computed]:
+    try:
+        from dask.distributed import Client, LocalCluster
+    except ImportError as exc:  # the optional extra
+        raise RuntimeError(
+            "--dask needs Dask distributed: pip install 'gasgap[dask]'"
+        ) from exc
+    job = _Job(pipeline.db.url, pipeline.settings, replace(options, dask=None))
+    cluster = None
+    if options.dask == "local":
+        cluster = LocalCluster(
+            n_workers=options.workers or 2, threads_per_worker=1, processes=True,
+            dashboard_address=None,
+        )
+        client = Client(cluster)
+    else:
+        client = Client(options.dask)
+    try:
+        batch = max(1, len(patients) // 64)
+        groups = [patients[i : i + batch] for i in range(0, len(patients), batch)]
+        futures = client.map(_compute_group, groups, job=job, pure=False)
+        for future in futures:  # in submission order: the patient order
+            yield from future.result()
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+
+
+def _compute_group(keys: list[str], job: _Job) -> list[_Computed]:
+    """On a Dask worker: compute a group of patients with one database connection."""
+    db = open_database(job.db_url, create=False)
+    try:
+        pipeline = Pipeline(db, job.settings)
+        return [_compute_here(pipeline, key, job.options) for key in keys]
+    finally:
+        db.dispose()
