@@ -112,6 +112,10 @@ def pipeline_settings(config: SiteConfig) -> PipelineSettings:
         site_tz=config.zone(),
         history=config.history_window(),
         retention=timedelta(days=config.retention_days) if config.retention_days else None,
+        historical_after=(
+            timedelta(hours=config.flags.historical_after_hours)
+            if config.flags.historical_after_hours else None
+        ),
     )
 
 

@@ -35,6 +35,7 @@ from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Any
 
+from adapters.fhir.observations import FhirBatch, FhirReadingBuilder
 from monitor.engine.timeline import StepResult
 from monitor.ingest import SourceContext, Unit, context_resources, fhir_builder, file_units
 from monitor.pipeline import BatchReport, Inbound, Pipeline, PipelineSettings
@@ -94,8 +95,8 @@ def load_files(
     clock = received_at or (lambda: datetime.now(UTC))
     context = _with_register(context, pipeline.db)
     result = LoadResult()
-    _remember_context(paths, context, pipeline, clock)
-    builder = fhir_builder(context, clock)
+    builder = fhir_builder(context, clock)  # one reader for every file of the load
+    _remember_context(paths, builder, pipeline, clock)
     bar = Progress("read", unit="units", enabled=options.progress)
     try:
         units = (u for p in paths for u in file_units(p, context, clock, builder))
@@ -121,18 +122,16 @@ def _with_register(context: SourceContext, db: Database) -> SourceContext:
 
 def _remember_context(
     paths: Sequence[Path],
-    context: SourceContext,
+    builder: FhirReadingBuilder,
     pipeline: Pipeline,
     clock: Callable[[], datetime],
 ) -> None:
     """First pass: learn every Patient, Encounter, Specimen and panel of the FHIR files
     into the shared register and reader, and keep the links."""
-    from adapters.fhir.observations import FhirBatch
-
-    builder = fhir_builder(context, clock)
     batch = FhirBatch()
     for path in paths:
         for resource in context_resources(path):
+            builder.note_panels([resource])
             builder.remember(resource, into=batch)
     if batch.links:
         with pipeline.db.begin() as conn:

@@ -81,6 +81,10 @@ class FlagsSection(_Section):
     cooldown_min: float = Field(default=60, ge=0, le=7 * 24 * 60)
     escalate_after_min: float = Field(default=30, gt=0, le=24 * 60)
     hysteresis: float = Field(default=0.10, ge=0, lt=1)
+    #: A flag standing on a sample drawn longer than this before it is computed (a
+    #: backfill, files loaded into a live database, a feed catching up after an
+    #: outage) is recorded as historical: shown, never sent. 0 turns it off.
+    historical_after_hours: float = Field(default=6, ge=0, le=24 * 3650)
 
 
 #: The old name of ``FlagsSection``.

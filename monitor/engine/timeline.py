@@ -656,20 +656,23 @@ def time_problem(
     field_name = "drawn time (OBR-7/OBX-14, Observation.effective)"
     if drawn > r.received_at + tolerance:
         return (
-            f"{field_name} {drawn.isoformat()} is after the result was received "
-            f"({r.received_at.isoformat()}): a time in the future cannot be right"
+            f"draw time in the future: {field_name} {drawn.isoformat()} is after the "
+            f"result was received ({r.received_at.isoformat()})"
         )
     if r.known_at is not None and drawn > r.known_at + tolerance:
         return (
-            f"{field_name} {drawn.isoformat()} is after the result was known "
-            f"({r.known_at.isoformat()})"
+            f"draw time in the future: {field_name} {drawn.isoformat()} is after the "
+            f"result was known ({r.known_at.isoformat()})"
         )
     if birth_date is not None and drawn.date() < birth_date:
-        return f"{field_name} {drawn.isoformat()} is before the patient's birth ({birth_date})"
+        return (
+            f"draw time before birth: {field_name} {drawn.isoformat()} is before the "
+            f"patient's birth ({birth_date})"
+        )
     if drawn < r.received_at - max_age:
         return (
-            f"{field_name} {drawn.isoformat()} is more than {max_age.days} days before it "
-            f"was received: not a plausible draw time"
+            f"draw time not plausible: {field_name} {drawn.isoformat()} is more than "
+            f"{max_age.days} days before it was received"
         )
     return None
 

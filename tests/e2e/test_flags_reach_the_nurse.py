@@ -102,6 +102,11 @@ to = ["icu-north-charge@hollowmere.example"]
 [routes]
 default = ["station", "charge-mail"]
 
+[flags]
+# the demo feed is dated March 2026: load it as if it were arriving now (without this
+# its flags are historical and page nobody, which test_history_pages_nobody checks)
+historical_after_hours = 0
+
 [database]
 url = "sqlite:///{tmp_path}/site.db"
 """)
@@ -139,8 +144,10 @@ def test_worsening_patients_flags_reach_webhook_and_mail_and_can_be_acknowledged
     listed = gasgap("alerts", "--config", str(config), "--json")
     assert listed.returncode == 0, listed.stderr
     items = json.loads(listed.stdout)["flags"]
+    # HGH-1007's band flag reached high and was lowered to medium on 3 Mar 18:00, as
+    # its state improved (SCENARIO.md): it is still open
     target = next(f for f in items if f["rule"] == "oxygenation-band"
-                  and f["priority"] == "high")
+                  and f["priority"] in ("high", "medium"))
 
     acked = gasgap("alerts", "ack", target["id"], "--by", "Charge Nurse Okafor",
                    "--config", str(config))
