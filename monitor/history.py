@@ -299,21 +299,23 @@ def _on_dask(
     pipeline: Pipeline, patients: list[str], options: LoadOptions
 ) -> Iterator[_Computed]:
     try:
-        from dask.distributed import Client, LocalCluster
+        from dask.distributed import Client, LocalCluster  # untyped: used through Any
     except ImportError as exc:  # the optional extra
         raise RuntimeError(
             "--dask needs Dask distributed: pip install 'gasgap[dask]'"
         ) from exc
     job = _Job(pipeline.db.url, pipeline.settings, replace(options, dask=None))
-    cluster = None
+    cluster: Any = None
+    make_cluster: Any = LocalCluster
+    make_client: Any = Client
     if options.dask == "local":
-        cluster = LocalCluster(
+        cluster = make_cluster(
             n_workers=options.workers or 2, threads_per_worker=1, processes=True,
             dashboard_address=None,
         )
-        client = Client(cluster)
+        client = make_client(cluster)
     else:
-        client = Client(options.dask)
+        client = make_client(options.dask)
     try:
         batch = max(1, len(patients) // 64)
         groups = [patients[i : i + batch] for i in range(0, len(patients), batch)]
