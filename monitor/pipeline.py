@@ -203,6 +203,8 @@ class Pipeline:
         self.settings = settings or PipelineSettings()
         self._timeline_settings = self.settings.timeline()
         self._cache: OrderedDict[str, tuple[int, PatientTimeline]] = OrderedDict()
+        #: Links already stored (fingerprints), so a unit's links cost no look-up.
+        self._links_saved: set[str] = set()
 
     # --- the live path ------------------------------------------------------------------
 
@@ -219,8 +221,8 @@ class Pipeline:
             with self.db.begin() as conn:
                 return self._accept_in(conn, inbound, now)
         except BaseException:
-            # what the cache stepped was not committed
-            self._cache.clear()
+            # what the cache stepped (and the links it stored) was not committed
+            self._forget()
             raise
 
     def accept_many(self, units: Sequence[tuple[Inbound, datetime]]) -> list[BatchReport]:
@@ -229,7 +231,7 @@ class Pipeline:
             with self.db.begin() as conn:
                 return [self._accept_in(conn, inbound, now) for inbound, now in units]
         except BaseException:
-            self._cache.clear()
+            self._forget()
             raise
 
     def _accept_in(self, conn: Connection, inbound: Inbound, now: datetime) -> BatchReport:
@@ -271,7 +273,16 @@ class Pipeline:
         """Keep what the register learnt; move rows of provisional keys onto the
         person's key. Returns the keys that took rows from another key."""
         if inbound.links:
-            register_store.save_links(conn, inbound.links, at=now)
+            # most units repeat the links of their patient: store each once per process
+            fresh = {
+                register_store.link_fingerprint(link): link for link in inbound.links
+            }
+            news = [link for fp, link in fresh.items() if fp not in self._links_saved]
+            if news:
+                register_store.save_links(conn, news, at=now)
+                if len(self._links_saved) > 100_000:
+                    self._links_saved.clear()
+                self._links_saved.update(register_store.link_fingerprint(x) for x in news)
         joined: set[str] = set()
         for move in inbound.rekeys:
             if move.old == move.new:
@@ -292,6 +303,15 @@ class Pipeline:
         timeline once. Returns the report and the keys that took rows of another key."""
         report = BatchReport()
         joined: set[str] = set()
+        try:
+            return self._stage(units, report, joined)
+        except BaseException:
+            self._forget()
+            raise
+
+    def _stage(
+        self, units: Sequence[tuple[Inbound, datetime]], report: BatchReport, joined: set[str]
+    ) -> tuple[BatchReport, set[str]]:
         with self.db.begin() as conn:
             good: list[Reading] = []
             for inbound, now in units:
@@ -394,6 +414,10 @@ class Pipeline:
             covers_from=since,
         )
 
+    def _forget(self) -> None:
+        self._cache.clear()
+        self._links_saved.clear()
+
     def _remember(self, patient_key: str, revision: int, timeline: PatientTimeline) -> None:
         if timeline.instant is not None:
             # keep what the next unit can need (rules, pairing and a margin)
@@ -465,20 +489,16 @@ class Pipeline:
     ) -> None:
         """Write what a timeline step changed: derivation versions, flag changes, their
         audit events and (unless historical) their notifications."""
-        for version in step.derivations:
-            if version.retracted:
-                report.retracted_derivations += len(
-                    derivations_store.retract_derivations(
-                        conn, patient_key, [version.derivation.sample_id],
-                        at=version.at, reason=version.reason,
-                    )
-                )
-                continue
-            saved = derivations_store.save_derivation(
-                conn, version.derivation, at=version.at, reason=version.reason
-            )
-            if saved.changed:
-                report.derivations += 1
+        written, withdrawn = derivations_store.save_versions(
+            conn,
+            patient_key,
+            [
+                derivations_store.VersionToSave(v.derivation, v.at, v.reason, v.retracted)
+                for v in step.derivations
+            ],
+        )
+        report.derivations += written
+        report.retracted_derivations += withdrawn
         for change in step.flags:
             self._apply(conn, change, seen_at, report)
 
