@@ -146,6 +146,9 @@ def gas(hours: float, *, pf: float, aa: float = 30.0, fio2: float = 0.4) -> Deri
         fio2_source=FiO2Source.WITH_GAS,
         pf_ratio=pf,
         aa_gradient=aa,
+        # PAO2 = PaO2 + A-a, and a/A = PaO2 / PAO2 (definitions; reference sheet s.4)
+        alveolar_po2=pf * fio2 + aa,
+        arterial_alveolar_ratio=(pf * fio2) / (pf * fio2 + aa),
     )
 
 
