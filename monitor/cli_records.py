@@ -25,10 +25,17 @@ def add_record_commands(sub: Subparsers) -> None:
     ingest = sub.add_parser(
         "ingest",
         help="load FHIR NDJSON/Bundle and HL7 v2 files",
-        description="Load files through the pipeline (stored, derived, judged) in order of "
-        "record time. Re-loading a file stores nothing new.",
+        description="Load files: every file is read and stored first, then each patient's "
+        "timeline is computed in known-time order, so neither file nor line order matters. "
+        "Re-loading a file stores nothing new; with no PATH, finish what an interrupted "
+        "load left. Flags on data older than the site's horizon are recorded as "
+        "historical and never sent.",
     )
-    ingest.add_argument("paths", nargs="+", type=Path, metavar="PATH")
+    ingest.add_argument("paths", nargs="*", type=Path, metavar="PATH")
+    ingest.add_argument(
+        "--workers", type=int, default=1, metavar="N",
+        help="processes computing patients (default 1)",
+    )
     add_site_options(ingest)
     ingest.add_argument("--no-progress", action="store_true", help="no progress bar")
     ingest.add_argument("--json", action="store_true", help="print the summary as JSON")
@@ -67,6 +74,8 @@ def _run_ingest(args: argparse.Namespace) -> int:
     missing = [str(p) for p in args.paths if not p.is_file()]
     if missing:
         return fail(f"PATH: no such file: {', '.join(missing)}")
+    if args.workers < 1:
+        return fail(f"--workers {args.workers}: must be 1 or more")
     shell = open_site(args)
     try:
         report = ingest_files(
@@ -74,7 +83,8 @@ def _run_ingest(args: argparse.Namespace) -> int:
             shell.pipeline,
             shell.context,
             now=lambda: datetime.now(UTC),
-            progress=not args.no_progress and sys.stderr.isatty(),
+            progress=not args.no_progress,
+            workers=args.workers,
         )
     except FileKindError as exc:
         return fail(f"PATH: {exc}")
@@ -90,6 +100,7 @@ def _run_ingest(args: argparse.Namespace) -> int:
         "top_quarantine_reasons": report.quarantine_reasons.most_common(5),
         "derivations": report.derivations,
         "flag_events": len(report.alert_events),
+        "historical_flag_events": report.historical_events,
         "notifications_queued": report.notifications,
     }
     if args.json:
@@ -104,7 +115,8 @@ def _run_ingest(args: argparse.Namespace) -> int:
     for code, count in report.skipped_codes.most_common(5):
         print(f"  skipped code {code} x {count}")
     print(
-        f"derivations {report.derivations}, flag events {len(report.alert_events)}, "
+        f"derivations {report.derivations}, flag events {len(report.alert_events)} "
+        f"({report.historical_events} recorded as historical, never sent), "
         f"notifications queued {report.notifications}"
     )
     return 0

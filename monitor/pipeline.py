@@ -142,8 +142,18 @@ def _reason_key(reason: str) -> str:
     parts = [p.strip() for p in reason.split(": ")]
     while len(parts) > 1 and _WHERE.match(parts[0]):
         parts.pop(0)
-    key = re.sub(r"'[^']*'|(?<![\w^-])\d+(\.\d+)?", "…", ": ".join(parts[:2]))
-    return key[:80]
+    key = ": ".join(parts[:2])
+    # which resource or segment said it is where, not what: "Observation/odd-unit",
+    # "message C2", "OBX[3]" and draw times group with their kind
+    key = _WHICH.sub("", key)
+    key = re.sub(r"'[^']*'|(?<![\w^-])\d+(\.\d+)?", "…", key)
+    return " ".join(key.split())[:80]
+
+
+_WHICH = re.compile(
+    r"\b(?:Observation|Patient|Encounter|Specimen|DiagnosticReport|Bundle)/[^\s:]+"
+    r"|\bmessage \S+ |\b(?:OBX|OBR|PID|PV1)\[\d+\]|\d{4}-\d\d-\d\dT[\d:.+\-Z]+"
+)
 
 
 

@@ -110,30 +110,35 @@ def _run_config_check(args: argparse.Namespace) -> int:
 
 
 def _run_alerts(args: argparse.Namespace) -> int:
+    from monitor.bootstrap import load_site
     from monitor.cli.common import open_site
+    from monitor.cli_records import alerts_table, database_problem, unit_problem
     from monitor.web.api import alert_json
+    from storage import board as board_store
     from storage.alerts import open_alerts
 
     if args.command == "alerts":
         print("gasgap: 'alerts' is now 'flags'; the old name still works", file=sys.stderr)
+    problem = database_problem(_database_url(args))
+    if problem is not None:  # never create an empty database to say "no open flags"
+        return fail(problem)
     shell = open_site(args)
     db = shell.db
     try:
         with db.begin(read_only=True) as conn:
-            found = open_alerts(conn, unit=args.unit)
+            problem = unit_problem(board_store.known_units(conn), args.unit)
+            found = [] if problem else open_alerts(conn, unit=args.unit)
     finally:
         db.dispose()
+    if problem is not None:
+        return fail(problem)
     if args.json:
         print(json.dumps({"flags": [alert_json(a) for a in found], "advisory": ADVISORY}, indent=2))
         return 0
     if not found:
         print("no open flags" + (f" in {args.unit}" if args.unit else ""))
-    for a in found:
-        where = a.location.label() if a.location else "location unknown"
-        print(
-            f"{a.priority.value.upper():6} {a.state.value:12} {a.rule:18} {where:24} {a.alert_id}"
-        )
-        print(f"       {a.summary}")
+    else:
+        print(alerts_table(found, load_site(args.config).zone(), datetime.now(UTC)))
     print()
     print(ADVISORY)
     return 0

@@ -108,6 +108,8 @@ def test_an_unset_url_env_is_one_line_naming_it(tmp_path: Path) -> None:
 @pytest.mark.parametrize("alias", ["alerts", "flags"])
 def test_the_old_alerts_name_still_lists_flags(tmp_path: Path, alias: str) -> None:
     url = f"sqlite:///{tmp_path / 'empty.db'}"
+    made = _gasgap(tmp_path, url, "db", "upgrade", "--config", str(_site(tmp_path)))
+    assert made.returncode == 0, made.stderr  # an empty database, not a missing one
     done = _gasgap(tmp_path, url, alias, "--config", str(_site(tmp_path)))
     assert done.returncode == 0, done.stderr
     assert "no open flags" in done.stdout
