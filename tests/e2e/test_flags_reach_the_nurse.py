@@ -14,6 +14,7 @@ import socket
 import subprocess
 import sys
 import threading
+from datetime import UTC, datetime, timedelta
 from email import message_from_bytes
 from email.message import Message
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
@@ -159,3 +160,58 @@ def test_worsening_patients_flags_reach_webhook_and_mail_and_can_be_acknowledged
     # A second send finds nothing new to deliver twice: receivers saw each key once.
     gasgap("outbox", "send", "--config", str(config), "--json")
     assert len(receiver.keys) == len(set(receiver.keys))
+
+
+def _fresh_gas(path: Path, drawn: datetime) -> Path:
+    """An invented arterial gas drawn ``drawn`` (UTC), sent five minutes later: PaO2 50
+    on FiO2 0.80, P/F 62 (Berlin severe band, <= 100; JAMA 2012)."""
+    def t(x: datetime) -> str:
+        return x.strftime("%Y%m%d%H%M%S") + "+0000"
+
+    sent = drawn + timedelta(minutes=5)
+    segments = [
+        f"MSH|^~\\&|HGH-LAB|HOLLOWMERE|GASGAP|HOLLOWMERE|{t(sent)}||ORU^R01^ORU_R01|"
+        f"LIVE{t(sent)[:12]}|P|2.5.1",
+        "PID|1||HM900001^^^HGH&2.999.1.1.1&ISO^MR||Invented^Ada||19600101|F",
+        "PV1|1|I|ICU-North^7^1",
+        f"OBR|1|P-9001|F-LIVE-9001|24336-0^Gas panel - Arterial blood^LN|||{t(drawn)}",
+        "OBX|1|NM|2703-7^PO2 arterial^LN||50|mm[Hg]|||||F",
+        "OBX|2|NM|2019-8^PCO2 arterial^LN||40|mm[Hg]|||||F",
+        "OBX|3|NM|3150-0^Inhaled O2 concentration^LN||80|%|||||F",
+        "SPM|1|||BLDA^Blood arterial^HL70487",
+    ]
+    path.write_text("\r".join(segments) + "\r")
+    return path
+
+
+def test_history_pages_nobody_and_live_flags_after_it_do(
+    tmp_path: Path, webhook: tuple[str, type[_Receiver]], smtp: tuple[int, list[Message]]
+) -> None:
+    # The default horizon (6 h): the demo feed, drawn in March 2026, is history when
+    # loaded today. Its flags are recorded, never sent; a real receiver counts zero.
+    hook_url, receiver = webhook
+    smtp_port, mails = smtp
+    config = site_config(tmp_path, hook_url, smtp_port)
+    text = config.read_text().replace("historical_after_hours = 0", "historical_after_hours = 6")
+    config.write_text(text)
+    done = gasgap("ingest", *(str(p) for p in sorted(DEMO.glob("feed-*"))), "--config",
+                  str(config), "--no-progress", "--json")
+    assert done.returncode == 0, done.stderr
+    summary = json.loads(done.stdout)
+    assert summary["flag_events"] > 0
+    assert summary["historical_flag_events"] == summary["flag_events"]
+    assert summary["notifications_queued"] == 0
+    gasgap("outbox", "send", "--config", str(config), "--json")
+    assert receiver.bodies == [] and mails == []
+
+    # A gas drawn 20 minutes ago is not history: its flag reaches both receivers.
+    fresh = _fresh_gas(tmp_path / "now.hl7", datetime.now(UTC) - timedelta(minutes=20))
+    done = gasgap("ingest", str(fresh), "--config", str(config), "--no-progress", "--json")
+    assert done.returncode == 0, done.stderr
+    assert json.loads(done.stdout)["notifications_queued"] > 0
+    sent = gasgap("outbox", "send", "--config", str(config), "--json")
+    assert sent.returncode == 0, sent.stderr
+    assert receiver.bodies and mails
+    # only the fresh gas's ward bed: nothing of the March history (display mrn-last4)
+    assert {(b["location"] or {}).get("room") for b in receiver.bodies} == {"7"}
+    assert any(b["flag"]["priority"] == "high" for b in receiver.bodies)
