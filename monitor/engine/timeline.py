@@ -584,11 +584,11 @@ class PatientTimeline:
                 judged.own_change
                 and open_alert is not None
                 and open_alert.sample_id == d.sample_id
-                and not (outcome.fired and outcome.priority is open_alert.priority)
+                and not outcome.fired
             ):
                 # The sample this flag stands on was derived anew (a correction, a late
-                # input) and no longer says what the flag says: take the flag back, and
-                # let the new values raise whatever they support.
+                # input) and no longer supports any flag of this rule: take it back.
+                # (Still firing at another priority, the flag worsens or is lowered.)
                 decision = alerts.retract(
                     open_alert, instant, "the result behind this flag changed", d.sample_id
                 )
@@ -602,6 +602,13 @@ class PatientTimeline:
                 continue
             if outcome.cleared and open_alert is None:
                 continue
+            if (
+                not judged.own_change
+                and open_alert is not None
+                and outcome.priority is not None
+                and outcome.priority.rank <= open_alert.priority.rank
+            ):
+                continue  # nor does it lower one: only a worse state is news
             last_closed = self.last_closed.get(outcome.rule_id) if open_alert is None else None
             decision = alerts.apply_outcome(
                 open_alert, last_closed, outcome, d, instant, self.settings.alerts
