@@ -38,7 +38,7 @@ from monitor.bootstrap import Secrets
 from monitor.config import ConfigError, FhirSource, SiteConfig, load_config
 from monitor.engine.model import Reading
 from monitor.engine.wording import patient_display
-from monitor.ingest import SourceContext, inbound_from_hl7
+from monitor.ingest import SourceContext, inbound_from_fhir, inbound_from_hl7
 from monitor.logs import IdentifierGuard, setup_logging
 from monitor.metrics import Metrics
 from monitor.outbox import OutboxDispatcher
@@ -237,6 +237,8 @@ class _QuietServer(uvicorn.Server):
 
 
 def _fhir_inbound(source: str, batch: FhirBatch | PollBatch) -> Inbound:
+    if isinstance(batch, FhirBatch):  # links, re-keyings and panel members too
+        return inbound_from_fhir(batch, source)
     return Inbound(
         readings=list(batch.readings),
         rejected=[Rejected(f"fhir:{source}", r.raw, r.reason) for r in batch.rejections],
