@@ -23,6 +23,7 @@ EXPECTED_TABLES = {
     "alerts",
     "alert_events",
     "outbox",
+    "quarantine_payloads",  # 0002_quarantine
 }
 
 
@@ -44,7 +45,7 @@ def test_upgrade_from_empty_creates_every_table(db_url: str) -> None:
     upgrade(db_url)
     tables, revision, _ = _schema(db_url)
     assert tables == EXPECTED_TABLES | {"alembic_version"}
-    assert revision == "0001"
+    assert revision == "0002_quarantine"
 
 
 def test_second_upgrade_changes_nothing(db_url: str) -> None:
@@ -142,7 +143,7 @@ def test_processes_starting_together_migrate_once(db_url: str) -> None:
     assert not any(t.is_alive() for t in threads), "a migration is stuck waiting"
     assert errors == []
     tables, revision, _ = _schema(db_url)
-    assert tables == EXPECTED_TABLES | {"alembic_version"} and revision == "0001"
+    assert tables == EXPECTED_TABLES | {"alembic_version"} and revision == "0002_quarantine"
 
 
 def test_upgrade_refuses_an_in_memory_url() -> None:
