@@ -7,24 +7,42 @@ A FHIR server with a rest-hook Subscription posts here when something changed:
   the answer (200) comes after the batch is committed;
 - a handshake or heartbeat: 200, nothing to do.
 
+Refused like file ingest refuses them, and kept in quarantine with the reason:
+- a single resource of a type gasgap does not read (not Observation, Patient or
+  Encounter): answer 422 naming the type (in a Bundle such entries are skipped and
+  counted, as in a Bundle file);
+- a resource nested deeper than ``adapters.fhir.limits.MAX_DEPTH``: refused unread
+  (its head kept), the rest of the delivery read; 422 when nothing is left.
+
 When a shared secret is configured the header must carry it (constant-time check), or
 the answer is 401. A body that is not FHIR JSON gets 400 with the reason.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 from typing import Any
 
+import orjson
 from fastapi import APIRouter, Depends, HTTPException, Request
 from fastapi.responses import JSONResponse
 from starlette.concurrency import run_in_threadpool
 
-from adapters.fhir.subscription import HookKind, HookPayloadError, parse_notification
+from adapters.fhir.limits import label, split_too_deep
+from adapters.fhir.subscription import (
+    HookDelivery,
+    HookKind,
+    HookPayloadError,
+    parse_notification,
+)
 from monitor.web.security import check_hook_secret
 
 log = logging.getLogger("gasgap.hooks")
 router = APIRouter(tags=["subscription"], dependencies=[Depends(check_hook_secret)])
+
+#: What the hook reads; any other single resource is refused (as ``gasgap ingest`` does).
+TAKEN_RESOURCES = ("Observation", "Patient", "Encounter")
 
 
 @router.post("/hooks/fhir/{source}", summary="FHIR R4 rest-hook subscription delivery")
@@ -49,9 +67,49 @@ async def fhir_hook(request: Request, source: str) -> JSONResponse:
     reader = ctx.hook_sources.get(source)
     if reader is None:
         raise HTTPException(409, f"source {source!r} does not take resources by hook")
+    delivery, refused = screen(delivery)
+    if refused:
+        await run_in_threadpool(_keep, ctx, source, refused)
+    if not delivery.resources:
+        reasons = "; ".join(reason for _, reason in refused[:3])
+        return JSONResponse(
+            {"outcome": "refused", "detail": reasons, "stored": 0, "quarantined": len(refused)},
+            status_code=422,
+        )
     report = await _accept(reader, delivery)
     return JSONResponse({"outcome": "stored", "stored": report.stored,
-                         "quarantined": report.quarantined})
+                         "quarantined": report.quarantined + len(refused)})
+
+
+def screen(delivery: HookDelivery) -> tuple[HookDelivery, list[tuple[str, str]]]:
+    """Take out of ``delivery`` what must not be read: resources nested too deep and a
+    lone resource of a type not taken. Returns the rest and ``(raw, reason)`` for each
+    one taken out."""
+    refused: list[tuple[str, str]] = []
+    kept, deep = split_too_deep(delivery.resources)
+    refused.extend((head, reason) for _, reason, head in deep)
+    resources = [delivery.resources[i] for i in kept]
+    urls = [delivery.full_urls[i] if i < len(delivery.full_urls) else None for i in kept]
+    if len(delivery.resources) == 1 and resources:
+        rtype = resources[0].get("resourceType")
+        if rtype not in TAKEN_RESOURCES:
+            reason = (f"{label(resources[0])}: resourceType {rtype!r} is not taken "
+                      f"(only {', '.join(TAKEN_RESOURCES)})")
+            refused.append((orjson.dumps(resources[0]).decode(), reason))
+            resources, urls = [], []
+    if not refused:
+        return delivery, refused
+    return dataclasses.replace(delivery, resources=tuple(resources), full_urls=tuple(urls)), refused
+
+
+def _keep(ctx: Any, source: str, refused: list[tuple[str, str]]) -> None:
+    from monitor.pipeline import Rejected  # the pipeline's own type for refused input
+
+    now = ctx.clock()
+    for raw, reason in refused:
+        ctx.pipeline.quarantine(Rejected(f"fhir:{source}", raw, reason), now=now)
+        log.info("subscription delivery for %s: refused, kept in quarantine", source)
+    ctx.metrics.quarantined.labels(source=source).inc(len(refused))
 
 
 async def _accept(reader: Any, delivery: Any) -> Any:
