@@ -220,11 +220,12 @@ def build_parser() -> _Parser:
 
 def _command_modules() -> list[Callable[[argparse._SubParsersAction[_Parser]], None]]:
     """The other commands, each registered by the module that runs it."""
+    from monitor.cli_quarantine import add_quarantine_commands
     from monitor.cli_records import add_record_commands
     from monitor.cli_serve import add_serve_commands
 
     found: list[Callable[[argparse._SubParsersAction[_Parser]], None]] = [
-        add_record_commands, add_serve_commands,
+        add_record_commands, add_serve_commands, add_quarantine_commands,
     ]
     try:
         from monitor.cli_replay import add_replay_command
