@@ -1,8 +1,9 @@
 """The HTTP application: unit board, JSON API, health, metrics and the FHIR hook.
 
 ``create_app`` builds it from what the composition root (``monitor.service``) already
-made; routers are included explicitly, nothing registers itself by import. OpenAPI is
-served at ``/openapi.json`` (and ``/docs``) for the JSON API.
+made; routers are included explicitly, nothing registers itself by import. The API
+description is served at ``/openapi.json`` (and, as a plain page, ``/docs``) to a
+signed-in user only. Every response passes ``SecurityHeaders`` (outermost).
 """
 
 from __future__ import annotations
@@ -12,18 +13,25 @@ import time
 from collections.abc import Awaitable, Callable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta, tzinfo
+from html import escape
 from pathlib import Path
 from typing import Any
 
-from fastapi import FastAPI, Request, Response
-from fastapi.responses import JSONResponse, RedirectResponse
+from fastapi import Depends, FastAPI, Request, Response
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
 from fastapi.staticfiles import StaticFiles
 
 from monitor.engine.model import ADVISORY
 from monitor.logs import IdentifierGuard
 from monitor.metrics import Metrics
-from monitor.web import api, board, hooks
-from monitor.web.security import BodyLimit, WebSecurity
+from monitor.web import api, board, hooks, quarantine_api
+from monitor.web.security import (
+    BodyLimit,
+    SecurityHeaders,
+    WebSecurity,
+    require_signed_in,
+    session_router,
+)
 from storage import board as board_store
 from storage import outbox as outbox_store
 from storage.cursors import all_cursors
@@ -77,8 +85,8 @@ def create_app(
         title="gasgap",
         description="Oxygenation indices and advisory flags. " + ADVISORY,
         version="1",
-        openapi_url="/openapi.json",
-        docs_url="/docs",
+        openapi_url=None,  # served below, behind sign-in
+        docs_url=None,
         redoc_url=None,
     )
     app.state.ctx = ctx
@@ -87,13 +95,43 @@ def create_app(
     app.include_router(api.router)
     app.include_router(board.router)
     app.include_router(hooks.router)
+    app.include_router(quarantine_api.router)
+    app.include_router(session_router)
+    signed_in = [Depends(require_signed_in)]
+    app.add_api_route("/openapi.json", openapi_json, methods=["GET"], dependencies=signed_in,
+                      include_in_schema=False)
+    app.add_api_route("/docs", api_docs, methods=["GET"], dependencies=signed_in,
+                      include_in_schema=False)
     app.add_api_route("/health", health, methods=["GET"], tags=["operations"])
     app.add_api_route("/metrics", metrics, methods=["GET"], tags=["operations"])
     app.add_api_route("/", home, methods=["GET"], include_in_schema=False)
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
     app.middleware("http")(log_requests)
     app.add_middleware(BodyLimit, max_bytes=security.max_body_bytes)
+    app.add_middleware(SecurityHeaders)
     return app
+
+
+def openapi_json(request: Request) -> JSONResponse:
+    return JSONResponse(request.app.openapi())
+
+
+def api_docs(request: Request) -> HTMLResponse:
+    """The API description as a plain page (no scripts from elsewhere, so the content
+    security policy holds); the machine-readable form is /openapi.json."""
+    spec = request.app.openapi()
+    rows = []
+    for path, operations in sorted(spec.get("paths", {}).items()):
+        for method, op in operations.items():
+            rows.append(f"<tr><td>{escape(method.upper())}</td><td><code>{escape(path)}</code>"
+                        f"</td><td>{escape(str(op.get('summary', '')))}</td></tr>")
+    body = (f"<!doctype html><html lang=en><head><meta charset=utf-8><title>gasgap API</title>"
+            f"<link rel=stylesheet href=/static/board.css></head><body><h1>gasgap API</h1>"
+            f"<p>{escape(ADVISORY)}</p><p>Machine-readable: <a href=/openapi.json>"
+            f"/openapi.json</a> (OpenAPI {escape(str(spec.get('openapi', '')))})</p>"
+            f"<table><tr><th>Method</th><th>Path</th><th>What</th></tr>{''.join(rows)}"
+            f"</table></body></html>")
+    return HTMLResponse(body)
 
 
 async def home() -> RedirectResponse:
