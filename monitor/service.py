@@ -52,6 +52,7 @@ from monitor.web.app import WebContext, create_app
 from monitor.web.security import WebSecurity
 from monitor.web.server_limits import HeaderTimeoutH11Protocol
 from storage.db import Database, open_database
+from storage.quarantine import collapse_alike
 
 log = logging.getLogger("gasgap.service")
 Clock = Callable[[], datetime]
@@ -175,6 +176,7 @@ class Service:
             self.pipeline.quarantine(Rejected(f"hl7:{source}", raw, str(exc)), now=self.clock())
             self.metrics.quarantined.labels(source=source).inc()
             raise
+        inbound.rejected = collapse_alike(inbound.rejected)  # 5,000 alike OBX: one row
         unreadable = unreadable_reason(inbound.skipped_codes, len(inbound.readings),
                                        len(inbound.rejected))
         if unreadable:  # nothing read, nothing refused: keep it whole rather than drop it

@@ -18,6 +18,7 @@ with ``retention_days`` (``purge_quarantine``).
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import re
 import threading
@@ -225,6 +226,30 @@ def quarantine_many(
                    occurrences=count)
         for (_digest, source, _key), (raw, reason, count) in groups.items()
     ]
+
+
+def collapse_alike(items: Sequence[Any]) -> list[Any]:
+    """Alike rejections (same source, payload and reason key) as one each, before they
+    reach a transaction: the first of each group, its reason cut to ``MAX_REASON_CHARS``
+    and saying how many more there were. ``items`` are dataclasses with ``source``,
+    ``raw`` and ``reason`` (the pipeline's ``Rejected``); order is kept. Linear in the
+    number of items (each reason is read only up to its first few hundred characters)."""
+    groups: dict[tuple[str, str, str], list[Any]] = {}
+    for item in items:
+        key = (item.source, payload_digest(item.raw), reason_key(item.reason))
+        if key in groups:
+            groups[key][1] += 1
+        else:
+            groups[key] = [item, 1]
+    out = []
+    for first, count in groups.values():
+        if count == 1 and len(first.reason) <= MAX_REASON_CHARS:
+            out.append(first)
+            continue
+        more = f" (and {count - 1} more alike in this input)" if count > 1 else ""
+        reason = clip_reason(first.reason, MAX_REASON_CHARS - len(more)) + more
+        out.append(dataclasses.replace(first, reason=reason))
+    return out
 
 
 # --- reading ------------------------------------------------------------------------------

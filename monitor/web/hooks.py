@@ -76,9 +76,40 @@ async def fhir_hook(request: Request, source: str) -> JSONResponse:
             {"outcome": "refused", "detail": reasons, "stored": 0, "quarantined": len(refused)},
             status_code=422,
         )
-    report = await _accept(reader, delivery)
-    return JSONResponse({"outcome": "stored", "stored": report.stored,
-                         "quarantined": report.quarantined + len(refused)})
+    stored = quarantined = 0
+    for part in chunks(delivery):
+        report = await _accept(reader, part)
+        stored += report.stored
+        quarantined += report.quarantined
+    return JSONResponse({"outcome": "stored", "stored": stored,
+                         "quarantined": quarantined + len(refused)})
+
+
+#: Resources read and committed per transaction: a 10,000-entry Bundle must not hold
+#: the database's write lock for minutes while other senders wait (each part is a
+#: short transaction; the answer still comes once every part is committed, and a
+#: resend after a failure part-way is harmless, readings being idempotent).
+CHUNK_RESOURCES = 200
+_CONTEXT_TYPES = ("Patient", "Encounter")
+
+
+def chunks(delivery: HookDelivery, size: int = CHUNK_RESOURCES) -> list[HookDelivery]:
+    """``delivery`` in parts of at most ``size`` results, each with every Patient and
+    Encounter of the delivery (the context its Observations refer to)."""
+    if len(delivery.resources) <= size:
+        return [delivery]
+    urls = list(delivery.full_urls) + [None] * (len(delivery.resources) - len(delivery.full_urls))
+    context = [(r, u) for r, u in zip(delivery.resources, urls, strict=True)
+               if r.get("resourceType") in _CONTEXT_TYPES]
+    rest = [(r, u) for r, u in zip(delivery.resources, urls, strict=True)
+            if r.get("resourceType") not in _CONTEXT_TYPES]
+    parts = []
+    for start in range(0, max(len(rest), 1), size):
+        part = context + rest[start : start + size]
+        parts.append(dataclasses.replace(
+            delivery, resources=tuple(r for r, _ in part), full_urls=tuple(u for _, u in part),
+            skipped=delivery.skipped if start == 0 else type(delivery.skipped)()))
+    return parts
 
 
 def screen(delivery: HookDelivery) -> tuple[HookDelivery, list[tuple[str, str]]]:
