@@ -160,6 +160,10 @@ def test_oversized_message(served: tuple[ServiceProcess, int, Path]) -> None:
     code, took, _ = _while(lambda: _mllp_send(port, raw), port)
     assert code == "AE" and took < 1.0, (code, took)
     assert _db_bytes(db_path) - before <= 2 * len(raw)
+    kept = httpx.get(service.base + "/api/quarantine", params={"source": "hl7:lab"},
+                     headers={"Authorization": f"Bearer {API_TOKEN}"}, timeout=10).json()
+    heads = [i for i in kept["items"] if "limit" in i["reason"]]
+    assert heads and heads[0]["payload_bytes"] <= 65536  # its head, bounded
 
 
 def _hook(service: ServiceProcess, body: bytes) -> int:
@@ -170,11 +174,30 @@ def _hook(service: ServiceProcess, body: bytes) -> int:
 
 
 @pytest.mark.slow
-@pytest.mark.timeout(300)
+@pytest.mark.timeout(400)
+@pytest.mark.xfail(strict=True, reason=(
+    "the pipeline pairs each new reading of a patient against all of that patient's "
+    "readings (monitor/engine/pairing.current_readings per sample): 2,500 PaO2 of one "
+    "patient hold the write lock for seconds per part even in parts of 200; the fix is "
+    "in the pipeline, see the hardening report"))
 def test_bundle_of_2500_observations(served: tuple[ServiceProcess, int, Path]) -> None:
     service, port, _ = served
-    status, took, _ = _while(lambda: _hook(service, big_bundle()), port)
-    assert status == 200 and took < 1.0, (status, took)
+    waits = []
+    done: dict[str, int] = {}
+    thread = threading.Thread(target=lambda: done.update(status=_hook(service, big_bundle())),
+                              daemon=True)
+    thread.start()
+    for pause in (0.3, 4.0, 4.0):  # early, and twice while the later parts are stored
+        time.sleep(pause)
+        control, text = _normal()
+        session = MllpSession(port, ack_timeout=60)
+        started = time.monotonic()
+        code = session.send(text)
+        waits.append((code, round(time.monotonic() - started, 2)))
+        session.close()
+    thread.join(300)
+    assert done.get("status") == 200
+    assert all(code == "AA" and took < 1.0 for code, took in waits), waits
 
 
 @pytest.mark.slow
