@@ -31,6 +31,7 @@ from adapters.fhir.poller import BasicAuth, BearerAuth, FhirPoller, PollBatch
 from adapters.fhir.smart import SmartAuth
 from adapters.fhir.subscription import HookDelivery, read_delivery
 from adapters.hl7v2 import Hl7Error
+from adapters.hl7v2.ack import ack_for_batch, unreadable_reason
 from adapters.hl7v2.mllp import AckDecision, MllpListener
 from adapters.notify import Channel
 from monitor import bootstrap
@@ -53,7 +54,9 @@ from monitor.scheduling import (
 )
 from monitor.web.app import WebContext, create_app
 from monitor.web.security import WebSecurity
+from monitor.web.server_limits import HeaderTimeoutH11Protocol
 from storage.db import Database
+from storage.quarantine import collapse_alike
 
 log = logging.getLogger("gasgap.service")
 Clock = Callable[[], datetime]
@@ -162,10 +165,21 @@ class Service:
             self.pipeline.quarantine(Rejected(f"hl7:{source}", raw, str(exc)), now=self.clock())
             self.metrics.quarantined.labels(source=source).inc()
             raise
+        inbound.rejected = collapse_alike(inbound.rejected)  # 5,000 alike OBX: one row
+        unreadable = unreadable_reason(inbound.skipped_codes, len(inbound.readings),
+                                       len(inbound.rejected))
+        if unreadable:  # nothing read, nothing refused: keep it whole rather than drop it
+            inbound.rejected.append(Rejected(f"hl7:{source}", raw, unreadable))
         report = self.accept(source, inbound)
-        if report.quarantined and not report.stored and not report.duplicates:
-            return AckDecision("AE", f"{report.quarantined} result(s) refused; kept for review")
-        return AckDecision("AA")
+        return AckDecision(*ack_for_batch(stored=report.stored, duplicates=report.duplicates,
+                                          quarantined=report.quarantined))
+
+    def keep_refused(self, raw: bytes, reason: str) -> None:
+        """The MLLP listener's ``on_refused``: keep a message it could not hand on (over
+        the size limit: its head) in quarantine."""
+        source = self.context.hl7_source
+        self.pipeline.quarantine(Rejected(f"hl7:{source}", raw, reason), now=self.clock())
+        self.metrics.quarantined.labels(source=source).inc()
 
     def hook_reader(self, source: str) -> Callable[[HookDelivery], BatchReport]:
         poller = self.pollers[source]
@@ -191,6 +205,7 @@ class Service:
                 lifespan="off",
                 server_header=False,
                 timeout_graceful_shutdown=10,
+                http=HeaderTimeoutH11Protocol,  # request headers must arrive in 10 s
             )
         )
         if self.listener is not None:
@@ -371,6 +386,7 @@ def _listener(config: SiteConfig, service: Service) -> MllpListener | None:
         ssl=_mllp_ssl(config),
         read_timeout=mllp.idle_timeout_s,
         max_connections=mllp.max_connections,
+        on_refused=service.keep_refused,
     )
 
 

@@ -154,8 +154,27 @@ quarantine = sa.Table(
     sa.Column("raw_bytes", sa.LargeBinary, nullable=True),
     sa.Column("payload_size", sa.Integer, nullable=False),
     sa.Column("truncated", sa.Boolean, nullable=False),
+    # 0002_quarantine: the raw payload kept once in quarantine_payloads (by digest);
+    # alike rejections of one payload counted on one row; re-processing recorded.
+    sa.Column("payload_digest", sa.String, nullable=True),
+    sa.Column("occurrences", sa.Integer, nullable=False, server_default="1"),
+    sa.Column("resolved_at", UTCDateTime, nullable=True),
+    sa.Column("resolution", sa.Text, nullable=True),
     sa.Index(None, "received_at"),
     sa.Index(None, "reason_key"),
+    sa.Index(None, "payload_digest"),
+)
+
+#: A refused payload, kept once however many rejections point at it (0002_quarantine).
+quarantine_payloads = sa.Table(
+    "quarantine_payloads",
+    metadata,
+    sa.Column("digest", sa.String, primary_key=True),
+    sa.Column("raw_text", sa.Text, nullable=True),
+    sa.Column("raw_bytes", sa.LargeBinary, nullable=True),
+    sa.Column("payload_size", sa.Integer, nullable=False),
+    sa.Column("truncated", sa.Boolean, nullable=False),
+    sa.Column("first_received_at", UTCDateTime, nullable=False),
 )
 
 source_cursors = sa.Table(

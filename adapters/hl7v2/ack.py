@@ -2,10 +2,15 @@
 
 Acknowledgement codes (HL7 v2 Table 0008, original mode):
 
-- ``AA`` accepted: the message was handled (stored) and needs no resending;
-- ``AE`` error: the message is malformed or could not be handled; the sender should
-  look at the reason (in MSA-3 and ERR) and fix or resend it;
-- ``AR`` rejected: gasgap does not take this kind of message (type, event or version).
+- ``AA`` accepted: the message was stored and needs no resending;
+- ``AE`` error: the message itself has a problem (resending it unchanged fails again);
+  gasgap keeps it in quarantine with the reason (MSA-3 and ERR);
+- ``AR`` rejected: gasgap could not process it now (storage down or locked, ERR code
+  207: resend later), or does not take this kind of message (type, event or version,
+  ERR 200/201/203: kept in quarantine). Senders commonly retry AR.
+
+ACK text is built from gasgap's own reasons only; ``safe_text`` also drops anything
+that looks like a link or a database statement, should one slip into a reason.
 
 Error codes in ERR are from HL7 Table 0357 (from memory, not checked against the
 standard's text): 100 segment sequence error, 101 required field missing, 102 data
@@ -17,6 +22,8 @@ also answer messages that python-hl7 cannot parse: whatever MSH fields can be re
 from the raw bytes are reused, the rest take defaults.
 """
 
+import re
+from collections.abc import Mapping
 from dataclasses import dataclass
 
 from monitor.engine.errors import MonitorError
@@ -130,6 +137,42 @@ def escape_text(text: str, header: Header) -> str:
     return "".join(out)
 
 
+_LINK = re.compile(r"(?i)\b(?:https?|ftp|file)://\S*|\bwww\.\S+")
+_DRIVER_TAIL = re.compile(r"(?is)\s*(\(Background on this error.*|\[SQL:.*|\[parameters:.*)$")
+
+
+def safe_text(text: str) -> str:
+    """``text`` without links or a database driver's statement dump (for MSA-3/ERR)."""
+    return _LINK.sub("(link removed)", _DRIVER_TAIL.sub("", text)).strip()
+
+
+#: Skipped-code labels meaning "this OBX had no code to read" (parse.py's counter keys).
+_NO_CODE = "(no code)"
+
+
+def unreadable_reason(skipped_codes: Mapping[str, int], readings: int, rejected: int) -> str | None:
+    """Why a message must be kept whole and answered AE although nothing in it was
+    refused: none of its OBX gave a reading or a rejection, and some had no readable
+    OBX-3 code (an AA would drop them silently). None when the message was read (a
+    message of other tests only, e.g. a potassium, is answered AA and ignored)."""
+    if readings or rejected:
+        return None
+    unreadable = sum(n for code, n in skipped_codes.items()
+                     if code == _NO_CODE or not code.split("^", 1)[0].strip())
+    if not unreadable:
+        return None
+    return (f"no result could be read: {unreadable} OBX without an OBX-3 code "
+            "(kept whole for review)")
+
+
+def ack_for_batch(*, stored: int, duplicates: int, quarantined: int) -> tuple[str, str]:
+    """The answer for a committed message: AE when everything in it was refused (it is
+    in quarantine), else AA. Returns (code, text)."""
+    if quarantined and not stored and not duplicates:
+        return "AE", f"{quarantined} result(s) refused; kept in quarantine for review"
+    return "AA", ""
+
+
 def _clip(text: str, limit: int) -> str:
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
@@ -157,6 +200,7 @@ def build_ack(
         escape_text(h.sending_facility, h), timestamp, "", msg_type, escape_text(control_id, h),
         escape_text(h.processing_id, h), h.version,
     ])
+    text = safe_text(text)
     msa_text = escape_text(_clip(text, _MSA_TEXT_MAX), h)
     segments = [msh, sep.join(["MSA", ack_code, escape_text(h.control_id, h), msa_text])]
     if ack_code != "AA":

@@ -3,21 +3,40 @@
 The socket loop is thin: framing is ``framing.MllpFramer``, the answer is
 ``ack.build_ack``, and what a message means is the callback's business. The callback
 is called once per whole message, in the order received on a connection, and returns
-its ``AckDecision`` only after the message is durably handled (committed to storage),
-so an AA always means "stored": a sender that gets no ACK resends, and the delivery id
-makes the resend harmless.
+its ``AckDecision`` only after the message is durably handled (committed to storage).
 
-Never crashes on input: an oversized message, a callback exception or a malformed
-message each get an AE with the reason, and the connection stays open. Logs carry
-the peer address, the message control id, the size and the ACK code, never patient
-identifiers or message content.
+What each answer means (HL7 v2 original acknowledgement mode, Table 0008):
+
+- ``AA``: stored. A resend of a stored message is harmless (the delivery id).
+- ``AE``: the message itself is wrong (unreadable, over the size limit, no result
+  readable) and is kept in quarantine with the reason; resending it unchanged fails
+  again, so a sender should not.
+- ``AR`` with ERR code 207: gasgap could not process it now (the database is down or
+  locked); nothing was kept, resend later.
+- ``AR`` with ERR code 200/201/203: a message type, event or version gasgap does not
+  take (kept in quarantine).
+- no ACK (connection closed, deadline passed): nothing is promised; resend.
+
+Never crashes on input. An exception from the callback is answered ``AR`` when it is
+a storage outage (``is_transient``); any other is handed to ``on_failure`` to keep the
+message in quarantine (then ``AE``), or answered ``AR`` when that fails too. ACK text
+never carries an exception's own text (a database driver's message, a link).
+
+Limits, so no one sender can lock the others out: ``max_connections`` in all and
+``max_connections_per_peer`` from one address (more are closed at once); a
+connection must complete each message within ``message_deadline`` seconds of its first
+byte (a sender trickling bytes is cut off; it did not get an ACK, so it resends); a
+connection silent for ``read_timeout`` is closed. Logs carry the peer address, the
+message control id, the size and the ACK code, never patient identifiers or content.
 """
 
 import asyncio
 import inspect
 import logging
 import ssl as ssl_module
+import time
 import uuid
+from collections import Counter
 from collections.abc import Awaitable, Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -38,6 +57,43 @@ class AckDecision:
 
 
 OnMessage = Callable[[bytes], AckDecision] | Callable[[bytes], Awaitable[AckDecision]]
+#: Keeps a refused message (or the head of one) with the reason; raises if it cannot.
+OnRefused = Callable[[bytes, str], None]
+
+#: Answer for a message gasgap could not process now (storage down or locked).
+NOT_NOW = "not stored: gasgap cannot store messages at the moment; resend later"
+#: Answer for a message that broke the reader in a way it did not foresee, once kept.
+KEPT_FOR_REVIEW = "could not be processed; kept in quarantine for review"
+
+_TRANSIENT_NAMES = frozenset({
+    "OperationalError", "InterfaceError", "DisconnectionError", "TimeoutError",
+    "InternalError", "ConnectionFailure", "ConnectionTimeout", "AdminShutdown",
+    "CannotConnectNow", "QueryCanceled", "LockNotAvailable", "SerializationFailure",
+    "DeadlockDetected",
+})
+
+
+def is_transient(exc: BaseException) -> bool:
+    """True for a failure of storage that a later attempt may not meet: the database
+    down, locked, restarting or timing out (SQLAlchemy, sqlite3 and psycopg errors are
+    recognised by class name, so this module needs none of them), or an OS-level
+    connection failure."""
+    if isinstance(exc, (OSError, TimeoutError)):
+        return True
+    seen: set[int] = set()
+    current: BaseException | None = exc
+    while current is not None and id(current) not in seen:
+        seen.add(id(current))
+        if any(cls.__name__ in _TRANSIENT_NAMES for cls in type(current).__mro__):
+            return True
+        current = current.__cause__ or current.__context__
+    return False
+
+
+def _peer_host(peer: object) -> str:
+    if isinstance(peer, tuple) and peer:
+        return str(peer[0])
+    return str(peer)
 
 
 class MllpListener:
@@ -57,6 +113,10 @@ class MllpListener:
         ssl: ssl_module.SSLContext | None = None,
         read_timeout: float = 300,
         max_connections: int = 64,
+        max_connections_per_peer: int = 8,
+        message_deadline: float = 60,
+        on_refused: OnRefused | None = None,
+        is_transient: Callable[[BaseException], bool] = is_transient,
     ) -> None:
         self._on_message = on_message
         self._host = host
@@ -65,6 +125,11 @@ class MllpListener:
         self._ssl = ssl
         self._read_timeout = read_timeout
         self._max_connections = max_connections
+        self._max_per_peer = max_connections_per_peer
+        self._message_deadline = message_deadline
+        self._on_refused = on_refused
+        self._is_transient = is_transient
+        self._per_peer: Counter[str] = Counter()
         self._server: asyncio.Server | None = None
         self._connections: dict[asyncio.Task[None], bool] = {}  # task -> busy with a message
         self._stopping = False
@@ -97,42 +162,63 @@ class MllpListener:
         task = asyncio.current_task()
         assert task is not None  # always set inside a running task
         peer = writer.get_extra_info("peername")
+        host = _peer_host(peer)
+        refuse = ""
         if len(self._connections) >= self._max_connections:
             # A lab system holds a few connections; hundreds mean a fault or an attack.
             # Refusing the extra one keeps file handles for the senders that matter.
-            log.warning("MLLP %s: %d connections open, refusing another", peer,
-                        len(self._connections))
-            writer.close()
-            try:
-                await writer.wait_closed()
-            except (ConnectionError, ssl_module.SSLError):
-                pass
+            refuse = f"{len(self._connections)} connections open"
+        elif self._per_peer[host] >= self._max_per_peer:
+            # One address may not take the whole cap: the other senders keep their way in.
+            refuse = f"{self._per_peer[host]} connections open from this address"
+        if refuse:
+            log.warning("MLLP %s: %s, refusing another", peer, refuse)
+            await _close(writer)
             return
         self._connections[task] = False
+        self._per_peer[host] += 1
         framer = MllpFramer(self._max_message_bytes)
+        pending_since: float | None = None  # first byte after the last whole message
         try:
             while not self._stopping:
+                wait = self._read_timeout
+                if pending_since is not None:
+                    wait = min(wait, pending_since + self._message_deadline - time.monotonic())
+                    if wait <= 0:
+                        log.warning("MLLP %s: no whole message within %ss of its first byte, "
+                                    "closing (no ACK: the sender resends)", peer,
+                                    self._message_deadline)
+                        break
                 try:
-                    data = await asyncio.wait_for(reader.read(_READ_CHUNK), self._read_timeout)
+                    data = await asyncio.wait_for(reader.read(_READ_CHUNK), wait)
                 except TimeoutError:
+                    if pending_since is not None:
+                        continue  # the deadline check above closes it
                     log.info("MLLP %s: no data for %ss, closing", peer, self._read_timeout)
                     break
                 if not data:
                     break
-                await self._take(data, framer, writer, task, peer)
+                if pending_since is None:
+                    pending_since = time.monotonic()
+                answered = await self._take(data, framer, writer, task, peer)
+                if answered and not framer.in_message:
+                    pending_since = None
+                elif answered:
+                    pending_since = time.monotonic()  # the next message began in this chunk
         except (ConnectionError, asyncio.IncompleteReadError) as exc:
             log.info("MLLP %s: connection lost (%s)", peer, type(exc).__name__)
         finally:
             self._connections.pop(task, None)
-            writer.close()
-            try:
-                await writer.wait_closed()
-            except (ConnectionError, ssl_module.SSLError):
-                pass
+            self._per_peer[host] -= 1
+            if self._per_peer[host] <= 0:
+                del self._per_peer[host]
+            await _close(writer)
 
     async def _take(self, data: bytes, framer: MllpFramer, writer: asyncio.StreamWriter,
-                    task: asyncio.Task[None], peer: object) -> None:
+                    task: asyncio.Task[None], peer: object) -> int:
+        """Feed ``data`` to the framer and answer each whole message; how many."""
         self._connections[task] = True
+        answered = 0
         try:
             while True:
                 try:
@@ -140,18 +226,33 @@ class MllpListener:
                 except MessageTooLarge as too_large:
                     for message in too_large.messages:
                         await self._answer(message, writer, peer)
-                    log.warning("MLLP %s: message %s refused, over %d bytes", peer,
-                                recover_header(too_large.head).control_id or "?",
-                                too_large.limit)
-                    await self._send(writer, too_large.head, "AE", too_large.reason,
-                                     too_large.error_code)
+                        answered += 1
+                    await self._refuse_oversized(too_large, writer, peer)
+                    answered += 1
                     data = b""  # the framer kept the rest of the chunk
                     continue
                 for message in messages:
                     await self._answer(message, writer, peer)
-                return
+                    answered += 1
+                return answered
         finally:
             self._connections[task] = False
+
+    async def _refuse_oversized(self, too_large: MessageTooLarge,
+                                writer: asyncio.StreamWriter, peer: object) -> None:
+        control_id = recover_header(too_large.head).control_id or "?"
+        log.warning("MLLP %s: message %s refused, over %d bytes", peer, control_id,
+                    too_large.limit)
+        text = too_large.reason
+        if self._on_refused is not None:
+            try:
+                await asyncio.to_thread(self._on_refused, too_large.head, too_large.reason)
+                text += "; its first bytes are kept in quarantine"
+            except Exception as exc:  # storage down: say so, the answer stays AE
+                log.error("MLLP %s: head of message %s not kept: %s", peer, control_id,
+                          type(exc).__name__)
+                text += "; not kept (storage unavailable)"
+        await self._send(writer, too_large.head, "AE", text, too_large.error_code)
 
     async def _answer(self, message: bytes, writer: asyncio.StreamWriter, peer: object) -> None:
         control_id = recover_header(message).control_id or "?"
@@ -164,11 +265,28 @@ class MllpListener:
         except Hl7Error as exc:
             code, text, error_code = exc.ack_code, exc.reason, exc.error_code
         except Exception as exc:  # the listener must outlive any failure of the callback
-            code, text = "AE", f"message not stored: {type(exc).__name__}: {exc}"
-            log.error("MLLP %s: message %s not stored: %s", peer, control_id,
-                      type(exc).__name__)
+            code, text, error_code = await self._after_failure(message, exc, peer, control_id)
         log.info("MLLP %s: message %s (%d bytes) -> %s", peer, control_id, len(message), code)
         await self._send(writer, message, code, text, error_code)
+
+    async def _after_failure(self, message: bytes, exc: Exception, peer: object,
+                             control_id: str) -> tuple[str, str, str]:
+        """AR for an outage (the sender retries); otherwise keep the message and AE."""
+        name = type(exc).__name__
+        if self._is_transient(exc):
+            log.error("MLLP %s: message %s not stored, storage unavailable (%s): AR",
+                      peer, control_id, name)
+            return "AR", NOT_NOW, "207"
+        log.error("MLLP %s: message %s failed in processing (%s)", peer, control_id, name)
+        if self._on_refused is not None:
+            try:
+                await asyncio.to_thread(self._on_refused, message,
+                                        f"processing failed unexpectedly ({name})")
+                return "AE", KEPT_FOR_REVIEW, "207"
+            except Exception as again:
+                log.error("MLLP %s: message %s not kept either (%s)", peer, control_id,
+                          type(again).__name__)
+        return "AR", NOT_NOW, "207"
 
     async def _call(self, message: bytes) -> AckDecision:
         if inspect.iscoroutinefunction(self._on_message):
@@ -189,3 +307,11 @@ class MllpListener:
                         error_code=error_code, timestamp=now)
         writer.write(frame(ack))
         await writer.drain()
+
+
+async def _close(writer: asyncio.StreamWriter) -> None:
+    writer.close()
+    try:
+        await writer.wait_closed()
+    except (ConnectionError, ssl_module.SSLError):
+        pass

@@ -32,11 +32,12 @@ def _command_modules() -> list[Callable[[Subparsers], None]]:
     from monitor.cli.replay import add_replay_command
     from monitor.cli.serve import add_serve_commands
     from monitor.cli_fhir import add_fhir_commands
+    from monitor.cli_quarantine import add_quarantine_commands
     from monitor.cli_records import add_record_commands
 
     return [
         add_calc_command, add_record_commands, add_serve_commands, add_replay_command,
-        add_fhir_commands,
+        add_fhir_commands, add_quarantine_commands,
     ]
 
 

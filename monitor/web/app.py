@@ -1,8 +1,9 @@
 """The HTTP application: unit board, JSON API, health, metrics and the FHIR hook.
 
 ``create_app`` builds it from what the composition root (``monitor.service``) already
-made; routers are included explicitly, nothing registers itself by import. OpenAPI is
-served at ``/openapi.json`` (and ``/docs``) for the JSON API.
+made; routers are included explicitly, nothing registers itself by import. The API
+description is served at ``/openapi.json`` (and, as a plain page, ``/docs``) to a
+signed-in user only. Every response passes ``SecurityHeaders`` (outermost).
 """
 
 from __future__ import annotations
@@ -15,15 +16,21 @@ from datetime import UTC, datetime, timedelta, tzinfo
 from pathlib import Path
 from typing import Any
 
-from fastapi import FastAPI, Request, Response
+from fastapi import Depends, FastAPI, Request, Response
 from fastapi.responses import JSONResponse, RedirectResponse
 from fastapi.staticfiles import StaticFiles
 
 from monitor.engine.model import ADVISORY
 from monitor.logs import IdentifierGuard
 from monitor.metrics import Metrics
-from monitor.web import api, board, hooks
-from monitor.web.security import BodyLimit, WebSecurity
+from monitor.web import api, board, hooks, quarantine_api
+from monitor.web.security import (
+    BodyLimit,
+    SecurityHeaders,
+    WebSecurity,
+    require_signed_in,
+    session_router,
+)
 from storage import board as board_store
 from storage import outbox as outbox_store
 from storage.cursors import all_cursors
@@ -77,7 +84,7 @@ def create_app(
         title="gasgap",
         description="Oxygenation indices and advisory flags. " + ADVISORY,
         version="1",
-        openapi_url="/openapi.json",
+        openapi_url=None,  # served below, behind sign-in
         docs_url=None,  # our own page (api.docs_router): nothing fetched from a CDN
         redoc_url=None,
     )
@@ -85,16 +92,26 @@ def create_app(
     app.state.config = config
     app.state.security = security
     app.include_router(api.router)
-    app.include_router(api.docs_router)
     app.include_router(board.router)
     app.include_router(hooks.router)
+    app.include_router(quarantine_api.router)
+    app.include_router(session_router)
+    signed_in = [Depends(require_signed_in)]
+    app.add_api_route("/openapi.json", openapi_json, methods=["GET"], dependencies=signed_in,
+                      include_in_schema=False)
+    app.include_router(api.docs_router, dependencies=signed_in)
     app.add_api_route("/health", health, methods=["GET"], tags=["operations"])
     app.add_api_route("/metrics", metrics, methods=["GET"], tags=["operations"])
     app.add_api_route("/", home, methods=["GET"], include_in_schema=False)
     app.mount("/static", StaticFiles(directory=STATIC_DIR), name="static")
     app.middleware("http")(log_requests)
     app.add_middleware(BodyLimit, max_bytes=security.max_body_bytes)
+    app.add_middleware(SecurityHeaders)
     return app
+
+
+def openapi_json(request: Request) -> JSONResponse:
+    return JSONResponse(request.app.openapi())
 
 
 async def home() -> RedirectResponse:

@@ -4,8 +4,18 @@
 - The unit board wants either HTTP basic auth (when a board user is configured) or a
   board session: a cookie set by the login form, or by ``?token=`` once (the link a
   unit's wall screen is started with), after which the token leaves the address bar.
-  The cookie holds an HMAC of the board token, never the token itself.
+- A board session is one sign-in: a random session id, its issue and expiry times and
+  a fingerprint of the board code, signed with a key made when the process starts.
+  So each sign-in has its own cookie; it expires (``SESSION_SECONDS``); it does not
+  survive a restart or a change of the board code (the signature no longer matches);
+  and signing out (``POST /board/logout``) revokes it. It never holds the code itself.
+- ``/openapi.json`` and ``/docs`` want a signed-in user (API token or board session).
 - The FHIR subscription hook may require a shared secret in a header.
+
+Every response carries security headers (``SecurityHeaders``): a content security
+policy allowing only the service's own styles and forms, no framing, ``nosniff``, no
+referrer (a wall-screen link may hold the board code), and ``Cache-Control: no-store``
+on everything but static files (pages and API answers carry patient data).
 
 Secrets come from the environment or a secrets file (``SiteConfig.secret``), never from
 the configuration file in clear. Every comparison is ``hmac.compare_digest`` (constant
@@ -20,14 +30,38 @@ from __future__ import annotations
 import base64
 import hashlib
 import hmac
-from dataclasses import dataclass
+import secrets
+import threading
+import time
+from dataclasses import dataclass, field
 from typing import Any
 
-from fastapi import HTTPException, Request, status
+from fastapi import APIRouter, HTTPException, Request, status
+from fastapi.responses import RedirectResponse, Response
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 BOARD_COOKIE = "gasgap_board"
 DEFAULT_MAX_BODY_BYTES = 1_000_000
+#: How long one board sign-in lasts (a 12-hour shift; common practice, no source).
+SESSION_SECONDS = 12 * 3600
+
+
+class _Revoked:
+    """Session ids signed out before their expiry (kept until then)."""
+
+    def __init__(self) -> None:
+        self._until: dict[str, float] = {}
+        self._lock = threading.Lock()
+
+    def add(self, sid: str, until: float) -> None:
+        with self._lock:
+            now = time.time()
+            self._until = {k: v for k, v in self._until.items() if v > now}
+            self._until[sid] = until
+
+    def __contains__(self, sid: object) -> bool:
+        with self._lock:
+            return sid in self._until
 
 
 @dataclass(frozen=True)
@@ -43,14 +77,49 @@ class WebSecurity:
     max_body_bytes: int = DEFAULT_MAX_BODY_BYTES
     #: Send cookies only over HTTPS. Off for a loopback-only test; on in production.
     secure_cookies: bool = True
+    session_seconds: int = SESSION_SECONDS
+    #: Signs board sessions; made afresh by each process, so a restart ends them all.
+    session_key: bytes = field(default_factory=lambda: secrets.token_bytes(32), repr=False)
+    revoked: _Revoked = field(default_factory=_Revoked, repr=False, compare=False)
 
-    def board_session_value(self) -> str:
-        """The cookie value that proves a board login (an HMAC of the board token)."""
+    def _code_print(self) -> str:
+        return hmac.new(self.session_key, (self.board_token or "").encode(),
+                        hashlib.sha256).hexdigest()[:16]
+
+    def _sign(self, body: str) -> str:
+        return hmac.new(self.session_key, body.encode(), hashlib.sha256).hexdigest()
+
+    def board_session_value(self, now: float | None = None) -> str:
+        """A new board session (one sign-in): ``sid.issued.expires.signature``."""
         if not self.board_token:
             return ""
-        return hmac.new(
-            self.board_token.encode(), b"gasgap-board-session", hashlib.sha256
-        ).hexdigest()
+        issued = int(time.time() if now is None else now)
+        body = f"{secrets.token_urlsafe(18)}.{issued}.{issued + self.session_seconds}"
+        return f"{body}.{self._sign(body + '.' + self._code_print())}"
+
+    def session_id(self, value: str | None, now: float | None = None) -> str | None:
+        """The session id of a valid, unexpired, not signed-out cookie; else None."""
+        if not value or not self.board_token or value.count(".") != 3:
+            return None
+        sid, issued, expires, signature = value.split(".")
+        body = f"{sid}.{issued}.{expires}"
+        if not same(signature, self._sign(body + "." + self._code_print())):
+            return None
+        try:
+            if int(expires) <= (time.time() if now is None else now):
+                return None
+        except ValueError:
+            return None
+        return None if sid in self.revoked else sid
+
+    def sign_out(self, value: str | None) -> bool:
+        """Revoke the session in ``value``; True if it was a valid one."""
+        sid = self.session_id(value)
+        if sid is None:
+            return False
+        assert value is not None
+        self.revoked.add(sid, float(value.split(".")[2]))
+        return True
 
 
 def same(given: str | None, expected: str | None) -> bool:
@@ -88,11 +157,22 @@ def board_user(request: Request) -> str | None:
             password_ok = same(password, security.board_password)
             if user_ok and password_ok:
                 return f"basic:{user}"
-    if security.board_token and same(
-        request.cookies.get(BOARD_COOKIE), security.board_session_value()
-    ):
+    if security.board_token and security.session_id(request.cookies.get(BOARD_COOKIE)):
         return "session"
     return None
+
+
+def require_signed_in(request: Request) -> None:
+    """FastAPI dependency: an API token or a board sign-in (for the API description and
+    the read-only quarantine view), or 401."""
+    security: WebSecurity = request.app.state.security
+    header = request.headers.get("authorization", "")
+    scheme, _, token = header.partition(" ")
+    if scheme.lower() == "bearer" and same(token.strip(), security.api_token):
+        return
+    if board_user(request) is not None:
+        return
+    raise _unauthorised("sign in to the board or send the API token", "Bearer")
 
 
 def uses_basic(security: WebSecurity) -> bool:
@@ -179,3 +259,67 @@ async def _too_large(send: Send, limit: int) -> None:
     ]
     await send({"type": "http.response.start", "status": 413, "headers": headers})
     await send({"type": "http.response.body", "body": body})
+
+
+# --- sign-out --------------------------------------------------------------------------
+
+session_router = APIRouter(include_in_schema=False)
+
+
+@session_router.post("/board/logout")
+def sign_out(request: Request) -> Response:
+    """End this board session (the cookie is cleared and no longer accepted)."""
+    security: WebSecurity = request.app.state.security
+    if not same_origin(request):
+        return Response("form sent from another site", status_code=403)
+    security.sign_out(request.cookies.get(BOARD_COOKIE))
+    response = RedirectResponse("/board/login", status_code=303)
+    response.delete_cookie(BOARD_COOKIE, httponly=True, samesite="strict",
+                           secure=security.secure_cookies)
+    return response
+
+
+# --- headers on every response -----------------------------------------------------------
+
+CONTENT_SECURITY_POLICY = (
+    "default-src 'none'; style-src 'self'; img-src 'self' data:; form-action 'self'; "
+    "frame-ancestors 'none'; base-uri 'none'"
+)
+_ALWAYS = [
+    (b"content-security-policy", CONTENT_SECURITY_POLICY.encode()),
+    (b"x-content-type-options", b"nosniff"),
+    (b"referrer-policy", b"no-referrer"),
+    (b"x-frame-options", b"DENY"),
+    (b"cross-origin-opener-policy", b"same-origin"),
+]
+_NO_STORE = (b"cache-control", b"no-store")
+
+
+class SecurityHeaders:
+    """ASGI middleware: the security headers on every HTTP response, and ``no-store``
+    on every one but static files (board pages and API answers hold patient data)."""
+
+    def __init__(self, app: ASGIApp, cacheable_prefixes: tuple[str, ...] = ("/static/",)) -> None:
+        self.app = app
+        self.cacheable = cacheable_prefixes
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        cacheable = str(scope.get("path", "")).startswith(self.cacheable)
+
+        async def with_headers(message: Message) -> None:
+            if message["type"] == "http.response.start":
+                headers = [(k, v) for k, v in message.get("headers", [])
+                           if k.lower() not in _OURS]
+                headers.extend(_ALWAYS)
+                if not cacheable:
+                    headers.append(_NO_STORE)
+                message = {**message, "headers": headers}
+            await send(message)
+
+        await self.app(scope, receive, with_headers)
+
+
+_OURS = frozenset(k for k, _ in [*_ALWAYS, _NO_STORE])

@@ -180,19 +180,122 @@ def test_a_50_mb_message_is_refused_and_the_connection_stays_usable(serve) -> No
     assert len(store.readings) == 5
 
 
-def test_a_callback_exception_is_ae_and_the_listener_lives_on(serve) -> None:  # noqa: ANN001
+def test_an_unforeseen_callback_exception_is_ar_without_its_text(serve) -> None:  # noqa: ANN001
     calls: list[int] = []
 
     def failing(raw: bytes) -> AckDecision:
         calls.append(1)
         if len(calls) == 1:
-            raise RuntimeError("database is locked")
+            raise RuntimeError("secret detail from deep inside, see https://example.invalid")
         return AckDecision("AA")
 
     running = serve(failing)
     first = exchange(running.port, s.ABG_251.encode())
-    assert first.msa.msa_1.to_er7() == "AE" and "database is locked" in first.msa.msa_3.to_er7()
+    # Nothing could keep it: AR (HL7 v2 Table 0008: the receiver could not process it;
+    # senders retry), never an AE that would have it dropped.
+    assert first.msa.msa_1.to_er7() == "AR"
+    assert "secret" not in first.to_er7() and "http" not in first.to_er7()
     assert exchange(running.port, s.ABG_251.encode()).msa.msa_1.to_er7() == "AA"
+
+
+def test_a_storage_outage_is_ar_207_without_the_driver_text(serve) -> None:  # noqa: ANN001
+    import sqlite3
+
+    import sqlalchemy.exc
+
+    def locked(raw: bytes) -> AckDecision:
+        # The exception SQLAlchemy raises over sqlite3 when another writer holds the lock.
+        raise sqlalchemy.exc.OperationalError("INSERT INTO readings ...", {},
+                                              sqlite3.OperationalError("database is locked"))
+
+    kept: list[bytes] = []
+    running = serve(locked, on_refused=lambda raw, reason: kept.append(raw))
+    ack = exchange(running.port, s.ABG_251.encode())
+    er7 = ack.to_er7()
+    assert ack.msa.msa_1.to_er7() == "AR" and ack.err.err_3.err_3_1.to_er7() == "207"
+    assert "locked" not in er7 and "INSERT" not in er7 and "sqlalche.me" not in er7
+    assert kept == []  # an outage is not the message's fault: nothing quarantined
+
+
+def test_an_unforeseen_failure_is_kept_and_answered_ae(serve) -> None:  # noqa: ANN001
+    def broken(raw: bytes) -> AckDecision:
+        raise RecursionError("maximum recursion depth exceeded")
+
+    kept: list[tuple[bytes, str]] = []
+    running = serve(broken, on_refused=lambda raw, reason: kept.append((raw, reason)))
+    ack = exchange(running.port, s.ABG_251.encode())
+    assert ack.msa.msa_1.to_er7() == "AE"
+    assert kept and kept[0][0] == s.ABG_251.encode() and "RecursionError" in kept[0][1]
+
+
+def test_an_oversized_message_is_ae_and_its_head_kept(serve) -> None:  # noqa: ANN001
+    kept: list[tuple[bytes, str]] = []
+    running = serve(Store(), max_message_bytes=100_000,
+                    on_refused=lambda raw, reason: kept.append((raw, reason)))
+    big = s.msh("BIG1").encode() + b"\r" + b"NTE|1||" + b"y" * 200_000 + b"\r"
+    with connect(running.port) as sock:
+        sock.sendall(VT + big + FS + CR)
+        ack = validated(read_ack(sock, bytearray()))
+    assert ack.msa.msa_1.to_er7() == "AE" and ack.msa.msa_2.to_er7() == "BIG1"
+    assert len(kept) == 1 and kept[0][0].startswith(b"MSH|") and len(kept[0][0]) <= 65536
+    assert "limit" in kept[0][1]
+
+
+def _connect_from(address: str, port: int) -> socket.socket:
+    """A connection from another loopback address (all of 127/8 is loopback on Linux),
+    standing for another sender."""
+    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    sock.settimeout(TIMEOUT)
+    sock.bind((address, 0))
+    sock.connect(("127.0.0.1", port))
+    return sock
+
+
+def test_one_address_cannot_take_every_connection(serve) -> None:  # noqa: ANN001
+    running = serve(Store(), max_connections=16, max_connections_per_peer=4)
+    hogs = []
+    try:
+        for _ in range(12):  # one misbehaving sender on 127.0.0.2 opens many, sends bytes
+            hog = _connect_from("127.0.0.2", running.port)
+            hogs.append(hog)
+        time.sleep(0.3)
+        closed = 0
+        for hog in hogs:
+            hog.settimeout(0.5)
+            try:
+                if hog.recv(10) == b"":
+                    closed += 1
+            except TimeoutError:
+                pass
+        assert closed == 8  # refused beyond four
+        started = time.monotonic()
+        ack = exchange(running.port, s.abg("PEER1").encode())  # the lab, from 127.0.0.1
+        assert ack.msa.msa_1.to_er7() == "AA"  # type: ignore[attr-defined]
+        assert time.monotonic() - started < 1.0  # the goal: answered within a second
+    finally:
+        for hog in hogs:
+            hog.close()
+
+
+def test_a_trickling_sender_is_cut_off_at_the_message_deadline(serve) -> None:  # noqa: ANN001
+    running = serve(Store(), message_deadline=0.6, read_timeout=30)
+    with connect(running.port) as slow:
+        slow.sendall(VT + b"MSH|^~\\&|")
+        started = time.monotonic()
+        for _ in range(20):  # a byte every 0.1 s: never idle, never finished
+            try:
+                slow.sendall(b"x")
+            except OSError:
+                break
+            time.sleep(0.1)
+        slow.settimeout(5)
+        try:
+            assert slow.recv(100) == b""  # closed, no ACK: the sender resends
+        except ConnectionResetError:
+            pass
+        assert time.monotonic() - started < 5
+        # Meanwhile and afterwards, others are answered.
+        assert exchange(running.port, s.abg("TRK1").encode()).msa.msa_1.to_er7() == "AA"
 
 
 def test_an_async_callback_and_an_hl7error_from_it(serve) -> None:  # noqa: ANN001

@@ -23,6 +23,7 @@ Force, JAMA 2012), as tests/integration/service/test_serve_process.py works it.
 
 from __future__ import annotations
 
+import os
 import random
 import threading
 import time
@@ -49,10 +50,15 @@ from tests.reliability.helpers import (
 
 SEED = 20261202
 CONNECTIONS = 4
-MESSAGES_PER_CONNECTION = 500  # 2,000 messages, 6,000 readings
-MIN_KILLS = 5
-MAX_KILLS = 7  # each restart costs a few seconds of start-up on two cores
-FEED_DEADLINE_S = 300.0
+# The goal (issue: hardening) is 20 SIGKILLs in a 10,000-message run. On the shared
+# two-core machine that run takes about 15 minutes (some 25 gases a second between
+# restarts of 3-5 s), so by default it is scaled down to 20 kills in 3,000 messages;
+# GASGAP_CRASH_MESSAGES=10000 runs the full goal.
+MESSAGES_PER_CONNECTION = int(os.environ.get("GASGAP_CRASH_MESSAGES", "3000")) // CONNECTIONS
+MIN_KILLS = int(os.environ.get("GASGAP_CRASH_KILLS", "20"))
+MAX_KILLS = MIN_KILLS  # each restart costs a few seconds of start-up on two cores
+KILL_EVERY_S = (0.5, 2.0)  # seeded random pause between kills
+FEED_DEADLINE_S = 900.0
 ICU_CHANNEL = "icu-north-station"
 
 # Per connection: two ICU-North patients whose PaO2 wanders through the flag bands on
@@ -117,7 +123,7 @@ class Feed:
 
 
 @pytest.mark.slow
-@pytest.mark.timeout(600)
+@pytest.mark.timeout(1500)
 def test_sigkill_during_an_mllp_stream_loses_and_doubles_nothing(tmp_path: Path) -> None:
     # The hand-worked bands for the cycle: 55 and 60 flag (medium), 45 high, 200 none.
     assert expected_priority(55, 0.60, 1600)[1] == "medium"
@@ -146,7 +152,7 @@ def test_sigkill_during_an_mllp_stream_loses_and_doubles_nothing(tmp_path: Path)
         # Kill at seeded random moments while the feed runs; at least MIN_KILLS times.
         while (any(t.is_alive() for t in senders) and kills < MAX_KILLS
                and time.monotonic() < feed.deadline):
-            time.sleep(kill_rng.uniform(1.0, 7.0))
+            time.sleep(kill_rng.uniform(*KILL_EVERY_S))
             if not any(t.is_alive() for t in senders):
                 break
             service.kill()
@@ -159,7 +165,7 @@ def test_sigkill_during_an_mllp_stream_loses_and_doubles_nothing(tmp_path: Path)
         assert not feed.failures, feed.failures
         assert kills >= MIN_KILLS, (
             f"the feed finished after {kills} kills in {feed_seconds:.0f}s; "
-            "send more messages so the run is killed at least five times")
+            f"send more messages so the run is killed at least {MIN_KILLS} times")
 
         # Every notification reaches the receiver in the end (a lease left by a kill
         # runs out after 60 s, then the item is due again).

@@ -3,9 +3,11 @@
 A PostgreSQL cluster of the test's own (so stopping it touches nobody else) serves
 one ``gasgap serve`` process that takes HL7 over MLLP and polls a tiny loopback FHIR
 endpoint. Mid-feed the cluster is stopped:
-- MLLP answers AE (never AA) while nothing can be stored, so the lab system keeps the
-  message (HL7 v2 original acknowledgement mode: AE means "not accepted, resend or
-  review"; the listener's contract: "an AA always means stored");
+- MLLP answers AR (never AA, never AE) while nothing can be stored, so the lab system
+  resends the message (HL7 v2 original acknowledgement mode, Table 0008: AR "the
+  receiver could not process it now; senders commonly retry", while AE says the
+  message itself is at fault and is commonly not resent; the listener's contract: "an
+  AA always means stored");
 - /health says the database is unreachable;
 - the FHIR poll fails (logged), and nothing is lost: after the cluster starts again
   the same process (no restart) stores every re-sent message and the poll's
@@ -105,7 +107,7 @@ def _observations() -> list[dict[str, Any]]:
 @pytest.mark.slow
 @pytest.mark.postgres
 @pytest.mark.timeout(400)
-def test_database_outage_answers_ae_then_recovers_without_restart(
+def test_database_outage_answers_ar_then_recovers_without_restart(
     pg_cluster: PgCluster, tmp_path: Path,
 ) -> None:
     receiver = Receiver()
@@ -170,9 +172,9 @@ def test_database_outage_answers_ae_then_recovers_without_restart(
             service.kill()
             receiver.stop()
 
-    # During the outage nothing was ACKed AA: every answer was AE (or no ACK at all).
-    assert during and all(code in ("AE", "no ACK") for code in during.values()), during
-    assert "AE" in during.values(), "the listener answers AE with a reason, not silence"
+    # During the outage nothing was ACKed AA or AE: every answer was AR (or no ACK).
+    assert during and all(code in ("AR", "no ACK") for code in during.values()), during
+    assert "AR" in during.values(), "the listener answers AR (resend later), not silence"
     assert health.status_code == 503, health.text
     assert (f"scheduled job poll:{FHIR_SOURCE} failed" in log_during
             or f"poll of {FHIR_SOURCE} failed" in log_during), log_during[-3000:]

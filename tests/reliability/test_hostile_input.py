@@ -245,7 +245,10 @@ def test_slow_and_abandoned_partial_frames_do_not_block_others(
     held: list[socket.socket] = []
     try:
         for i in range(150):  # bounded: 150 loopback connections, each a few bytes
-            sock = socket.create_connection(("127.0.0.1", port), timeout=10)
+            # from 30 loopback addresses (all of 127/8 is loopback on Linux), five each:
+            # under the per-address cap of 8, so they stay open and fill the listener
+            sock = socket.create_connection(("127.0.0.1", port), timeout=10,
+                                            source_address=(f"127.0.0.{2 + i % 30}", 0))
             partial = SB + _good()[1][: 5 + i % 200]
             sock.sendall(partial[: 1 + i % len(partial)])
             held.append(sock)

@@ -198,7 +198,8 @@ def test_acknowledge_through_the_api_records_who(service: tuple[Running, int, Re
 
 def test_openapi_is_served(service: tuple[Running, int, Received]) -> None:
     running, _, _ = service
-    schema = httpx.get(running.base + "/openapi.json").json()
+    assert httpx.get(running.base + "/openapi.json").status_code == 401  # signed-in only
+    schema = httpx.get(running.base + "/openapi.json", headers=AUTH).json()
     assert "/api/flags/{alert_id}/acknowledge" in schema["paths"]
 
 

@@ -25,6 +25,7 @@ EXPECTED_TABLES = {
     "alert_events",
     "outbox",
     "patient_links",
+    "quarantine_payloads",
 }
 
 

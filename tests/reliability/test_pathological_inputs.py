@@ -1,0 +1,216 @@
+"""Each pathological input of the hostile test leaves a normal sender's message ACKed AA
+within one second, and what gasgap keeps of a refused input is at most twice its size.
+
+A real ``gasgap serve`` (SQLite file, loopback) takes, one at a time:
+- an ORU^R01 of 5,000 OBX sharing OBR-3, OBX-3 and OBX-4 (every OBX ambiguous);
+- a message over the MLLP size limit;
+- a FHIR hook Bundle of 2,500 Observations;
+- a FHIR resource nested 900 levels deep, posted to the hook.
+While each is being handled, a lab system on another connection sends one ordinary
+gas and times its AA. The one-second bound and "twice its size" are the project's
+goals (issue: hardening), not published figures; sizes are measured as the SQLite
+file's growth on disk (its own page accounting), outside the code under test.
+Everything is invented (Hollowmere, MRN system urn:oid:2.999.1.1.1).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sqlite3
+import threading
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+
+from tests import fhir_samples as fs
+from tests import hl7_samples as h
+from tests.reliability.helpers import (
+    API_TOKEN,
+    MllpSession,
+    Receiver,
+    ServiceProcess,
+    free_port,
+    gas,
+    minutes_ago,
+    site_toml,
+    stored_control_ids,
+)
+
+HOOK_SOURCE = "ehr-hook"
+HOOK_SECRET = "hook-secret-pathological-7c1e"
+_counter = iter(range(10_000))
+
+
+def _normal() -> tuple[str, str]:
+    n = next(_counter)
+    control = f"NORM{n:04d}"
+    return control, gas(control, f"HM5500{n % 10:02d}", f"F-{control}", pao2=92,
+                        fio2_percent=30, drawn=minutes_ago(120 - n), unit="Ward-5B")
+
+
+def ambiguous_oru(obx_count: int = 5000) -> bytes:
+    obxs = [h.obx(n, "2703-7", str(80 + n % 9), "mm[Hg]", text="PO2 arterial")
+            for n in range(1, obx_count + 1)]
+    when = minutes_ago(200).strftime("%Y%m%d%H%M%S+0000")
+    return h.message(h.msh("PATH5000", when=when), h.pid("HM559999"),
+                     h.obr("F-PATH5000", collected=when), *obxs).encode()
+
+
+def big_bundle(n: int = 2500) -> bytes:
+    when = minutes_ago(90).isoformat()
+    resources: list[dict[str, Any]] = [fs.patient("hg-big", mrn="HM558888"),
+                                       fs.encounter("hg-big-enc", pid="hg-big")]
+    resources += [fs.quantity_obs(f"hg-big-{i}", "2703-7", 70 + i % 30, "mm[Hg]",
+                                  pid="hg-big", eid="hg-big-enc", when=when)
+                  for i in range(n)]
+    return json.dumps(fs.bundle("history", resources)).encode()
+
+
+def deep_resource(levels: int = 900) -> bytes:
+    return (b'{"resourceType": "Observation", "id": "hg-deep", "status": "final", '
+            b'"extension": ' + b"[" * levels + b"]" * levels + b"}")
+
+
+def _db_bytes(path: Path) -> int:
+    plain = sqlite3.connect(path, isolation_level=None, timeout=30)
+    try:
+        plain.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+    finally:
+        plain.close()
+    wal = Path(f"{path}-wal")
+    return path.stat().st_size + (wal.stat().st_size if wal.exists() else 0)
+
+
+@pytest.fixture(scope="module")
+def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[ServiceProcess, int, Path]]:
+    tmp = tmp_path_factory.mktemp("pathological")
+    db_path = tmp / "gasgap.db"
+    receiver = Receiver()
+    receiver.start()
+    http_port, mllp_port = free_port(), free_port()
+    text = site_toml(db_url=f"sqlite:///{db_path}", http_port=http_port, mllp_port=mllp_port,
+                     webhook_url=receiver.url, fhir=[(HOOK_SOURCE, "http://127.0.0.1:9/fhir",
+                                                      3600)])
+    text = text.replace("max_request_bytes = 65536", "max_request_bytes = 4000000")
+    text = text.replace("[http]\n", '[http]\nhook_secret_env = "GASGAP_TEST_HOOK"\n')
+    config = tmp / "site.toml"
+    config.write_text(text)
+    os.environ["GASGAP_TEST_HOOK"] = HOOK_SECRET
+    service = ServiceProcess(config, http_port, tmp / "service.log")
+    service.start()
+    try:
+        yield service, mllp_port, db_path
+    finally:
+        service.kill()
+        receiver.stop()
+
+
+def _while(hostile: Callable[[], Any], port: int, lead: float = 0.3) -> tuple[Any, float, str]:
+    """Start ``hostile`` in a thread; ``lead`` seconds later time a normal gas's AA on
+    another connection. Returns (hostile's result, seconds to the AA, control id)."""
+    result: dict[str, Any] = {}
+    thread = threading.Thread(target=lambda: result.update(value=hostile()), daemon=True)
+    thread.start()
+    time.sleep(lead)
+    control, text = _normal()
+    session = MllpSession(port, ack_timeout=30)
+    started = time.monotonic()
+    code = session.send(text)
+    took = time.monotonic() - started
+    session.close()
+    thread.join(120)
+    assert code == "AA", (control, code)
+    return result.get("value"), took, control
+
+
+def _mllp_send(port: int, payload: bytes) -> str | None:
+    session = MllpSession(port, ack_timeout=60)
+    try:
+        return session.send(payload.decode("latin-1"))
+    finally:
+        session.close()
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(300)
+def test_5000_ambiguous_obx(served: tuple[ServiceProcess, int, Path]) -> None:
+    service, port, db_path = served
+    raw = ambiguous_oru()
+    before = _db_bytes(db_path)
+    code, took, control = _while(lambda: _mllp_send(port, raw), port)
+    growth = _db_bytes(db_path) - before
+    assert code == "AE"  # every OBX refused: kept in quarantine, the sender told
+    assert took < 1.0, f"normal gas waited {took:.2f}s"
+    # The normal gas is a few KB; the rest is what the refused message cost.
+    assert growth <= 2 * len(raw), f"{growth} bytes kept for a {len(raw)}-byte message"
+    assert stored_control_ids(f"sqlite:///{db_path}").get(control) == 3
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(300)
+def test_oversized_message(served: tuple[ServiceProcess, int, Path]) -> None:
+    service, port, db_path = served
+    raw = h.msh("PATHBIG").encode() + b"\r" + b"NTE|1||" + b"z" * 2_000_000 + b"\r"
+    before = _db_bytes(db_path)
+    code, took, _ = _while(lambda: _mllp_send(port, raw), port)
+    assert code == "AE" and took < 1.0, (code, took)
+    assert _db_bytes(db_path) - before <= 2 * len(raw)
+    kept = httpx.get(service.base + "/api/quarantine", params={"source": "hl7:lab"},
+                     headers={"Authorization": f"Bearer {API_TOKEN}"}, timeout=10).json()
+    heads = [i for i in kept["items"] if "limit" in i["reason"]]
+    assert heads and heads[0]["payload_bytes"] <= 65536  # its head, bounded
+
+
+def _hook(service: ServiceProcess, body: bytes) -> int:
+    response = httpx.post(f"{service.base}/hooks/fhir/{HOOK_SOURCE}", content=body,
+                          headers={"X-Gasgap-Hook-Secret": HOOK_SECRET,
+                                   "Content-Type": "application/fhir+json"}, timeout=120)
+    return response.status_code
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(400)
+@pytest.mark.xfail(strict=True, reason=(
+    "the pipeline pairs each new reading of a patient against all of that patient's "
+    "readings (monitor/engine/pairing.current_readings per sample): 2,500 PaO2 of one "
+    "patient hold the write lock for seconds per part even in parts of 200; the fix is "
+    "in the pipeline, see the hardening report"))
+def test_bundle_of_2500_observations(served: tuple[ServiceProcess, int, Path]) -> None:
+    service, port, _ = served
+    waits = []
+    done: dict[str, int] = {}
+    thread = threading.Thread(target=lambda: done.update(status=_hook(service, big_bundle())),
+                              daemon=True)
+    thread.start()
+    for pause in (0.3, 4.0, 4.0):  # early, and twice while the later parts are stored
+        time.sleep(pause)
+        control, text = _normal()
+        session = MllpSession(port, ack_timeout=60)
+        started = time.monotonic()
+        code = session.send(text)
+        waits.append((code, round(time.monotonic() - started, 2)))
+        session.close()
+    thread.join(300)
+    assert done.get("status") == 200
+    assert all(code == "AA" and took < 1.0 for code, took in waits), waits
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(300)
+def test_resource_nested_900_deep(served: tuple[ServiceProcess, int, Path]) -> None:
+    service, port, db_path = served
+    body = deep_resource()
+    json.loads(body)  # valid JSON for Python's own parser
+    before = _db_bytes(db_path)
+    status, took, _ = _while(lambda: _hook(service, body), port, lead=0.05)
+    assert status == 422 and took < 1.0, (status, took)
+    assert _db_bytes(db_path) - before <= 2 * len(body) + 65536  # + the normal gas
+    health = httpx.get(service.base + "/health", timeout=10)
+    assert health.status_code == 200
+    assert httpx.get(service.base + "/api/quarantine",
+                     headers={"Authorization": f"Bearer {API_TOKEN}"}).status_code == 200
