@@ -35,6 +35,7 @@ from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Any
 
+from adapters.fhir.limits import too_deep
 from adapters.fhir.observations import FhirBatch, FhirReadingBuilder
 from monitor.engine.timeline import StepResult
 from monitor.ingest import SourceContext, Unit, context_resources, fhir_builder, file_units
@@ -131,6 +132,8 @@ def _remember_context(
     batch = FhirBatch()
     for path in paths:
         for resource in context_resources(path):
+            if too_deep(resource) is not None:
+                continue  # refused with its reason when the file is read
             builder.note_panels([resource])
             builder.remember(resource, into=batch)
     if batch.links:

@@ -27,6 +27,7 @@ import orjson
 
 from adapters.codes import CodeTable
 from adapters.fhir.bundles import bundle_entries, iter_ndjson, ndjson_line_reason
+from adapters.fhir.limits import bounded_head, too_deep
 from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, fhir_instant
 from adapters.hl7v2 import Hl7Error, parse_oru
 from adapters.hl7v2.files import iter_hl7_file
@@ -221,6 +222,16 @@ def ndjson_units(
                 path.name,
             )
             continue
+        deep = too_deep(item)
+        if deep is not None:  # refused unread, before anything walks it
+            reason = f"{path.name} line {number}: {deep}"
+            yield Unit(
+                Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", bounded_head(item),
+                                           reason)]),
+                None,
+                path.name,
+            )
+            continue
         record_time = fhir_record_time(item)
         builder.note_panels([item])
         batch = builder.read(item, received_at=record_time or received_at())
@@ -249,17 +260,37 @@ def json_units(
         )
         return
     builder = builder or fhir_builder(context, received_at)
+    deep = too_deep(data) if not (
+        isinstance(data, dict) and data.get("resourceType") == "Bundle"
+    ) else None
+    if deep is not None:
+        reason = f"{path.name}: {deep}"
+        yield Unit(
+            Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", bounded_head(data),
+                                       reason)]),
+            None,
+            path.name,
+        )
+        return
     if isinstance(data, dict) and data.get("resourceType") == "Bundle":
         batch = FhirBatch()
         entries = list(bundle_entries(data, batch.skipped))
+        refused: list[Rejected] = []
+        for entry, _ in entries:
+            why = too_deep(entry)
+            if why is not None:
+                refused.append(Rejected(f"fhir:{context.fhir_source}", bounded_head(entry),
+                                        f"{path.name}: {why}"))
+        if refused:
+            entries = [(e, u) for e, u in entries if too_deep(e) is None]
         builder.note_panels(e for e, _ in entries)
         for resource, full_url in sorted(
             entries, key=lambda e: 0 if e[0].get("resourceType") in ("Patient", "Encounter") else 1
         ):
             builder.read(resource, full_url=full_url, into=batch)
-        yield Unit(
-            inbound_from_fhir(batch, context.fhir_source), fhir_record_time(data), path.name
-        )
+        unit = inbound_from_fhir(batch, context.fhir_source)
+        unit.rejected.extend(refused)
+        yield Unit(unit, fhir_record_time(data), path.name)
     elif isinstance(data, dict):
         yield Unit(
             inbound_from_fhir(builder.read_all([data]), context.fhir_source),

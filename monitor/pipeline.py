@@ -23,7 +23,6 @@ costs no re-reads; the patient's ``revision`` in storage tells when another proc
 from __future__ import annotations
 
 import logging
-import re
 from collections import Counter, OrderedDict
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
@@ -132,30 +131,10 @@ class BatchReport:
         self.historical_events += other.historical_events
 
 
-_WHERE = re.compile(r"^(message \S+ )?[\w.\-/\[\]#]+( (line|byte) \d+)?$")
-
-
 def _reason_key(reason: str) -> str:
-    """What went wrong, without where: "top reasons" group alike failures. Leading
-    location clauses ("feed.ndjson line 17", "message C2 OBX[1]-5") are dropped, then
-    numbers and quoted values are blanked."""
-    parts = [p.strip() for p in reason.split(": ")]
-    while len(parts) > 1 and _WHERE.match(parts[0]):
-        parts.pop(0)
-    key = ": ".join(parts[:2])
-    # which resource or segment said it is where, not what: "Observation/odd-unit",
-    # "message C2", "OBX[3]" and draw times group with their kind
-    key = _WHICH.sub("", key)
-    key = re.sub(r"'[^']*'|(?<![\w^-])\d+(\.\d+)?", "…", key)
-    return " ".join(key.split())[:80]
-
-
-_WHICH = re.compile(
-    r"\b(?:Observation|Patient|Encounter|Specimen|DiagnosticReport|Bundle)/[^\s:]+"
-    r"|\bmessage \S+ |\b(?:OBX|OBR|PID|PV1)\[\d+\]|\d{4}-\d\d-\d\dT[\d:.+\-Z]+"
-)
-
-
+    """What went wrong, without where: the one grouping of quarantine reasons (the same
+    as the quarantine's own ``reason_key``), so "top reasons" count alike failures."""
+    return quarantine_store.reason_key(reason)
 
 
 @dataclass(frozen=True, slots=True)
@@ -250,7 +229,7 @@ class Pipeline:
             ignored=inbound.ignored,
             skipped_codes=Counter(inbound.skipped_codes),
         )
-        for rejected in inbound.rejected:
+        for rejected in quarantine_store.collapse_alike(inbound.rejected):
             self._quarantine(conn, rejected, now, report)
         good = self._screen_times(conn, inbound.readings, now, report)
         if not good:
@@ -328,7 +307,7 @@ class Pipeline:
                 report.read += len(inbound.readings) + len(inbound.rejected)
                 report.ignored += inbound.ignored
                 report.skipped_codes.update(inbound.skipped_codes)
-                for rejected in inbound.rejected:
+                for rejected in quarantine_store.collapse_alike(inbound.rejected):
                     self._quarantine(conn, rejected, now, report)
                 good += self._screen_times(conn, inbound.readings, now, report)
             if good:
@@ -599,12 +578,14 @@ class Pipeline:
         return report.alert_events
 
     def purge(self, *, now: datetime) -> int:
-        """Drop raw readings older than the retention period; derivations and the audit
-        trail stay."""
+        """Drop raw readings and quarantined input older than the retention period;
+        derivations and the audit trail stay. Returns the rows removed."""
         if self.settings.retention is None:
             return 0
         with self.db.begin() as conn:
             removed = purge_raw_readings(conn, now - self.settings.retention)
+            # refused input holds names, birth dates and MRNs too: it ages out alike
+            removed += quarantine_store.purge_quarantine(conn, now - self.settings.retention)
         self._cache.clear()
         return removed
 

@@ -80,7 +80,19 @@ def reason_key(reason: str) -> str:
     rest = ": ".join(parts)
     clause = _CLAUSE_END.split(rest, maxsplit=1)[0].strip()
     key = _LIST_OF_PLACES.sub(r"\1, …", _INDEX.sub("[n]", clause))
+    # which resource, message or value is where, not what: "Observation/odd-unit",
+    # "message C2", a quoted value, a number, a time group with their kind
+    key = _NUMBER.sub("…", _QUOTED.sub("…", _WHICH.sub("", key)))
+    key = " ".join(key.split())
     return (key or reason.strip() or "no reason given")[:_REASON_KEY_LENGTH]
+
+
+_WHICH = re.compile(
+    r"\b(?:Observation|Patient|Encounter|Specimen|DiagnosticReport|Bundle)/[^\s:]+"
+    r"|\bmessage \S+ |\d{4}-\d\d-\d\dT[\d:.+\-Z]+"
+)
+_QUOTED = re.compile(r"'[^']*'")
+_NUMBER = re.compile(r"(?<![\w^\[-])\d+(\.\d+)?(?![\w\]])")
 
 
 def clip_reason(reason: str, limit: int = MAX_REASON_CHARS) -> str:

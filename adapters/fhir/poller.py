@@ -29,6 +29,7 @@ import orjson
 
 from adapters.codes import LOINC, CodeTable
 from adapters.fhir.bundles import bundle_entries
+from adapters.fhir.limits import split_too_deep
 from adapters.fhir.observations import (
     FhirBatch,
     FhirReadingBuilder,
@@ -176,6 +177,14 @@ class FhirPoller:
         found = list(unique.values())
         for resource, _ in found:
             result.watermark = _later(result.watermark, resource, result.skipped)
+        # A resource nested too deep is refused unread (kept with its reason) and the
+        # watermark moves past it, so the good results behind it still arrive.
+        kept, deep = split_too_deep([res for res, _ in found])
+        result.rejections += [
+            Rejection(f"{self.base_url}/Observation", reason, head.encode())
+            for _, reason, head in deep
+        ]
+        found = [found[i] for i in kept]
         self._fetch_context(found)
         self.builder.note_panels(res for res, _ in found)
         batch = FhirBatch()
