@@ -323,6 +323,7 @@ class PatientTimeline:
         panels: set[str] = set()
         withdrawn: set[str] = set()
         touched_times: list[datetime] = []
+        direct: set[str] = set()
         for r in group:
             before = self._current.get(r.logical_id)
             self._add_delivery(r)
@@ -331,6 +332,11 @@ class PatientTimeline:
                 continue  # an older delivery: it changes nothing
             for version in (before, after):
                 if version is None:
+                    continue
+                if version.kind is Kind.PAO2:
+                    # a PaO2 is its own sample and pairs with no other (influence_window)
+                    direct.add(version.logical_id)
+                    touched_times.append(version.effective_at)
                     continue
                 lo, hi = influence_window(version.kind, ps)
                 windows.append((version.effective_at - lo, version.effective_at + hi))
@@ -344,9 +350,11 @@ class PatientTimeline:
                 # a birth date can change the age, and so the expected A-a, of any sample
                 windows.append((datetime.min.replace(tzinfo=known.tzinfo),
                                 datetime.max.replace(tzinfo=known.tzinfo)))
-        if not windows:
+        if not windows and not direct:
             return result
-        result.extend(self._follow(windows, panels, withdrawn, touched_times, instant, seen_at))
+        result.extend(self._follow(
+            windows, panels, withdrawn, touched_times, instant, seen_at, direct
+        ))
         return result
 
     def refresh(self, *, seen_at: datetime | None) -> StepResult:
@@ -369,8 +377,10 @@ class PatientTimeline:
         touched_times: list[datetime],
         instant: datetime,
         seen_at: datetime,
+        direct: set[str] | None = None,
     ) -> StepResult:
-        """Re-derive what changed readings can affect, withdraw, judge."""
+        """Re-derive what changed readings can affect (``direct``: samples changed
+        themselves), withdraw, judge."""
         result = StepResult()
         stood = {
             sid for sid, d in self.derivations.items()
@@ -378,7 +388,7 @@ class PatientTimeline:
         } if withdrawn else set()
         changed: dict[str, Derivation] = {}
         changed_times: list[datetime] = list(touched_times)
-        for d, reason, retracted in self._rederive(windows, panels, withdrawn):
+        for d, reason, retracted in self._rederive(windows, panels, withdrawn, direct or set()):
             result.derivations.append(DerivedVersion(d, instant, reason, retracted))
             changed_times.append(d.drawn_at)
             if not retracted:
@@ -441,7 +451,9 @@ class PatientTimeline:
 
     def _context(self, at: datetime, panel_id: str | None) -> list[Reading]:
         before, after = context_window(self.settings.pairing)
-        context = self._between(at - before, at + after)
+        # A PaO2 pairs with no other PaO2 (pairing.influence_window): leaving the other
+        # samples out keeps a pathological feed (thousands of gases at one time) linear.
+        context = [r for r in self._between(at - before, at + after) if r.kind is not Kind.PAO2]
         if panel_id:
             inside = {r.logical_id for r in context}
             extra = [
@@ -458,18 +470,23 @@ class PatientTimeline:
         windows: list[tuple[datetime, datetime]],
         panels: set[str],
         withdrawn: set[str],
+        direct: set[str],
     ) -> list[tuple[Derivation, str, bool]]:
         """Derive again every sample the changed readings can affect; returns the new
         versions (derivation, reason, retracted)."""
-        lo = min(w[0] for w in windows)
-        hi = max(w[1] for w in windows)
 
         def inside(r: Reading) -> bool:
             return (r.panel_id is not None and r.panel_id in panels) or any(
                 s <= r.effective_at <= e for s, e in windows
-            )
+            ) or r.logical_id in direct
 
-        candidates = self._between(lo, hi)
+        candidates: list[Reading] = []
+        if windows:
+            candidates = self._between(min(w[0] for w in windows), max(w[1] for w in windows))
+        candidates += [
+            self._current[lid] for lid in sorted(direct)
+            if lid in self._current and _usable(self._current[lid])
+        ]
         for panel in panels:
             candidates += [
                 self._current[lid] for lid in self._panels.get(panel, ())

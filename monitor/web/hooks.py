@@ -98,7 +98,7 @@ async def fhir_hook(request: Request, source: str) -> JSONResponse:
 #: the database's write lock for minutes while other senders wait (each part is a
 #: short transaction; the answer still comes once every part is committed, and a
 #: resend after a failure part-way is harmless, readings being idempotent).
-CHUNK_RESOURCES = 200
+CHUNK_RESOURCES = 50
 _CONTEXT_TYPES = ("Patient", "Encounter")
 
 

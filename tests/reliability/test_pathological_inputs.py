@@ -175,11 +175,6 @@ def _hook(service: ServiceProcess, body: bytes) -> int:
 
 @pytest.mark.slow
 @pytest.mark.timeout(400)
-@pytest.mark.xfail(strict=True, reason=(
-    "the pipeline pairs each new reading of a patient against all of that patient's "
-    "readings (monitor/engine/pairing.current_readings per sample): 2,500 PaO2 of one "
-    "patient hold the write lock for seconds per part even in parts of 200; the fix is "
-    "in the pipeline, see the hardening report"))
 def test_bundle_of_2500_observations(served: tuple[ServiceProcess, int, Path]) -> None:
     service, port, _ = served
     waits = []
