@@ -355,6 +355,7 @@ def notification_to_json(n: Notification) -> dict[str, Any]:
         "numbers": to_json_value(dict(n.numbers)),
         "preliminary": n.preliminary,
         "estimated": n.estimated,
+        "site_zone": n.site_zone,
     }
 
 
@@ -379,4 +380,5 @@ def json_to_notification(data: Mapping[str, Any]) -> Notification:
         numbers=dict(data["numbers"]),
         preliminary=bool(data["preliminary"]),
         estimated=bool(data["estimated"]),
+        site_zone=data.get("site_zone"),
     )

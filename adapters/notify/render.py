@@ -15,12 +15,14 @@ import html
 import json
 import re
 from collections.abc import Mapping, Sequence
-from datetime import date, datetime
+from datetime import UTC, date, datetime, tzinfo
 from enum import Enum
 from typing import Any
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from adapters.notify.base import log_ref
 from monitor.engine.model import Notification, Priority
+from monitor.engine.wording import CLOSING_EVENTS, signed, site_time, zone_label
 
 #: CDS Hooks card attribute ``summary``: "One-sentence, <140-character summary message"
 #: (CDS Hooks 2.0, Card Attributes). We keep it strictly under 140.
@@ -43,10 +45,12 @@ PRIORITY_WORDS: dict[Priority, str] = {
 EVENT_WORDS: dict[str, str] = {
     "raised": "raised",
     "updated": "updated",
+    "worsened": "now worse",
+    "lowered": "priority lowered",
     "escalated": "escalated (not acknowledged in time)",
     "acknowledged": "acknowledged",
     "resolved": "resolved",
-    "retracted": "retracted: the result it was based on was withdrawn; disregard the flag",
+    "retracted": "withdrawn",
 }
 
 PAYLOAD_SCHEMA = "gasgap.flag-notification/1"
@@ -96,7 +100,8 @@ def flag_payload(n: Notification, *, include_patient_key: bool = False) -> dict[
             else None
         ),
         "summary": n.summary,
-        "detail": n.detail,
+        # The advisory sentence is its own field, said once: never inside the detail.
+        "detail": "\n".join(_detail_lines(n)),
         "numbers": _plain(n.numbers),
         "advisory": n.advisory,
     }
@@ -129,10 +134,13 @@ def _markdown_line(line: str) -> str:
 
 
 def card_summary(n: Notification) -> str:
-    """One line naming priority, display key and what happened, kept under 140 chars."""
+    """One line naming priority, display key and what happened, kept under 140 chars.
+    The engine's summary already opens with all three; it is not said twice."""
+    if n.patient_display and n.patient_display in n.summary:
+        return _shorten(n.summary, CDS_SUMMARY_MAX)
     head = f"{PRIORITY_WORDS[n.priority]}: {n.patient_display}: {n.summary}"
     if n.event != "raised":
-        head = f"[{n.event}] {head}"
+        head = f"[{EVENT_WORDS.get(n.event, n.event)}] {head}"
     return _shorten(head, CDS_SUMMARY_MAX)
 
 
@@ -175,29 +183,29 @@ def rule_words(rule_id: str) -> str:
 
 
 def offset_label(at: datetime) -> str:
-    """"UTC" or "UTC+02:00" / "UTC-07:00": the zone of a time, written so its sign reads
-    the right way round (unlike the Etc/GMT names)."""
-    delta = at.utcoffset()
-    if not delta:
-        return "UTC"
-    minutes = int(delta.total_seconds() // 60)
-    sign = "+" if minutes > 0 else "-"
-    hours, mins = divmod(abs(minutes), 60)
-    return f"UTC{sign}{hours:02d}:{mins:02d}"
+    """"UTC" or "UTC+02:00" / "UTC\u221207:00": the zone of a time, written so its sign
+    reads the right way round (unlike the Etc/GMT names). The engine's own label."""
+    return zone_label(at)
 
 
-def _format_time(value: object) -> str:
-    """A time with its date and its zone, always: "2026-03-05 09:40 UTC+01:00"."""
-    if isinstance(value, str):
-        try:
-            parsed: object = datetime.fromisoformat(value)
-        except ValueError:
-            return value
-        value = parsed
-    if isinstance(value, datetime):
-        if value.tzinfo is None:
-            return value.strftime("%Y-%m-%d %H:%M") + " (zone not given)"
-        return f"{value.strftime('%Y-%m-%d %H:%M')} {offset_label(value)}"
+def site_zone(n: Notification) -> tzinfo:
+    """The zone the message's times are written in: the site's (``n.site_zone``), or
+    UTC when the notification names none or a name this machine does not know."""
+    if not n.site_zone or n.site_zone == "UTC":
+        return UTC
+    try:
+        return ZoneInfo(n.site_zone)
+    except (ZoneInfoNotFoundError, ValueError):
+        return UTC
+
+
+def _format_time(value: object, tz: tzinfo = UTC, now: datetime | None = None) -> str:
+    """A time in site time with its date and its labelled offset, always:
+    "5 Mar 09:40 UTC\u221207:00" (the engine's ``site_time``). Text that is not a time
+    is returned as it is."""
+    if isinstance(value, str | datetime):
+        text = site_time(value, tz, now)
+        return value if text == "time unknown" and isinstance(value, str) else text
     return str(value)
 
 
@@ -212,6 +220,9 @@ def _num(value: object, digits: int = 0) -> str:
 NUMBER_WORDS: dict[str, tuple[str, int, str, str | None]] = {
     "pf": ("P/F", 0, "mmHg", "pf_at"),
     "pf_measured": ("P/F as measured (before the altitude adjustment)", 0, "mmHg", None),
+    "pf_on_fio2_set": ("P/F on the FiO2 set just before the draw", 0, "mmHg", None),
+    "pf_at_room_air": ("P/F if the patient were on room air", 0, "mmHg", None),
+    "pf_at_highest_fio2": ("P/F at the highest FiO2 the inputs allow", 0, "mmHg", None),
     "best_pf": ("best P/F of the window", 0, "mmHg", "best_pf_at"),
     "change_percent": ("change in P/F", 0, "%", None),
     "aa_gradient": ("A\u2013a gradient", 0, "mmHg", "aa_at"),
@@ -219,61 +230,85 @@ NUMBER_WORDS: dict[str, tuple[str, int, str, str | None]] = {
     "aa_rise": ("rise in A\u2013a gradient", 0, "mmHg", None),
     "aa_expected": ("A\u2013a expected for age, up to", 0, "mmHg", None),
     "aa_excess": ("above the age-expected A\u2013a by", 0, "mmHg", None),
+    "adult_formula_age": ("age (the age-expected A\u2013a is an adult formula)", 0, "years",
+                          None),
+    "aa_ratio": ("a/A ratio", 2, "", None),
+    "previous_aa_ratio": ("a/A ratio of the gas before", 2, "", None),
+    "aa_ratio_fall": ("fall in a/A ratio", 2, "", None),
+    "pao2": ("PaO2", 0, "mmHg", "pao2_at"),
+    "sao2": ("SaO2", 0, "%", None),
     "fio2": ("FiO2", 2, "", "fio2_at"),
     "previous_fio2": ("FiO2 at the gas before", 2, "", None),
     "fio2_lowest": ("lowest FiO2 in the window", 2, "", "fio2_lowest_at"),
     "fio2_rise": ("rise in FiO2", 2, "", None),
+    "fio2_source": ("FiO2 source:", 0, "", None),
+    "fio2_set": ("FiO2 set just before the draw", 2, "", "fio2_set_at"),
+    "fio2_set_minutes": ("minutes between that FiO2 change and the draw", 0, "min", None),
     "sf": ("S/F, estimated from SpO2 (no unit)", 0, "", "sf_at"),
     "earlier_sf": ("earlier S/F, estimated from SpO2", 0, "", "earlier_sf_at"),
-    "threshold": ("threshold", 0, "", None),
+    "threshold": ("P/F limit crossed", 0, "mmHg", None),
 }
 _TIME_KEYS = {t for *_, t in NUMBER_WORDS.values() if t}
+#: Keys said by another line: whether P/F was adjusted (on the P/F line), the FiO2
+#: basis (the same as its source, shorter), whether the priority was held (a sentence).
+_SAID_BY_OTHERS = {"adjusted", "fio2_basis", "priority_held"}
+#: Changes, written with their sign (a true minus for a fall).
+_CHANGES = {"change_percent", "aa_rise", "fio2_rise"}
 
 
-def number_lines(numbers: Mapping[str, object]) -> list[str]:
-    """The key numbers in words, with units and their times, no raw keys:
-    "P/F 90 mmHg, adjusted for altitude (drawn 2026-03-05 09:40 UTC-07:00)"."""
+def number_lines(
+    numbers: Mapping[str, object], tz: tzinfo = UTC, now: datetime | None = None
+) -> list[str]:
+    """The key numbers in words, with units and their times in site time (``tz``), no
+    raw keys: "P/F 90 mmHg, adjusted for altitude (at 5 Mar 09:40 UTC\u221207:00)"."""
     lines = []
     for key, (words, digits, unit, time_key) in NUMBER_WORDS.items():
         if key not in numbers or numbers[key] is None:
             continue
-        text = f"{words} {_num(numbers[key], digits)}{' ' + unit if unit else ''}"
+        shown = signed(numbers[key], digits) if key in _CHANGES else _num(numbers[key], digits)
+        text = f"{words} {shown}{' ' + unit if unit else ''}"
         if key == "pf" and numbers.get("adjusted"):
             text += ", adjusted for altitude (x 760 / barometric pressure)"
         if time_key and numbers.get(time_key):
-            text += f" (at {_format_time(numbers[time_key])})"
+            text += f" (at {_format_time(numbers[time_key], tz, now)})"
         lines.append(text)
+    if numbers.get("priority_held"):
+        lines.append("priority held: the FiO2 was not documented at the draw")
     for key, value in numbers.items():
-        if key in NUMBER_WORDS or key in _TIME_KEYS or key == "adjusted":
+        if key in NUMBER_WORDS or key in _TIME_KEYS or key in _SAID_BY_OTHERS:
             continue
-        lines.append(number_line(key.replace("_", " "), value))
+        lines.append(number_line(key.replace("_", " "), value, tz, now))
     return lines
 
 
-def number_line(name: str, value: object) -> str:
+def number_line(
+    name: str, value: object, tz: tzinfo = UTC, now: datetime | None = None
+) -> str:
     """One key number as text: ``name value unit at time (provenance)``."""
     if not isinstance(value, Mapping):
-        return f"{name} {_describe(value)}"
+        return f"{name} {_describe(value, tz, now)}"
     parts = [f"{name} {value.get('value', '')}"]
     if value.get("unit"):
         parts.append(str(value["unit"]))
     if value.get("at"):
-        parts.append(f"at {_format_time(value['at'])}")
+        parts.append(f"at {_format_time(value['at'], tz, now)}")
     text = " ".join(parts)
     extra = {k: v for k, v in value.items() if k not in ("value", "unit", "at")}
     if extra:
-        text += " (" + "; ".join(f"{k}: {_describe(v)}" for k, v in extra.items()) + ")"
+        text += " (" + "; ".join(f"{k}: {_describe(v, tz, now)}" for k, v in extra.items()) + ")"
     return text
 
 
-def _describe(value: object) -> str:
+def _describe(value: object, tz: tzinfo = UTC, now: datetime | None = None) -> str:
+    if isinstance(value, bool):
+        return "yes" if value else "no"
     if isinstance(value, str):
-        return _format_time(value) if _looks_like_time(value) else value
+        return _format_time(value, tz, now) if _looks_like_time(value) else value
     if isinstance(value, Sequence):
-        return ", ".join(_describe(v) for v in value)
+        return ", ".join(_describe(v, tz, now) for v in value)
     if isinstance(value, Mapping):
-        return ", ".join(f"{k} {_describe(v)}" for k, v in value.items())
-    return _format_time(value)
+        return ", ".join(f"{k} {_describe(v, tz, now)}" for k, v in value.items())
+    return _format_time(value, tz, now)
 
 
 def _looks_like_time(text: str) -> bool:
@@ -310,22 +345,30 @@ def text_lines(n: Notification) -> list[str]:
     """The message, one paragraph a line, before any escaping. Advisory sentence last,
     once."""
     location = n.location.label() if n.location else "unknown location"
+    tz = site_zone(n)
+    event = EVENT_WORDS.get(n.event, n.event)
+    # A closed flag is not announced by its priority, only reminded of it.
+    head = (
+        f"Flag {event} (it was {PRIORITY_WORDS[n.priority].lower()})."
+        if n.event in CLOSING_EVENTS
+        else f"{PRIORITY_WORDS[n.priority]} flag {event}."
+    )
     lines = [
-        f"{PRIORITY_WORDS[n.priority]} flag {EVENT_WORDS.get(n.event, n.event)}.",
+        head,
         f"Patient: {n.patient_display}. Location: {location}.",
-        f"Rule: {rule_words(n.rule)}. Time: {_format_time(n.created_at)}.",
+        f"Rule: {rule_words(n.rule)}. Time: {_format_time(n.created_at, tz, n.created_at)}.",
         n.summary,
     ]
-    if n.event == "retracted":
-        lines.append(retraction_line(n))
     detail = _detail_lines(n)
+    if n.event == "retracted" and not any(line.startswith("Why") for line in detail):
+        lines.append(retraction_line(n))
     lines.extend(detail)
     said = " ".join(detail).lower()
     if n.preliminary and "preliminary" not in said:
         lines.append("Based on preliminary results.")
     if n.estimated and "pulse oximetry" not in said and "from spo2" not in said:
         lines.append("Estimated from SpO2, not from an arterial gas.")
-    numbers = number_lines(n.numbers)
+    numbers = number_lines(n.numbers, tz, n.created_at)
     if numbers:
         lines.append("Key numbers:")
         lines.extend(f"- {line}" for line in numbers)

@@ -314,6 +314,9 @@ class Notification:
     numbers: dict[str, object] = field(default_factory=dict)
     preliminary: bool = False
     estimated: bool = False
+    #: The site's IANA zone name ("UTC" for UTC), so a channel writes times in site
+    #: time; None: a zone without a name (channels then write UTC, labelled).
+    site_zone: str | None = None
 
 
 ADVISORY = (

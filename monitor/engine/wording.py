@@ -3,11 +3,14 @@
 Every message names the patient by the site's display key and location, says what
 changed with the key numbers and their times, lists the inputs the numbers rest on
 (FiO2 and where it came from, PaCO2, barometric pressure), names the quality flags on
-the data, and ends with the advisory sentence (``model.ADVISORY``).
+the data. The advisory sentence (``model.ADVISORY``) travels beside the detail, in
+``Notification.advisory``, so that each channel says it exactly once.
 
 Times are written in the site's zone (``tz``, a ``tzinfo`` the shell builds from the
-configured IANA name; UTC by default): "06:10" for the day of ``now``, with the date
-otherwise. Pure: nothing here reads a clock or a setting.
+configured IANA name; UTC by default), always with their date and a labelled offset
+computed from the offset itself: "3 Mar 09:40 UTC+02:00". Trends read before and
+after with units: "P/F 290 \u2192 182 mmHg (\u221237 %)". Pure: nothing here reads a
+clock or a setting.
 """
 
 import hashlib
@@ -37,9 +40,12 @@ EVENT_WORDS: dict[str, str] = {
     "lowered": "Flag priority lowered",
     "escalated": "Still not acknowledged",
     "resolved": "Condition cleared",
-    "retracted": "Flag withdrawn, its data was withdrawn",
+    "retracted": "Flag withdrawn",
     "acknowledged": "Acknowledged",
 }
+
+#: Events after which the flag is no longer open: its priority is said as it was.
+CLOSING_EVENTS = frozenset({"resolved", "retracted"})
 
 DISPLAY_KEYS = ("mrn", "mrn-last4", "bed")
 
@@ -61,26 +67,75 @@ def patient_display(patient_key: str, location: Location | None, mode: str) -> s
     return "…" + value[-4:]
 
 
-def _when(at: object, now: datetime, tz: tzinfo) -> str:
+_MONTHS = ("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec")
+
+#: The minus sign (U+2212) for negative changes and offsets, as on the unit board.
+MINUS = "\u2212"
+
+
+def zone_label(at: datetime) -> str:
+    """The offset of an aware time from UTC, written so its sign reads the right way
+    round: "UTC", "UTC+02:00", "UTC\u221207:00". Computed from the offset, never from
+    the zone's name (the IANA name Etc/GMT-2 means UTC+2)."""
+    delta = at.utcoffset()
+    if not delta:
+        return "UTC"
+    minutes = round(delta.total_seconds() / 60)
+    sign = "+" if minutes > 0 else MINUS
+    hours, mins = divmod(abs(minutes), 60)
+    return f"UTC{sign}{hours:02d}:{mins:02d}"
+
+
+def _moment(at: object) -> datetime | None:
+    if isinstance(at, datetime):
+        return at
     if isinstance(at, str):
         try:
-            moment = datetime.fromisoformat(at)
+            return datetime.fromisoformat(at)
         except ValueError:
-            return "time unknown"
-    elif isinstance(at, datetime):
-        moment = at
-    else:
+            return None
+    return None
+
+
+def site_time(at: object, tz: tzinfo, now: datetime | None = None) -> str:
+    """``at`` (a datetime or ISO 8601 text) in site time, always with its date and its
+    labelled offset: "3 Mar 09:40 UTC+02:00"; the year too when it is not the year of
+    ``now`` (or when ``now`` is not given). A time without a zone is written as given
+    and says so; anything else is "time unknown"."""
+    moment = _moment(at)
+    if moment is None:
         return "time unknown"
+    if moment.tzinfo is None or moment.utcoffset() is None:
+        day = f"{moment.day} {_MONTHS[moment.month - 1]} {moment.year}"
+        return f"{day} {moment:%H:%M} (zone not given)"
     local = moment.astimezone(tz)
-    if local.date() == now.astimezone(tz).date():
-        return local.strftime("%H:%M")
-    return local.strftime("%Y-%m-%d %H:%M")
+    same_year = now is not None and now.astimezone(tz).year == local.year
+    year = "" if same_year else f" {local.year}"
+    return f"{local.day} {_MONTHS[local.month - 1]}{year} {local:%H:%M} {zone_label(local)}"
+
+
+def zone_name(tz: tzinfo) -> str | None:
+    """The IANA name of ``tz`` ("UTC" for UTC), or None for a zone without one."""
+    if tz is UTC:
+        return "UTC"
+    key = getattr(tz, "key", None)
+    return key if isinstance(key, str) else None
 
 
 def _num(value: object, digits: int = 0) -> str:
-    if not isinstance(value, int | float):
+    if isinstance(value, bool) or not isinstance(value, int | float):
         return "?"
     return f"{value:.{digits}f}"
+
+
+def signed(value: object, digits: int = 0) -> str:
+    """A change with its sign: "+25", "\u221237" (a true minus), "0"."""
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        return "?"
+    text = f"{abs(value):.{digits}f}"
+    if float(text) == 0:
+        return text
+    return ("+" if value > 0 else MINUS) + text
 
 
 def _fio2_phrase(n: Mapping[str, object], *, with_pf: bool = False) -> str:
@@ -94,101 +149,129 @@ def _fio2_phrase(n: Mapping[str, object], *, with_pf: bool = False) -> str:
     text = "room air" if basis == "room air" else f"FiO2 {_num(n.get('fio2'), 2)} {basis}"
     if "fio2_set" in n:
         text += (
-            f", {_num(n['fio2_set'], 2)} set {_num(n.get('fio2_set_minutes'))} min before "
+            f", {_num(n.get('fio2_set'), 2)} set {_num(n.get('fio2_set_minutes'))} min before "
             "the draw"
         )
         if with_pf and "pf_on_fio2_set" in n:
-            text += f" (P/F {_num(n['pf_on_fio2_set'])} on it)"
+            text += f" (P/F {_num(n.get('pf_on_fio2_set'))} on it)"
     return text
+
+
+def _adjusted(n: Mapping[str, object]) -> str:
+    if not n.get("adjusted"):
+        return ""
+    return f" adjusted for altitude (measured {_num(n.get('pf_measured'))})"
 
 
 def _pf_text(n: Mapping[str, object]) -> str:
-    text = f"P/F {_num(n['pf'])} mmHg"
-    if n.get("adjusted"):
-        text += f" adjusted for altitude (measured {_num(n.get('pf_measured'))})"
-    return text
+    return f"P/F {_num(n.get('pf'))} mmHg{_adjusted(n)}"
+
+
+def _pf_trend(n: Mapping[str, object]) -> str:
+    """"P/F 290 \u2192 182 mmHg (\u221237 %)", with the altitude adjustment said."""
+    text = f"P/F {_num(n.get('best_pf'))} \u2192 {_num(n.get('pf'))} mmHg"
+    text += f" ({signed(n.get('change_percent'))} %)"
+    return f"{text},{_adjusted(n)}" if n.get("adjusted") else text
+
+
+def _aa_trend(n: Mapping[str, object]) -> str:
+    """"A\u2013a 408 \u2192 451 mmHg (+43); a/A 0.23 \u2192 0.15"."""
+    return (
+        f"A\u2013a {_num(n.get('previous_aa'))} \u2192 {_num(n.get('aa_gradient'))} mmHg "
+        f"({signed(n.get('aa_rise'))}); a/A {_num(n.get('previous_aa_ratio'), 2)} \u2192 "
+        f"{_num(n.get('aa_ratio'), 2)}"
+    )
+
+
+def _fio2_trend(n: Mapping[str, object]) -> str:
+    return (
+        f"FiO2 {_num(n.get('fio2_lowest'), 2)} \u2192 {_num(n.get('fio2'), 2)} "
+        f"({signed(n.get('fio2_rise'), 2)})"
+    )
+
+
+def _sf_text(n: Mapping[str, object]) -> str:
+    if "earlier_sf" in n:
+        return f"S/F {_num(n.get('earlier_sf'))} \u2192 {_num(n.get('sf'))}"
+    return f"S/F {_num(n.get('sf'))}"
 
 
 def what_changed(numbers: Mapping[str, object], now: datetime, tz: tzinfo = UTC) -> str:
-    """One line saying what changed, from a rule's key numbers, e.g.
-    "P/F 182 mmHg, was 290 at 06:10 (best of the window), -37 %"."""
+    """One line saying what changed, from a rule's key numbers, before and after with
+    units and site times, e.g. "P/F 290 \u2192 182 mmHg (\u221237 %); 290 was the best of
+    the window, at 4 Mar 06:10 UTC; 182 at 4 Mar 10:10 UTC". "" when there are none."""
     n = numbers
+
+    def at(key: str) -> str:
+        return site_time(n.get(key), tz, now)
+
     if "best_pf" in n:
         return (
-            f"{_pf_text(n)}, was {_num(n['best_pf'])} at "
-            f"{_when(n.get('best_pf_at'), now, tz)} (best of the window), "
-            f"{_num(n.get('change_percent'))} %"
+            f"{_pf_trend(n)}; {_num(n.get('best_pf'))} was the best of the window, at "
+            f"{at('best_pf_at')}; {_num(n.get('pf'))} at {at('pf_at')}"
         )
     if "aa_rise" in n:
         return (
-            f"A–a gradient {_num(n['aa_gradient'])} mmHg, was {_num(n['previous_aa'])} at "
-            f"{_when(n.get('previous_aa_at'), now, tz)}, +{_num(n['aa_rise'])} mmHg; "
-            f"a/A {_num(n.get('aa_ratio'), 2)}, was {_num(n.get('previous_aa_ratio'), 2)} "
-            f"(FiO2 {_num(n.get('fio2'), 2)}, then {_num(n.get('previous_fio2'), 2)})"
+            f"{_aa_trend(n)}; the earlier gas at {at('previous_aa_at')} on FiO2 "
+            f"{_num(n.get('previous_fio2'), 2)}, this one at {at('aa_at')} on FiO2 "
+            f"{_num(n.get('fio2'), 2)}"
         )
     if "aa_excess" in n:
         text = (
-            f"A–a gradient {_num(n['aa_gradient'])} mmHg on room air, age-expected up to "
-            f"{_num(n['aa_expected'])}, {_num(n['aa_excess'])} mmHg above"
+            f"A\u2013a gradient {_num(n.get('aa_gradient'))} mmHg on room air at {at('aa_at')}, "
+            f"age-expected up to {_num(n.get('aa_expected'))} mmHg ({_num(n.get('aa_excess'))} "
+            "mmHg above)"
         )
         if "adult_formula_age" in n:
             text += (
                 f" (the age-expected value is an adult formula; the patient is "
-                f"{_num(n['adult_formula_age'])} years old)"
+                f"{_num(n.get('adult_formula_age'))} years old)"
             )
         return text
     if "fio2_rise" in n:
         return (
-            f"FiO2 {_num(n['fio2'], 2)} at {_when(n.get('fio2_at'), now, tz)}, was "
-            f"{_num(n['fio2_lowest'], 2)} at {_when(n.get('fio2_lowest_at'), now, tz)}, "
-            f"+{_num(n['fio2_rise'], 2)}"
+            f"{_fio2_trend(n)}: {_num(n.get('fio2_lowest'), 2)} at {at('fio2_lowest_at')}, "
+            f"{_num(n.get('fio2'), 2)} at {at('fio2_at')}"
         )
     if "sf" in n:
-        text = f"S/F {_num(n['sf'])} estimated from SpO2 at {_when(n.get('sf_at'), now, tz)}"
         if "earlier_sf" in n:
-            at = _when(n.get("earlier_sf_at"), now, tz)
-            text += f", also {_num(n['earlier_sf'])} at {at}"
-        return text
+            return (
+                f"{_sf_text(n)}, estimated from SpO2: {_num(n.get('earlier_sf'))} at "
+                f"{at('earlier_sf_at')}, {_num(n.get('sf'))} at {at('sf_at')}"
+            )
+        return f"S/F {_num(n.get('sf'))} estimated from SpO2 at {at('sf_at')}"
     if "pao2" in n and "pf" not in n:
-        text = f"PaO2 {_num(n['pao2'])} mmHg at {_when(n.get('pao2_at'), now, tz)}"
+        text = f"PaO2 {_num(n.get('pao2'))} mmHg at {at('pao2_at')}"
         if "sao2" in n:
-            text += f", SaO2 {_num(n['sao2'])} %"
+            text += f", SaO2 {_num(n.get('sao2'))} %"
         return text + ", FiO2 unknown, so no P/F"
     if "pf" in n:
-        text = f"{_pf_text(n)} at {_when(n.get('pf_at'), now, tz)}"
+        text = f"{_pf_text(n)} at {at('pf_at')}"
+        if "threshold" in n:
+            text += f", at or below the limit of {_num(n.get('threshold'))}"
         fio2 = _fio2_phrase(n, with_pf=True)
-        return f"{text}, {fio2}" if fio2 else text
-    return "no numbers recorded"
+        return f"{text}; {fio2}" if fio2 else text
+    return ""
 
 
 def _key_text(n: Mapping[str, object]) -> str:
-    """What fired, with its unit and, for trends, the value before."""
+    """What fired, with its unit and, for trends, before and after."""
     if "best_pf" in n:
-        change = n.get("change_percent")
-        shown = f"{change:+.0f}" if isinstance(change, int | float) else "?"
-        return f"{_pf_text(n)}, was {_num(n['best_pf'])} ({shown} %)"
+        return _pf_trend(n)
     if "aa_rise" in n:
-        return (
-            f"A–a {_num(n['aa_gradient'])} mmHg, was {_num(n['previous_aa'])} "
-            f"(+{_num(n['aa_rise'])}); a/A {_num(n.get('aa_ratio'), 2)}, was "
-            f"{_num(n.get('previous_aa_ratio'), 2)}"
-        )
+        return _aa_trend(n)
     if "aa_excess" in n:
         return (
-            f"A–a {_num(n['aa_gradient'])} mmHg, age-normal up to {_num(n['aa_expected'])} "
-            f"(+{_num(n['aa_excess'])})"
+            f"A\u2013a {_num(n.get('aa_gradient'))} mmHg, age-expected up to "
+            f"{_num(n.get('aa_expected'))} ({_num(n.get('aa_excess'))} above)"
         )
     if "fio2_rise" in n:
-        return (
-            f"FiO2 {_num(n['fio2'], 2)}, was {_num(n['fio2_lowest'], 2)} "
-            f"(+{_num(n['fio2_rise'], 2)})"
-        )
+        return _fio2_trend(n)
     if "sf" in n:
-        text = f"S/F {_num(n['sf'])}"
-        return text + (f", earlier {_num(n['earlier_sf'])}" if "earlier_sf" in n else "")
+        return _sf_text(n)
     if "pao2" in n and "pf" not in n:
-        text = f"PaO2 {_num(n['pao2'])} mmHg"
-        return text + (f", SaO2 {_num(n['sao2'])} %" if "sao2" in n else "")
+        text = f"PaO2 {_num(n.get('pao2'))} mmHg"
+        return text + (f", SaO2 {_num(n.get('sao2'))} %" if "sao2" in n else "")
     if "pf" in n:
         return _pf_text(n)
     return ""
@@ -222,13 +305,13 @@ def inputs_text(derivation: Derivation, now: datetime, tz: tzinfo = UTC) -> list
     """The inputs the numbers rest on, one line each, with where they came from."""
     lines = []
     if derivation.pao2 is not None:
-        drawn = _when(derivation.drawn_at, now, tz)
+        drawn = site_time(derivation.drawn_at, tz, now)
         lines.append(f"PaO2 {_num(derivation.pao2)} mmHg, drawn {drawn}")
     if derivation.spo2 is not None:
         lines.append(f"SpO2 {_num(derivation.spo2)} %")
     fio2 = "unknown" if derivation.fio2 is None else _num(derivation.fio2, 2)
     fio2_at = next((i.at for i in derivation.inputs if i.role.lower() == "fio2"), None)
-    when = f", {_when(fio2_at, now, tz)}" if fio2_at else ""
+    when = f", {site_time(fio2_at, tz, now)}" if fio2_at else ""
     lines.append(f"FiO2 {fio2} ({derivation.fio2_source}{when})")
     if derivation.paco2 is not None:
         lines.append(f"PaCO2 {_num(derivation.paco2)} mmHg")
@@ -270,7 +353,7 @@ def _certainty_lines(
     if "fio2_set" in numbers:
         lines.append(
             f"The FiO2 was changed to {_num(numbers['fio2_set'], 2)} at "
-            f"{_when(numbers.get('fio2_set_at'), now, tz)}, "
+            f"{site_time(numbers.get('fio2_set_at'), tz, now)}, "
             f"{_num(numbers.get('fio2_set_minutes'))} min before the draw: the numbers use "
             f"{_num(numbers.get('fio2'), 2)}, the FiO2 the blood reflects (it takes about "
             "15 min to settle)."
@@ -293,6 +376,34 @@ def idempotency_key(alert: Alert, event: str) -> str:
     return hashlib.sha1(text.encode("utf-8")).hexdigest()[:24]
 
 
+def _retraction_lines(
+    alert: Alert,
+    derivation: Derivation | None,
+    numbers: Mapping[str, object],
+    now: datetime,
+    tz: tzinfo,
+) -> list[str]:
+    """Which flag is withdrawn, the numbers it said, and why they no longer stand."""
+    lines = [
+        f"Withdrawn: the {alert.priority.value} priority flag raised "
+        f"{site_time(alert.raised_at, tz, now)}, which said: {alert.summary}."
+    ]
+    if derivation is None:
+        lines.append(
+            "Why: a result it stood on was withdrawn or marked as entered in error at its "
+            "source, so these numbers no longer stand. Disregard the flag; a new result, if "
+            "one comes, is judged afresh."
+        )
+        return lines
+    now_text = what_changed(numbers, now, tz)
+    lines.append(
+        "Why: the result behind it was corrected and no longer meets the rule"
+        + (f" (now {now_text})." if now_text else ".")
+        + " Disregard the flag as it stood."
+    )
+    return lines
+
+
 def notification_for(
     alert: Alert,
     event: str,
@@ -308,7 +419,12 @@ def notification_for(
     ``display_key``: the patient as the site names them (see ``patient_display``);
     ``numbers``: the key numbers of the rule outcome behind the change; ``derivation``:
     the sample behind it, for the inputs and quality flags (None for escalations and
-    retractions when the caller has none).
+    retractions when the caller has none). A retraction with a derivation is read as a
+    correction of the result; without one, as a withdrawn result.
+
+    The advisory sentence is not in ``detail``: it travels once, in ``advisory``, and
+    each channel says it once. ``created_at`` stays ``now`` (an aware time);
+    ``site_zone`` names ``tz`` so a channel can write times in site time.
     """
     if event not in EVENT_WORDS:
         raise InvalidInput("event", event, f"must be one of {', '.join(EVENT_WORDS)}")
@@ -317,20 +433,26 @@ def notification_for(
     opening = EVENT_WORDS[event]
     if event == "acknowledged" and alert.acknowledged_by:
         opening += f" by {alert.acknowledged_by}"
+    priority = alert.priority.value
+    closing = event in CLOSING_EVENTS
     # Patient and place first, so a long short text never pushes them out of the card.
-    summary = f"{alert.priority.value.upper()} {opening} ({display_key}, {where}): {alert.summary}"
+    head = f"{opening}, was {priority.upper()}" if closing else f"{priority.upper()} {opening}"
+    summary = f"{head} ({display_key}, {where}): {alert.summary}"
     if len(summary) > SUMMARY_MAX:
         summary = summary[: SUMMARY_MAX - 1] + "…"
-    lines = [
-        f"{opening} for {display_key} in {where}. Priority: {alert.priority.value}.",
-        f"What changed: {what_changed(numbers, now, tz)}.",
-    ]
+    said = "Priority when closed" if closing else "Priority"
+    lines = [f"{opening} for {display_key} in {where}. {said}: {priority}."]
+    if event == "retracted":
+        lines.extend(_retraction_lines(alert, derivation, numbers, now, tz))
+    else:
+        changed = what_changed(numbers, now, tz)
+        if changed:
+            lines.append(f"What changed: {changed}.")
     if derivation is not None:
         lines.append("Inputs: " + "; ".join(inputs_text(derivation, now, tz)) + ".")
         flags = sorted(f.value for f in derivation.flags)
         lines.append("Data quality: " + ("; ".join(flags) if flags else "no warnings") + ".")
     lines.extend(_certainty_lines(alert, derivation, numbers, now, tz))
-    lines.append(ADVISORY)
     return Notification(
         idempotency_key=idempotency_key(alert, event),
         alert_id=alert.alert_id,
@@ -347,19 +469,19 @@ def notification_for(
         numbers=dict(numbers),
         preliminary=alert.preliminary,
         estimated=alert.estimated,
+        site_zone=zone_name(tz),
     )
 
 
 def plain_text_body(notification: Notification) -> str:
-    """An e-mail body in plain text: the summary, then the detail."""
-    return f"{notification.summary}\n\n{notification.detail}\n"
+    """An e-mail body in plain text: the summary, the detail, the advisory once."""
+    return f"{notification.summary}\n\n{notification.detail}\n\n{notification.advisory}\n"
 
 
 def html_body(notification: Notification) -> str:
-    """A short HTML e-mail body; every piece of text is escaped."""
-    paragraphs = "".join(
-        f"<p>{html.escape(line)}</p>" for line in notification.detail.splitlines() if line
-    )
+    """A short HTML e-mail body, the advisory last and once; every text is escaped."""
+    lines = [*notification.detail.splitlines(), notification.advisory]
+    paragraphs = "".join(f"<p>{html.escape(line)}</p>" for line in lines if line)
     return (
         f"<html><body><h1>{html.escape(notification.summary)}</h1>"
         f"{paragraphs}</body></html>"

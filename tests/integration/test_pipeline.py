@@ -107,7 +107,7 @@ def test_a_worsening_ventilated_patient_is_flagged_with_a_queued_notification(
     band_notes = [q for q in queued if q.notification.rule == "oxygenation-band"]
     assert {q.channel for q in band_notes} == {"icu-webhook"}  # routed by unit
     note = band_notes[0].notification
-    assert "clinicians decide" in note.detail
+    assert "clinicians decide" in note.advisory  # said once, beside the detail
     assert "Berlin moderate" in note.summary  # PEEP 10 >= 5: Berlin words apply
     assert note.patient_display and PATIENT not in note.summary.replace(note.patient_display, "")
 

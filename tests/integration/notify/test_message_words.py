@@ -21,6 +21,7 @@ from hypothesis import strategies as st
 from adapters.notify import render
 from monitor.engine.model import ADVISORY, Alert, AlertState, Location, Priority
 from monitor.engine.wording import notification_for
+from storage.serialize import json_to_notification, notification_to_json
 
 NOW = datetime(2026, 3, 5, 16, 40, tzinfo=UTC)
 DRAWN = NOW - timedelta(minutes=25)
@@ -65,8 +66,12 @@ def test_numbers_in_words_with_units_and_labelled_times_no_raw_keys() -> None:
         assert raw not in key_numbers, (raw, key_numbers)
     assert "P/F 79 mmHg, adjusted for altitude" in key_numbers
     assert "P/F as measured (before the altitude adjustment) 65 mmHg" in key_numbers
-    # 16:15 UTC drawn: the time is written with its date and its zone.
-    assert "2026-03-05 16:15 UTC" in key_numbers
+    # 16:15 UTC drawn, a Denver site (UTC-7 in March, from memory): written in site
+    # time with its date and its labelled offset, never in UTC beside site time.
+    assert "(at 5 Mar 09:15 UTC\u221207:00)" in key_numbers
+    assert "Time: 5 Mar 09:40 UTC\u221207:00." in body  # created_at, 16:40 UTC
+    assert "16:15" not in body and "16:40" not in body
+    assert "P/F limit crossed 100 mmHg" in key_numbers
     assert "Rule: P/F in a low band." in body
 
 
@@ -84,7 +89,7 @@ def test_offset_label_reads_the_right_way_round() -> None:
     ahead = datetime(2026, 3, 5, 12, 0, tzinfo=ZoneInfo("Etc/GMT-2"))
     assert render.offset_label(ahead) == "UTC+02:00"
     assert render.offset_label(datetime(2026, 7, 1, tzinfo=ZoneInfo("America/Denver"))) == \
-        "UTC-06:00"  # MDT, from memory
+        "UTC\u221206:00"  # MDT, from memory; a true minus sign, as on the unit board
     assert render.offset_label(NOW) == "UTC"
 
 
@@ -112,3 +117,41 @@ def test_log_fields_are_plain_json_values() -> None:
 @pytest.mark.parametrize("event", ["raised", "acknowledged", "resolved"])
 def test_every_event_ends_with_the_advisory(event: str) -> None:
     assert _message(event).rstrip().endswith(ADVISORY)
+
+
+def test_the_site_zone_survives_the_outbox_and_rules_the_message() -> None:
+    # Through the outbox the notification is stored as JSON with times in UTC; the site
+    # zone travels beside them, so the sent message still reads in site time.
+    n = notification_for(_alert(), "raised", None, display_key="HM720001", now=NOW,
+                         numbers=_numbers(), tz=ZoneInfo("Etc/GMT-2"))
+    again = json_to_notification(notification_to_json(n))
+    assert again.created_at == NOW and again.site_zone == "Etc/GMT-2"
+    body = render.plain_text_body(again)
+    assert "Time: 5 Mar 18:40 UTC+02:00." in body  # Etc/GMT-2 is UTC+2 (IANA)
+    assert "GMT" not in body
+
+
+def test_the_webhook_payload_says_the_advisory_once() -> None:
+    n = notification_for(_alert(), "raised", None, display_key="HM720001", now=NOW,
+                         numbers=_numbers())
+    payload = json.dumps(render.flag_payload(n), ensure_ascii=False)
+    assert payload.count("Advisory only") == 1
+
+
+def test_the_card_summary_names_priority_and_patient_once() -> None:
+    n = notification_for(_alert(), "raised", None, display_key="HM720001", now=NOW,
+                         numbers=_numbers())
+    summary = render.card_summary(n)
+    assert summary.count("HM720001") == 1 and len(summary) < 140
+    assert "HIGH" in summary
+
+
+def test_a_closed_flag_is_not_announced_by_its_priority() -> None:
+    body = _message("retracted", numbers={})
+    assert body.startswith("Flag withdrawn (it was high priority).")
+    assert "High priority flag" not in body
+
+
+def test_a_fall_in_key_numbers_has_a_true_minus() -> None:
+    lines = render.number_lines({"best_pf": 290.0, "pf": 182.0, "change_percent": -37.2})
+    assert "change in P/F \u221237 %" in lines
