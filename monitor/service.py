@@ -37,6 +37,7 @@ from adapters.notify import Channel
 from monitor import bootstrap
 from monitor.bootstrap import Secrets
 from monitor.config import ConfigError, FhirSource, SiteConfig, load_config
+from monitor.dropfolder import DropFolder, ingest_from
 from monitor.engine.model import Reading
 from monitor.engine.wording import patient_display
 from monitor.ingest import SourceContext, inbound_from_fhir, inbound_from_hl7
@@ -59,6 +60,8 @@ from storage.db import Database
 from storage.quarantine import collapse_alike
 
 log = logging.getLogger("gasgap.service")
+#: How often a drop folder (``[[sources.files]]``) is looked at.
+DROP_FOLDER_EVERY = timedelta(seconds=30)
 Clock = Callable[[], datetime]
 DISPATCH_JOB = "outbox"
 
@@ -341,8 +344,18 @@ def _jobs(
     late: _Late,
     clock: Clock,
     metrics: Metrics,
+    context: SourceContext,
 ) -> list[Job]:
     jobs = []
+    for f in config.sources.files:
+        if not f.enabled:
+            continue
+        # a watched drop folder: settled files loaded like `gasgap ingest`, moved aside
+        folder = DropFolder(f.name, f.path, ingest_from(pipeline, context, clock))
+        jobs.append(
+            Job(f"files:{f.name}", DROP_FOLDER_EVERY, folder.scan, lock=f"files:{f.name}",
+                run_at_start=True)
+        )
     for s in config.sources.fhir:
         if not s.enabled:
             continue
@@ -415,7 +428,7 @@ def build_service(
     dispatcher = OutboxDispatcher(db, channels, clock=clock, metrics=metrics)
     pollers = _pollers(config, context.codes, secrets, clock)
     late = _Late()
-    jobs = _jobs(config, db, pipeline, pollers, dispatcher, late, clock, metrics)
+    jobs = _jobs(config, db, pipeline, pollers, dispatcher, late, clock, metrics, context)
     scheduler = Scheduler(db, jobs, metrics=metrics)
     ctx = WebContext(
         db=db,

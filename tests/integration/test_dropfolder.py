@@ -67,3 +67,47 @@ def test_a_storage_outage_leaves_the_files_for_the_next_scan(tmp_path: Path) -> 
     folder.ingest = working
     assert [p.name.split("-", 1)[1] for p in folder.scan().loaded] == ["batch.hl7"]
     assert stored_control_ids(url).get("DROP9")
+
+
+def test_the_service_watches_each_configured_drop_folder(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # [[sources.files]] in the site file becomes one scheduled job of `gasgap serve`
+    # (never a section that passes `config check` and is read by nothing).
+    from monitor.config import load_config
+    from monitor.service import build_service
+
+    drop = tmp_path / "drop"
+    drop.mkdir()
+    site = tmp_path / "site.toml"
+    site.write_text(f"""
+[site]
+name = "Hollowmere General Hospital"
+timezone = "UTC"
+patient_id_system = "{h.MRN_SYSTEM}"
+
+[[sources.files]]
+name = "lab-export"
+path = "{drop}"
+format = "hl7v2"
+
+[database]
+url = "sqlite:///{tmp_path}/gasgap.db"
+""")
+    service = build_service(load_config(site), channels={})
+    try:
+        job = service.scheduler.jobs["files:lab-export"]
+        (drop / "batch.hl7").write_text(h.abg("DROP9"))
+        job.run()  # first look: the file has not settled yet
+        job.run()
+        # loaded once settled (5 s by default): wait it out rather than sleep blind
+        import time
+
+        deadline = time.monotonic() + 15
+        while (drop / "batch.hl7").exists() and time.monotonic() < deadline:
+            time.sleep(1)
+            job.run()
+        assert not (drop / "batch.hl7").exists()
+        assert "DROP9" in stored_control_ids(f"sqlite:///{tmp_path}/gasgap.db")
+    finally:
+        service.db.dispose()
