@@ -399,6 +399,8 @@ def _listener(config: SiteConfig, service: Service) -> MllpListener | None:
         ssl=_mllp_ssl(config),
         read_timeout=mllp.idle_timeout_s,
         max_connections=mllp.max_connections,
+        max_connections_per_peer=mllp.max_connections_per_peer,
+        message_deadline=mllp.message_deadline_s,
         on_refused=service.keep_refused,
     )
 

@@ -118,6 +118,12 @@ class MllpSource(_Section):
     idle_timeout_s: float = Field(default=300.0, gt=0, le=86_400)
     #: More open connections than this are refused at once.
     max_connections: int = Field(default=64, ge=1, le=10_000)
+    #: More open connections from one address than this are refused (one slow sender
+    #: cannot fill the cap and lock the laboratory out).
+    max_connections_per_peer: int = Field(default=8, ge=1, le=10_000)
+    #: A message must be complete this long after its first byte, or the connection
+    #: is closed (a sender trickling bytes holds nothing for ever).
+    message_deadline_s: float = Field(default=60.0, gt=0, le=3600)
     tls_cert: Path | None = None
     tls_key: Path | None = None
     tls_client_ca: Path | None = None
