@@ -13,8 +13,9 @@
 - The FHIR subscription hook may require a shared secret in a header.
 
 Every response carries security headers (``SecurityHeaders``): a content security
-policy allowing only the service's own styles and forms, no framing, ``nosniff``, no
-referrer (a wall-screen link may hold the board code), and ``Cache-Control: no-store``
+policy allowing only the service's own scripts, styles and forms, no framing,
+``nosniff``, no referrer sent to other sites (a wall-screen link may hold the board
+code), and ``Cache-Control: no-store``
 on everything but static files (pages and API answers carry patient data).
 
 Secrets come from the environment or a secrets file (``SiteConfig.secret``), never from
@@ -282,13 +283,15 @@ def sign_out(request: Request) -> Response:
 # --- headers on every response -----------------------------------------------------------
 
 CONTENT_SECURITY_POLICY = (
-    "default-src 'none'; style-src 'self'; img-src 'self' data:; form-action 'self'; "
-    "frame-ancestors 'none'; base-uri 'none'"
+    "default-src 'none'; script-src 'self'; style-src 'self'; img-src 'self' data:; "
+    "form-action 'self'; frame-ancestors 'none'; base-uri 'none'"
 )
 _ALWAYS = [
     (b"content-security-policy", CONTENT_SECURITY_POLICY.encode()),
     (b"x-content-type-options", b"nosniff"),
-    (b"referrer-policy", b"no-referrer"),
+    # same-origin, not no-referrer: with no-referrer a browser sends "Origin: null" on
+    # our own form posts, which the acknowledge form's origin check must refuse
+    (b"referrer-policy", b"same-origin"),
     (b"x-frame-options", b"DENY"),
     (b"cross-origin-opener-policy", b"same-origin"),
 ]

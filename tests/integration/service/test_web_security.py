@@ -3,7 +3,7 @@ read-only quarantine API, and the HTTP request-header timeout.
 
 Header names and meanings: W3C Content Security Policy Level 3 (frame-ancestors,
 default-src), RFC 9111 section 5.2.2.5 (Cache-Control: no-store), the Fetch standard
-(X-Content-Type-Options: nosniff), W3C Referrer Policy (no-referrer). Sessions are
+(X-Content-Type-Options: nosniff), W3C Referrer Policy (same-origin: no referrer to other sites, and our own form posts keep their Origin). Sessions are
 checked by behaviour a user sees: two sign-ins get different cookies; a cookie from
 before a restart, after its expiry or after sign-out opens nothing.
 """
@@ -55,7 +55,7 @@ def test_every_answer_carries_the_security_headers(service: Service) -> None:  #
         csp = response.headers["content-security-policy"]
         assert "frame-ancestors 'none'" in csp and "default-src 'none'" in csp, path
         assert response.headers["x-content-type-options"] == "nosniff", path
-        assert response.headers["referrer-policy"] == "no-referrer", path
+        assert response.headers["referrer-policy"] == "same-origin", path
         assert response.headers["cache-control"] == "no-store", path
     static = client.get("/static/board.css")
     assert static.status_code == 200 and "no-store" not in static.headers.get("cache-control", "")
