@@ -114,7 +114,8 @@ def pipeline_settings(config: SiteConfig) -> PipelineSettings:
         retention=timedelta(days=config.retention_days) if config.retention_days else None,
         historical_after=(
             timedelta(hours=config.flags.historical_after_hours)
-            if config.flags.historical_after_hours else None
+            if config.flags.historical_after_hours
+            else None
         ),
     )
 

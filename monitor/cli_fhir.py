@@ -49,7 +49,9 @@ def add_fhir_commands(sub: Any) -> None:
     _add_source(backfill)
     backfill.add_argument("--db", dest="db_url", help="database URL (default: the site's)")
     backfill.add_argument(
-        "--level", choices=["system", "patient", "group"], default="system",
+        "--level",
+        choices=["system", "patient", "group"],
+        default="system",
         help="export everything (system), all patients (patient), or one group",
     )
     backfill.add_argument("--group", help="Group id, with --level group")
@@ -57,11 +59,14 @@ def add_fhir_commands(sub: Any) -> None:
         "--since", type=_instant, help="only resources changed after this instant (ISO 8601)"
     )
     backfill.add_argument(
-        "--all-observations", action="store_true",
+        "--all-observations",
+        action="store_true",
         help="no _typeFilter: every Observation (for servers without _typeFilter)",
     )
     backfill.add_argument(
-        "--dir", type=Path, required=True,
+        "--dir",
+        type=Path,
+        required=True,
         help="download folder (kept: holds the files and the export's state)",
     )
     backfill.add_argument("--no-progress", action="store_true", help="no progress output")
@@ -154,9 +159,7 @@ def _run_jwks(args: argparse.Namespace) -> int:
     try:
         _, source = _source(args)
         if source.smart is None:
-            raise CommandError(
-                f"--source: {source.name} has no [sources.fhir.smart] settings"
-            )
+            raise CommandError(f"--source: {source.name} has no [sources.fhir.smart] settings")
         jwks = public_jwks(source.smart, _lookup(args))
     except CommandError as exc:
         return _fail(str(exc))
@@ -201,8 +204,13 @@ class BarProgress(LineProgress):
     def file_started(self, name: str, index: int, count: int) -> None:
         from tqdm import tqdm
 
-        self._bar = tqdm(desc=f"{name} ({index}/{count})", unit="B", unit_scale=True,
-                         file=sys.stderr, leave=False)
+        self._bar = tqdm(
+            desc=f"{name} ({index}/{count})",
+            unit="B",
+            unit_scale=True,
+            file=sys.stderr,
+            leave=False,
+        )
 
     def file_bytes(self, size: int) -> None:
         if self._bar is not None:
@@ -265,8 +273,7 @@ def _run_backfill(args: argparse.Namespace) -> int:
         with BulkExporter(source.base_url, args.dir, auth=auth, progress=progress) as exporter:
             result = exporter.run(request)
             if result.resumed:
-                print(f"export: carried on from {args.dir / 'export-state.json'}",
-                      file=sys.stderr)
+                print(f"export: carried on from {args.dir / 'export-state.json'}", file=sys.stderr)
             load_file, lines = combine_for_loading(result.data_files, args.dir / "load.ndjson")
             report = _load(args, config, source, codes, load_file)
             exporter.mark_loaded(result.state)

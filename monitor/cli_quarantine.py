@@ -32,8 +32,11 @@ EXIT_CONFIG = 3
 
 def add_quarantine_commands(sub: Any) -> None:
     """Register ``gasgap quarantine ...`` on the main command's subparsers."""
-    top = sub.add_parser("quarantine", help="list, show, re-process and purge refused input",
-                         description=__doc__.split("\n\n")[0])
+    top = sub.add_parser(
+        "quarantine",
+        help="list, show, re-process and purge refused input",
+        description=__doc__.split("\n\n")[0],
+    )
     verbs = top.add_subparsers(dest="verb", required=True, parser_class=type(top))
 
     listing = verbs.add_parser("list", help="the most recent refused items")
@@ -53,8 +56,13 @@ def add_quarantine_commands(sub: Any) -> None:
     again = verbs.add_parser("reprocess", help="read items again and store what now reads")
     _target(again)
     again.add_argument("ids", type=int, nargs="+")
-    again.add_argument("--codes", type=Path, action="append", default=[],
-                       help="a site code table (TOML) used besides the shipped one")
+    again.add_argument(
+        "--codes",
+        type=Path,
+        action="append",
+        default=[],
+        help="a site code table (TOML) used besides the shipped one",
+    )
     again.set_defaults(run=_run_reprocess)
 
     purge = verbs.add_parser("purge", help="delete items (and their payloads)")
@@ -115,8 +123,9 @@ def _run_list(args: argparse.Namespace) -> int:
     _config, db = _open(args)
     try:
         with db.begin(read_only=True) as conn:
-            items = list_quarantine(conn, args.limit, source=args.source, with_raw=False,
-                                    unresolved_only=args.open)
+            items = list_quarantine(
+                conn, args.limit, source=args.source, with_raw=False, unresolved_only=args.open
+            )
     finally:
         db.dispose()
     for item in items:
@@ -125,8 +134,10 @@ def _run_list(args: argparse.Namespace) -> int:
             continue
         times = f" x{item.occurrences}" if item.occurrences > 1 else ""
         done = " [re-processed]" if item.resolved_at else ""
-        print(f"{item.id:>7}  {_iso(item.received_at)}  {item.source:<14} "
-              f"{item.payload_size:>8} B{times}{done}  {item.reason[:100]}")
+        print(
+            f"{item.id:>7}  {_iso(item.received_at)}  {item.source:<14} "
+            f"{item.payload_size:>8} B{times}{done}  {item.reason[:100]}"
+        )
     if not items:
         print("quarantine is empty" if not args.open else "no open items")
     return 0
@@ -160,14 +171,20 @@ def reprocess(item: Any, *, pipeline: Any, context: Any, now: datetime) -> Any:
     source, _, name = item.source.partition(":")
     raw = item.raw
     if item.truncated or raw is None:
-        inbound = Inbound(rejected=[Rejected(item.source, raw or "",
-                                             "kept only in part (over the size limit): "
-                                             "cannot be re-processed; ask the sender to resend")])
+        inbound = Inbound(
+            rejected=[
+                Rejected(
+                    item.source,
+                    raw or "",
+                    "kept only in part (over the size limit): "
+                    "cannot be re-processed; ask the sender to resend",
+                )
+            ]
+        )
     elif source == "hl7":
         data = raw.encode("utf-8") if isinstance(raw, str) else raw
         try:
-            inbound = inbound_from_hl7(data, received_at=now, context=context,
-                                       source=name or None)
+            inbound = inbound_from_hl7(data, received_at=now, context=context, source=name or None)
         except Hl7Error as exc:
             inbound = Inbound(rejected=[Rejected(item.source, data, str(exc))])
     elif source == "fhir":
@@ -190,8 +207,15 @@ def reprocess(item: Any, *, pipeline: Any, context: Any, now: datetime) -> Any:
                     ignored=sum(batch.skipped.values()),
                 )
     else:
-        inbound = Inbound(rejected=[Rejected(item.source, raw, f"source {item.source!r}: "
-                                             "gasgap does not know how to read it again")])
+        inbound = Inbound(
+            rejected=[
+                Rejected(
+                    item.source,
+                    raw,
+                    f"source {item.source!r}: gasgap does not know how to read it again",
+                )
+            ]
+        )
     return pipeline.accept(inbound, now=now)
 
 
@@ -206,8 +230,9 @@ def _run_reprocess(args: argparse.Namespace) -> int:
         codes = CodeTable.load(args.codes)
     except (OSError, ValueError, KeyError) as exc:
         return _fail(f"--codes: {exc}")
-    context = SourceContext(codes=codes, site_tz=config.zone(),
-                            patient_id_system=config.site.patient_id_system)
+    context = SourceContext(
+        codes=codes, site_tz=config.zone(), patient_id_system=config.site.patient_id_system
+    )
     pipeline = Pipeline(db, config.to_pipeline_settings())
     failed = 0
     try:
@@ -222,12 +247,15 @@ def _run_reprocess(args: argparse.Namespace) -> int:
             report = reprocess(item, pipeline=pipeline, context=context, now=now)
             if not (report.stored or report.duplicates or report.quarantined):
                 unknown = ", ".join(sorted(report.skipped_codes)) or "none"
-                print(f"{item_id}: nothing read (codes not in the code table: {unknown}); "
-                      "left open")
+                print(
+                    f"{item_id}: nothing read (codes not in the code table: {unknown}); left open"
+                )
                 failed += 1
                 continue
-            outcome = (f"{report.stored} stored, {report.duplicates} already stored, "
-                       f"{report.quarantined} refused again")
+            outcome = (
+                f"{report.stored} stored, {report.duplicates} already stored, "
+                f"{report.quarantined} refused again"
+            )
             with db.begin() as conn:
                 mark_resolved(conn, [item_id], at=now, resolution=outcome)
             print(f"{item_id}: {outcome}")

@@ -32,7 +32,10 @@ def add_record_commands(sub: Subparsers) -> None:
     )
     ingest.add_argument("paths", nargs="*", type=Path, metavar="PATH")
     ingest.add_argument(
-        "--workers", type=int, default=1, metavar="N",
+        "--workers",
+        type=int,
+        default=1,
+        metavar="N",
         help="processes computing patients (default 1)",
     )
     add_site_options(ingest)
@@ -173,6 +176,7 @@ def _send(shell: Shell) -> RoundReport:
 
 # --- patient -------------------------------------------------------------------------------
 
+
 def series_row(derivation: Derivation, version: int) -> dict[str, Any]:
     """One row of ``gasgap patient --json``: the API's shape plus the stored version."""
     from monitor.records import derivation_json
@@ -224,7 +228,7 @@ def _fmt(value: Any, digits: int = 0) -> str:
 
 
 def _zone_label(tz: Any, at: datetime) -> str:
-    """"site time, UTC-07:00": the offset written so its sign reads the right way
+    """ "site time, UTC-07:00": the offset written so its sign reads the right way
     round (an Etc/GMT-2 zone is UTC+02:00)."""
     delta = at.astimezone(tz).utcoffset() or timedelta(0)
     minutes = int(delta.total_seconds() // 60)
@@ -292,8 +296,11 @@ def _gas_table(rows: list[dict[str, Any]], tz: Any) -> list[str]:
 def _estimate_table(rows: list[dict[str, Any]], tz: Any) -> list[str]:
     zone = _zone_label(tz, datetime.fromisoformat(rows[-1]["drawn_at"]))
     head = f"{'read':16} {'SpO2 %':>6} {'FiO2':>5} {'FiO2 from':<30} {'S/F est.':>8}  notes"
-    lines = [f"Estimates from SpO2 (not blood gases; S/F has no unit). Times: {zone}.",
-             head, "-" * len(head)]
+    lines = [
+        f"Estimates from SpO2 (not blood gases; S/F has no unit). Times: {zone}.",
+        head,
+        "-" * len(head),
+    ]
     for r in rows:
         lines.append(
             f"{_drawn(r, tz):16} {_fmt(r.get('spo2')):>6} {_fmt(r['fio2'], 2):>5} "
@@ -369,10 +376,21 @@ def write_trend_plot(
 
     adjusted = [d for d in gases if d.pf_ratio_adjusted is not None]
     if adjusted:
-        ax_pf.plot(local(adjusted), [d.pf_ratio_adjusted for d in adjusted], "o-",
-                   color="black", label="P/F adjusted for altitude (rules compare this)")
-        ax_pf.plot(local(gases), [d.pf_ratio for d in gases], "o:", color="grey",
-                   markerfacecolor="white", label="P/F as measured")
+        ax_pf.plot(
+            local(adjusted),
+            [d.pf_ratio_adjusted for d in adjusted],
+            "o-",
+            color="black",
+            label="P/F adjusted for altitude (rules compare this)",
+        )
+        ax_pf.plot(
+            local(gases),
+            [d.pf_ratio for d in gases],
+            "o:",
+            color="grey",
+            markerfacecolor="white",
+            label="P/F as measured",
+        )
     elif gases:
         ax_pf.plot(local(gases), [d.pf_ratio for d in gases], "o-", color="black", label="P/F")
     for level in (300, 200, 100):
@@ -385,8 +403,14 @@ def write_trend_plot(
     ax_fio2.set_ylim(0.15, 1.05)
     if estimates:
         ax_sf = axes[2]
-        ax_sf.plot(local(estimates), [d.sf_ratio for d in estimates], "s--",
-                   color="tab:purple", markerfacecolor="white", label="S/F estimate")
+        ax_sf.plot(
+            local(estimates),
+            [d.sf_ratio for d in estimates],
+            "s--",
+            color="tab:purple",
+            markerfacecolor="white",
+            label="S/F estimate",
+        )
         ax_sf.set_ylabel("S/F from SpO2\n(estimate, no unit)")
         ax_sf.legend(loc="best", fontsize=8)
     first = min((d.drawn_at for d in derivations), default=datetime.now(UTC))

@@ -53,8 +53,15 @@ class ScanResult:
 class DropFolder:
     """One watched folder. ``ingest`` loads a list of files (see ``ingest_from``)."""
 
-    def __init__(self, name: str, folder: Path, ingest: Ingest, *, settle_seconds: float = 5.0,
-                 clock: Callable[[], datetime] = lambda: datetime.now(UTC)) -> None:
+    def __init__(
+        self,
+        name: str,
+        folder: Path,
+        ingest: Ingest,
+        *,
+        settle_seconds: float = 5.0,
+        clock: Callable[[], datetime] = lambda: datetime.now(UTC),
+    ) -> None:
         self.name = name
         self.folder = Path(folder)
         self.ingest = ingest
@@ -64,11 +71,14 @@ class DropFolder:
 
     def _candidates(self) -> list[Path]:
         if not self.folder.is_dir():
-            raise FileNotFoundError(f"drop folder {self.folder} of source {self.name!r} "
-                                    "does not exist")
-        return sorted(p for p in self.folder.iterdir()
-                      if p.is_file() and not p.name.startswith(".")
-                      and not p.name.endswith(_SKIPPED_SUFFIXES))
+            raise FileNotFoundError(
+                f"drop folder {self.folder} of source {self.name!r} does not exist"
+            )
+        return sorted(
+            p
+            for p in self.folder.iterdir()
+            if p.is_file() and not p.name.startswith(".") and not p.name.endswith(_SKIPPED_SUFFIXES)
+        )
 
     def settled(self) -> tuple[list[Path], list[Path]]:
         """(files ready to load, files still changing), remembering what was seen."""
@@ -100,8 +110,12 @@ class DropFolder:
             result.report = self.ingest(ready)
         except Exception as exc:
             if is_transient(exc):
-                log.warning("drop folder %s: storage unavailable (%s); %d file(s) left for "
-                            "the next scan", self.name, type(exc).__name__, len(ready))
+                log.warning(
+                    "drop folder %s: storage unavailable (%s); %d file(s) left for the next scan",
+                    self.name,
+                    type(exc).__name__,
+                    len(ready),
+                )
                 raise
             # One file spoils the lot: load them one by one to find it.
             for path in ready:
@@ -118,11 +132,16 @@ class DropFolder:
         except Exception as exc:
             if is_transient(exc):
                 raise
-            log.error("drop folder %s: %s could not be loaded (%s)", self.name, path.name,
-                      type(exc).__name__)
+            log.error(
+                "drop folder %s: %s could not be loaded (%s)",
+                self.name,
+                path.name,
+                type(exc).__name__,
+            )
             moved = self._move(path, FAILED)
             moved.with_name(moved.name + ".reason.txt").write_text(
-                f"{type(exc).__name__}: {exc}\n", encoding="utf-8")
+                f"{type(exc).__name__}: {exc}\n", encoding="utf-8"
+            )
             result.failed.append(moved)
         else:
             result.loaded.append(self._move(path, LOADED))

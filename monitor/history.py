@@ -225,8 +225,11 @@ def _write(
         if timelines_store.revision(conn, key) != revision:
             # another process stepped this patient meanwhile: compute again, locked
             step, deliveries = pipeline.step_pending(
-                conn, key, seen_at=options.seen_at,
-                simulate_escalation=options.simulate_escalation, until=options.until,
+                conn,
+                key,
+                seen_at=options.seen_at,
+                simulate_escalation=options.simulate_escalation,
+                until=options.until,
             )
         pipeline.finish_pending(
             conn, key, step, deliveries, seen_at=options.seen_at, report=outcome.report
@@ -236,9 +239,7 @@ def _write(
 _Computed = tuple[str, StepResult, list[str], int]
 
 
-def _computed(
-    pipeline: Pipeline, patients: list[str], options: LoadOptions
-) -> Iterator[_Computed]:
+def _computed(pipeline: Pipeline, patients: list[str], options: LoadOptions) -> Iterator[_Computed]:
     """(patient, what stepping it changed, deliveries stepped, revision read), in
     patient order: here, in worker processes, or on a Dask cluster."""
     workers = options.workers if options.workers is not None else (os.cpu_count() or 1)
@@ -259,8 +260,11 @@ def _compute_here(pipeline: Pipeline, key: str, options: LoadOptions) -> _Comput
     with pipeline.db.begin(read_only=True) as conn:
         revision = timelines_store.revision(conn, key) or 0
         step, deliveries = pipeline.step_pending(
-            conn, key, seen_at=options.seen_at,
-            simulate_escalation=options.simulate_escalation, until=options.until,
+            conn,
+            key,
+            seen_at=options.seen_at,
+            simulate_escalation=options.simulate_escalation,
+            until=options.until,
         )
     return key, step, deliveries, revision
 
@@ -298,22 +302,20 @@ def _pool(workers: int, job: _Job) -> Executor:
     )
 
 
-def _on_dask(
-    pipeline: Pipeline, patients: list[str], options: LoadOptions
-) -> Iterator[_Computed]:
+def _on_dask(pipeline: Pipeline, patients: list[str], options: LoadOptions) -> Iterator[_Computed]:
     try:
         from dask.distributed import Client, LocalCluster  # untyped: used through Any
     except ImportError as exc:  # the optional extra
-        raise RuntimeError(
-            "--dask needs Dask distributed: pip install 'gasgap[dask]'"
-        ) from exc
+        raise RuntimeError("--dask needs Dask distributed: pip install 'gasgap[dask]'") from exc
     job = _Job(pipeline.db.url, pipeline.settings, replace(options, dask=None))
     cluster: Any = None
     make_cluster: Any = LocalCluster
     make_client: Any = Client
     if options.dask == "local":
         cluster = make_cluster(
-            n_workers=options.workers or 2, threads_per_worker=1, processes=True,
+            n_workers=options.workers or 2,
+            threads_per_worker=1,
+            processes=True,
             dashboard_address=None,
         )
         client = make_client(cluster)

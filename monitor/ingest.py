@@ -226,8 +226,9 @@ def ndjson_units(
         if deep is not None:  # refused unread, before anything walks it
             reason = f"{path.name} line {number}: {deep}"
             yield Unit(
-                Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", bounded_head(item),
-                                           reason)]),
+                Inbound(
+                    rejected=[Rejected(f"fhir:{context.fhir_source}", bounded_head(item), reason)]
+                ),
                 None,
                 path.name,
             )
@@ -260,14 +261,15 @@ def json_units(
         )
         return
     builder = builder or fhir_builder(context, received_at)
-    deep = too_deep(data) if not (
-        isinstance(data, dict) and data.get("resourceType") == "Bundle"
-    ) else None
+    deep = (
+        too_deep(data)
+        if not (isinstance(data, dict) and data.get("resourceType") == "Bundle")
+        else None
+    )
     if deep is not None:
         reason = f"{path.name}: {deep}"
         yield Unit(
-            Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", bounded_head(data),
-                                       reason)]),
+            Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", bounded_head(data), reason)]),
             None,
             path.name,
         )
@@ -279,8 +281,11 @@ def json_units(
         for entry, _ in entries:
             why = too_deep(entry)
             if why is not None:
-                refused.append(Rejected(f"fhir:{context.fhir_source}", bounded_head(entry),
-                                        f"{path.name}: {why}"))
+                refused.append(
+                    Rejected(
+                        f"fhir:{context.fhir_source}", bounded_head(entry), f"{path.name}: {why}"
+                    )
+                )
         if refused:
             entries = [(e, u) for e, u in entries if too_deep(e) is None]
         builder.note_panels(e for e, _ in entries)
@@ -410,7 +415,9 @@ def ingest_files(
     from monitor.history import LoadOptions, load_files
 
     result = load_files(
-        list(paths), pipeline, context,
+        list(paths),
+        pipeline,
+        context,
         LoadOptions(seen_at=now(), workers=workers, batch_size=batch_size, progress=progress),
         received_at=now,
     )

@@ -263,9 +263,7 @@ class Pipeline:
         person's key. Returns the keys that took rows from another key."""
         if inbound.links:
             # most units repeat the links of their patient: store each once per process
-            fresh = {
-                register_store.link_fingerprint(link): link for link in inbound.links
-            }
+            fresh = {register_store.link_fingerprint(link): link for link in inbound.links}
             news = [link for fp, link in fresh.items() if fp not in self._links_saved]
             if news:
                 register_store.save_links(conn, news, at=now)
@@ -338,10 +336,15 @@ class Pipeline:
         since = probe.needs_from(new) - timedelta(days=1) if new else _NEVER
         state = timelines_store.timeline_state(conn, patient_key, since)
         timeline = PatientTimeline.restore(
-            patient_key, settings,
-            readings=state.readings, derivations=state.derivations,
-            open_alerts=state.open_alerts, last_closed=state.last_closed,
-            birth_date=state.birth_date, instant=state.instant, covers_from=since,
+            patient_key,
+            settings,
+            readings=state.readings,
+            derivations=state.derivations,
+            open_alerts=state.open_alerts,
+            last_closed=state.last_closed,
+            birth_date=state.birth_date,
+            instant=state.instant,
+            covers_from=since,
         )
         step = timeline.refresh(seen_at=seen_at) if refresh else StepResult()
         step.extend(timeline.advance(new, seen_at=seen_at))
@@ -412,8 +415,10 @@ class Pipeline:
             # keep what the next unit can need (rules, pairing and a margin)
             timeline.forget_before(
                 max(d.drawn_at for d in timeline.derivations.values())
-                - self.settings.history - timedelta(days=2)
-                if timeline.derivations else timeline.instant - timedelta(days=3)
+                - self.settings.history
+                - timedelta(days=2)
+                if timeline.derivations
+                else timeline.instant - timedelta(days=3)
             )
         self._cache[patient_key] = (revision, timeline)
         self._cache.move_to_end(patient_key)
@@ -463,7 +468,10 @@ class Pipeline:
                 born[r.patient_key] = r.birth_date
         for key, r in latest.items():
             upsert_patient(
-                conn, key, birth_date=born.get(key), location=r.location,
+                conn,
+                key,
+                birth_date=born.get(key),
+                location=r.location,
                 display_key=patient_display(key, r.location, self.settings.display_key),
                 at=r.effective_at,
             )
@@ -504,9 +512,16 @@ class Pipeline:
         if change.historical:
             report.historical_events += len(change.decision.events)
             return
-        self._notify(conn, alert, change.decision.notify, change.derivation, change.numbers,
-                     at=change.at, seen_at=change.at if seen_at is None else seen_at,
-                     report=report)
+        self._notify(
+            conn,
+            alert,
+            change.decision.notify,
+            change.derivation,
+            change.numbers,
+            at=change.at,
+            seen_at=change.at if seen_at is None else seen_at,
+            report=report,
+        )
 
     def _notify(
         self,
@@ -529,7 +544,12 @@ class Pipeline:
         routing = self.settings.routing
         for event in events:
             notification = notification_for(
-                alert, event, derivation, display_key=display, now=at, numbers=numbers,
+                alert,
+                event,
+                derivation,
+                display_key=display,
+                now=at,
+                numbers=numbers,
                 tz=self.settings.site_tz,
             )
             channels = route(notification, routing.by_unit, routing.default, routing.escalation)
@@ -538,7 +558,11 @@ class Pipeline:
                 report.notifications += len(channels)
             log.info(
                 "flag %s %s: rule %s priority %s (%s)",
-                alert.alert_id, event, alert.rule, alert.priority.value, display,
+                alert.alert_id,
+                event,
+                alert.rule,
+                alert.priority.value,
+                display,
             )
 
     # --- people and housekeeping ------------------------------------------------------
@@ -568,9 +592,7 @@ class Pipeline:
         report = BatchReport()
         with self.db.begin() as conn:
             live = [a for a in alerts_store.open_alerts(conn) if not a.historical]
-            due = alerts.escalate_due(
-                [_seen(a) for a in live], now, self.settings.alerts
-            )
+            due = alerts.escalate_due([_seen(a) for a in live], now, self.settings.alerts)
             for decision in due:
                 assert decision.alert is not None
                 self._apply(conn, FlagChange(decision, None, {}, now), now, report)
@@ -593,7 +615,10 @@ class Pipeline:
         self, conn: Connection, rejected: Rejected, now: datetime, report: BatchReport
     ) -> None:
         quarantine_store.quarantine(
-            conn, source=rejected.source, raw=rejected.raw, reason=rejected.reason,
+            conn,
+            source=rejected.source,
+            raw=rejected.raw,
+            reason=rejected.reason,
             received_at=now,
         )
         report.quarantined += 1

@@ -41,7 +41,11 @@ class Progress:
             from tqdm import tqdm
 
             self._bar = tqdm(
-                total=total, desc=label, unit=f" {unit}", dynamic_ncols=True, leave=False,
+                total=total,
+                desc=label,
+                unit=f" {unit}",
+                dynamic_ncols=True,
+                leave=False,
                 file=self.stream,
             )
 

@@ -50,7 +50,6 @@ from storage.db import Database, open_database
 ESCALATION_TICK = timedelta(seconds=60)
 
 
-
 @dataclass(frozen=True, slots=True)
 class ReplayEvent:
     """One change of a flag during the replay, with the simulated time it happened
@@ -175,7 +174,9 @@ class _EscalationClock:
         # Only a raise, a worsening or an escalation restart the clock (engine: updated_at)
         changed = event.event in ("raised", "worsened") or known is None
         self.open[event.alert_id] = _OpenFlag(
-            event.state, event.priority, event.at if changed else known.updated_at  # type: ignore[union-attr]
+            event.state,
+            event.priority,
+            event.at if changed else known.updated_at,  # type: ignore[union-attr]
         )
 
     def next_tick(self) -> datetime | None:
@@ -216,8 +217,14 @@ class _Recorder:
                 self._highest[e.alert_id] = (e.rule, e.priority)
             self.events.append(
                 ReplayEvent(
-                    patient=e.patient_key, rule=e.rule, priority=e.priority.value, event=name,
-                    at=e.at, sample_time=None, alert_id=e.alert_id, sample_id=e.sample_id,
+                    patient=e.patient_key,
+                    rule=e.rule,
+                    priority=e.priority.value,
+                    event=name,
+                    at=e.at,
+                    sample_time=None,
+                    alert_id=e.alert_id,
+                    sample_id=e.sample_id,
                 )
             )
 
@@ -299,9 +306,12 @@ def _run_history(
 
     pipeline = Pipeline(db, settings)
     loaded = load_files(
-        files, pipeline, context,
-        LoadOptions(seen_at=None, workers=workers, dask=dask, simulate_escalation=True,
-                    progress=progress),
+        files,
+        pipeline,
+        context,
+        LoadOptions(
+            seen_at=None, workers=workers, dask=dask, simulate_escalation=True, progress=progress
+        ),
     )
     report = loaded.report
     counts = ReplayCounts(
@@ -450,8 +460,9 @@ def _with_sample_times(db: Database, events: list[ReplayEvent]) -> list[ReplayEv
                     cache[key] = history[-1].derivation.drawn_at if history else None
                 drawn = cache[key]
             out.append(
-                ReplayEvent(e.patient, e.rule, e.priority, e.event, e.at, drawn, e.alert_id,
-                            e.sample_id)
+                ReplayEvent(
+                    e.patient, e.rule, e.priority, e.event, e.at, drawn, e.alert_id, e.sample_id
+                )
             )
     return out
 
@@ -502,8 +513,11 @@ def _progress_bar(files: Sequence[Path], label: str) -> Any:
     from tqdm import tqdm
 
     return tqdm(
-        total=count_units(files), desc=f"replay{(' ' + label) if label else ''}",
-        unit=" units", dynamic_ncols=True, leave=False,
+        total=count_units(files),
+        desc=f"replay{(' ' + label) if label else ''}",
+        unit=" units",
+        dynamic_ncols=True,
+        leave=False,
     )
 
 

@@ -169,13 +169,17 @@ class Service:
             self.metrics.quarantined.labels(source=source).inc()
             raise
         inbound.rejected = collapse_alike(inbound.rejected)  # 5,000 alike OBX: one row
-        unreadable = unreadable_reason(inbound.skipped_codes, len(inbound.readings),
-                                       len(inbound.rejected))
+        unreadable = unreadable_reason(
+            inbound.skipped_codes, len(inbound.readings), len(inbound.rejected)
+        )
         if unreadable:  # nothing read, nothing refused: keep it whole rather than drop it
             inbound.rejected.append(Rejected(f"hl7:{source}", raw, unreadable))
         report = self.accept(source, inbound)
-        return AckDecision(*ack_for_batch(stored=report.stored, duplicates=report.duplicates,
-                                          quarantined=report.quarantined))
+        return AckDecision(
+            *ack_for_batch(
+                stored=report.stored, duplicates=report.duplicates, quarantined=report.quarantined
+            )
+        )
 
     def keep_refused(self, raw: bytes, reason: str) -> None:
         """The MLLP listener's ``on_refused``: keep a message it could not hand on (over
@@ -281,9 +285,7 @@ def _mllp_ssl(config: SiteConfig) -> ssl.SSLContext | None:
     return context
 
 
-def _fhir_auth(
-    source: FhirSource, secrets: Secrets
-) -> BearerAuth | BasicAuth | SmartAuth | None:
+def _fhir_auth(source: FhirSource, secrets: Secrets) -> BearerAuth | BasicAuth | SmartAuth | None:
     if source.smart is not None:
         return SmartAuth(source.smart, source.base_url, lookup=secrets.get)
     auth = source.auth
@@ -353,8 +355,13 @@ def _jobs(
         # a watched drop folder: settled files loaded like `gasgap ingest`, moved aside
         folder = DropFolder(f.name, f.path, ingest_from(pipeline, context, clock))
         jobs.append(
-            Job(f"files:{f.name}", DROP_FOLDER_EVERY, folder.scan, lock=f"files:{f.name}",
-                run_at_start=True)
+            Job(
+                f"files:{f.name}",
+                DROP_FOLDER_EVERY,
+                folder.scan,
+                lock=f"files:{f.name}",
+                run_at_start=True,
+            )
         )
     for s in config.sources.fhir:
         if not s.enabled:

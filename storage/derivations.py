@@ -159,8 +159,12 @@ _DECODED: dict[str, Derivation] = {}
 _DECODED_MAX = 4_096
 _BY_IDS = sa.select(derivations).where(derivations.c.id.in_(sa.bindparam("ids", expanding=True)))
 _STORED_COLUMNS = (
-    derivations.c.id, derivations.c.version, derivations.c.retracted,
-    derivations.c.created_at, derivations.c.is_current, derivations.c.reason,
+    derivations.c.id,
+    derivations.c.version,
+    derivations.c.retracted,
+    derivations.c.created_at,
+    derivations.c.is_current,
+    derivations.c.reason,
     derivations.c.fingerprint,
 )
 
@@ -222,8 +226,12 @@ def current_derivations(
     decoded = _decoded(conn, rows)
     return [
         StoredDerivation(
-            id=r.id, version=r.version, derivation=decoded[r.fingerprint],
-            retracted=bool(r.retracted), created_at=r.created_at, current=bool(r.is_current),
+            id=r.id,
+            version=r.version,
+            derivation=decoded[r.fingerprint],
+            retracted=bool(r.retracted),
+            created_at=r.created_at,
+            current=bool(r.is_current),
             reason=r.reason,
         )
         for r in rows
@@ -313,15 +321,20 @@ def save_versions(
     sids = sorted({v.derivation.sample_id for v in versions})
     state: dict[str, dict[str, Any]] = {}
     for part in chunks(sids):
-        query = _CURRENT_OF_SAMPLES.with_for_update() if conn.dialect.name == "postgresql" \
+        query = (
+            _CURRENT_OF_SAMPLES.with_for_update()
+            if conn.dialect.name == "postgresql"
             else _CURRENT_OF_SAMPLES
+        )
         for row in conn.execute(query, {"pk": patient_key, "sids": part}):
             held = state.setdefault(row.sample_id, {"max": 0, "current": None})
             held["max"] = max(held["max"], int(row.version))
             if row.is_current:
                 held["current"] = {
-                    "db_id": int(row.id), "fingerprint": row.fingerprint,
-                    "retracted": bool(row.retracted), "row": None,
+                    "db_id": int(row.id),
+                    "fingerprint": row.fingerprint,
+                    "retracted": bool(row.retracted),
+                    "row": None,
                 }
     demote: list[dict[str, Any]] = []
     pending: list[dict[str, Any]] = []
@@ -334,8 +347,10 @@ def save_versions(
         if v.retracted:
             if current is None or current["retracted"]:
                 continue
-        elif current is not None and not current["retracted"] and (
-            current["fingerprint"] == new_row["fingerprint"]
+        elif (
+            current is not None
+            and not current["retracted"]
+            and (current["fingerprint"] == new_row["fingerprint"])
         ):
             continue
         if current is not None:
@@ -344,11 +359,20 @@ def save_versions(
             else:
                 demote.append({"b_id": current["db_id"]})
         held["max"] += 1
-        new_row.update(created_at=v.at, reason=v.reason, retracted=v.retracted,
-                   version=held["max"], is_current=True)
+        new_row.update(
+            created_at=v.at,
+            reason=v.reason,
+            retracted=v.retracted,
+            version=held["max"],
+            is_current=True,
+        )
         pending.append(new_row)
-        held["current"] = {"db_id": None, "fingerprint": new_row["fingerprint"],
-                           "retracted": v.retracted, "row": new_row}
+        held["current"] = {
+            "db_id": None,
+            "fingerprint": new_row["fingerprint"],
+            "retracted": v.retracted,
+            "row": new_row,
+        }
         if v.retracted:
             retracted += 1
         else:
@@ -362,8 +386,7 @@ def save_versions(
             {"derivation_id": new_id, "reading_logical_id": lid}
             for new_id, saved in zip(ids, pending, strict=True)
             for lid in sorted(
-                {i["reading_id"] for i in saved["inputs"] if i["reading_id"]}
-                | {saved["sample_id"]}
+                {i["reading_id"] for i in saved["inputs"] if i["reading_id"]} | {saved["sample_id"]}
             )
         ]
         for part in chunks(links, 1000):

@@ -157,18 +157,26 @@ def _memory(conn: Connection) -> _TxMemory:
     return memo
 
 
-def _keep_payload(conn: Connection, digest: str, raw: bytes | str, received_at: datetime,
-                  memo: _TxMemory) -> None:
+def _keep_payload(
+    conn: Connection, digest: str, raw: bytes | str, received_at: datetime, memo: _TxMemory
+) -> None:
     if digest in memo.payloads:
         return
     p = payloads_table
     exists = conn.execute(sa.select(p.c.digest).where(p.c.digest == digest)).first()
     if exists is None:
         raw_text, raw_bytes, size, truncated = _stored_form(raw, MAX_STORED_BYTES)
-        values = dict(digest=digest, raw_text=raw_text, raw_bytes=raw_bytes,
-                      payload_size=size, truncated=truncated, first_received_at=received_at)
-        insert: Any = (postgresql.insert(p) if conn.dialect.name == "postgresql"
-                       else sqlite.insert(p))
+        values = dict(
+            digest=digest,
+            raw_text=raw_text,
+            raw_bytes=raw_bytes,
+            payload_size=size,
+            truncated=truncated,
+            first_received_at=received_at,
+        )
+        insert: Any = (
+            postgresql.insert(p) if conn.dialect.name == "postgresql" else sqlite.insert(p)
+        )
         conn.execute(insert.values(**values).on_conflict_do_nothing(index_elements=["digest"]))
     memo.payloads.add(digest)
 
@@ -181,7 +189,12 @@ _BUMP = (
 
 
 def quarantine(
-    conn: Connection, *, source: str, raw: bytes | str, reason: str, received_at: datetime,
+    conn: Connection,
+    *,
+    source: str,
+    raw: bytes | str,
+    reason: str,
+    received_at: datetime,
     occurrences: int = 1,
 ) -> int:
     """Keep a refused payload and why; returns the id of its rejection row.
@@ -234,8 +247,9 @@ def quarantine_many(
         else:
             groups[group] = [raw, reason, 1]
     return [
-        quarantine(conn, source=source, raw=raw, reason=reason, received_at=received_at,
-                   occurrences=count)
+        quarantine(
+            conn, source=source, raw=raw, reason=reason, received_at=received_at, occurrences=count
+        )
         for (_digest, source, _key), (raw, reason, count) in groups.items()
     ]
 
@@ -270,8 +284,16 @@ def collapse_alike(items: Sequence[Any]) -> list[Any]:
 def _columns(with_raw: bool) -> list[Any]:
     q, p = quarantine_table, payloads_table
     cols: list[Any] = [
-        q.c.id, q.c.source, q.c.received_at, q.c.reason, q.c.payload_size, q.c.truncated,
-        q.c.occurrences, q.c.resolved_at, q.c.resolution, q.c.payload_digest,
+        q.c.id,
+        q.c.source,
+        q.c.received_at,
+        q.c.reason,
+        q.c.payload_size,
+        q.c.truncated,
+        q.c.occurrences,
+        q.c.resolved_at,
+        q.c.resolution,
+        q.c.payload_digest,
     ]
     if with_raw:
         cols += [
@@ -309,8 +331,13 @@ def _item(row: Any, with_raw: bool) -> QuarantinedInput:
 
 
 def list_quarantine(
-    conn: Connection, limit: int = 50, *, source: str | None = None,
-    with_raw: bool = True, unresolved_only: bool = False, before_id: int | None = None,
+    conn: Connection,
+    limit: int = 50,
+    *,
+    source: str | None = None,
+    with_raw: bool = True,
+    unresolved_only: bool = False,
+    before_id: int | None = None,
 ) -> list[QuarantinedInput]:
     """The most recently received refused payloads first. ``with_raw=False`` leaves the
     payloads in the database (a listing); ``before_id`` pages on."""
@@ -331,22 +358,30 @@ def get_quarantined(conn: Connection, item_id: int) -> QuarantinedInput | None:
     return None if row is None else _item(row, True)
 
 
-def mark_resolved(conn: Connection, item_ids: Sequence[int], *, at: datetime,
-                  resolution: str) -> int:
+def mark_resolved(
+    conn: Connection, item_ids: Sequence[int], *, at: datetime, resolution: str
+) -> int:
     """Record that the items were re-processed (and with what outcome)."""
     q = quarantine_table
     if not item_ids:
         return 0
-    result = conn.execute(sa.update(q).where(q.c.id.in_(list(item_ids)))
-                          .values(resolved_at=at, resolution=clip_reason(resolution, 500)))
+    result = conn.execute(
+        sa.update(q)
+        .where(q.c.id.in_(list(item_ids)))
+        .values(resolved_at=at, resolution=clip_reason(resolution, 500))
+    )
     return int(result.rowcount)
 
 
 def rows_for_payload(conn: Connection, digest: str) -> list[int]:
     """The rejection rows that point at one payload."""
     q = quarantine_table
-    return [int(i) for i in conn.execute(
-        sa.select(q.c.id).where(q.c.payload_digest == digest).order_by(q.c.id)).scalars()]
+    return [
+        int(i)
+        for i in conn.execute(
+            sa.select(q.c.id).where(q.c.payload_digest == digest).order_by(q.c.id)
+        ).scalars()
+    ]
 
 
 def quarantine_reasons(conn: Connection, top: int = 10) -> list[tuple[str, int]]:
@@ -395,10 +430,27 @@ def stored_bytes(conn: Connection) -> int:
     """Bytes of payload and reason text kept (a measure for the size goals)."""
     q, p = quarantine_table, payloads_table
     length = sa.func.length
-    reasons = conn.execute(sa.select(sa.func.coalesce(sa.func.sum(
-        length(q.c.reason) + sa.func.coalesce(length(q.c.raw_text), 0)
-        + sa.func.coalesce(length(q.c.raw_bytes), 0)), 0))).scalar_one()
-    raws = conn.execute(sa.select(sa.func.coalesce(sa.func.sum(
-        sa.func.coalesce(length(p.c.raw_text), 0)
-        + sa.func.coalesce(length(p.c.raw_bytes), 0)), 0))).scalar_one()
+    reasons = conn.execute(
+        sa.select(
+            sa.func.coalesce(
+                sa.func.sum(
+                    length(q.c.reason)
+                    + sa.func.coalesce(length(q.c.raw_text), 0)
+                    + sa.func.coalesce(length(q.c.raw_bytes), 0)
+                ),
+                0,
+            )
+        )
+    ).scalar_one()
+    raws = conn.execute(
+        sa.select(
+            sa.func.coalesce(
+                sa.func.sum(
+                    sa.func.coalesce(length(p.c.raw_text), 0)
+                    + sa.func.coalesce(length(p.c.raw_bytes), 0)
+                ),
+                0,
+            )
+        )
+    ).scalar_one()
     return int(reasons) + int(raws)

@@ -46,18 +46,24 @@ def save_links(conn: Connection, links: Iterable[PatientLink], *, at: datetime) 
         if not link.keys:
             continue
         fp = link_fingerprint(link)
-        rows.setdefault(fp, {
-            "fingerprint": fp,
-            "link_keys": sorted(set(link.keys)),
-            "source": link.source,
-            "learnt_at": link.at or at,
-        })
+        rows.setdefault(
+            fp,
+            {
+                "fingerprint": fp,
+                "link_keys": sorted(set(link.keys)),
+                "source": link.source,
+                "learnt_at": link.at or at,
+            },
+        )
     if not rows:
         return 0
-    known = set(conn.execute(
-        sa.select(patient_links.c.fingerprint).where(
-            patient_links.c.fingerprint.in_(list(rows)))
-    ).scalars())
+    known = set(
+        conn.execute(
+            sa.select(patient_links.c.fingerprint).where(
+                patient_links.c.fingerprint.in_(list(rows))
+            )
+        ).scalars()
+    )
     new = [row for fp, row in rows.items() if fp not in known]
     if new:
         conn.execute(sa.insert(patient_links), new)
@@ -124,46 +130,70 @@ def rekey_patient(conn: Connection, old: str, new: str, *, at: datetime) -> Reke
 
 def _move_derivations(conn: Connection, old: str, new: str) -> int:
     d = derivations.c
-    clashes = conn.execute(
-        sa.select(d.sample_id).where(d.patient_key == old).intersect(
-            sa.select(d.sample_id).where(d.patient_key == new))
-    ).scalars().all()
+    clashes = (
+        conn.execute(
+            sa.select(d.sample_id)
+            .where(d.patient_key == old)
+            .intersect(sa.select(d.sample_id).where(d.patient_key == new))
+        )
+        .scalars()
+        .all()
+    )
     moved = 0
     for sample_id in clashes:
         top = conn.execute(
             sa.select(sa.func.max(d.version)).where(d.patient_key == new, d.sample_id == sample_id)
         ).scalar_one()
         olds = conn.execute(
-            sa.select(d.id, d.version).where(d.patient_key == old, d.sample_id == sample_id)
+            sa.select(d.id, d.version)
+            .where(d.patient_key == old, d.sample_id == sample_id)
             .order_by(d.version)
         ).all()
         for offset, (row_id, _version) in enumerate(olds, start=1):
-            conn.execute(sa.update(derivations).where(d.id == row_id).values(
-                version=int(top) + offset, is_current=False, patient_key=new))
+            conn.execute(
+                sa.update(derivations)
+                .where(d.id == row_id)
+                .values(version=int(top) + offset, is_current=False, patient_key=new)
+            )
             moved += 1
-    return moved + int(conn.execute(
-        sa.update(derivations).where(d.patient_key == old).values(patient_key=new)
-    ).rowcount)
+    return moved + int(
+        conn.execute(
+            sa.update(derivations).where(d.patient_key == old).values(patient_key=new)
+        ).rowcount
+    )
 
 
 def _close_clashing_alerts(conn: Connection, old: str, new: str, at: datetime) -> tuple[str, ...]:
     a = alerts.c
-    new_open = set(conn.execute(
-        sa.select(a.rule).where(a.patient_key == new, a.state.in_(_OPEN))
-    ).scalars())
+    new_open = set(
+        conn.execute(sa.select(a.rule).where(a.patient_key == new, a.state.in_(_OPEN))).scalars()
+    )
     clashing = conn.execute(
-        sa.select(a.alert_id, a.rule, a.priority, a.sample_id)
-        .where(a.patient_key == old, a.state.in_(_OPEN), a.rule.in_(sorted(new_open)))
+        sa.select(a.alert_id, a.rule, a.priority, a.sample_id).where(
+            a.patient_key == old, a.state.in_(_OPEN), a.rule.in_(sorted(new_open))
+        )
     ).all()
     for alert_id, rule, priority, sample_id in clashing:
-        conn.execute(sa.update(alerts).where(a.alert_id == alert_id).values(
-            state="retracted", closed_at=at, updated_at=at))
-        conn.execute(sa.insert(alert_events).values(
-            alert_id=alert_id, patient_key=new, rule=rule, event="retracted", at=at,
-            priority=priority, state="retracted", sample_id=sample_id, acted_by=None,
-            note="the patient was found to be the same person as another record, "
-                 "which already has this flag open",
-        ))
+        conn.execute(
+            sa.update(alerts)
+            .where(a.alert_id == alert_id)
+            .values(state="retracted", closed_at=at, updated_at=at)
+        )
+        conn.execute(
+            sa.insert(alert_events).values(
+                alert_id=alert_id,
+                patient_key=new,
+                rule=rule,
+                event="retracted",
+                at=at,
+                priority=priority,
+                state="retracted",
+                sample_id=sample_id,
+                acted_by=None,
+                note="the patient was found to be the same person as another record, "
+                "which already has this flag open",
+            )
+        )
     return tuple(sorted(row[0] for row in clashing))
 
 
@@ -183,8 +213,12 @@ def _merge_patient_rows(conn: Connection, old: str, new: str) -> int:
     if o["updated_at"] > n["updated_at"] and any(
         o[c] for c in ("location_unit", "location_room", "location_bed")
     ):
-        values.update(location_unit=o["location_unit"], location_room=o["location_room"],
-                      location_bed=o["location_bed"], updated_at=o["updated_at"])
+        values.update(
+            location_unit=o["location_unit"],
+            location_room=o["location_room"],
+            location_bed=o["location_bed"],
+            updated_at=o["updated_at"],
+        )
     if values:
         conn.execute(sa.update(patients).where(p.patient_key == new).values(**values))
     conn.execute(sa.delete(patients).where(p.patient_key == old))
@@ -198,8 +232,12 @@ def assign_panels(conn: Connection, members: Iterable[tuple[str, str]]) -> int:
     for logical_id, panel_id in dict(members).items():
         total += conn.execute(
             sa.update(readings)
-            .where(sa.or_(readings.c.logical_id == logical_id,
-                          readings.c.logical_id.startswith(f"{logical_id}#", autoescape=True)))
+            .where(
+                sa.or_(
+                    readings.c.logical_id == logical_id,
+                    readings.c.logical_id.startswith(f"{logical_id}#", autoescape=True),
+                )
+            )
             .where(sa.or_(readings.c.panel_id.is_(None), readings.c.panel_id != panel_id))
             .values(panel_id=panel_id)
         ).rowcount

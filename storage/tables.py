@@ -130,8 +130,12 @@ readings = sa.Table(
     #: patient's timeline with it (a crash in between leaves work to resume).
     sa.Column("processed", sa.Boolean, nullable=False, server_default=sa.true()),
     sa.Index(None, "patient_key", "kind", "effective_at"),
-    sa.Index("ix_readings_unprocessed", "patient_key",
-             sqlite_where=sa.text("NOT processed"), postgresql_where=sa.text("NOT processed")),
+    sa.Index(
+        "ix_readings_unprocessed",
+        "patient_key",
+        sqlite_where=sa.text("NOT processed"),
+        postgresql_where=sa.text("NOT processed"),
+    ),
     sa.Index(None, "logical_id"),
     sa.Index(
         "uq_readings_current_logical_id",

@@ -102,7 +102,8 @@ def timeline_state(conn: Connection, patient_key: str, since: datetime) -> Timel
             at = alert.closed_at or alert.updated_at
             held_closed = closed.get(alert.rule)
             if held_closed is None or (at, alert.alert_id) > (
-                held_closed.closed_at or held_closed.updated_at, held_closed.alert_id
+                held_closed.closed_at or held_closed.updated_at,
+                held_closed.alert_id,
             ):
                 closed[alert.rule] = alert
     patient = conn.execute(_PATIENT, {"key": patient_key}).first()

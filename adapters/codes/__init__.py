@@ -184,12 +184,13 @@ class CodeTable:
             return self._device_words[words]
         return device_from_text(words)
 
-    def specimen(self, system: str | None, code: str | None, text: str | None = None
-                 ) -> Specimen | None:
+    def specimen(
+        self, system: str | None, code: str | None, text: str | None = None
+    ) -> Specimen | None:
         """The specimen a Specimen.type coding (or its words) names, or None if it says
         nothing gasgap can use."""
         if code:
-            for sys in ((normalise_system(system),) if system else (SNOMED, HL7_0487)):
+            for sys in (normalise_system(system),) if system else (SNOMED, HL7_0487):
                 if (sys, code.strip()) in self._specimens:
                     return self._specimens[(sys, code.strip())]
         if text:
@@ -203,8 +204,14 @@ class CodeTable:
 
 
 _SYSTEM_ALIASES = {
-    "ln": LOINC, "loinc": LOINC, "sct": SNOMED, "snomed": SNOMED, "snm": SNOMED,
-    "l": LOCAL, "hl70487": HL7_0487, "hl70070": HL7_0487,
+    "ln": LOINC,
+    "loinc": LOINC,
+    "sct": SNOMED,
+    "snomed": SNOMED,
+    "snm": SNOMED,
+    "l": LOCAL,
+    "hl70487": HL7_0487,
+    "hl70070": HL7_0487,
 }
 
 
@@ -216,8 +223,10 @@ def normalise_system(system: str) -> str:
 _DEVICE_WORDS = [
     (re.compile(r"room\s*air|\bra\b|\bnone\b", re.I), O2Device.ROOM_AIR),
     (re.compile(r"high[\s-]*flow|hfn", re.I), O2Device.HIGH_FLOW_NASAL),
-    (re.compile(r"non\s*rebreath|reservoir|partial\s*rebreath|\bnrb\b", re.I),
-     O2Device.RESERVOIR_MASK),
+    (
+        re.compile(r"non\s*rebreath|reservoir|partial\s*rebreath|\bnrb\b", re.I),
+        O2Device.RESERVOIR_MASK,
+    ),
     (re.compile(r"venturi", re.I), O2Device.VENTURI_MASK),
     (re.compile(r"nasal\s*cannula|\bnc\b|nasal prong", re.I), O2Device.NASAL_CANNULA),
     (re.compile(r"simple\s*(face\s*)?mask|face\s*mask", re.I), O2Device.SIMPLE_MASK),

@@ -349,8 +349,13 @@ class BulkExporter:
                 name = f"{'error-' if error else ''}{len(files) + 1:03d}-{safe}.ndjson"
                 count = item.get("count")
                 files.append(
-                    ExportFile(item["url"], rtype, name, count if isinstance(count, int) else None,
-                               error=error)
+                    ExportFile(
+                        item["url"],
+                        rtype,
+                        name,
+                        count if isinstance(count, int) else None,
+                        error=error,
+                    )
                 )
         state.files = files
         state.manifest_read = True
@@ -380,7 +385,8 @@ class BulkExporter:
         if response.status_code >= 300 and response.status_code != 404:
             log.warning(
                 "export job not deleted: HTTP %d%s; the server drops it when it expires",
-                response.status_code, _outcome(response),
+                response.status_code,
+                _outcome(response),
             )
 
     # --- HTTP -----------------------------------------------------------------------
@@ -415,8 +421,12 @@ class BulkExporter:
                     if response.status_code not in _RETRY_STATUS:
                         raise BulkExportError(
                             f"download of {item.name} ({_path(item.url)}): {problem}"
-                            + ("; the export expired: remove the download folder's contents "
-                               "to start again" if response.status_code in (404, 410) else "")
+                            + (
+                                "; the export expired: remove the download folder's contents "
+                                "to start again"
+                                if response.status_code in (404, 410)
+                                else ""
+                            )
                         )
             except SmartAuthError as exc:
                 if not exc.retryable:
@@ -452,7 +462,10 @@ class BulkExporter:
         while True:
             try:
                 response = self._client.request(
-                    method, url, params=params, headers={**headers, **self._static_headers()},
+                    method,
+                    url,
+                    params=params,
+                    headers={**headers, **self._static_headers()},
                     auth=self._auth if isinstance(self._auth, SmartAuth) else None,
                 )
             except SmartAuthError as exc:

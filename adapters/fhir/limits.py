@@ -46,8 +46,7 @@ def nesting_depth(value: Any, stop_at: int | None = None) -> int:
             deepest = depth
             if stop_at is not None and deepest > stop_at:
                 return deepest
-        stack.extend((child, depth + 1) for child in children
-                     if isinstance(child, (dict, list)))
+        stack.extend((child, depth + 1) for child in children if isinstance(child, (dict, list)))
     return deepest
 
 
@@ -67,8 +66,9 @@ def too_deep(resource: Any, limit: int = MAX_DEPTH) -> str | None:
     depth = nesting_depth(resource, stop_at=limit)
     if depth <= limit:
         return None
-    return (f"{label(resource)} nests objects and arrays more than {limit} levels deep: "
-            "refused unread")
+    return (
+        f"{label(resource)} nests objects and arrays more than {limit} levels deep: refused unread"
+    )
 
 
 def bounded_head(value: Any, limit: int = REFUSED_HEAD_CHARS) -> str:

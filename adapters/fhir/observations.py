@@ -244,8 +244,10 @@ def _last_entries(entries: list[r.EncounterLocation]) -> list[r.EncounterLocatio
     """Of entries no longer in force, the last ones: those with the latest period
     (end, else start); without periods, the last entry listed."""
     done = [e for e in entries if e.status != "planned"] or entries
+
     def when(e: r.EncounterLocation) -> str:
         return (e.period.end or e.period.start or "") if e.period else ""
+
     latest = max((when(e) for e in done), default="")
     if not latest:
         return done[-1:]
@@ -303,10 +305,13 @@ def combine_specimen(by_code: Specimen, by_specimen: Specimen | None) -> tuple[S
     if by_code is Specimen.UNKNOWN:
         return by_specimen, ""
     if by_specimen is Specimen.ARTERIAL:
-        return by_code, (f"the specimen is arterial but the code is for {by_code} blood: "
-                         f"taken as {by_code}")
-    return by_specimen, (f"the specimen is {by_specimen} blood but the code is for "
-                         f"{by_code} blood: taken as {by_specimen}, not arterial")
+        return by_code, (
+            f"the specimen is arterial but the code is for {by_code} blood: taken as {by_code}"
+        )
+    return by_specimen, (
+        f"the specimen is {by_specimen} blood but the code is for "
+        f"{by_code} blood: taken as {by_specimen}, not arterial"
+    )
 
 
 @dataclass(frozen=True, slots=True)
@@ -387,14 +392,16 @@ class FhirReadingBuilder:
             field_name = "hasMember" if rtype == "Observation" else "result"
             panel = str(res["id"]) if rtype == "Observation" else f"DiagnosticReport/{res['id']}"
             for member in res.get(field_name) or []:
-                key = reference_key((member or {}).get("reference") if isinstance(member, dict)
-                                    else None)
+                key = reference_key(
+                    (member or {}).get("reference") if isinstance(member, dict) else None
+                )
                 if key and key.startswith("Observation/"):
                     self._set_panel(key, panel)
 
     def _set_panel(self, member: str, panel: str) -> None:
         def rank(p: str) -> tuple[bool, str]:
             return (p.startswith("DiagnosticReport/"), p)
+
         old = self.panel_of.get(member)
         if old is None or rank(panel) < rank(old):
             self.panel_of[member] = panel
@@ -482,8 +489,7 @@ class FhirReadingBuilder:
     ) -> None:
         pat = r.Patient.model_validate(resource)
         label = f"Patient/{pat.id}"
-        keys = [k for k in (self._ref_key(label) if pat.id else None, self._ref_key(full_url))
-                if k]
+        keys = [k for k in (self._ref_key(label) if pat.id else None, self._ref_key(full_url)) if k]
         keys.extend(self._identifier_keys(pat.identifier))
         if not keys:
             raise Rejected(f"{label} has no id, fullUrl nor identifier: it names nobody")
@@ -595,9 +601,7 @@ class FhirReadingBuilder:
         received = received_at or self._received_at_fn()
         # When the result became available: Observation.issued, else the version's
         # meta.lastUpdated; neither, the receipt time stands in.
-        known_at = (
-            _instant_or_none(obs.issued) if obs.issued else None
-        ) or _meta_time(obs.meta)
+        known_at = (_instant_or_none(obs.issued) if obs.issued else None) or _meta_time(obs.meta)
         by_specimen = self._specimen(obs)
         for item, entry, coding in known:
             where = f"{label}{item.where}"
@@ -606,8 +610,16 @@ class FhirReadingBuilder:
                 specimen, conflict = combine_specimen(entry.specimen, by_specimen)
             q = item.quantity
             if q is not None and q.comparator and status is not Status.RETRACTED:
-                self._censored(batch, q, entry.kind, where, patient.patient_key, effective,
-                               logical + item.suffix, coding.code or "")
+                self._censored(
+                    batch,
+                    q,
+                    entry.kind,
+                    where,
+                    patient.patient_key,
+                    effective,
+                    logical + item.suffix,
+                    coding.code or "",
+                )
                 continue
             try:
                 kind, value, code_value, original_value, original_unit = self._value(
@@ -635,8 +647,7 @@ class FhirReadingBuilder:
                         panel_id=panel_id,
                         from_ventilator=entry.ventilator,
                         encounter_id=encounter.encounter_id if encounter else None,
-                        location=(encounter.location if encounter else None)
-                        or patient.location,
+                        location=(encounter.location if encounter else None) or patient.location,
                         birth_date=patient.birth_date,
                         known_at=known_at,
                     )
@@ -731,13 +742,22 @@ class FhirReadingBuilder:
         return found
 
     def _censored(
-        self, batch: FhirBatch, q: r.Quantity, kind: Kind, where: str, patient_key: str,
-        effective: datetime, logical_id: str, code: str,
+        self,
+        batch: FhirBatch,
+        q: r.Quantity,
+        kind: Kind,
+        where: str,
+        patient_key: str,
+        effective: datetime,
+        logical_id: str,
+        code: str,
     ) -> None:
         comparator = (q.comparator or "").strip()
         if comparator not in COMPARATORS:
-            raise Rejected(f"{where} valueQuantity.comparator {comparator!r} is not a FHIR "
-                           "comparator (<, <=, >=, >)")
+            raise Rejected(
+                f"{where} valueQuantity.comparator {comparator!r} is not a FHIR "
+                "comparator (<, <=, >=, >)"
+            )
         unit = q.code if q.code and q.system in (None, UCUM) else q.unit
         limit: float | None = None
         if q.value is not None:
@@ -745,12 +765,20 @@ class FhirReadingBuilder:
                 limit = to_canonical(kind, q.value, unit)
             except InvalidReading:
                 limit = None
-        batch.censored.append(CensoredValue(
-            patient_key=patient_key, kind=kind, comparator=comparator, limit=limit,
-            original_value=_num(q.value) if q.value is not None else "",
-            original_unit=unit or "", effective_at=effective,
-            source_system=self.source_system, logical_id=logical_id, code=code,
-        ))
+        batch.censored.append(
+            CensoredValue(
+                patient_key=patient_key,
+                kind=kind,
+                comparator=comparator,
+                limit=limit,
+                original_value=_num(q.value) if q.value is not None else "",
+                original_unit=unit or "",
+                effective_at=effective,
+                source_system=self.source_system,
+                logical_id=logical_id,
+                code=code,
+            )
+        )
 
     def _value(
         self, item: _Item, entry: CodeEntry, status: Status, where: str, obs: r.Observation

@@ -113,8 +113,10 @@ class SmartSettings(BaseModel):
         if (self.private_key_file is None) == (self.private_key_env is None):
             raise ValueError("give exactly one of private_key_file and private_key_env")
         if "PRIVATE KEY" in self.model_dump_json():
-            raise ValueError("a private key is never written in the site file: name a file or "
-                             "an environment variable with private_key_file or private_key_env")
+            raise ValueError(
+                "a private key is never written in the site file: name a file or "
+                "an environment variable with private_key_file or private_key_env"
+            )
         return self
 
 
@@ -370,7 +372,8 @@ class SmartAuth(httpx.Auth):
         if missing:
             log.warning(
                 "token endpoint %s granted fewer scopes than asked: missing %s",
-                _where(url), " ".join(missing),
+                _where(url),
+                " ".join(missing),
             )
         self.tokens_fetched += 1
         log.info("access token from %s for %.0f s", _where(url), expires_in)

@@ -211,8 +211,12 @@ class EventGapTracker:
         if last is None:
             if first <= 1:
                 return GapCheck()
-            return GapCheck(None, first - 1, "first notification since gasgap started "
-                            f"(events up to {first - 1} may have been missed)")
+            return GapCheck(
+                None,
+                first - 1,
+                "first notification since gasgap started "
+                f"(events up to {first - 1} may have been missed)",
+            )
         if first > last + 1:
             return GapCheck(last + 1, first - 1, f"events {last + 1}..{first - 1} not received")
         return GapCheck()

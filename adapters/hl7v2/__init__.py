@@ -14,6 +14,15 @@ from adapters.hl7v2.mllp import AckDecision, MllpListener
 from adapters.hl7v2.parse import ParsedMessage, Rejection, parse_oru
 
 __all__ = [
-    "AckDecision", "Hl7Error", "MessageTooLarge", "MllpFramer", "MllpListener",
-    "ParsedMessage", "Rejection", "build_ack", "frame", "iter_hl7_file", "parse_oru",
+    "AckDecision",
+    "Hl7Error",
+    "MessageTooLarge",
+    "MllpFramer",
+    "MllpListener",
+    "ParsedMessage",
+    "Rejection",
+    "build_ack",
+    "frame",
+    "iter_hl7_file",
+    "parse_oru",
 ]

@@ -124,8 +124,13 @@ def escape_text(text: str, header: Header) -> str:
     """Escape free text for an HL7 field (HL7 v2 section 2.7 escape sequences)."""
     chars = header.encoding_chars
     comp, rep, esc, sub = chars[0], chars[1], chars[2], chars[3]
-    replacements = [(esc, f"{esc}E{esc}"), (header.field_sep, f"{esc}F{esc}"),
-                    (comp, f"{esc}S{esc}"), (sub, f"{esc}T{esc}"), (rep, f"{esc}R{esc}")]
+    replacements = [
+        (esc, f"{esc}E{esc}"),
+        (header.field_sep, f"{esc}F{esc}"),
+        (comp, f"{esc}S{esc}"),
+        (sub, f"{esc}T{esc}"),
+        (rep, f"{esc}R{esc}"),
+    ]
     out = []
     for char in " ".join(text.split()):  # no CR/LF/tabs in a field
         for plain, escaped in replacements:
@@ -157,12 +162,16 @@ def unreadable_reason(skipped_codes: Mapping[str, int], readings: int, rejected:
     message of other tests only, e.g. a potassium, is answered AA and ignored)."""
     if readings or rejected:
         return None
-    unreadable = sum(n for code, n in skipped_codes.items()
-                     if code == _NO_CODE or not code.split("^", 1)[0].strip())
+    unreadable = sum(
+        n
+        for code, n in skipped_codes.items()
+        if code == _NO_CODE or not code.split("^", 1)[0].strip()
+    )
     if not unreadable:
         return None
-    return (f"no result could be read: {unreadable} OBX without an OBX-3 code "
-            "(kept whole for review)")
+    return (
+        f"no result could be read: {unreadable} OBX without an OBX-3 code (kept whole for review)"
+    )
 
 
 def ack_for_batch(*, stored: int, duplicates: int, quarantined: int) -> tuple[str, str]:
@@ -178,8 +187,13 @@ def _clip(text: str, limit: int) -> str:
 
 
 def build_ack(
-    message: bytes | str | None, ack_code: str, text: str = "", *, control_id: str,
-    error_code: str | None = None, timestamp: str = "",
+    message: bytes | str | None,
+    ack_code: str,
+    text: str = "",
+    *,
+    control_id: str,
+    error_code: str | None = None,
+    timestamp: str = "",
 ) -> bytes:
     """The ACK for ``message``: MSH, MSA and, for AE/AR, ERR carrying the reason.
 
@@ -194,12 +208,22 @@ def build_ack(
     msg_type = f"ACK{comp}{h.trigger}{comp}ACK"  # MSH-9.3, the structure, names ACK
     if h.version == "2.3" and h.trigger:
         msg_type = f"ACK{comp}{h.trigger}"  # MSH-9.3 (message structure) exists from v2.3.1 on
-    msh = sep.join([
-        "MSH", h.encoding_chars, escape_text(h.receiving_application, h),
-        escape_text(h.receiving_facility, h), escape_text(h.sending_application, h),
-        escape_text(h.sending_facility, h), timestamp, "", msg_type, escape_text(control_id, h),
-        escape_text(h.processing_id, h), h.version,
-    ])
+    msh = sep.join(
+        [
+            "MSH",
+            h.encoding_chars,
+            escape_text(h.receiving_application, h),
+            escape_text(h.receiving_facility, h),
+            escape_text(h.sending_application, h),
+            escape_text(h.sending_facility, h),
+            timestamp,
+            "",
+            msg_type,
+            escape_text(control_id, h),
+            escape_text(h.processing_id, h),
+            h.version,
+        ]
+    )
     text = safe_text(text)
     msa_text = escape_text(_clip(text, _MSA_TEXT_MAX), h)
     segments = [msh, sep.join(["MSA", ack_code, escape_text(h.control_id, h), msa_text])]
@@ -210,9 +234,12 @@ def build_ack(
 
 
 _ERROR_NAMES = {
-    "100": "Segment sequence error", "101": "Required field missing",
-    "102": "Data type error", "200": "Unsupported message type",
-    "201": "Unsupported event code", "203": "Unsupported version id",
+    "100": "Segment sequence error",
+    "101": "Required field missing",
+    "102": "Data type error",
+    "200": "Unsupported message type",
+    "201": "Unsupported event code",
+    "203": "Unsupported version id",
     "207": "Application internal error",
 }
 
@@ -224,6 +251,15 @@ def _err_segment(h: Header, code: str, text: str) -> str:
         # ERR-1 (ELD): segment^sequence^field^code identifying coded element (CE as subcomponents)
         return sep.join(["ERR", f"{comp}{comp}{comp}{code}{sub}{name}{sub}HL70357"])
     # v2.5+: ERR-3 HL7 error code (CWE), ERR-4 severity E, ERR-8 user message
-    fields = ["ERR", "", "", f"{code}{comp}{name}{comp}HL70357", "E", "", "", "",
-              escape_text(text, h)]
+    fields = [
+        "ERR",
+        "",
+        "",
+        f"{code}{comp}{name}{comp}HL70357",
+        "E",
+        "",
+        "",
+        "",
+        escape_text(text, h),
+    ]
     return sep.join(fields)

@@ -48,8 +48,12 @@ def iter_hl7_file(
     def flush() -> Iterator[bytes]:
         nonlocal current, size, oversized_at, head
         if oversized_at is not None:
-            log.warning("%s: message at byte %d is over %d bytes, skipped",
-                        path, oversized_at, max_message_bytes)
+            log.warning(
+                "%s: message at byte %d is over %d bytes, skipped",
+                path,
+                oversized_at,
+                max_message_bytes,
+            )
             if on_oversized is not None:
                 on_oversized(oversized_at, head)
             head = b""

@@ -65,12 +65,23 @@ NOT_NOW = "not stored: gasgap cannot store messages at the moment; resend later"
 #: Answer for a message that broke the reader in a way it did not foresee, once kept.
 KEPT_FOR_REVIEW = "could not be processed; kept in quarantine for review"
 
-_TRANSIENT_NAMES = frozenset({
-    "OperationalError", "InterfaceError", "DisconnectionError", "TimeoutError",
-    "InternalError", "ConnectionFailure", "ConnectionTimeout", "AdminShutdown",
-    "CannotConnectNow", "QueryCanceled", "LockNotAvailable", "SerializationFailure",
-    "DeadlockDetected",
-})
+_TRANSIENT_NAMES = frozenset(
+    {
+        "OperationalError",
+        "InterfaceError",
+        "DisconnectionError",
+        "TimeoutError",
+        "InternalError",
+        "ConnectionFailure",
+        "ConnectionTimeout",
+        "AdminShutdown",
+        "CannotConnectNow",
+        "QueryCanceled",
+        "LockNotAvailable",
+        "SerializationFailure",
+        "DeadlockDetected",
+    }
+)
 
 
 def is_transient(exc: BaseException) -> bool:
@@ -185,9 +196,12 @@ class MllpListener:
                 if pending_since is not None:
                     wait = min(wait, pending_since + self._message_deadline - time.monotonic())
                     if wait <= 0:
-                        log.warning("MLLP %s: no whole message within %ss of its first byte, "
-                                    "closing (no ACK: the sender resends)", peer,
-                                    self._message_deadline)
+                        log.warning(
+                            "MLLP %s: no whole message within %ss of its first byte, "
+                            "closing (no ACK: the sender resends)",
+                            peer,
+                            self._message_deadline,
+                        )
                         break
                 try:
                     data = await asyncio.wait_for(reader.read(_READ_CHUNK), wait)
@@ -214,8 +228,14 @@ class MllpListener:
                 del self._per_peer[host]
             await _close(writer)
 
-    async def _take(self, data: bytes, framer: MllpFramer, writer: asyncio.StreamWriter,
-                    task: asyncio.Task[None], peer: object) -> int:
+    async def _take(
+        self,
+        data: bytes,
+        framer: MllpFramer,
+        writer: asyncio.StreamWriter,
+        task: asyncio.Task[None],
+        peer: object,
+    ) -> int:
         """Feed ``data`` to the framer and answer each whole message; how many."""
         self._connections[task] = True
         answered = 0
@@ -238,19 +258,20 @@ class MllpListener:
         finally:
             self._connections[task] = False
 
-    async def _refuse_oversized(self, too_large: MessageTooLarge,
-                                writer: asyncio.StreamWriter, peer: object) -> None:
+    async def _refuse_oversized(
+        self, too_large: MessageTooLarge, writer: asyncio.StreamWriter, peer: object
+    ) -> None:
         control_id = recover_header(too_large.head).control_id or "?"
-        log.warning("MLLP %s: message %s refused, over %d bytes", peer, control_id,
-                    too_large.limit)
+        log.warning("MLLP %s: message %s refused, over %d bytes", peer, control_id, too_large.limit)
         text = too_large.reason
         if self._on_refused is not None:
             try:
                 await asyncio.to_thread(self._on_refused, too_large.head, too_large.reason)
                 text += "; its first bytes are kept in quarantine"
             except Exception as exc:  # storage down: say so, the answer stays AE
-                log.error("MLLP %s: head of message %s not kept: %s", peer, control_id,
-                          type(exc).__name__)
+                log.error(
+                    "MLLP %s: head of message %s not kept: %s", peer, control_id, type(exc).__name__
+                )
                 text += "; not kept (storage unavailable)"
         await self._send(writer, too_large.head, "AE", text, too_large.error_code)
 
@@ -269,23 +290,33 @@ class MllpListener:
         log.info("MLLP %s: message %s (%d bytes) -> %s", peer, control_id, len(message), code)
         await self._send(writer, message, code, text, error_code)
 
-    async def _after_failure(self, message: bytes, exc: Exception, peer: object,
-                             control_id: str) -> tuple[str, str, str]:
+    async def _after_failure(
+        self, message: bytes, exc: Exception, peer: object, control_id: str
+    ) -> tuple[str, str, str]:
         """AR for an outage (the sender retries); otherwise keep the message and AE."""
         name = type(exc).__name__
         if self._is_transient(exc):
-            log.error("MLLP %s: message %s not stored, storage unavailable (%s): AR",
-                      peer, control_id, name)
+            log.error(
+                "MLLP %s: message %s not stored, storage unavailable (%s): AR",
+                peer,
+                control_id,
+                name,
+            )
             return "AR", NOT_NOW, "207"
         log.error("MLLP %s: message %s failed in processing (%s)", peer, control_id, name)
         if self._on_refused is not None:
             try:
-                await asyncio.to_thread(self._on_refused, message,
-                                        f"processing failed unexpectedly ({name})")
+                await asyncio.to_thread(
+                    self._on_refused, message, f"processing failed unexpectedly ({name})"
+                )
                 return "AE", KEPT_FOR_REVIEW, "207"
             except Exception as again:
-                log.error("MLLP %s: message %s not kept either (%s)", peer, control_id,
-                          type(again).__name__)
+                log.error(
+                    "MLLP %s: message %s not kept either (%s)",
+                    peer,
+                    control_id,
+                    type(again).__name__,
+                )
         return "AR", NOT_NOW, "207"
 
     async def _call(self, message: bytes) -> AckDecision:
@@ -300,11 +331,18 @@ class MllpListener:
         return result
 
     @staticmethod
-    async def _send(writer: asyncio.StreamWriter, message: bytes, code: str, text: str,
-                    error_code: str | None) -> None:
+    async def _send(
+        writer: asyncio.StreamWriter, message: bytes, code: str, text: str, error_code: str | None
+    ) -> None:
         now = datetime.now(UTC).strftime("%Y%m%d%H%M%S+0000")
-        ack = build_ack(message, code, text, control_id=uuid.uuid4().hex[:20],
-                        error_code=error_code, timestamp=now)
+        ack = build_ack(
+            message,
+            code,
+            text,
+            control_id=uuid.uuid4().hex[:20],
+            error_code=error_code,
+            timestamp=now,
+        )
         writer.write(frame(ack))
         await writer.drain()
 

@@ -63,17 +63,31 @@ SUPPORTED_VERSIONS = frozenset({"2.3", "2.3.1", "2.4", "2.5", "2.5.1"})
 
 #: MSH-18 character sets (HL7 Table 0211) this adapter can decode, to Python codecs.
 CHARACTER_SETS = {
-    "ASCII": "ascii", "8859/1": "latin-1", "8859/2": "iso8859-2", "8859/3": "iso8859-3",
-    "8859/4": "iso8859-4", "8859/5": "iso8859-5", "8859/6": "iso8859-6",
-    "8859/7": "iso8859-7", "8859/8": "iso8859-8", "8859/9": "iso8859-9",
-    "8859/15": "iso8859-15", "UNICODE UTF-8": "utf-8",
+    "ASCII": "ascii",
+    "8859/1": "latin-1",
+    "8859/2": "iso8859-2",
+    "8859/3": "iso8859-3",
+    "8859/4": "iso8859-4",
+    "8859/5": "iso8859-5",
+    "8859/6": "iso8859-6",
+    "8859/7": "iso8859-7",
+    "8859/8": "iso8859-8",
+    "8859/9": "iso8859-9",
+    "8859/15": "iso8859-15",
+    "UNICODE UTF-8": "utf-8",
 }
 
 STATUS_MAP = {
-    "F": Status.FINAL, "U": Status.FINAL,
-    "C": Status.CORRECTED, "A": Status.CORRECTED,
-    "P": Status.PRELIMINARY, "R": Status.PRELIMINARY, "S": Status.PRELIMINARY,
-    "D": Status.RETRACTED, "W": Status.RETRACTED, "X": Status.RETRACTED,
+    "F": Status.FINAL,
+    "U": Status.FINAL,
+    "C": Status.CORRECTED,
+    "A": Status.CORRECTED,
+    "P": Status.PRELIMINARY,
+    "R": Status.PRELIMINARY,
+    "S": Status.PRELIMINARY,
+    "D": Status.RETRACTED,
+    "W": Status.RETRACTED,
+    "X": Status.RETRACTED,
 }
 IGNORED_STATUSES = frozenset({"I", "O", "N", "B", "V"})
 
@@ -131,13 +145,18 @@ def decode(raw: bytes | str) -> str:
         named = f"MSH-18 names {charset!r}" if charset else "MSH-18 is empty"
         raise Hl7Error(
             f"message is not valid UTF-8 (byte {first_error.start}) and {named}, "
-            "no character set gasgap can fall back to", "AE", "102")
+            "no character set gasgap can fall back to",
+            "AE",
+            "102",
+        )
     try:
         return raw.decode(codec)
     except UnicodeDecodeError as exc:
         raise Hl7Error(
             f"message is neither UTF-8 nor valid {charset} (MSH-18) at byte {exc.start}",
-            "AE", "102") from exc
+            "AE",
+            "102",
+        ) from exc
 
 
 def _msh18(raw: bytes) -> str:
@@ -196,8 +215,13 @@ class _Segments:
             return text
         parts = text.split(self.esc)
         out = [parts[0]]
-        simple = {"F": self.field_sep, "S": self.comp_sep, "T": self.sub_sep,
-                  "R": self.rep_sep, "E": self.esc}
+        simple = {
+            "F": self.field_sep,
+            "S": self.comp_sep,
+            "T": self.sub_sep,
+            "R": self.rep_sep,
+            "E": self.esc,
+        }
         for i in range(1, len(parts), 2):
             seq = parts[i]
             if i + 1 >= len(parts):  # unterminated: keep the text as sent
@@ -268,9 +292,14 @@ def _parse_date(text: str) -> date | None:
 #: HL7 Table 0070 specimen source codes and SNOMED CT specimen codes (both from
 #: memory, not checked) and words lab systems write.
 _SPECIMEN_CODES = {
-    "BLDA": Specimen.ARTERIAL, "BLDV": Specimen.VENOUS, "BLDC": Specimen.CAPILLARY,
-    "BLDMV": Specimen.VENOUS, "BLDCO": Specimen.UNKNOWN, "BLD": Specimen.UNKNOWN,
-    "122552005": Specimen.ARTERIAL, "122555007": Specimen.VENOUS,
+    "BLDA": Specimen.ARTERIAL,
+    "BLDV": Specimen.VENOUS,
+    "BLDC": Specimen.CAPILLARY,
+    "BLDMV": Specimen.VENOUS,
+    "BLDCO": Specimen.UNKNOWN,
+    "BLD": Specimen.UNKNOWN,
+    "122552005": Specimen.ARTERIAL,
+    "122555007": Specimen.VENOUS,
     "122554006": Specimen.CAPILLARY,
 }
 # Order matters: a text naming both (e.g. "arterialised capillary") is not arterial.
@@ -349,8 +378,9 @@ def _split_message(text: str) -> hl7.Message:
     if not text.startswith("MSH"):
         raise Hl7Error("first segment is not MSH", "AE", "100")
     if len(text) < 8 or text[3].isalnum() or text[3].isspace():
-        raise Hl7Error("MSH-1/MSH-2: no usable field separator and encoding characters",
-                       "AE", "102")
+        raise Hl7Error(
+            "MSH-1/MSH-2: no usable field separator and encoding characters", "AE", "102"
+        )
     enc = text[4:8]
     if text[3] in enc or len(set(enc)) < 4 or any(c.isalnum() or c.isspace() for c in enc):
         raise Hl7Error("MSH-2: encoding characters must be four distinct symbols", "AE", "102")
@@ -406,13 +436,17 @@ def parse_oru(
     version = seg.get(msh, 12, 1)
     control_id = seg.get(msh, 10)
     if seg.get(msh, 9, 1) != "ORU":
-        raise Hl7Error(f"MSH-9: message type {message_type or 'empty'} is not taken "
-                       "(only ORU^R01)", "AR", "200")
+        raise Hl7Error(
+            f"MSH-9: message type {message_type or 'empty'} is not taken (only ORU^R01)",
+            "AR",
+            "200",
+        )
     if seg.get(msh, 9, 2) != "R01":
         raise Hl7Error(f"MSH-9: event {message_type} is not taken (only ORU^R01)", "AR", "201")
     if version not in SUPPORTED_VERSIONS:
-        raise Hl7Error(f"MSH-12: version {version or 'empty'!s} is not taken (2.3 to 2.5.1)",
-                       "AR", "203")
+        raise Hl7Error(
+            f"MSH-12: version {version or 'empty'!s} is not taken (2.3 to 2.5.1)", "AR", "203"
+        )
     if not control_id:
         raise Hl7Error("MSH-10: message control id is empty", "AE", "101")
     segments = [s for s in message[1:] if _name(s)]
@@ -424,8 +458,18 @@ def parse_oru(
         message_time: datetime | None = parse_dtm(seg.get(msh, 7), site_tz)
     except ValueError:
         message_time = None
-    ctx = _Context(codes, source_system, site_tz, received_at.astimezone(UTC), control_id,
-                   settings.patient_id_system, oximetry, seg, settings, message_time)
+    ctx = _Context(
+        codes,
+        source_system,
+        site_tz,
+        received_at.astimezone(UTC),
+        control_id,
+        settings.patient_id_system,
+        oximetry,
+        seg,
+        settings,
+        message_time,
+    )
     result = ParsedMessage(control_id, message_type, version)
     taken: list[tuple[str, Reading]] = []
     for order in _orders(segments):
@@ -446,8 +490,11 @@ def _drop_ambiguous(taken: list[tuple[str, Reading]], out: ParsedMessage) -> Non
             out.readings.append(reading)
         else:
             others = ", ".join(p for p in places if p != where)
-            out.rejected.append(Rejection(
-                f"{where}-3", f"same OBR-3, OBX-3 and OBX-4 as {others}: ambiguous result"))
+            out.rejected.append(
+                Rejection(
+                    f"{where}-3", f"same OBR-3, OBX-3 and OBX-4 as {others}: ambiguous result"
+                )
+            )
 
 
 def _is_oximetry(seg: _Segments, obx: hl7.Segment, codes: CodeTable) -> bool:
@@ -520,8 +567,12 @@ def _order_facts(ctx: _Context, order: _Order, out: ParsedMessage) -> _OrderFact
             collected = parse_dtm(collected_raw, ctx.site_tz)
         except ValueError as exc:
             raise ValueError(f"OBR-7: {exc}") from exc
-    signs = [specimen_from(seg.get(order.obr, 15, 1, 1),
-                           f"{seg.get(order.obr, 15, 1, 2)} {seg.get(order.obr, 15, 1, 3)}")]
+    signs = [
+        specimen_from(
+            seg.get(order.obr, 15, 1, 1),
+            f"{seg.get(order.obr, 15, 1, 2)} {seg.get(order.obr, 15, 1, 3)}",
+        )
+    ]
     for spm in order.spms:
         signs.append(specimen_from(seg.get(spm, 4, 1), seg.get(spm, 4, 2)))
     birth_raw = seg.get(order.pid, 7)
@@ -554,8 +605,11 @@ def _patient_keys(seg: _Segments, pid: hl7.Segment, ctx: _Context) -> list[str]:
             continue
         authority = rep[3] if len(rep) > 3 else []
         parts = [a.strip() for a in authority] + ["", "", ""]
-        keys.append(identity.hl7_identifier_key(
-            value, parts[0], parts[1], parts[2], ctx.register, ctx.source_system))
+        keys.append(
+            identity.hl7_identifier_key(
+                value, parts[0], parts[1], parts[2], ctx.register, ctx.source_system
+            )
+        )
     if not keys:
         raise ValueError("PID-3: no patient identifier")
     return sorted(dict.fromkeys(keys), key=lambda k: (identity.key_rank(k), k))
@@ -581,12 +635,17 @@ def _read_obx(
     if status_code in IGNORED_STATUSES or (status_code == "U" and not value_reps):
         out.ignored[status_code] += 1
         if status_code == "U":
-            out.warnings.append(Rejection(f"{where}-11", "U without a value: earlier "
-                                          "preliminary result not promoted; resend it as F"))
+            out.warnings.append(
+                Rejection(
+                    f"{where}-11",
+                    "U without a value: earlier preliminary result not promoted; resend it as F",
+                )
+            )
         return None
     if status_code not in STATUS_MAP:
-        raise _Bad(f"{where}-11", f"result status {status_code or 'empty'!s} is not an "
-                         "HL7 Table 0085 code")
+        raise _Bad(
+            f"{where}-11", f"result status {status_code or 'empty'!s} is not an HL7 Table 0085 code"
+        )
     status = STATUS_MAP[status_code]
     kind = entry.kind
     specimen = entry.specimen
@@ -613,18 +672,32 @@ def _read_obx(
             known_at = ctx.message_time
     try:
         value, code_value, original_value, original_unit = _value(
-            ctx, obx, where, kind, status, value_reps)
+            ctx, obx, where, kind, status, value_reps
+        )
     except _CensoredSN as sn:
         out.censored.append(_censored(ctx, facts, kind, code, logical_id, effective, sn))
         return None
     return Reading(
-        patient_key=facts.patient_key, kind=kind, value=value, effective_at=effective,
-        received_at=ctx.received_at, source_system=ctx.source_system, logical_id=logical_id,
-        delivery_id=f"{logical_id}@{ctx.control_id}:{seg.get(obx, 1) or where}", status=status,
-        specimen=specimen, original_value=original_value, original_unit=original_unit,
-        code=code, code_system=normalise_system(system) if system else "",
-        code_value=code_value, panel_id=facts.filler_order, from_ventilator=entry.ventilator,
-        encounter_id=facts.encounter_id, location=facts.location, birth_date=facts.birth_date,
+        patient_key=facts.patient_key,
+        kind=kind,
+        value=value,
+        effective_at=effective,
+        received_at=ctx.received_at,
+        source_system=ctx.source_system,
+        logical_id=logical_id,
+        delivery_id=f"{logical_id}@{ctx.control_id}:{seg.get(obx, 1) or where}",
+        status=status,
+        specimen=specimen,
+        original_value=original_value,
+        original_unit=original_unit,
+        code=code,
+        code_system=normalise_system(system) if system else "",
+        code_value=code_value,
+        panel_id=facts.filler_order,
+        from_ventilator=entry.ventilator,
+        encounter_id=facts.encounter_id,
+        location=facts.location,
+        birth_date=facts.birth_date,
         known_at=known_at,
     )
 
@@ -638,8 +711,13 @@ class _CensoredSN(Exception):
 
 
 def _censored(
-    ctx: _Context, facts: _OrderFacts, kind: Kind, code: str, logical_id: str,
-    effective: datetime, sn: _CensoredSN,
+    ctx: _Context,
+    facts: _OrderFacts,
+    kind: Kind,
+    code: str,
+    logical_id: str,
+    effective: datetime,
+    sn: _CensoredSN,
 ) -> CensoredValue:
     limit: float | None = None
     try:
@@ -647,9 +725,16 @@ def _censored(
     except InvalidReading:
         limit = None
     return CensoredValue(
-        patient_key=facts.patient_key, kind=kind, comparator=sn.comparator, limit=limit,
-        original_value=sn.number, original_unit=sn.unit, effective_at=effective,
-        source_system=ctx.source_system, logical_id=logical_id, code=code,
+        patient_key=facts.patient_key,
+        kind=kind,
+        comparator=sn.comparator,
+        limit=limit,
+        original_value=sn.number,
+        original_unit=sn.unit,
+        effective_at=effective,
+        source_system=ctx.source_system,
+        logical_id=logical_id,
+        code=code,
     )
 
 
@@ -658,7 +743,11 @@ def _names_oximeter(seg: _Segments, obx: hl7.Segment) -> bool:
 
 
 def _value(
-    ctx: _Context, obx: hl7.Segment, where: str, kind: Kind, status: Status,
+    ctx: _Context,
+    obx: hl7.Segment,
+    where: str,
+    kind: Kind,
+    status: Status,
     value_reps: list[list[list[str]]],
 ) -> tuple[float | None, str | None, str, str]:
     """(canonical value, coded value, original value, original unit) of one OBX."""
@@ -676,8 +765,9 @@ def _value(
         raise _Bad(f"{where}-5", "no value")
     if kind is Kind.O2_DEVICE:
         if value_type not in _CODED_TYPES | {"ST", "TX"}:
-            raise _Bad(f"{where}-2",
-                       f"value type {value_type or 'empty'} cannot carry an O2 device")
+            raise _Bad(
+                f"{where}-2", f"value type {value_type or 'empty'} cannot carry an O2 device"
+            )
         code = first if value_type in _CODED_TYPES else ""
         text = (comps[1][0] if len(comps) > 1 else "") if value_type in _CODED_TYPES else first
         system = comps[2][0] if value_type in _CODED_TYPES and len(comps) > 2 else None
@@ -693,8 +783,10 @@ def _value(
         if comparator in COMPARATORS:
             raise _CensoredSN(comparator, comps[1][0].strip() if len(comps) > 1 else "", unit)
         if comparator not in ("", "="):
-            raise _Bad(f"{where}-5", f"comparator {comparator!r} of {original!r} is not an "
-                       "HL7 SN comparator")
+            raise _Bad(
+                f"{where}-5",
+                f"comparator {comparator!r} of {original!r} is not an HL7 SN comparator",
+            )
         if len(comps) > 2 and any(c[0].strip() for c in comps[2:]):
             raise _Bad(f"{where}-5", f"ratio or range {original!r} is not a single number")
         number_text = comps[1][0].strip() if len(comps) > 1 else ""
@@ -707,8 +799,9 @@ def _value(
     if unit_in_text and value_type == "NM":
         raise _Bad(f"{where}-5", f"value {original!r} is not a number")
     if unit_in_text and unit and unit_in_text.lower() != unit.lower():
-        raise _Bad(f"{where}-5", f"unit {unit_in_text!r} in the value disagrees with "
-                         f"OBX-6 {unit!r}")
+        raise _Bad(
+            f"{where}-5", f"unit {unit_in_text!r} in the value disagrees with OBX-6 {unit!r}"
+        )
     unit = unit or unit_in_text or ""
     try:
         canonical = to_canonical(kind, number, unit)

@@ -183,7 +183,7 @@ def rule_words(rule_id: str) -> str:
 
 
 def offset_label(at: datetime) -> str:
-    """"UTC" or "UTC+02:00" / "UTC\u221207:00": the zone of a time, written so its sign
+    """ "UTC" or "UTC+02:00" / "UTC\u221207:00": the zone of a time, written so its sign
     reads the right way round (unlike the Etc/GMT names). The engine's own label."""
     return zone_label(at)
 
@@ -230,8 +230,7 @@ NUMBER_WORDS: dict[str, tuple[str, int, str, str | None]] = {
     "aa_rise": ("rise in A\u2013a gradient", 0, "mmHg", None),
     "aa_expected": ("A\u2013a expected for age, up to", 0, "mmHg", None),
     "aa_excess": ("above the age-expected A\u2013a by", 0, "mmHg", None),
-    "adult_formula_age": ("age (the age-expected A\u2013a is an adult formula)", 0, "years",
-                          None),
+    "adult_formula_age": ("age (the age-expected A\u2013a is an adult formula)", 0, "years", None),
     "aa_ratio": ("a/A ratio", 2, "", None),
     "previous_aa_ratio": ("a/A ratio of the gas before", 2, "", None),
     "aa_ratio_fall": ("fall in a/A ratio", 2, "", None),
@@ -281,9 +280,7 @@ def number_lines(
     return lines
 
 
-def number_line(
-    name: str, value: object, tz: tzinfo = UTC, now: datetime | None = None
-) -> str:
+def number_line(name: str, value: object, tz: tzinfo = UTC, now: datetime | None = None) -> str:
     """One key number as text: ``name value unit at time (provenance)``."""
     if not isinstance(value, Mapping):
         return f"{name} {_describe(value, tz, now)}"

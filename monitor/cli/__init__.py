@@ -36,8 +36,12 @@ def _command_modules() -> list[Callable[[Subparsers], None]]:
     from monitor.cli_records import add_record_commands
 
     return [
-        add_calc_command, add_record_commands, add_serve_commands, add_replay_command,
-        add_fhir_commands, add_quarantine_commands,
+        add_calc_command,
+        add_record_commands,
+        add_serve_commands,
+        add_replay_command,
+        add_fhir_commands,
+        add_quarantine_commands,
     ]
 
 

@@ -150,7 +150,11 @@ class HypoxaemiaEntry(_RuleEntry):
 
     def to_spec(self) -> RuleSpec:
         return HypoxaemiaRule(
-            self.id, self.enabled, self.pao2_mmhg, self.pao2_medium_mmhg, self.sao2_percent,
+            self.id,
+            self.enabled,
+            self.pao2_mmhg,
+            self.pao2_medium_mmhg,
+            self.sao2_percent,
             self.sao2_medium_percent,
         )
 

@@ -305,9 +305,7 @@ def acknowledge(alert: Alert, by: str, now: datetime) -> Decision:
     return _move(alert, _T.ACKNOWLEDGED, now, acked, sample_id=alert.sample_id, by=by.strip())
 
 
-def escalate_due(
-    alerts: Sequence[Alert], now: datetime, settings: AlertSettings
-) -> list[Decision]:
+def escalate_due(alerts: Sequence[Alert], now: datetime, settings: AlertSettings) -> list[Decision]:
     """Escalate each raised medium or high flag not acknowledged within
     ``settings.escalate_after`` of its last change (raise or worsening)."""
     _require_aware(now)

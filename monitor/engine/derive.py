@@ -299,9 +299,7 @@ def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
     margin = settings.unreliable_margin_mmhg
     if alv.alveolar_po2 is not None and s.pao2 > alv.alveolar_po2 + margin:
         flags.add(QualityFlag.PAO2_ABOVE_ALVEOLAR)
-    if alv.aa_gradient_expected is not None and (s.age_years or 0.0) < (
-        physiology.ADULT_AGE_YEARS
-    ):
+    if alv.aa_gradient_expected is not None and (s.age_years or 0.0) < (physiology.ADULT_AGE_YEARS):
         flags.add(QualityFlag.PAEDIATRIC_AGE_NORMAL)
     ratios = _ratios(s, flags, notes) if arterial else _Ratios()
     cao2 = _content(s, settings, notes) if arterial else None

@@ -218,7 +218,7 @@ def provisional_label(key: str) -> str:
     and the last four characters of the record id, enough to find it, too few to be
     taken for an identifier.
     """
-    body = key[len(REFERENCE_PREFIX):]
+    body = key[len(REFERENCE_PREFIX) :]
     source, _, ref = body.partition(":")
     tail = ref.rsplit("/", 1)[-1].rsplit(":", 1)[-1]
     return f"provisional patient ({source or 'unknown source'} record …{tail[-4:]})"
@@ -329,8 +329,9 @@ class PatientRegister:
             if len(old_sites) == 1 and len(new_sites) > 1:
                 continue  # a split, not a move: reported as the dispute
             rekeys.append(Rekey(old_key, new_key))
-        return LearnResult(tuple(sorted(set(rekeys), key=lambda r: (r.old, r.new))),
-                           tuple(disputes))
+        return LearnResult(
+            tuple(sorted(set(rekeys), key=lambda r: (r.old, r.new))), tuple(disputes)
+        )
 
     def learn_all(self, links: Iterable[PatientLink]) -> LearnResult:
         rekeys: dict[str, str] = {}
@@ -381,8 +382,14 @@ class PatientRegister:
         if len({b for _, _, b in births}) > 1:
             notes.append("sources disagree on the birth date; the best-identified one is used")
         located = [f for f in facts if f.location is not None]
-        located.sort(key=lambda f: (f.at is not None, f.at or datetime.min, -key_rank(f.key),
-                                    _reverse_text(f.key)))
+        located.sort(
+            key=lambda f: (
+                f.at is not None,
+                f.at or datetime.min,
+                -key_rank(f.key),
+                _reverse_text(f.key),
+            )
+        )
         disputed = False
         if canon in self._parent:
             disputed = len(self._sites[self._find(canon)]) > 1

@@ -126,8 +126,17 @@ def _require_aware(name: str, value: datetime) -> None:
 
 
 _TEXT_FIELDS = (
-    "patient_key", "source_system", "logical_id", "delivery_id", "original_value",
-    "original_unit", "code", "code_system", "code_value", "panel_id", "encounter_id",
+    "patient_key",
+    "source_system",
+    "logical_id",
+    "delivery_id",
+    "original_value",
+    "original_unit",
+    "code",
+    "code_system",
+    "code_value",
+    "panel_id",
+    "encounter_id",
 )
 
 
@@ -196,8 +205,9 @@ class Reading:
                 # with the field named, rather than fail a whole batch later.
                 raise InvalidReading(name, text.replace("\x00", "\\0"), "must not contain NUL")
         if self.location is not None and "\x00" in self.location.label():
-            raise InvalidReading("location", self.location.label().replace("\x00", "\\0"),
-                                 "must not contain NUL")
+            raise InvalidReading(
+                "location", self.location.label().replace("\x00", "\\0"), "must not contain NUL"
+            )
         if not self.unit:
             object.__setattr__(self, "unit", CANONICAL_UNIT[self.kind])
         if self.kind is Kind.O2_DEVICE:

@@ -384,9 +384,7 @@ def _in_effect(
                 "uncertain by 0.1 or more"
             )
             inputs.append(InputUsed("fio2", value, why, None, at))
-            return _Therapy(
-                value, FiO2Source.DEVICE_ESTIMATE, tuple(inputs), used, tuple(notes)
-            )
+            return _Therapy(value, FiO2Source.DEVICE_ESTIMATE, tuple(inputs), used, tuple(notes))
     return _Therapy(None, FiO2Source.UNKNOWN, (), (), tuple(notes))
 
 
@@ -449,16 +447,25 @@ def _choose_fio2(
         )
         inputs = (
             *(
-                replace(i, reason=f"{i.reason}; in effect until {_clock(moment)}, the value "
-                        "the blood reflects")
-                if i.role == "fio2" else i
+                replace(
+                    i,
+                    reason=f"{i.reason}; in effect until {_clock(moment)}, the value "
+                    "the blood reflects",
+                )
+                if i.role == "fio2"
+                else i
                 for i in before.inputs
             ),
             InputUsed("fio2_set", new_value, why_set, None, moment),
         )
         return FiO2InEffect(
-            before.value, before.source, frozenset(flags), inputs, before.used + after.used,
-            changed_to=new_value, changed_at=moment,
+            before.value,
+            before.source,
+            frozenset(flags),
+            inputs,
+            before.used + after.used,
+            changed_to=new_value,
+            changed_at=moment,
         )
     if with_gas:
         r = min(with_gas, key=lambda x: (abs(x.effective_at - at), _order(x)))
@@ -468,7 +475,10 @@ def _choose_fio2(
     therapy = _in_effect(at, charted, devices, flows, settings)
     if therapy.value is not None and therapy.source is not FiO2Source.DEVICE_ESTIMATE:
         return FiO2InEffect(
-            therapy.value, therapy.source, frozenset(), therapy.notes + therapy.inputs,
+            therapy.value,
+            therapy.source,
+            frozenset(),
+            therapy.notes + therapy.inputs,
             therapy.used,
         )
     after_draw = [r for r in charted if at < r.effective_at <= at + settings.charted_after_grace]
@@ -484,15 +494,21 @@ def _choose_fio2(
         )
     if therapy.value is not None:
         return FiO2InEffect(
-            therapy.value, therapy.source, frozenset({QualityFlag.ESTIMATED_FIO2}),
-            therapy.notes + therapy.inputs, therapy.used,
+            therapy.value,
+            therapy.source,
+            frozenset({QualityFlag.ESTIMATED_FIO2}),
+            therapy.notes + therapy.inputs,
+            therapy.used,
         )
     note = InputUsed(
         "fio2", None, "no FiO2, room air or device charted within its staleness limit", None, at
     )
     return FiO2InEffect(
-        None, FiO2Source.UNKNOWN, frozenset({QualityFlag.FIO2_UNKNOWN}),
-        (*therapy.notes, note), (),
+        None,
+        FiO2Source.UNKNOWN,
+        frozenset({QualityFlag.FIO2_UNKNOWN}),
+        (*therapy.notes, note),
+        (),
     )
 
 
@@ -594,9 +610,7 @@ def _age(sample: Reading, readings: Sequence[Reading]) -> tuple[float | None, In
     carrier = sample if sample.birth_date is not None else None
     if carrier is None:
         dated = [r for r in readings if r.birth_date is not None]
-        carrier = max(
-            dated, key=lambda r: (r.known, r.logical_id, r.delivery_id), default=None
-        )
+        carrier = max(dated, key=lambda r: (r.known, r.logical_id, r.delivery_id), default=None)
     if carrier is None or carrier.birth_date is None:
         return None, None
     born = carrier.birth_date

@@ -58,9 +58,7 @@ def cmh2o_to_mmhg(cmh2o: float) -> float:
 
 
 def _fio2(fio2: float) -> float:
-    if not (isinstance(fio2, int | float) and math.isfinite(fio2)) or not (
-        FIO2_MIN <= fio2 <= 1.0
-    ):
+    if not (isinstance(fio2, int | float) and math.isfinite(fio2)) or not (FIO2_MIN <= fio2 <= 1.0):
         raise InvalidInput("fio2", fio2, "must be a fraction in [0.209, 1.0]")
     return float(fio2)
 

@@ -414,16 +414,10 @@ def _fio2_numbers(d: Derivation) -> dict[str, object]:
     return numbers
 
 
-def _prior(
-    items: Sequence[Derivation], d: Derivation, window: timedelta
-) -> list[Derivation]:
+def _prior(items: Sequence[Derivation], d: Derivation, window: timedelta) -> list[Derivation]:
     """Entries drawn in [drawn_at - window, drawn_at), other samples than ``d``."""
     start = d.drawn_at - window
-    return [
-        p
-        for p in items
-        if p.sample_id != d.sample_id and start <= p.drawn_at < d.drawn_at
-    ]
+    return [p for p in items if p.sample_id != d.sample_id and start <= p.drawn_at < d.drawn_at]
 
 
 def _fio2_points(points: Sequence[FiO2Point], d: Derivation) -> list[tuple[datetime, float]]:
@@ -490,7 +484,9 @@ def _band(rule: OxygenationBandRule, d: Derivation, h: float) -> RuleOutcome:
         return _outcome(rule, d, label="P/F", reason="no P/F for this sample")
     pf = counted.value
     numbers: dict[str, object] = {
-        "pf": _r(pf), "pf_at": _at(d.drawn_at), "adjusted": counted.adjusted,
+        "pf": _r(pf),
+        "pf_at": _at(d.drawn_at),
+        "adjusted": counted.adjusted,
     }
     if counted.adjusted:
         numbers["pf_measured"] = _r(counted.measured)
@@ -503,8 +499,10 @@ def _band(rule: OxygenationBandRule, d: Derivation, h: float) -> RuleOutcome:
         cleared = pf > rule.low * (1.0 + h)
         if cleared and uncertain and d.pao2 is not None and d.fio2 is not None:
             # Clear only if the P/F clears at the highest FiO2 the inputs allow.
-            top = 1.0 if d.fio2_source is FiO2Source.CHARTED_AFTER else min(
-                1.0, d.fio2 + ESTIMATE_UNCERTAINTY
+            top = (
+                1.0
+                if d.fio2_source is FiO2Source.CHARTED_AFTER
+                else min(1.0, d.fio2 + ESTIMATE_UNCERTAINTY)
             )
             worst = d.pao2 / top * factor
             numbers["pf_at_highest_fio2"] = _r(worst)
@@ -525,7 +523,12 @@ def _band(rule: OxygenationBandRule, d: Derivation, h: float) -> RuleOutcome:
         label = f"Berlin {_BERLIN_WORD[priority]}"
     numbers["threshold"] = threshold
     return _outcome(
-        rule, d, fired=True, priority=priority, label=label, numbers=numbers,
+        rule,
+        d,
+        fired=True,
+        priority=priority,
+        label=label,
+        numbers=numbers,
         uncertain=uncertain,
     )
 
@@ -559,8 +562,14 @@ def _pf_fall(rule: PfFallRule, d: Derivation, history: PatientHistory, h: float)
     fired = fall >= rule.fall_fraction
     cleared = fall < rule.fall_fraction * (1.0 - h)
     return _outcome(
-        rule, d, fired=fired, cleared=cleared, priority=rule.priority, label=label,
-        numbers=numbers, used=(best,),
+        rule,
+        d,
+        fired=fired,
+        cleared=cleared,
+        priority=rule.priority,
+        label=label,
+        numbers=numbers,
+        used=(best,),
     )
 
 
@@ -581,8 +590,13 @@ def _aa_room_air(rule: AaRoomAirRule, d: Derivation, h: float) -> RuleOutcome:
         numbers["adult_formula_age"] = d.age_years
         label += " (adult formula)"
     return _outcome(
-        rule, d, fired=excess > rule.margin, cleared=excess < rule.margin * (1.0 - h),
-        priority=rule.priority, label=label, numbers=numbers,
+        rule,
+        d,
+        fired=excess > rule.margin,
+        cleared=excess < rule.margin * (1.0 - h),
+        priority=rule.priority,
+        label=label,
+        numbers=numbers,
     )
 
 
@@ -593,7 +607,9 @@ def _aa_rise(rule: AaRiseRule, d: Derivation, history: PatientHistory, h: float)
     )
     if found is None:
         return _outcome(
-            rule, d, label=label,
+            rule,
+            d,
+            label=label,
             reason="no previous trendable gas with an A-a at a comparable FiO2",
         )
     rise, previous = found
@@ -615,8 +631,14 @@ def _aa_rise(rule: AaRiseRule, d: Derivation, history: PatientHistory, h: float)
     fired = rise >= rule.rise and fall >= rule.ratio_fall - 1e-12
     cleared = rise < rule.rise * (1.0 - h) or fall < rule.ratio_fall * (1.0 - h)
     return _outcome(
-        rule, d, fired=fired, cleared=cleared, priority=rule.priority, label=label,
-        numbers=numbers, used=(previous,),
+        rule,
+        d,
+        fired=fired,
+        cleared=cleared,
+        priority=rule.priority,
+        label=label,
+        numbers=numbers,
+        used=(previous,),
     )
 
 
@@ -645,8 +667,13 @@ def _o2_escalation(
     # marked estimated only when the FiO2 in effect came from device and flow, even
     # when the rule was judged on an SpO2 reading between gases.
     return _outcome(
-        rule, d, fired=fired, cleared=rise < rule.rise * (1.0 - h) - 1e-9,
-        priority=rule.priority, label=label, numbers=numbers,
+        rule,
+        d,
+        fired=fired,
+        cleared=rise < rule.rise * (1.0 - h) - 1e-9,
+        priority=rule.priority,
+        label=label,
+        numbers=numbers,
         estimated=QualityFlag.ESTIMATED_FIO2 in d.flags,
     )
 
@@ -691,7 +718,11 @@ def _hypoxaemia(rule: HypoxaemiaRule, d: Derivation, h: float) -> RuleOutcome:
     cleared = pao2 > rule.pao2 * (1.0 + h) and (sao2 is None or sao2 >= rule.sao2)
     if d.fio2 is not None:
         return _outcome(
-            rule, d, label=label, cleared=cleared, numbers=numbers,
+            rule,
+            d,
+            label=label,
+            cleared=cleared,
+            numbers=numbers,
             reason="" if cleared else "FiO2 known: the oxygenation band judges the P/F",
         )
     if not low:
@@ -700,8 +731,12 @@ def _hypoxaemia(rule: HypoxaemiaRule, d: Derivation, h: float) -> RuleOutcome:
     if sao2 is not None and sao2 < rule.sao2 and pao2 >= rule.pao2:
         label = f"SaO2 < {rule.sao2:g} % with FiO2 unknown"
     return _outcome(
-        rule, d, fired=True, priority=Priority.MEDIUM if medium else Priority.LOW,
-        label=label, numbers=numbers,
+        rule,
+        d,
+        fired=True,
+        priority=Priority.MEDIUM if medium else Priority.LOW,
+        label=label,
+        numbers=numbers,
     )
 
 

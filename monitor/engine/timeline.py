@@ -228,8 +228,9 @@ class PatientTimeline:
     def needs_from(self, readings: Sequence[Reading]) -> datetime:
         """The earliest draw time whose readings must be held to step ``readings``."""
         before, _ = context_window(self.settings.pairing)
-        earliest = min(r.effective_at - influence_window(r.kind, self.settings.pairing)[0]
-                       for r in readings)
+        earliest = min(
+            r.effective_at - influence_window(r.kind, self.settings.pairing)[0] for r in readings
+        )
         return earliest - before - self.settings.history
 
     def forget_before(self, cutoff: datetime) -> None:
@@ -251,9 +252,7 @@ class PatientTimeline:
 
     # --- stepping ---------------------------------------------------------------------
 
-    def advance(
-        self, readings: Iterable[Reading], *, seen_at: datetime | None
-    ) -> StepResult:
+    def advance(self, readings: Iterable[Reading], *, seen_at: datetime | None) -> StepResult:
         """Take ``readings`` (any order, repeats allowed), step through them in
         known-time order, and return what changed. ``seen_at``: when this is computed
         (the wall clock live), for deciding whether a flag is historical and when it
@@ -265,8 +264,7 @@ class PatientTimeline:
         for r in readings:
             if r.patient_key != self.patient_key:
                 raise ValueError(
-                    f"reading {r.delivery_id!r}: patient {r.patient_key!r} is not "
-                    f"this timeline's"
+                    f"reading {r.delivery_id!r}: patient {r.patient_key!r} is not this timeline's"
                 )
             if r.delivery_id in self._deliveries or r.delivery_id in seen:
                 result.duplicates += 1
@@ -348,13 +346,17 @@ class PatientTimeline:
             if r.birth_date is not None and r.birth_date != self.birth_date:
                 self.birth_date = r.birth_date
                 # a birth date can change the age, and so the expected A-a, of any sample
-                windows.append((datetime.min.replace(tzinfo=known.tzinfo),
-                                datetime.max.replace(tzinfo=known.tzinfo)))
+                windows.append(
+                    (
+                        datetime.min.replace(tzinfo=known.tzinfo),
+                        datetime.max.replace(tzinfo=known.tzinfo),
+                    )
+                )
         if not windows and not direct:
             return result
-        result.extend(self._follow(
-            windows, panels, withdrawn, touched_times, instant, seen_at, direct
-        ))
+        result.extend(
+            self._follow(windows, panels, withdrawn, touched_times, instant, seen_at, direct)
+        )
         return result
 
     def refresh(self, *, seen_at: datetime | None) -> StepResult:
@@ -365,7 +367,11 @@ class PatientTimeline:
         tz = self.instant.tzinfo
         everything = [(datetime.min.replace(tzinfo=tz), datetime.max.replace(tzinfo=tz))]
         return self._follow(
-            everything, set(), set(), [], self.instant,
+            everything,
+            set(),
+            set(),
+            [],
+            self.instant,
             self.instant if seen_at is None else seen_at,
         )
 
@@ -382,10 +388,15 @@ class PatientTimeline:
         """Re-derive what changed readings can affect (``direct``: samples changed
         themselves), withdraw, judge."""
         result = StepResult()
-        stood = {
-            sid for sid, d in self.derivations.items()
-            if sid in withdrawn or any(i.reading_id in withdrawn for i in d.inputs)
-        } if withdrawn else set()
+        stood = (
+            {
+                sid
+                for sid, d in self.derivations.items()
+                if sid in withdrawn or any(i.reading_id in withdrawn for i in d.inputs)
+            }
+            if withdrawn
+            else set()
+        )
         changed: dict[str, Derivation] = {}
         changed_times: list[datetime] = list(touched_times)
         for d, reason, retracted in self._rederive(windows, panels, withdrawn, direct or set()):
@@ -436,9 +447,7 @@ class PatientTimeline:
                 del order[i]
         return held
 
-    def _window(
-        self, estimated: bool, lo: datetime, hi: datetime
-    ) -> list[tuple[datetime, str]]:
+    def _window(self, estimated: bool, lo: datetime, hi: datetime) -> list[tuple[datetime, str]]:
         order = self._order[estimated]
         i = bisect.bisect_left(order, (lo, ""))
         j = bisect.bisect_right(order, (hi, "\U0010ffff"))
@@ -476,20 +485,24 @@ class PatientTimeline:
         versions (derivation, reason, retracted)."""
 
         def inside(r: Reading) -> bool:
-            return (r.panel_id is not None and r.panel_id in panels) or any(
-                s <= r.effective_at <= e for s, e in windows
-            ) or r.logical_id in direct
+            return (
+                (r.panel_id is not None and r.panel_id in panels)
+                or any(s <= r.effective_at <= e for s, e in windows)
+                or r.logical_id in direct
+            )
 
         candidates: list[Reading] = []
         if windows:
             candidates = self._between(min(w[0] for w in windows), max(w[1] for w in windows))
         candidates += [
-            self._current[lid] for lid in sorted(direct)
+            self._current[lid]
+            for lid in sorted(direct)
             if lid in self._current and _usable(self._current[lid])
         ]
         for panel in panels:
             candidates += [
-                self._current[lid] for lid in self._panels.get(panel, ())
+                self._current[lid]
+                for lid in self._panels.get(panel, ())
                 if lid in self._current and _usable(self._current[lid])
             ]
         gases = {r.logical_id: r for r in candidates if r.kind is Kind.PAO2 and inside(r)}
@@ -498,8 +511,11 @@ class PatientTimeline:
         for lid in sorted(gases, key=lambda k: _by_time(gases[k])):
             sample = gases[lid]
             derivation = derive(
-                pair(sample, self._context(sample.effective_at, sample.panel_id),
-                     self.settings.pairing),
+                pair(
+                    sample,
+                    self._context(sample.effective_at, sample.panel_id),
+                    self.settings.pairing,
+                ),
                 self.settings.derivation,
             )
             if self.derivations.get(lid) != derivation:
@@ -508,8 +524,10 @@ class PatientTimeline:
         estimated: dict[str, Derivation] = {}
         for r in sorted(spo2s.values(), key=_by_time):
             for d in derive_spo2_series(
-                [r], self._context(r.effective_at, r.panel_id),
-                self.settings.derivation, self.settings.pairing,
+                [r],
+                self._context(r.effective_at, r.panel_id),
+                self.settings.derivation,
+                self.settings.pairing,
             ):
                 estimated[d.sample_id] = d
         for lid in sorted(spo2s, key=lambda k: _by_time(spo2s[k])):
@@ -540,9 +558,9 @@ class PatientTimeline:
                     alert, instant, "a result this flag stood on was withdrawn", alert.sample_id
                 )
                 self._keep(decision)
-                result.flags.append(FlagChange(
-                    decision, None, {}, instant, historical=_is_historical(alert)
-                ))
+                result.flags.append(
+                    FlagChange(decision, None, {}, instant, historical=_is_historical(alert))
+                )
 
     def _to_judge(self, changed: dict[str, Derivation], times: list[datetime]) -> list[_Judged]:
         """The newest gas and the newest estimate, when this step changed them or
@@ -610,9 +628,9 @@ class PatientTimeline:
                     open_alert, instant, "the result behind this flag changed", d.sample_id
                 )
                 self._keep(decision)
-                result.flags.append(FlagChange(
-                    decision, d, outcome.numbers, instant, _is_historical(open_alert)
-                ))
+                result.flags.append(
+                    FlagChange(decision, d, outcome.numbers, instant, _is_historical(open_alert))
+                )
                 open_alert = None
             if not outcome.fired and not (outcome.cleared and judged.own_change):
                 # a late result never resolves a newer flag: only a new sample can
@@ -649,10 +667,15 @@ class PatientTimeline:
                 changed = replace(changed, historical=True)
             decision = replace(decision, alert=changed)
             self._keep(decision)
-            result.flags.append(FlagChange(
-                decision, d, outcome.numbers, instant,
-                historical=historical or _is_historical(open_alert),
-            ))
+            result.flags.append(
+                FlagChange(
+                    decision,
+                    d,
+                    outcome.numbers,
+                    instant,
+                    historical=historical or _is_historical(open_alert),
+                )
+            )
 
     def _keep(self, decision: alerts.Decision) -> None:
         alert = decision.alert

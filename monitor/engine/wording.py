@@ -168,14 +168,14 @@ def _pf_text(n: Mapping[str, object]) -> str:
 
 
 def _pf_trend(n: Mapping[str, object]) -> str:
-    """"P/F 290 \u2192 182 mmHg (\u221237 %)", with the altitude adjustment said."""
+    """ "P/F 290 \u2192 182 mmHg (\u221237 %)", with the altitude adjustment said."""
     text = f"P/F {_num(n.get('best_pf'))} \u2192 {_num(n.get('pf'))} mmHg"
     text += f" ({signed(n.get('change_percent'))} %)"
     return f"{text},{_adjusted(n)}" if n.get("adjusted") else text
 
 
 def _aa_trend(n: Mapping[str, object]) -> str:
-    """"A\u2013a 408 \u2192 451 mmHg (+43); a/A 0.23 \u2192 0.15"."""
+    """ "A\u2013a 408 \u2192 451 mmHg (+43); a/A 0.23 \u2192 0.15"."""
     return (
         f"A\u2013a {_num(n.get('previous_aa'))} \u2192 {_num(n.get('aa_gradient'))} mmHg "
         f"({signed(n.get('aa_rise'))}); a/A {_num(n.get('previous_aa_ratio'), 2)} \u2192 "
@@ -316,9 +316,7 @@ def inputs_text(derivation: Derivation, now: datetime, tz: tzinfo = UTC) -> list
     if derivation.paco2 is not None:
         lines.append(f"PaCO2 {_num(derivation.paco2)} mmHg")
     if derivation.barometric_pressure is not None:
-        source = next(
-            (i.reason for i in derivation.inputs if "pressure" in i.role.lower()), ""
-        )
+        source = next((i.reason for i in derivation.inputs if "pressure" in i.role.lower()), "")
         tail = f" ({source})" if source else ""
         lines.append(f"barometric pressure {_num(derivation.barometric_pressure, 1)} mmHg{tail}")
     if derivation.peep is not None:
@@ -482,7 +480,4 @@ def html_body(notification: Notification) -> str:
     """A short HTML e-mail body, the advisory last and once; every text is escaped."""
     lines = [*notification.detail.splitlines(), notification.advisory]
     paragraphs = "".join(f"<p>{html.escape(line)}</p>" for line in lines if line)
-    return (
-        f"<html><body><h1>{html.escape(notification.summary)}</h1>"
-        f"{paragraphs}</body></html>"
-    )
+    return f"<html><body><h1>{html.escape(notification.summary)}</h1>{paragraphs}</body></html>"

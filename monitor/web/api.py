@@ -178,8 +178,12 @@ def api_docs(request: Request) -> HTMLResponse:
     for path, methods in sorted(schema.get("paths", {}).items()):
         for method, op in methods.items():
             params = [
-                (p.get("name", ""), p.get("in", ""), bool(p.get("required")),
-                 p.get("description", ""))
+                (
+                    p.get("name", ""),
+                    p.get("in", ""),
+                    bool(p.get("required")),
+                    p.get("description", ""),
+                )
                 for p in op.get("parameters", [])
             ]
             body = "requestBody" in op
@@ -187,7 +191,14 @@ def api_docs(request: Request) -> HTMLResponse:
     return templates.TemplateResponse(
         request,
         "api_docs.html",
-        {"title": schema.get("info", {}).get("title", "gasgap"), "operations": operations,
-         "description": schema.get("info", {}).get("description", ""), "advisory": ADVISORY,
-         "site": request.app.state.ctx.site_name, "refresh": None, "now": "", "zone": ""},
+        {
+            "title": schema.get("info", {}).get("title", "gasgap"),
+            "operations": operations,
+            "description": schema.get("info", {}).get("description", ""),
+            "advisory": ADVISORY,
+            "site": request.app.state.ctx.site_name,
+            "refresh": None,
+            "now": "",
+            "zone": "",
+        },
     )

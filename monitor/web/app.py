@@ -97,8 +97,13 @@ def create_app(
     app.include_router(quarantine_api.router)
     app.include_router(session_router)
     signed_in = [Depends(require_signed_in)]
-    app.add_api_route("/openapi.json", openapi_json, methods=["GET"], dependencies=signed_in,
-                      include_in_schema=False)
+    app.add_api_route(
+        "/openapi.json",
+        openapi_json,
+        methods=["GET"],
+        dependencies=signed_in,
+        include_in_schema=False,
+    )
     app.include_router(api.docs_router, dependencies=signed_in)
     app.add_api_route("/health", health, methods=["GET"], tags=["operations"])
     app.add_api_route("/metrics", metrics, methods=["GET"], tags=["operations"])

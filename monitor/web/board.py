@@ -160,9 +160,7 @@ def _ticks(start: datetime, end: datetime, x: Any, tz: tzinfo) -> list[tuple[flo
     return [(x(start + step * i), clock_words(start + step * i, tz)) for i in range(5)]
 
 
-def patient_plots(
-    series: list[Derivation], now: datetime, tz: tzinfo
-) -> list[Plot]:
+def patient_plots(series: list[Derivation], now: datetime, tz: tzinfo) -> list[Plot]:
     """Three panels over one time axis: the P/F the rules compare (measured P/F beside
     it when an altitude adjustment applies), FiO2 as steps, and S/F estimated from SpO2
     in its own panel with its own scale (S/F is not P/F)."""
@@ -188,34 +186,61 @@ def patient_plots(
         if adjusted:
             measured = [(d.drawn_at, d.pf_ratio) for d in gases if d.pf_ratio is not None]
             shown.append(_series("P/F as measured", "pf-measured", measured, x, y))
-        plots.append(Plot(
-            "P/F from blood gases, mmHg", width, 200, shown,
-            [(y(v), f"{v:.0f}") for v in PF_LINES], ticks,
-            [(y(v), f"{v:.0f}") for v in (0.0, 100.0, 200.0, 300.0, 400.0, 500.0)], axis,
-        ))
+        plots.append(
+            Plot(
+                "P/F from blood gases, mmHg",
+                width,
+                200,
+                shown,
+                [(y(v), f"{v:.0f}") for v in PF_LINES],
+                ticks,
+                [(y(v), f"{v:.0f}") for v in (0.0, 100.0, 200.0, 300.0, 400.0, 500.0)],
+                axis,
+            )
+        )
     fio2 = sorted((d.drawn_at, d.fio2) for d in series if d.fio2 is not None)
     if fio2:
         y = _scale(0.2, 1.0, 110, 10)
         points = fio2 + [(end, fio2[-1][1])]
-        plots.append(Plot(
-            "FiO2 in effect (fraction), drawn as steps", width, 110,
-            [_series("FiO2", "fio2", points, x, y, step=True, digits=2)], [], ticks,
-            [(y(v), f"{v:.1f}") for v in (0.2, 0.6, 1.0)], axis,
-        ))
+        plots.append(
+            Plot(
+                "FiO2 in effect (fraction), drawn as steps",
+                width,
+                110,
+                [_series("FiO2", "fio2", points, x, y, step=True, digits=2)],
+                [],
+                ticks,
+                [(y(v), f"{v:.1f}") for v in (0.2, 0.6, 1.0)],
+                axis,
+            )
+        )
     if estimates:
         y = _scale(0.0, 500.0, 140, 12)
         sf_points = [(d.drawn_at, d.sf_ratio) for d in estimates]
-        plots.append(Plot(
-            "S/F estimated from SpO2 (not a blood gas; no unit)", width, 140,
-            [_series("S/F estimate", "sf", sf_points, x, y)], [], ticks,
-            [(y(v), f"{v:.0f}") for v in (0.0, 235.0, 500.0)], axis,
-        ))
+        plots.append(
+            Plot(
+                "S/F estimated from SpO2 (not a blood gas; no unit)",
+                width,
+                140,
+                [_series("S/F estimate", "sf", sf_points, x, y)],
+                [],
+                ticks,
+                [(y(v), f"{v:.0f}") for v in (0.0, 235.0, 500.0)],
+                axis,
+            )
+        )
     return plots
 
 
 def _series(
-    name: str, css: str, points: Sequence[tuple[datetime, float | None]], x: Any, y: Any,
-    *, step: bool = False, digits: int = 0,
+    name: str,
+    css: str,
+    points: Sequence[tuple[datetime, float | None]],
+    x: Any,
+    y: Any,
+    *,
+    step: bool = False,
+    digits: int = 0,
 ) -> Series:
     xy = [(x(t), y(v), f"{v:.{digits}f}") for t, v in points if v is not None]
     if step:
@@ -419,8 +444,10 @@ def patient_page(request: Request, patient_key: str) -> Response:
         display=display,
         where=where,
         flags=views,
-        gases=[(d, clock_words(d.drawn_at, ctx.site_tz), compared_pf(d), n)
-               for d, n in zip(gases, notes, strict=True)],
+        gases=[
+            (d, clock_words(d.drawn_at, ctx.site_tz), compared_pf(d), n)
+            for d, n in zip(gases, notes, strict=True)
+        ],
         common_notes=common,
         estimates=[(d, clock_words(d.drawn_at, ctx.site_tz)) for d in estimates],
         any_adjusted=any(d.pf_ratio_adjusted is not None for d in gases),

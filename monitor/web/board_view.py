@@ -77,7 +77,7 @@ def zone_words(tz: tzinfo, now: datetime) -> str:
 
 
 def offset_words(at: datetime) -> str:
-    """"UTC" or "UTC+02:00" / "UTC\u221207:00" for an aware time."""
+    """ "UTC" or "UTC+02:00" / "UTC\u221207:00" for an aware time."""
     delta = at.utcoffset() or timedelta(0)
     if not delta:
         return "UTC"
@@ -88,7 +88,7 @@ def offset_words(at: datetime) -> str:
 
 
 def age_words(then: datetime, now: datetime) -> str:
-    """"just now", "12 min ago", "3 h 05 min ago", "2 d 4 h ago"."""
+    """ "just now", "12 min ago", "3 h 05 min ago", "2 d 4 h ago"."""
     seconds = int((now - then).total_seconds())
     if seconds < 0:
         return "in the future (clock mismatch)"
@@ -191,8 +191,14 @@ def gas_view(d: Derivation, tz: tzinfo, now: datetime) -> GasView:
     if d.unreliable:
         notes.append("numbers unreliable: " + "; ".join(sorted(f.value for f in d.flags)))
     return GasView(
-        d.pao2, d.fio2, d.fio2_source.value, pf, adjusted, d.aa_gradient,
-        Moment.of(d.drawn_at, tz, now), tuple(notes),
+        d.pao2,
+        d.fio2,
+        d.fio2_source.value,
+        pf,
+        adjusted,
+        d.aa_gradient,
+        Moment.of(d.drawn_at, tz, now),
+        tuple(notes),
     )
 
 
@@ -268,8 +274,14 @@ def flag_view(alert: Alert, tz: tzinfo, now: datetime) -> FlagView:
     if alert.preliminary:
         status += "; based on preliminary results"
     return FlagView(
-        alert, rule_words(alert.rule), word, css, shape, Moment.of(alert.raised_at, tz, now),
-        status, closed,
+        alert,
+        rule_words(alert.rule),
+        word,
+        css,
+        shape,
+        Moment.of(alert.raised_at, tz, now),
+        status,
+        closed,
     )
 
 
@@ -329,8 +341,7 @@ def build_row(
     gases = [d for d in series if _is_gas(d)]
     latest = gases[-1] if gases else None
     estimates = [
-        d for d in series
-        if d.estimated and (latest is None or d.drawn_at > latest.drawn_at)
+        d for d in series if d.estimated and (latest is None or d.drawn_at > latest.drawn_at)
     ]
     return RowView(
         patient_key=patient_key,
@@ -377,6 +388,4 @@ class UnitCount:
 def unit_count(name: str, counts: dict[Priority, int]) -> UnitCount:
     order = (Priority.HIGH, Priority.MEDIUM, Priority.LOW)
     shown = [(*PRIORITY_LOOK[p], counts.get(p, 0)) for p in order]
-    return UnitCount(
-        name, "/board/unit/" + quote(name, safe=""), shown, sum(counts.values())
-    )
+    return UnitCount(name, "/board/unit/" + quote(name, safe=""), shown, sum(counts.values()))

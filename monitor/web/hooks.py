@@ -90,8 +90,9 @@ async def fhir_hook(request: Request, source: str) -> JSONResponse:
         report = await _accept(reader, part)
         stored += report.stored
         quarantined += report.quarantined
-    return JSONResponse({"outcome": "stored", "stored": stored,
-                         "quarantined": quarantined + len(refused)})
+    return JSONResponse(
+        {"outcome": "stored", "stored": stored, "quarantined": quarantined + len(refused)}
+    )
 
 
 #: Resources read and committed per transaction: a 10,000-entry Bundle must not hold
@@ -108,16 +109,27 @@ def chunks(delivery: HookDelivery, size: int = CHUNK_RESOURCES) -> list[HookDeli
     if len(delivery.resources) <= size:
         return [delivery]
     urls = list(delivery.full_urls) + [None] * (len(delivery.resources) - len(delivery.full_urls))
-    context = [(r, u) for r, u in zip(delivery.resources, urls, strict=True)
-               if r.get("resourceType") in _CONTEXT_TYPES]
-    rest = [(r, u) for r, u in zip(delivery.resources, urls, strict=True)
-            if r.get("resourceType") not in _CONTEXT_TYPES]
+    context = [
+        (r, u)
+        for r, u in zip(delivery.resources, urls, strict=True)
+        if r.get("resourceType") in _CONTEXT_TYPES
+    ]
+    rest = [
+        (r, u)
+        for r, u in zip(delivery.resources, urls, strict=True)
+        if r.get("resourceType") not in _CONTEXT_TYPES
+    ]
     parts = []
     for start in range(0, max(len(rest), 1), size):
         part = context + rest[start : start + size]
-        parts.append(dataclasses.replace(
-            delivery, resources=tuple(r for r, _ in part), full_urls=tuple(u for _, u in part),
-            skipped=delivery.skipped if start == 0 else type(delivery.skipped)()))
+        parts.append(
+            dataclasses.replace(
+                delivery,
+                resources=tuple(r for r, _ in part),
+                full_urls=tuple(u for _, u in part),
+                skipped=delivery.skipped if start == 0 else type(delivery.skipped)(),
+            )
+        )
     return parts
 
 
@@ -133,8 +145,10 @@ def screen(delivery: HookDelivery) -> tuple[HookDelivery, list[tuple[str, str]]]
     if len(delivery.resources) == 1 and resources:
         rtype = resources[0].get("resourceType")
         if rtype not in TAKEN_RESOURCES:
-            reason = (f"{label(resources[0])}: resourceType {rtype!r} is not taken "
-                      f"(only {', '.join(TAKEN_RESOURCES)})")
+            reason = (
+                f"{label(resources[0])}: resourceType {rtype!r} is not taken "
+                f"(only {', '.join(TAKEN_RESOURCES)})"
+            )
             refused.append((orjson.dumps(resources[0]).decode(), reason))
             resources, urls = [], []
     if not refused:

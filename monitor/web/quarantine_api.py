@@ -17,8 +17,9 @@ from monitor.engine.model import ADVISORY
 from monitor.web.security import require_signed_in
 from storage.quarantine import get_quarantined, list_quarantine
 
-router = APIRouter(prefix="/api/quarantine", tags=["quarantine"],
-                   dependencies=[Depends(require_signed_in)])
+router = APIRouter(
+    prefix="/api/quarantine", tags=["quarantine"], dependencies=[Depends(require_signed_in)]
+)
 
 
 @router.get("", summary="Refused input, newest first (no payloads)")
@@ -31,8 +32,14 @@ def list_items(
 ) -> dict[str, Any]:
     ctx = request.app.state.ctx
     with ctx.db.begin(read_only=True) as conn:
-        items = list_quarantine(conn, limit, source=source, with_raw=False,
-                                unresolved_only=open_only, before_id=before_id)
+        items = list_quarantine(
+            conn,
+            limit,
+            source=source,
+            with_raw=False,
+            unresolved_only=open_only,
+            before_id=before_id,
+        )
     return {"items": [item_summary(i) for i in items], "advisory": ADVISORY}
 
 

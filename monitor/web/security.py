@@ -84,8 +84,9 @@ class WebSecurity:
     revoked: _Revoked = field(default_factory=_Revoked, repr=False, compare=False)
 
     def _code_print(self) -> str:
-        return hmac.new(self.session_key, (self.board_token or "").encode(),
-                        hashlib.sha256).hexdigest()[:16]
+        return hmac.new(
+            self.session_key, (self.board_token or "").encode(), hashlib.sha256
+        ).hexdigest()[:16]
 
     def _sign(self, body: str) -> str:
         return hmac.new(self.session_key, body.encode(), hashlib.sha256).hexdigest()
@@ -275,8 +276,9 @@ def sign_out(request: Request) -> Response:
         return Response("form sent from another site", status_code=403)
     security.sign_out(request.cookies.get(BOARD_COOKIE))
     response = RedirectResponse("/board/login", status_code=303)
-    response.delete_cookie(BOARD_COOKIE, httponly=True, samesite="strict",
-                           secure=security.secure_cookies)
+    response.delete_cookie(
+        BOARD_COOKIE, httponly=True, samesite="strict", secure=security.secure_cookies
+    )
     return response
 
 
@@ -314,8 +316,7 @@ class SecurityHeaders:
 
         async def with_headers(message: Message) -> None:
             if message["type"] == "http.response.start":
-                headers = [(k, v) for k, v in message.get("headers", [])
-                           if k.lower() not in _OURS]
+                headers = [(k, v) for k, v in message.get("headers", []) if k.lower() not in _OURS]
                 headers.extend(_ALWAYS)
                 if not cacheable:
                     headers.append(_NO_STORE)

@@ -41,8 +41,9 @@ class HeaderTimeoutH11Protocol(H11Protocol):
     def _headers_late(self) -> None:
         self._header_timer = None
         if not self.transport.is_closing():
-            self.logger.info("HTTP request headers not complete in %ss: closing",
-                             self.header_timeout)
+            self.logger.info(
+                "HTTP request headers not complete in %ss: closing", self.header_timeout
+            )
             self.transport.close()
 
     def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]

@@ -46,39 +46,83 @@ def _key(mrn: str) -> str:
     return f"{SYSTEM}|{mrn}"
 
 
-def gas(mrn: str, bed: str, at: datetime, pao2: float, fio2: float | None, *,
-        aa: float | None = None, n: int = 1) -> Derivation:
+def gas(
+    mrn: str,
+    bed: str,
+    at: datetime,
+    pao2: float,
+    fio2: float | None,
+    *,
+    aa: float | None = None,
+    n: int = 1,
+) -> Derivation:
     pf = None if fio2 is None else pao2 / fio2
     flags = frozenset({QualityFlag.FIO2_UNKNOWN}) if fio2 is None else frozenset()
     return Derivation(
-        patient_key=_key(mrn), sample_id=f"{mrn}-gas-{n}", drawn_at=at,
-        specimen=Specimen.ARTERIAL, equation="simplified", pao2=pao2, fio2=fio2,
+        patient_key=_key(mrn),
+        sample_id=f"{mrn}-gas-{n}",
+        drawn_at=at,
+        specimen=Specimen.ARTERIAL,
+        equation="simplified",
+        pao2=pao2,
+        fio2=fio2,
         fio2_source=FiO2Source.UNKNOWN if fio2 is None else FiO2Source.WITH_GAS,
-        paco2=40.0, barometric_pressure=PB, aa_gradient=aa, pf_ratio=pf,
+        paco2=40.0,
+        barometric_pressure=PB,
+        aa_gradient=aa,
+        pf_ratio=pf,
         pf_ratio_adjusted=None if pf is None else pf * 760.0 / PB,
-        location=Location(UNIT, "7", bed), flags=flags,
+        location=Location(UNIT, "7", bed),
+        flags=flags,
     )
 
 
 def estimate(mrn: str, bed: str, at: datetime, spo2: float, fio2: float, n: int) -> Derivation:
     return Derivation(
-        patient_key=_key(mrn), sample_id=f"{mrn}-spo2-{n}", drawn_at=at,
-        specimen=Specimen.UNKNOWN, equation="none", pao2=None, fio2=fio2,
-        fio2_source=FiO2Source.CHARTED, spo2=spo2, sf_ratio=spo2 / fio2,
-        location=Location(UNIT, "7", bed), estimated=True,
+        patient_key=_key(mrn),
+        sample_id=f"{mrn}-spo2-{n}",
+        drawn_at=at,
+        specimen=Specimen.UNKNOWN,
+        equation="none",
+        pao2=None,
+        fio2=fio2,
+        fio2_source=FiO2Source.CHARTED,
+        spo2=spo2,
+        sf_ratio=spo2 / fio2,
+        location=Location(UNIT, "7", bed),
+        estimated=True,
         flags=frozenset({QualityFlag.ESTIMATED_FROM_SPO2}),
     )
 
 
-def flag(mrn: str, bed: str, rule: str, priority: Priority, raised: datetime, summary: str,
-         *, state: AlertState = AlertState.RAISED, by: str | None = None,
-         closed: datetime | None = None, estimated: bool = False) -> Alert:
+def flag(
+    mrn: str,
+    bed: str,
+    rule: str,
+    priority: Priority,
+    raised: datetime,
+    summary: str,
+    *,
+    state: AlertState = AlertState.RAISED,
+    by: str | None = None,
+    closed: datetime | None = None,
+    estimated: bool = False,
+) -> Alert:
     return Alert(
-        alert_id=f"{mrn}-{rule}-{int(raised.timestamp())}", patient_key=_key(mrn), rule=rule,
-        priority=priority, state=state, raised_at=raised, updated_at=closed or raised,
-        sample_id=f"{mrn}-gas-2", summary=summary, location=Location(UNIT, "7", bed),
-        acknowledged_by=by, acknowledged_at=raised + timedelta(minutes=5) if by else None,
-        closed_at=closed, estimated=estimated,
+        alert_id=f"{mrn}-{rule}-{int(raised.timestamp())}",
+        patient_key=_key(mrn),
+        rule=rule,
+        priority=priority,
+        state=state,
+        raised_at=raised,
+        updated_at=closed or raised,
+        sample_id=f"{mrn}-gas-2",
+        summary=summary,
+        location=Location(UNIT, "7", bed),
+        acknowledged_by=by,
+        acknowledged_at=raised + timedelta(minutes=5) if by else None,
+        closed_at=closed,
+        estimated=estimated,
     )
 
 
@@ -108,34 +152,74 @@ def seed_unit(db: Database, now: datetime) -> Seeded:
         gas("HM710006", "6", now - 40 * m, 130, 0.55, aa=200, n=2),
     ]
     alerts = [
-        flag("HM710001", "1", "oxygenation-band", Priority.HIGH, now - 18 * m,
-             "P/F <= 100: P/F 90"),
+        flag(
+            "HM710001", "1", "oxygenation-band", Priority.HIGH, now - 18 * m, "P/F <= 100: P/F 90"
+        ),
         flag("HM710001", "1", "pf-fall", Priority.MEDIUM, now - 18 * m, "P/F fall: -37 %"),
-        flag("HM710002", "2", "pf-fall", Priority.MEDIUM, now - 48 * m, "P/F fall: -35 %",
-             state=AlertState.ACKNOWLEDGED, by="Ines Calloway"),
-        flag("HM710003", "3", "sf-low", Priority.LOW, now - 24 * m,
-             "S/F <= 235 (estimated from SpO2): S/F 176 (estimated)", estimated=True),
+        flag(
+            "HM710002",
+            "2",
+            "pf-fall",
+            Priority.MEDIUM,
+            now - 48 * m,
+            "P/F fall: -35 %",
+            state=AlertState.ACKNOWLEDGED,
+            by="Ines Calloway",
+        ),
+        flag(
+            "HM710003",
+            "3",
+            "sf-low",
+            Priority.LOW,
+            now - 24 * m,
+            "S/F <= 235 (estimated from SpO2): S/F 176 (estimated)",
+            estimated=True,
+        ),
         flag("HM710005", "5", "aa-rise", Priority.MEDIUM, now - 2 * m, "A-a rise: +30 mmHg"),
-        flag("HM710006", "6", "oxygen-escalation", Priority.MEDIUM, now - 38 * m,
-             "FiO2 up: +0.25"),
-        flag("HM710006", "6", "oxygenation-band", Priority.LOW, now - 7 * h,
-             "P/F <= 300: P/F 283", state=AlertState.RESOLVED, closed=now - 3 * h),
+        flag("HM710006", "6", "oxygen-escalation", Priority.MEDIUM, now - 38 * m, "FiO2 up: +0.25"),
+        flag(
+            "HM710006",
+            "6",
+            "oxygenation-band",
+            Priority.LOW,
+            now - 7 * h,
+            "P/F <= 300: P/F 283",
+            state=AlertState.RESOLVED,
+            closed=now - 3 * h,
+        ),
     ]
     with db.begin() as conn:
         for bed in range(1, 7):
             mrn = f"HM71000{bed}"
-            upsert_patient(conn, _key(mrn), birth_date=None,
-                           location=Location(UNIT, "7", str(bed)), display_key=mrn,
-                           at=now - 6 * 24 * h)
+            upsert_patient(
+                conn,
+                _key(mrn),
+                birth_date=None,
+                location=Location(UNIT, "7", str(bed)),
+                display_key=mrn,
+                at=now - 6 * 24 * h,
+            )
             seeded.keys.append(_key(mrn))
         for d in derivations:
             save_derivation(conn, d, at=now, reason="seeded for the board tests")
         for a in alerts:
             save_alert(conn, a)
-        append_alert_events(conn, [
-            AlertEvent(a.alert_id, a.patient_key, a.rule, "raised", a.raised_at, a.priority,
-                       a.state, a.sample_id) for a in alerts
-        ])
+        append_alert_events(
+            conn,
+            [
+                AlertEvent(
+                    a.alert_id,
+                    a.patient_key,
+                    a.rule,
+                    "raised",
+                    a.raised_at,
+                    a.priority,
+                    a.state,
+                    a.sample_id,
+                )
+                for a in alerts
+            ],
+        )
     seeded.estimate_sf = ["176"]  # 88 / 0.50, the newest estimate of HM710003
     seeded.open_flags = sum(1 for a in alerts if a.state.is_open)
     return seeded

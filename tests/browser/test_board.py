@@ -38,8 +38,14 @@ pytestmark = pytest.mark.browser
 
 CHROMIUM = Path("/usr/bin/chromium")
 CHROMIUM_ARGS = [
-    "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-    "--disable-background-networking", "--disable-component-update", "--disable-sync",
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
 ]
 AUTH = {"Authorization": f"Bearer {API_TOKEN}"}
 #: A patient identifier that is markup: it must be shown as these characters, and run nothing.
@@ -55,15 +61,19 @@ def board(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Running]:
     with webhook_receiver() as (url, _received):
         http_port, mllp_port = free_port(), free_port()
         config = tmp / "site.toml"
-        config.write_text(site_toml(db_url=f"sqlite:///{tmp}/gasgap.db", http_port=http_port,
-                                    mllp_port=mllp_port, webhook_url=url))
+        config.write_text(
+            site_toml(
+                db_url=f"sqlite:///{tmp}/gasgap.db",
+                http_port=http_port,
+                mllp_port=mllp_port,
+                webhook_url=url,
+            )
+        )
         with running_service(config, http_port, tmp / "service.log") as running:
             gases = [
                 hollowmere_gas("HGH7001", "HM700101", "F-7001", bed="3", minutes_ago=240),
-                hollowmere_gas("HGH7002", "HM700101", "F-7002", bed="3", pao2="58",
-                               minutes_ago=20),
-                hollowmere_gas("HGH7003", HOSTILE, "F-7003", bed="5", pao2="48",
-                               minutes_ago=35),
+                hollowmere_gas("HGH7002", "HM700101", "F-7002", bed="3", pao2="58", minutes_ago=20),
+                hollowmere_gas("HGH7003", HOSTILE, "F-7003", bed="5", pao2="48", minutes_ago=35),
             ]
             for gas in gases:
                 assert ack_code(send_mllp(mllp_port, gas)) == "AA"
@@ -80,8 +90,9 @@ def test_board_shows_flags_acknowledges_and_escapes(board: Running) -> None:
     from playwright.sync_api import sync_playwright
 
     with sync_playwright() as p:
-        browser = p.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS,
-                                    headless=True)
+        browser = p.chromium.launch(
+            executable_path=str(CHROMIUM), args=CHROMIUM_ARGS, headless=True
+        )
         try:
             page = browser.new_page(viewport={"width": 1280, "height": 900})
             # Without the board code the page asks for it.

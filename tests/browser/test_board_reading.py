@@ -39,8 +39,14 @@ pytestmark = pytest.mark.browser
 
 CHROMIUM = Path("/usr/bin/chromium")
 CHROMIUM_ARGS = [
-    "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-    "--disable-background-networking", "--disable-component-update", "--disable-sync",
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
 ]
 AXE = Path(__file__).resolve().parent / "node_modules" / "axe-core" / "axe.min.js"
 ARTIFACTS = REPO / "test-artifacts"
@@ -75,17 +81,24 @@ def board(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Board]:
     tmp = tmp_path_factory.mktemp("reading")
     mp = pytest.MonkeyPatch()
     mp.setenv("GASGAP_T_BOARD_CODE", BOARD_CODE)
-    config = validate_config({
-        "site": {"name": "Hollowmere General Hospital", "elevation_m": 1600,
-                 "timezone": "America/Denver", "display_key": "mrn"},
-        "database": {"url": f"sqlite:///{tmp}/gasgap.db"},
-        "http": {"board_token_env": "GASGAP_T_BOARD_CODE"},
-    })
+    config = validate_config(
+        {
+            "site": {
+                "name": "Hollowmere General Hospital",
+                "elevation_m": 1600,
+                "timezone": "America/Denver",
+                "display_key": "mrn",
+            },
+            "database": {"url": f"sqlite:///{tmp}/gasgap.db"},
+            "http": {"board_token_env": "GASGAP_T_BOARD_CODE"},
+        }
+    )
     service = build_service(config, channels={"log": _Silent()})
     seeded = seed_unit(service.db, datetime.now(UTC))
     port = free_port()
-    server = uvicorn.Server(uvicorn.Config(service.app, host="127.0.0.1", port=port,
-                                           log_level="warning"))
+    server = uvicorn.Server(
+        uvicorn.Config(service.app, host="127.0.0.1", port=port, log_level="warning")
+    )
     thread = threading.Thread(target=server.run, daemon=True)
     thread.start()
     deadline = time.monotonic() + 20
@@ -106,8 +119,9 @@ def browser(board: Board) -> Iterator[Any]:
     from playwright.sync_api import sync_playwright
 
     with sync_playwright() as p:
-        launched = p.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS,
-                                     headless=True)
+        launched = p.chromium.launch(
+            executable_path=str(CHROMIUM), args=CHROMIUM_ARGS, headless=True
+        )
         try:
             yield launched
         finally:
@@ -133,8 +147,7 @@ def _patient_url(board: Board, key: str) -> str:
     return board.base + "/board/patient/" + quote(key, safe="")
 
 
-def test_every_open_flag_of_six_patients_is_on_the_first_screen(browser: Any,
-                                                                 board: Board) -> None:
+def test_every_open_flag_of_six_patients_is_on_the_first_screen(browser: Any, board: Board) -> None:
     page = _page(browser, board)
     _shot(page, "board-1366x768.png")
     assert page.locator("table.board tbody tr").count() == 6
@@ -154,8 +167,9 @@ def test_every_open_flag_of_six_patients_is_on_the_first_screen(browser: Any,
     page.close()
 
 
-def test_rows_in_priority_order_with_words_and_closed_flags_folded(browser: Any,
-                                                                  board: Board) -> None:
+def test_rows_in_priority_order_with_words_and_closed_flags_folded(
+    browser: Any, board: Board
+) -> None:
     page = _page(browser, board)
     words = page.locator("td.prio-cell").all_inner_texts()
     order = ["High priority", "Medium priority", "Low priority", "No open flag"]
@@ -178,8 +192,9 @@ def test_rows_in_priority_order_with_words_and_closed_flags_folded(browser: Any,
     page.close()
 
 
-def test_an_estimate_is_never_in_a_measured_cell_and_is_labelled(browser: Any,
-                                                                board: Board) -> None:
+def test_an_estimate_is_never_in_a_measured_cell_and_is_labelled(
+    browser: Any, board: Board
+) -> None:
     page = _page(browser, board)
     measured = page.locator("[data-kind=measured]").all_inner_texts()
     assert measured, "the board marks its measured cells"
@@ -206,20 +221,22 @@ def test_an_estimate_is_never_in_a_measured_cell_and_is_labelled(browser: Any,
 
 def test_unknown_unit_and_patient_answer_404(browser: Any, board: Board) -> None:
     page = _page(browser, board)
-    for path, words in (("/board/unit/Nowhere", "unknown unit"),
-                        ("/board/unit/icu-north", "unknown unit"),
-                        ("/board/patient/nobody-here", "unknown patient")):
+    for path, words in (
+        ("/board/unit/Nowhere", "unknown unit"),
+        ("/board/unit/icu-north", "unknown unit"),
+        ("/board/patient/nobody-here", "unknown patient"),
+    ):
         response = page.goto(board.base + path)
         assert response is not None and response.status == 404, path
         text = page.inner_text("main").lower()
         assert words in text and "no open flags" not in text
-    assert "Did you mean ICU-North?" in page.goto(
-        board.base + "/board/unit/icu-north").text()
+    assert "Did you mean ICU-North?" in page.goto(board.base + "/board/unit/icu-north").text()
     page.close()
 
 
-def test_acknowledge_once_per_patient_and_the_name_is_remembered(browser: Any,
-                                                                 board: Board) -> None:
+def test_acknowledge_once_per_patient_and_the_name_is_remembered(
+    browser: Any, board: Board
+) -> None:
     page = _page(browser, board)
     row = page.locator("tr", has_text="HM710001")
     row.locator("input[name=by]").fill("Mara Quenby")
@@ -241,16 +258,24 @@ def test_acknowledge_once_per_patient_and_the_name_is_remembered(browser: Any,
 
 def test_axe_finds_no_serious_or_critical_violation(browser: Any, board: Board) -> None:
     if not AXE.exists():
-        service_missing("axe-core", f"{AXE} missing (make tests/browser/node_modules/axe-core/axe.min.js)")
+        service_missing(
+            "axe-core", f"{AXE} missing (make tests/browser/node_modules/axe-core/axe.min.js)"
+        )
     page = _page(browser, board, bypass_csp=True)
     found: dict[str, list[str]] = {}
-    for path in ("/board", f"/board/unit/{UNIT}",
-                 "/board/patient/" + quote(board.seeded.keys[0], safe="")):
+    for path in (
+        "/board",
+        f"/board/unit/{UNIT}",
+        "/board/patient/" + quote(board.seeded.keys[0], safe=""),
+    ):
         page.goto(board.base + path)
         page.add_script_tag(path=str(AXE))
         result = page.evaluate("() => axe.run(document, {resultTypes: ['violations']})")
-        bad = [f"{v['id']}: {v['help']} ({len(v['nodes'])} nodes)"
-               for v in result["violations"] if v["impact"] in ("serious", "critical")]
+        bad = [
+            f"{v['id']}: {v['help']} ({len(v['nodes'])} nodes)"
+            for v in result["violations"]
+            if v["impact"] in ("serious", "critical")
+        ]
         if bad:
             found[path] = bad
     page.goto(board.base + "/board")

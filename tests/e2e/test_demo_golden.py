@@ -44,22 +44,36 @@ def demo() -> Iterator[ReplayResult]:
     result.close()
 
 
-def events(result: ReplayResult, patient: str, rule: str | None = None,
-           event: str | None = None) -> list[ReplayEvent]:
-    return [e for e in result.events if e.patient == patient
-            and (rule is None or e.rule == rule) and (event is None or e.event == event)]
+def events(
+    result: ReplayResult, patient: str, rule: str | None = None, event: str | None = None
+) -> list[ReplayEvent]:
+    return [
+        e
+        for e in result.events
+        if e.patient == patient
+        and (rule is None or e.rule == rule)
+        and (event is None or e.event == event)
+    ]
 
 
-def first(result: ReplayResult, patient: str, rule: str, event: str,
-          priority: str | None = None) -> ReplayEvent:
-    found = [e for e in events(result, patient, rule, event)
-             if priority is None or e.priority == priority]
+def first(
+    result: ReplayResult, patient: str, rule: str, event: str, priority: str | None = None
+) -> ReplayEvent:
+    found = [
+        e
+        for e in events(result, patient, rule, event)
+        if priority is None or e.priority == priority
+    ]
     assert found, f"{patient}: expected a {event} {rule} flag ({priority or 'any'} priority)"
     return found[0]
 
 
-def assert_drawn(e: ReplayEvent, drawn: datetime, *, delivered_within: timedelta = timedelta(hours=2)) -> None:
-    assert e.sample_time == drawn, f"{e.patient} {e.rule} {e.event}: sample {e.sample_time}, scenario {drawn}"
+def assert_drawn(
+    e: ReplayEvent, drawn: datetime, *, delivered_within: timedelta = timedelta(hours=2)
+) -> None:
+    assert e.sample_time == drawn, (
+        f"{e.patient} {e.rule} {e.event}: sample {e.sample_time}, scenario {drawn}"
+    )
     assert drawn <= e.at <= drawn + delivered_within
 
 
@@ -86,7 +100,9 @@ def test_venous_gas_is_stored_but_marked_and_never_flags(demo: ReplayResult) -> 
     venous = [s.derivation for s in stored if s.derivation.drawn_at == local(3, 10)]
     assert venous, "the 3 Mar 10:00 venous gas should be stored (SCENARIO: HGH-1008)"
     assert QualityFlag.NOT_ARTERIAL in venous[0].flags
-    assert not [e for e in events(demo, "HGH-1008") if e.rule in ("aa-room-air", "oxygenation-band")]
+    assert not [
+        e for e in events(demo, "HGH-1008") if e.rule in ("aa-room-air", "oxygenation-band")
+    ]
 
 
 def test_altitude_keeps_a_normal_gas_normal(demo: ReplayResult) -> None:
@@ -139,7 +155,7 @@ def test_withdrawn_result_retracts_its_flags_and_tells_the_nurse(demo: ReplayRes
     assert all(n.advisory == ADVISORY for n in sent)
 
 
-# --- the ICU ---------------------------------------------------------------------------------------
+# --- the ICU ----------------------------------------------------------------------------------
 
 
 def test_high_flow_patient_band_fall_and_escalation(demo: ReplayResult) -> None:
@@ -158,7 +174,9 @@ def test_high_flow_patient_band_fall_and_escalation(demo: ReplayResult) -> None:
 def test_ventilated_patient_reaches_high_band_on_day_two_morning(demo: ReplayResult) -> None:
     band = events(demo, "HGH-1007", "oxygenation-band")
     assert_drawn(first(demo, "HGH-1007", "oxygenation-band", "raised", "low"), local(2, 7))
-    assert_drawn(first(demo, "HGH-1007", "oxygenation-band", "worsened", "medium"), local(2, 18, 30))
+    assert_drawn(
+        first(demo, "HGH-1007", "oxygenation-band", "worsened", "medium"), local(2, 18, 30)
+    )
     assert_drawn(first(demo, "HGH-1007", "oxygenation-band", "worsened", "high"), local(3, 6))
     assert_drawn(first(demo, "HGH-1007", "oxygenation-band", "lowered", "medium"), local(3, 18))
     # the altitude case: the 18:30 gas (unadjusted P/F 95) must not reach high
@@ -206,8 +224,11 @@ def test_late_gas_does_not_raise_a_medium_band(demo: ReplayResult) -> None:
     assert {e.priority for e in events(demo, "HGH-1011", "oxygenation-band")} == {"low"}
     with demo.db.begin(read_only=True) as conn:
         sent = [i.notification for i in outbox_store.outbox_items(conn)]
-    assert any("Berlin mild" in n.summary for n in sent
-               if n.patient_key == "HGH-1011" and n.rule == "oxygenation-band")
+    assert any(
+        "Berlin mild" in n.summary
+        for n in sent
+        if n.patient_key == "HGH-1011" and n.rule == "oxygenation-band"
+    )
 
 
 def test_fhir_posted_gas_and_its_corrected_paco2(demo: ReplayResult) -> None:
@@ -222,14 +243,17 @@ def test_fhir_posted_gas_and_its_corrected_paco2(demo: ReplayResult) -> None:
     assert gas.pf_ratio_adjusted == pytest.approx(255, abs=3)
 
 
-# --- make demo -------------------------------------------------------------------------------------
+# --- make demo --------------------------------------------------------------------------------
 
 
 def test_make_demo_prints_the_table_and_the_report(tmp_path: Path) -> None:
     out = tmp_path / "demo-out"
     run = subprocess.run(
-        [sys.executable, "-m", "monitor.demo", "--out", str(out)], cwd=ROOT,
-        capture_output=True, text=True, timeout=240,
+        [sys.executable, "-m", "monitor.demo", "--out", str(out)],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=240,
     )
     assert run.returncode == 0, run.stderr
     text = run.stdout

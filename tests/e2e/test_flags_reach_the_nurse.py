@@ -74,8 +74,9 @@ def smtp() -> tuple[int, list[Message]]:
 
 
 def gasgap(*args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "monitor.cli", *args], capture_output=True,
-                          text=True, timeout=600)
+    return subprocess.run(
+        [sys.executable, "-m", "monitor.cli", *args], capture_output=True, text=True, timeout=600
+    )
 
 
 def site_config(tmp_path: Path, hook_url: str, smtp_port: int) -> Path:
@@ -120,8 +121,13 @@ def test_worsening_patients_flags_reach_webhook_and_mail_and_can_be_acknowledged
     hook_url, receiver = webhook
     smtp_port, mails = smtp
     config = site_config(tmp_path, hook_url, smtp_port)
-    done = gasgap("ingest", *(str(p) for p in sorted(DEMO.glob("feed-*"))), "--config",
-                  str(config), "--no-progress")
+    done = gasgap(
+        "ingest",
+        *(str(p) for p in sorted(DEMO.glob("feed-*"))),
+        "--config",
+        str(config),
+        "--no-progress",
+    )
     assert done.returncode == 0, done.stderr
 
     sent = gasgap("outbox", "send", "--config", str(config), "--json")
@@ -132,8 +138,11 @@ def test_worsening_patients_flags_reach_webhook_and_mail_and_can_be_acknowledged
     # Every notification reached both peers, once each.
     assert len(receiver.keys) == len(set(receiver.keys)) == len(mails)
     assert round_["sent"] == len(receiver.keys) + len(mails)
-    severe = [b for b in receiver.bodies if b["flag"]["priority"] == "high"
-              and b["flag"]["rule"] == "oxygenation-band"]
+    severe = [
+        b
+        for b in receiver.bodies
+        if b["flag"]["priority"] == "high" and b["flag"]["rule"] == "oxygenation-band"
+    ]
     assert all(b["advisory"] and b["idempotency_key"] for b in receiver.bodies)
     assert severe, "SCENARIO.md: HGH-1007 reaches the high band"
     assert all("clinicians decide" in json.dumps(b) for b in receiver.bodies)
@@ -147,11 +156,13 @@ def test_worsening_patients_flags_reach_webhook_and_mail_and_can_be_acknowledged
     items = json.loads(listed.stdout)["flags"]
     # HGH-1007's band flag reached high and was lowered to medium on 3 Mar 18:00, as
     # its state improved (SCENARIO.md): it is still open
-    target = next(f for f in items if f["rule"] == "oxygenation-band"
-                  and f["priority"] in ("high", "medium"))
+    target = next(
+        f for f in items if f["rule"] == "oxygenation-band" and f["priority"] in ("high", "medium")
+    )
 
-    acked = gasgap("alerts", "ack", target["id"], "--by", "Charge Nurse Okafor",
-                   "--config", str(config))
+    acked = gasgap(
+        "alerts", "ack", target["id"], "--by", "Charge Nurse Okafor", "--config", str(config)
+    )
     assert acked.returncode == 0, acked.stderr
     items = json.loads(gasgap("alerts", "--config", str(config), "--json").stdout)["flags"]
     now = next(f for f in items if f["id"] == target["id"])
@@ -165,6 +176,7 @@ def test_worsening_patients_flags_reach_webhook_and_mail_and_can_be_acknowledged
 def _fresh_gas(path: Path, drawn: datetime) -> Path:
     """An invented arterial gas drawn ``drawn`` (UTC), sent five minutes later: PaO2 50
     on FiO2 0.80, P/F 62 (Berlin severe band, <= 100; JAMA 2012)."""
+
     def t(x: datetime) -> str:
         return x.strftime("%Y%m%d%H%M%S") + "+0000"
 
@@ -194,8 +206,14 @@ def test_history_pages_nobody_and_live_flags_after_it_do(
     config = site_config(tmp_path, hook_url, smtp_port)
     text = config.read_text().replace("historical_after_hours = 0", "historical_after_hours = 6")
     config.write_text(text)
-    done = gasgap("ingest", *(str(p) for p in sorted(DEMO.glob("feed-*"))), "--config",
-                  str(config), "--no-progress", "--json")
+    done = gasgap(
+        "ingest",
+        *(str(p) for p in sorted(DEMO.glob("feed-*"))),
+        "--config",
+        str(config),
+        "--no-progress",
+        "--json",
+    )
     assert done.returncode == 0, done.stderr
     summary = json.loads(done.stdout)
     assert summary["flag_events"] > 0

@@ -29,7 +29,13 @@ ROOT = Path(__file__).resolve().parents[2]
 EXAMPLE = ROOT / "fixtures" / "site-example.toml"
 PATHS = [FEED_DIR / f for f in FEEDS]
 EVENTS = {
-    "raised", "worsened", "lowered", "acknowledged", "resolved", "escalated", "retracted",
+    "raised",
+    "worsened",
+    "lowered",
+    "acknowledged",
+    "resolved",
+    "escalated",
+    "retracted",
 }
 
 
@@ -62,16 +68,21 @@ def test_ingest_one_unit_per_transaction_gives_the_same_flags(
     db = open_database(f"sqlite:///{tmp_path / 'ingest.db'}")
     try:
         report = ingest_files(
-            PATHS, Pipeline(db, config.to_pipeline_settings()), context_for(config),
-            now=lambda: datetime.now(UTC), batch_size=1,
+            PATHS,
+            Pipeline(db, config.to_pipeline_settings()),
+            context_for(config),
+            now=lambda: datetime.now(UTC),
+            batch_size=1,
         )
     finally:
         db.dispose()
-    ingested = {(e.patient_key, e.rule, e.event, e.priority.value)
-                for e in report.alert_events}
+    ingested = {(e.patient_key, e.rule, e.event, e.priority.value) for e in report.alert_events}
     # ingest runs no escalation check (no clock passes between files): leave those out
-    replayed = {(e.patient, e.rule, e.event, e.priority) for e in example_replay.events
-                if e.event != "escalated"}
+    replayed = {
+        (e.patient, e.rule, e.event, e.priority)
+        for e in example_replay.events
+        if e.event != "escalated"
+    }
     assert ingested and ingested == replayed
 
 
@@ -85,15 +96,19 @@ def test_ingest_default_batches_give_the_same_flags(
     db = open_database(f"sqlite:///{tmp_path / 'ingest.db'}")
     try:
         report = ingest_files(
-            PATHS, Pipeline(db, config.to_pipeline_settings()), context_for(config),
+            PATHS,
+            Pipeline(db, config.to_pipeline_settings()),
+            context_for(config),
             now=lambda: datetime.now(UTC),
         )
     finally:
         db.dispose()
-    ingested = {(e.patient_key, e.rule, e.event, e.priority.value)
-                for e in report.alert_events}
-    replayed = {(e.patient, e.rule, e.event, e.priority) for e in example_replay.events
-                if e.event != "escalated"}
+    ingested = {(e.patient_key, e.rule, e.event, e.priority.value) for e in report.alert_events}
+    replayed = {
+        (e.patient, e.rule, e.event, e.priority)
+        for e in example_replay.events
+        if e.event != "escalated"
+    }
     assert ingested == replayed
 
 
@@ -155,8 +170,13 @@ def test_speed_paces_by_record_time(tmp_path: Path) -> None:
     small.write_bytes(b"\n\n".join(messages) + b"\n\n")
     config = load_config(EXAMPLE)
     slept: list[float] = []
-    result = replay([small], config.to_pipeline_settings(), context_for(config), speed=3600.0,
-                    sleep=slept.append)
+    result = replay(
+        [small],
+        config.to_pipeline_settings(),
+        context_for(config),
+        speed=3600.0,
+        sleep=slept.append,
+    )
     try:
         span = (result.counts.last_record - result.counts.first_record).total_seconds()  # type: ignore[operator]
         assert result.counts.units == 3 and span > 0
@@ -170,7 +190,9 @@ def test_speed_paces_by_record_time(tmp_path: Path) -> None:
         result.close()
 
 
-def test_bad_speed_and_missing_file_are_named(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_bad_speed_and_missing_file_are_named(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     with pytest.raises(SystemExit) as exit_info:
         gasgap(["replay", str(PATHS[0]), "--speed", "fast"])
     assert exit_info.value.code == 2
@@ -190,8 +212,10 @@ def test_unit_count_for_progress_matches_the_feed_description() -> None:
 
 def test_kept_database(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     url = f"sqlite:///{tmp_path / 'kept.db'}"
-    assert gasgap(["replay", str(FEED_DIR / "feed-late.hl7"), "--config", str(EXAMPLE),
-                   "--db", url]) == 0
+    assert (
+        gasgap(["replay", str(FEED_DIR / "feed-late.hl7"), "--config", str(EXAMPLE), "--db", url])
+        == 0
+    )
     out = capsys.readouterr().out
     assert ADVISORY in out
     assert (tmp_path / "kept.db").stat().st_size > 0
@@ -214,15 +238,28 @@ def test_same_flags_on_both_databases(db_url: str) -> None:
 def test_deliver_sends_what_was_captured(capsys: pytest.CaptureFixture[str]) -> None:
     # site-strict.toml routes everything to its log channel only: nothing leaves the host.
     strict = ROOT / "fixtures" / "site-strict.toml"
-    assert gasgap(["replay", str(FEED_DIR / "feed-lab.hl7"), "--config", str(strict),
-                   "--deliver", "--json"]) == 0
+    assert (
+        gasgap(
+            [
+                "replay",
+                str(FEED_DIR / "feed-lab.hl7"),
+                "--config",
+                str(strict),
+                "--deliver",
+                "--json",
+            ]
+        )
+        == 0
+    )
     data = json.loads(capsys.readouterr().out)
     captured = data["counts"]["notifications_captured"]
     assert captured > 0
     assert data["delivered"] == captured
 
 
-def test_a_database_that_holds_data_is_refused(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_a_database_that_holds_data_is_refused(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     url = f"sqlite:///{tmp_path / 'used.db'}"
     late = str(FEED_DIR / "feed-late.hl7")
     assert gasgap(["replay", late, "--db", url]) == 0

@@ -22,7 +22,12 @@ from storage.readings import count_readings
 MRN_SYSTEM = "urn:oid:2.999.1.1.1"
 
 
-def hl7(control: str, obx: list[str], *, pid: str = "PID|1||HGH-2001^^^HGH&2.999.1.1.1&ISO^MR||Corpus^Good||19700101|F") -> str:
+def hl7(
+    control: str,
+    obx: list[str],
+    *,
+    pid: str = "PID|1||HGH-2001^^^HGH&2.999.1.1.1&ISO^MR||Corpus^Good||19700101|F",
+) -> str:
     head = [
         f"MSH|^~\\&|LAB|HGH|GASGAP|HGH|20260302080000+0000||ORU^R01^ORU_R01|{control}|P|2.5.1",
         pid,
@@ -40,8 +45,10 @@ GOOD_OBX = [
 
 def observation(oid: str, code: str, value: dict | None, **extra: object) -> dict:
     resource: dict = {
-        "resourceType": "Observation", "id": oid, "meta": {"versionId": "1",
-        "lastUpdated": "2026-03-02T08:10:00+00:00"}, "status": "final",
+        "resourceType": "Observation",
+        "id": oid,
+        "meta": {"versionId": "1", "lastUpdated": "2026-03-02T08:10:00+00:00"},
+        "status": "final",
         "code": {"coding": [{"system": "http://loinc.org", "code": code}]},
         "subject": {"reference": "Patient/p1"},
         "effectiveDateTime": "2026-03-02T08:00:00+00:00",
@@ -52,9 +59,13 @@ def observation(oid: str, code: str, value: dict | None, **extra: object) -> dic
     return resource
 
 
-PATIENT = {"resourceType": "Patient", "id": "p1", "meta": {"versionId": "1",
-           "lastUpdated": "2026-03-02T07:00:00+00:00"},
-           "identifier": [{"system": MRN_SYSTEM, "value": "HGH-2001"}], "birthDate": "1970-01-01"}
+PATIENT = {
+    "resourceType": "Patient",
+    "id": "p1",
+    "meta": {"versionId": "1", "lastUpdated": "2026-03-02T07:00:00+00:00"},
+    "identifier": [{"system": MRN_SYSTEM, "value": "HGH-2001"}],
+    "birthDate": "1970-01-01",
+}
 MMHG = {"system": "http://unitsofmeasure.org", "code": "mm[Hg]", "unit": "mmHg"}
 
 
@@ -63,26 +74,52 @@ def corpus(tmp_path_factory: pytest.TempPathFactory) -> Path:
     root = tmp_path_factory.mktemp("corpus")
     lines = [
         json.dumps(PATIENT),
-        json.dumps(observation("good-fio2", "3150-0", {"value": 40, "unit": "%",
-                   "system": "http://unitsofmeasure.org", "code": "%"})),
+        json.dumps(
+            observation(
+                "good-fio2",
+                "3150-0",
+                {"value": 40, "unit": "%", "system": "http://unitsofmeasure.org", "code": "%"},
+            )
+        ),
         '{"resourceType": "Observation", "id": "trunc", "status": "fin',  # truncated JSON
         json.dumps({"resourceType": "Medication", "id": "m1"}),  # not an Observation
         json.dumps(observation("no-value", "2703-7", None)),  # a missing value
         json.dumps(observation("too-high", "2703-7", {"value": 4000, **MMHG})),  # PaO2 4000
-        json.dumps(observation("odd-unit", "2703-7", {"value": 9, "unit": "furlongs",
-                   "code": "furlongs", "system": "http://unitsofmeasure.org"})),
-        json.dumps(observation("good-spo2", "59408-5", {"value": 93, "unit": "%",
-                   "system": "http://unitsofmeasure.org", "code": "%"})),
+        json.dumps(
+            observation(
+                "odd-unit",
+                "2703-7",
+                {
+                    "value": 9,
+                    "unit": "furlongs",
+                    "code": "furlongs",
+                    "system": "http://unitsofmeasure.org",
+                },
+            )
+        ),
+        json.dumps(
+            observation(
+                "good-spo2",
+                "59408-5",
+                {"value": 93, "unit": "%", "system": "http://unitsofmeasure.org", "code": "%"},
+            )
+        ),
     ]
     (root / "ehr.ndjson").write_text("\n".join(lines) + "\n")
     messages = [
         hl7("C1", GOOD_OBX),
         hl7("C2", ["OBX|1|NM|2703-7^PaO2^LN||abc|mm[Hg]|||||F"]),  # value not a number
         "MSH|^~\\&|LAB|HGH\rPID|broken segment with no structure\r",  # broken header
-        hl7("C4", ["OBX|1|NM|2703-7^PaO2^LN||70|mm[Hg]|||||F|||20260302075500+0000"],
-            pid="PID|1||HGH-2002^^^HGH&2.999.1.1.1&ISO^MR||Caf\xe9^Wrong||19700101|F"),
-        hl7("C5", ["OBX|1|NM|2703-7^PaO2^LN||71|mm[Hg]|||||F|||20260302075500+0000"]
-            + ["NTE|1||" + "x" * 1000] * 52_000),  # about 52 MB
+        hl7(
+            "C4",
+            ["OBX|1|NM|2703-7^PaO2^LN||70|mm[Hg]|||||F|||20260302075500+0000"],
+            pid="PID|1||HGH-2002^^^HGH&2.999.1.1.1&ISO^MR||Caf\xe9^Wrong||19700101|F",
+        ),
+        hl7(
+            "C5",
+            ["OBX|1|NM|2703-7^PaO2^LN||71|mm[Hg]|||||F|||20260302075500+0000"]
+            + ["NTE|1||" + "x" * 1000] * 52_000,
+        ),  # about 52 MB
         hl7("C6", ["OBX|1|NM|2019-8^PaCO2^LN||41|mm[Hg]|||||F|||20260302075500+0000"]),
     ]
     with open(root / "lab.hl7", "wb") as fh:
@@ -97,9 +134,21 @@ def test_bad_items_are_quarantined_with_reasons_and_good_ones_stored(
 ) -> None:
     url = f"sqlite:///{tmp_path}/corpus.db"
     done = subprocess.run(
-        [sys.executable, "-m", "monitor.cli", "ingest", str(corpus / "ehr.ndjson"),
-         str(corpus / "lab.hl7"), "--db", url, "--json", "--no-progress"],
-        capture_output=True, text=True, timeout=300,
+        [
+            sys.executable,
+            "-m",
+            "monitor.cli",
+            "ingest",
+            str(corpus / "ehr.ndjson"),
+            str(corpus / "lab.hl7"),
+            "--db",
+            url,
+            "--json",
+            "--no-progress",
+        ],
+        capture_output=True,
+        text=True,
+        timeout=300,
     )
     assert done.returncode == 0, done.stderr
     assert "Traceback" not in done.stderr
@@ -141,12 +190,24 @@ def test_bad_items_are_quarantined_with_reasons_and_good_ones_stored(
 
 def test_re_ingesting_the_corpus_stores_nothing_new(corpus: Path, tmp_path: Path) -> None:
     url = f"sqlite:///{tmp_path}/again.db"
-    args = [sys.executable, "-m", "monitor.cli", "ingest", str(corpus / "ehr.ndjson"),
-            str(corpus / "lab.hl7"), "--db", url, "--json", "--no-progress"]
-    first = json.loads(subprocess.run(args, capture_output=True, text=True, timeout=300,
-                                      check=True).stdout)
-    second = json.loads(subprocess.run(args, capture_output=True, text=True, timeout=300,
-                                       check=True).stdout)
+    args = [
+        sys.executable,
+        "-m",
+        "monitor.cli",
+        "ingest",
+        str(corpus / "ehr.ndjson"),
+        str(corpus / "lab.hl7"),
+        "--db",
+        url,
+        "--json",
+        "--no-progress",
+    ]
+    first = json.loads(
+        subprocess.run(args, capture_output=True, text=True, timeout=300, check=True).stdout
+    )
+    second = json.loads(
+        subprocess.run(args, capture_output=True, text=True, timeout=300, check=True).stdout
+    )
     assert first["stored"] > 0
     assert second["stored"] == 0
     assert second["duplicates"] == first["stored"]
@@ -166,8 +227,14 @@ def _parse(raw: bytes) -> list[str]:
     from adapters.codes import CodeTable
     from adapters.hl7v2.parse import parse_oru
 
-    parsed = parse_oru(raw, received_at=datetime.now(UTC), codes=CodeTable.load(),
-                       source_system="lab", site_tz=UTC, patient_id_system=MRN_SYSTEM)
+    parsed = parse_oru(
+        raw,
+        received_at=datetime.now(UTC),
+        codes=CodeTable.load(),
+        source_system="lab",
+        site_tz=UTC,
+        patient_id_system=MRN_SYSTEM,
+    )
     return [str(r) for r in parsed.rejected]
 
 

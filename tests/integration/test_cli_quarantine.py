@@ -18,8 +18,9 @@ from tests import hl7_samples as h
 
 
 def gasgap(*args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "monitor.cli", *args], capture_output=True,
-                          text=True, timeout=300)
+    return subprocess.run(
+        [sys.executable, "-m", "monitor.cli", *args], capture_output=True, text=True, timeout=300
+    )
 
 
 def test_list_show_reprocess_with_a_new_mapping_and_purge(tmp_path: Path) -> None:
@@ -28,21 +29,33 @@ def test_list_show_reprocess_with_a_new_mapping_and_purge(tmp_path: Path) -> Non
     config.write_text(
         '[site]\nname = "Hollowmere General Hospital"\nelevation_m = 1600\n'
         'timezone = "America/Denver"\npatient_id_system = "urn:oid:2.999.1.1.1"\n\n'
-        f'[database]\nurl = "{url}"\n')
+        f'[database]\nurl = "{url}"\n'
+    )
     upgrade(url)
     now = datetime.now(UTC)
     sent = (now - timedelta(hours=1)).strftime("%Y%m%d%H%M%S+0000")
-    message = h.message(h.msh("QCLI1", when=sent),
-                        h.pid("HM770001"), h.obr("F-QCLI1"),
-                        "OBX|1|NM|PO2A^PO2 art^L||81|mm[Hg]|||||F").encode()
+    message = h.message(
+        h.msh("QCLI1", when=sent),
+        h.pid("HM770001"),
+        h.obr("F-QCLI1"),
+        "OBX|1|NM|PO2A^PO2 art^L||81|mm[Hg]|||||F",
+    ).encode()
     db = open_database(url)
     with db.begin() as conn:
-        item = quarantine(conn, source="hl7:lab", raw=message,
-                          reason="message QCLI1 OBX[1]-3: code PO2A^L is not mapped",
-                          received_at=now)
-        old = quarantine(conn, source="fhir:ehr", raw='{"resourceType": "Basic"}',
-                         reason="resourceType 'Basic' is not taken",
-                         received_at=now - timedelta(days=400))
+        item = quarantine(
+            conn,
+            source="hl7:lab",
+            raw=message,
+            reason="message QCLI1 OBX[1]-3: code PO2A^L is not mapped",
+            received_at=now,
+        )
+        old = quarantine(
+            conn,
+            source="fhir:ehr",
+            raw='{"resourceType": "Basic"}',
+            reason="resourceType 'Basic' is not taken",
+            received_at=now - timedelta(days=400),
+        )
     db.dispose()
 
     listed = gasgap("quarantine", "list", "--config", str(config), "--json")
@@ -60,10 +73,13 @@ def test_list_show_reprocess_with_a_new_mapping_and_purge(tmp_path: Path) -> Non
     assert before.returncode == 1 and "nothing read" in before.stdout
     codes = tmp_path / "site-codes.toml"
     # (the system as a URI: a site file's "L" is not mapped to it, see the report)
-    codes.write_text('[[code]]\nsystem = "urn:gasgap:local"\ncode = "PO2A"\nkind = "pao2"\n'
-                     'specimen = "arterial"\n')
-    again = gasgap("quarantine", "reprocess", str(item), "--config", str(config),
-                   "--codes", str(codes))
+    codes.write_text(
+        '[[code]]\nsystem = "urn:gasgap:local"\ncode = "PO2A"\nkind = "pao2"\n'
+        'specimen = "arterial"\n'
+    )
+    again = gasgap(
+        "quarantine", "reprocess", str(item), "--config", str(config), "--codes", str(codes)
+    )
     assert again.returncode == 0, again.stderr + again.stdout
     assert "1 stored" in again.stdout
     still_open = gasgap("quarantine", "list", "--config", str(config), "--open", "--json")

@@ -27,9 +27,12 @@ def _folder(tmp_path: Path) -> tuple[DropFolder, str, Path]:
     drop = tmp_path / "drop"
     drop.mkdir()
     context = SourceContext(patient_id_system=h.MRN_SYSTEM)
-    folder = DropFolder("lab-export", drop, ingest_from(pipeline, context,
-                                                        lambda: datetime.now(UTC)),
-                        settle_seconds=0)
+    folder = DropFolder(
+        "lab-export",
+        drop,
+        ingest_from(pipeline, context, lambda: datetime.now(UTC)),
+        settle_seconds=0,
+    )
     return folder, url, drop
 
 

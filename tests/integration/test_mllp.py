@@ -36,9 +36,14 @@ class Store:
         self.lock = threading.Lock()
 
     def __call__(self, raw: bytes) -> AckDecision:
-        parsed = parse_oru(raw, received_at=datetime.now(UTC), codes=CODES,
-                           source_system="hgh-lab", site_tz=timezone(timedelta(hours=-7)),
-                           patient_id_system=s.MRN_SYSTEM)
+        parsed = parse_oru(
+            raw,
+            received_at=datetime.now(UTC),
+            codes=CODES,
+            source_system="hgh-lab",
+            site_tz=timezone(timedelta(hours=-7)),
+            patient_id_system=s.MRN_SYSTEM,
+        )
         with self.lock:
             self.readings.extend(parsed.readings)
         if parsed.rejected:
@@ -110,8 +115,9 @@ def exchange(port: int, message: bytes) -> object:
 
 
 def validated(ack: bytes) -> object:
-    message = parse_message(ack.decode(), validation_level=VALIDATION_LEVEL.STRICT,
-                            find_groups=True)
+    message = parse_message(
+        ack.decode(), validation_level=VALIDATION_LEVEL.STRICT, find_groups=True
+    )
     message.validate()
     return message
 
@@ -131,8 +137,9 @@ def test_a_broken_message_gets_ae_with_the_reason(serve) -> None:  # noqa: ANN00
     ack = exchange(running.port, s.MIXED.encode())
     assert ack.msa.msa_1.to_er7() == "AE"
     assert "OBX[3]-5" in ack.msa.msa_3.to_er7() and "OBX[3]-5" in ack.err.err_8.to_er7()
-    garbled = exchange(running.port, b"MSH|^~\\&|HGH-LAB|H|GASGAP|H|x||ORU^R01^ORU_R01|Q1|P|2.5.1\r"
-                       b"PID|\xff\xfe\r")
+    garbled = exchange(
+        running.port, b"MSH|^~\\&|HGH-LAB|H|GASGAP|H|x||ORU^R01^ORU_R01|Q1|P|2.5.1\rPID|\xff\xfe\r"
+    )
     assert garbled.msa.msa_1.to_er7() == "AE" and garbled.msa.msa_2.to_er7() == "Q1"
     assert "UTF-8" in garbled.err.err_8.to_er7()
 
@@ -205,8 +212,9 @@ def test_a_storage_outage_is_ar_207_without_the_driver_text(serve) -> None:  # n
 
     def locked(raw: bytes) -> AckDecision:
         # The exception SQLAlchemy raises over sqlite3 when another writer holds the lock.
-        raise sqlalchemy.exc.OperationalError("INSERT INTO readings ...", {},
-                                              sqlite3.OperationalError("database is locked"))
+        raise sqlalchemy.exc.OperationalError(
+            "INSERT INTO readings ...", {}, sqlite3.OperationalError("database is locked")
+        )
 
     kept: list[bytes] = []
     running = serve(locked, on_refused=lambda raw, reason: kept.append(raw))
@@ -230,8 +238,11 @@ def test_an_unforeseen_failure_is_kept_and_answered_ae(serve) -> None:  # noqa: 
 
 def test_an_oversized_message_is_ae_and_its_head_kept(serve) -> None:  # noqa: ANN001
     kept: list[tuple[bytes, str]] = []
-    running = serve(Store(), max_message_bytes=100_000,
-                    on_refused=lambda raw, reason: kept.append((raw, reason)))
+    running = serve(
+        Store(),
+        max_message_bytes=100_000,
+        on_refused=lambda raw, reason: kept.append((raw, reason)),
+    )
     big = s.msh("BIG1").encode() + b"\r" + b"NTE|1||" + b"y" * 200_000 + b"\r"
     with connect(running.port) as sock:
         sock.sendall(VT + big + FS + CR)
@@ -376,17 +387,35 @@ def test_mllp_over_tls_with_a_self_signed_certificate(serve, tmp_path) -> None: 
         service_missing("openssl", "needed to make a throwaway test certificate")
     cert, key = tmp_path / "cert.pem", tmp_path / "key.pem"
     subprocess.run(
-        ["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "1",
-         "-subj", "/CN=127.0.0.1", "-addext", "subjectAltName=IP:127.0.0.1",
-         "-keyout", str(key), "-out", str(cert)],
-        check=True, capture_output=True, timeout=60,
+        [
+            "openssl",
+            "req",
+            "-x509",
+            "-newkey",
+            "rsa:2048",
+            "-nodes",
+            "-days",
+            "1",
+            "-subj",
+            "/CN=127.0.0.1",
+            "-addext",
+            "subjectAltName=IP:127.0.0.1",
+            "-keyout",
+            str(key),
+            "-out",
+            str(cert),
+        ],
+        check=True,
+        capture_output=True,
+        timeout=60,
     )
     server_ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
     server_ctx.load_cert_chain(cert, key)
     client_ctx = ssl.create_default_context(cafile=str(cert))
     running = serve(Store(), ssl=server_ctx)
-    with connect(running.port) as raw_sock, client_ctx.wrap_socket(
-        raw_sock, server_hostname="127.0.0.1"
-    ) as sock:
+    with (
+        connect(running.port) as raw_sock,
+        client_ctx.wrap_socket(raw_sock, server_hostname="127.0.0.1") as sock,
+    ):
         sock.sendall(VT + s.ABG_251.encode() + FS + CR)
         assert validated(read_ack(sock, bytearray())).msa.msa_1.to_er7() == "AA"  # type: ignore[arg-type]

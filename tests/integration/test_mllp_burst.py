@@ -68,9 +68,12 @@ def _strip(tables: dict[str, list[tuple[object, ...]]], url: str) -> dict[str, o
     engine.dispose()
     out: dict[str, object] = {}
     for name, rows in tables.items():
-        columns = [c.name for c in meta.tables[name].columns
-                   if c.name not in {"id", "derivation_id", "revision", "processed",
-                                     "claimed_at", "claimed_by"}]
+        columns = [
+            c.name
+            for c in meta.tables[name].columns
+            if c.name
+            not in {"id", "derivation_id", "revision", "processed", "claimed_at", "claimed_by"}
+        ]
         keep = [i for i, c in enumerate(columns) if c not in _BY_PATH]
         if name in ("quarantine", "outbox", "source_cursors"):
             continue  # none in a clean feed; outbox rows are compared below by key
@@ -81,9 +84,14 @@ def _strip(tables: dict[str, list[tuple[object, ...]]], url: str) -> dict[str, o
 def test_a_burst_over_mllp_gives_what_a_replay_gives(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    for name in ("GASGAP_ICU_NORTH_WEBHOOK_TOKEN", "GASGAP_ICU_NORTH_WEBHOOK_HMAC",
-                 "GASGAP_SMTP_PASSWORD", "GASGAP_FHIR_TOKEN", "GASGAP_BOARD_TOKEN",
-                 "GASGAP_API_TOKEN"):
+    for name in (
+        "GASGAP_ICU_NORTH_WEBHOOK_TOKEN",
+        "GASGAP_ICU_NORTH_WEBHOOK_HMAC",
+        "GASGAP_SMTP_PASSWORD",
+        "GASGAP_FHIR_TOKEN",
+        "GASGAP_BOARD_TOKEN",
+        "GASGAP_API_TOKEN",
+    ):
         monkeypatch.setenv(name, "invented-test-secret")
     start = (datetime.now(UTC) - timedelta(days=1)).replace(minute=0, second=0, microsecond=0)
     feed_dir = tmp_path / "feed"
@@ -116,8 +124,12 @@ def test_a_burst_over_mllp_gives_what_a_replay_gives(
     replay_url = f"sqlite:///{tmp_path}/replay.db"
     replay_db = open_database(replay_url)
     try:
-        load_files([lab], Pipeline(replay_db, pipeline_settings(config)),
-                   source_context(config), LoadOptions(seen_at=None))
+        load_files(
+            [lab],
+            Pipeline(replay_db, pipeline_settings(config)),
+            source_context(config),
+            LoadOptions(seen_at=None),
+        )
     finally:
         replay_db.dispose()
     live, replayed = dump(live_url), dump(replay_url)

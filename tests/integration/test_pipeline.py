@@ -53,8 +53,9 @@ def band_priority(pf: float, pb: float) -> str | None:
 def pipeline(db_url: str) -> Pipeline:
     settings = PipelineSettings(
         pairing=PairingSettings(site_elevation_m=1600.0),
-        routing=Routing(by_unit={"ICU-North": ["icu-webhook"]}, default=["log"],
-                        escalation=["pager"]),
+        routing=Routing(
+            by_unit={"ICU-North": ["icu-webhook"]}, default=["log"], escalation=["pager"]
+        ),
     )
     db = open_database(db_url)
     yield Pipeline(db, settings)
@@ -68,11 +69,13 @@ def gas(at, po2, paco2=40.0, *, panel, fio2_value=None, peep=None, **kw):
         lab(Kind.PACO2, paco2, at, panel_id=panel),
     ]
     if fio2_value is not None:
-        items.append(reading(Kind.FIO2, fio2_value, at, panel_id=panel,
-                             logical_id=f"fio2-{panel}"))
+        items.append(reading(Kind.FIO2, fio2_value, at, panel_id=panel, logical_id=f"fio2-{panel}"))
     if peep is not None:
-        items.append(reading(Kind.PEEP, peep, at - minutes(5), logical_id=f"peep-{panel}",
-                             from_ventilator=True))
+        items.append(
+            reading(
+                Kind.PEEP, peep, at - minutes(5), logical_id=f"peep-{panel}", from_ventilator=True
+            )
+        )
     return items
 
 
@@ -84,14 +87,16 @@ def events(p: Pipeline):
 def test_a_worsening_ventilated_patient_is_flagged_with_a_queued_notification(
     pipeline: Pipeline,
 ) -> None:
-    first = pipeline.accept(Inbound(gas(T0, 130, panel="A1", fio2_value=0.40, peep=8)),
-                            now=T0 + minutes(20))
+    first = pipeline.accept(
+        Inbound(gas(T0, 130, panel="A1", fio2_value=0.40, peep=8)), now=T0 + minutes(20)
+    )
     assert band_priority(130 / 0.40, PB_1600_M) is None
     assert not [e for e in first.alert_events if e.rule == "oxygenation-band"]
 
     later = T0 + hours(6)
-    report = pipeline.accept(Inbound(gas(later, 60, panel="A2", fio2_value=0.60, peep=10)),
-                             now=later + minutes(20))
+    report = pipeline.accept(
+        Inbound(gas(later, 60, panel="A2", fio2_value=0.60, peep=10)), now=later + minutes(20)
+    )
     expected = band_priority(60 / 0.60, PB_1600_M)
     assert expected == "medium"  # 100 x 760/626.51 = 121.3
     band = [e for e in report.alert_events if e.rule == "oxygenation-band"]
@@ -126,8 +131,13 @@ def test_the_same_batch_twice_changes_nothing(pipeline: Pipeline) -> None:
 def test_a_correction_supersedes_and_keeps_the_history(pipeline: Pipeline) -> None:
     original = gas(T0, 60, panel="C1", fio2_value=0.5)
     pipeline.accept(Inbound(original), now=T0 + minutes(20))
-    corrected = replace(original[0], value=80.0, status=Status.CORRECTED,
-                        delivery_id="pao2-C1#2", received_at=T0 + hours(1))
+    corrected = replace(
+        original[0],
+        value=80.0,
+        status=Status.CORRECTED,
+        delivery_id="pao2-C1#2",
+        received_at=T0 + hours(1),
+    )
     report = pipeline.accept(Inbound([corrected]), now=T0 + hours(1))
     assert report.derivations == 1
     with pipeline.db.begin() as conn:
@@ -143,8 +153,13 @@ def test_a_withdrawn_result_retracts_its_derivation_and_its_flag(pipeline: Pipel
     expected = band_priority(50 / 0.6, PB_1600_M)  # 83.3 x 760/626.51 = 101.1 -> medium
     raised = [e for e in first.alert_events if e.rule == "oxygenation-band"]
     assert [(e.event, e.priority.value) for e in raised] == [("raised", expected)]
-    withdrawn = replace(batch[0], value=None, status=Status.RETRACTED,
-                        delivery_id="pao2-D1#wrong", received_at=T0 + hours(2))
+    withdrawn = replace(
+        batch[0],
+        value=None,
+        status=Status.RETRACTED,
+        delivery_id="pao2-D1#wrong",
+        received_at=T0 + hours(2),
+    )
     report = pipeline.accept(Inbound([withdrawn]), now=T0 + hours(2))
     assert report.retracted_derivations == 1
     retracted = [e for e in report.alert_events if e.event == "retracted"]
@@ -190,15 +205,17 @@ def test_fio2_charted_after_the_gas_re_derives_it(pipeline: Pipeline) -> None:
 def test_an_unacknowledged_medium_flag_escalates_and_an_acknowledged_one_does_not(
     pipeline: Pipeline,
 ) -> None:
-    report = pipeline.accept(Inbound(gas(T0, 60, panel="F1", fio2_value=0.6, peep=10)),
-                             now=T0 + minutes(20))
+    report = pipeline.accept(
+        Inbound(gas(T0, 60, panel="F1", fio2_value=0.6, peep=10)), now=T0 + minutes(20)
+    )
     band = next(e for e in report.alert_events if e.rule == "oxygenation-band")
     assert pipeline.escalate_due(now=T0 + minutes(30)) == []  # 10 min: not yet
     escalated = pipeline.escalate_due(now=T0 + minutes(51))  # 31 min after the raise
     assert band.alert_id in {e.alert_id for e in escalated if e.event == "escalated"}
     with pipeline.db.begin() as conn:
-        channels = {q.channel for q in outbox.outbox_items(conn)
-                    if q.notification.event == "escalated"}
+        channels = {
+            q.channel for q in outbox.outbox_items(conn) if q.notification.event == "escalated"
+        }
     assert channels == {"icu-webhook", "pager"}
     acked = pipeline.acknowledge(band.alert_id, "Nurse Quill", now=T0 + minutes(60))
     assert acked.acknowledged_by == "Nurse Quill"
@@ -214,8 +231,10 @@ def test_rejected_input_is_kept_with_its_reason_and_the_rest_is_stored(
 ) -> None:
     from storage.quarantine import list_quarantine
 
-    inbound = Inbound(gas(T0, 90, panel="G1", fio2_value=0.21),
-                      rejected=[Rejected("hl7:lab", b"MSH|broken", "OBX[2]-5: value 'x' is not a number")])
+    inbound = Inbound(
+        gas(T0, 90, panel="G1", fio2_value=0.21),
+        rejected=[Rejected("hl7:lab", b"MSH|broken", "OBX[2]-5: value 'x' is not a number")],
+    )
     report = pipeline.accept(inbound, now=T0 + minutes(20))
     assert report.quarantined == 1 and report.stored == 3
     with pipeline.db.begin() as conn:

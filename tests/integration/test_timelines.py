@@ -46,8 +46,9 @@ def dump(url: str) -> dict[str, list[tuple[Any, ...]]]:
     with engine.connect() as conn:
         versions = {
             row.id: (row.patient_key, row.sample_id, row.version)
-            for row in conn.execute(sa.text(
-                "select id, patient_key, sample_id, version from derivations"))
+            for row in conn.execute(
+                sa.text("select id, patient_key, sample_id, version from derivations")
+            )
         }
         for name, table in sorted(meta.tables.items()):
             if name in ("alembic_version", "patient_links"):
@@ -59,10 +60,15 @@ def dump(url: str) -> dict[str, list[tuple[Any, ...]]]:
             for row in conn.execute(sa.select(*cols)):
                 values = tuple(str(v) for v in row)
                 if name == "derivation_inputs":
-                    full = conn.execute(
-                        sa.select(table.c.derivation_id).where(
-                            table.c.reading_logical_id == row.reading_logical_id)
-                    ).scalars().all()
+                    full = (
+                        conn.execute(
+                            sa.select(table.c.derivation_id).where(
+                                table.c.reading_logical_id == row.reading_logical_id
+                            )
+                        )
+                        .scalars()
+                        .all()
+                    )
                     values = values + tuple(sorted(str(versions[i]) for i in full))
                 rows.append(values)
             out[name] = sorted(rows)
@@ -98,9 +104,13 @@ def _historical(paths: list[Path], url: str, **options: Any) -> None:
     config = load_config(EXAMPLE)
     db = open_database(url)
     try:
-        load_files(paths, Pipeline(db, pipeline_settings(config)), source_context(config),
-                   LoadOptions(seen_at=None, **options),
-                   received_at=lambda: datetime(2026, 6, 1, tzinfo=UTC))
+        load_files(
+            paths,
+            Pipeline(db, pipeline_settings(config)),
+            source_context(config),
+            LoadOptions(seen_at=None, **options),
+            received_at=lambda: datetime(2026, 6, 1, tzinfo=UTC),
+        )
     finally:
         db.dispose()
 
@@ -157,8 +167,7 @@ def _gas(at: datetime, po2: float, fio2: float, panel: str, known: datetime) -> 
     return [
         pao2(po2, at, panel_id=panel, birth_date=BIRTH_DATE, received_at=known),
         lab(Kind.PACO2, 40.0, at, panel_id=panel, received_at=known),
-        reading(Kind.FIO2, fio2, at, panel_id=panel, logical_id=f"fio2-{panel}",
-                received_at=known),
+        reading(Kind.FIO2, fio2, at, panel_id=panel, logical_id=f"fio2-{panel}", received_at=known),
     ]
 
 
@@ -175,9 +184,10 @@ def test_a_result_dated_in_the_future_is_refused_and_does_not_mute_its_patient(
         assert all("future" in k for k in report.quarantine_reasons)
         # the real gases after it: P/F 79 (PaO2 63 on FiO2 0.80) is Berlin's severe band
         # (<= 100, JAMA 2012), so it must raise a high flag
-        pipeline.accept(Inbound(_gas(now + hours(1), 63.0, 0.80, "REAL",
-                                     known=now + hours(1) + minutes(10))),
-                        now=now + hours(1) + minutes(10))
+        pipeline.accept(
+            Inbound(_gas(now + hours(1), 63.0, 0.80, "REAL", known=now + hours(1) + minutes(10))),
+            now=now + hours(1) + minutes(10),
+        )
         with db.begin() as conn:
             flags = {(a.rule, a.priority.value) for a in alerts_store.open_alerts(conn)}
         assert ("oxygenation-band", "high") in flags
@@ -190,8 +200,10 @@ def test_a_backlog_flush_through_the_pipeline_flags_like_its_own_pace(tmp_path: 
     # second, against the same four at their own pace: the same flags.
     t = datetime(2026, 3, 14, 6, 0, tzinfo=UTC)
     values = [(0, 110.0), (2, 70.0), (4, 120.0), (6, 65.0)]  # FiO2 0.40: P/F 275,175,300,162
-    gases = [_gas(t + hours(h), po2, 0.40, f"G{h}", known=t + hours(h) + minutes(10))
-             for h, po2 in values]
+    gases = [
+        _gas(t + hours(h), po2, 0.40, f"G{h}", known=t + hours(h) + minutes(10))
+        for h, po2 in values
+    ]
     paced_url, flush_url = f"sqlite:///{tmp_path}/p.db", f"sqlite:///{tmp_path}/f.db"
     paced = Pipeline(open_database(paced_url))
     for g in gases:
@@ -203,8 +215,10 @@ def test_a_backlog_flush_through_the_pipeline_flags_like_its_own_pace(tmp_path: 
 
     def flags(p: Pipeline) -> list[tuple[str, str, str, str]]:
         with p.db.begin() as conn:
-            return sorted((e.rule, e.event, e.priority.value, str(e.at))
-                          for e in alerts_store.alert_events(conn))
+            return sorted(
+                (e.rule, e.event, e.priority.value, str(e.at))
+                for e in alerts_store.alert_events(conn)
+            )
 
     assert flags(paced) and flags(paced) == flags(flushed)
     paced.db.dispose()

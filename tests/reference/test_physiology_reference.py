@@ -382,8 +382,9 @@ def test_fio2_floor_is_20_9_percent(fio2: float, accepted: bool) -> None:
             phys.pf_ratio(90, fio2)
 
 
-@pytest.mark.parametrize(("fio2", "room_air"), [(0.21, True), (0.215, True), (0.216, False),
-                                                (0.24, False)])
+@pytest.mark.parametrize(
+    ("fio2", "room_air"), [(0.21, True), (0.215, True), (0.216, False), (0.24, False)]
+)
 def test_room_air_is_one_test_with_a_tolerance(fio2: float, room_air: bool) -> None:
     # Feeds round 21 % differently; 0.005 is common practice, no source.
     assert phys.is_room_air(fio2) is room_air
@@ -394,8 +395,14 @@ def test_room_air_is_one_test_with_a_tolerance(fio2: float, room_air: bool) -> N
 
 @pytest.mark.parametrize(
     ("pb", "adjusted"),
-    [(760.0, False), (716.02, False), (674.13, False), (674.0, False), (673.9, True),
-     (626.51, True)],
+    [
+        (760.0, False),
+        (716.02, False),
+        (674.13, False),
+        (674.0, False),
+        (673.9, True),
+        (626.51, True),
+    ],
 )
 def test_pf_is_adjusted_only_above_1000_m(pb: float, adjusted: bool) -> None:
     # Berlin footnote "if altitude is higher than 1000 m" (JAMA 2012, sheet s.5); the ISA

@@ -16,8 +16,10 @@ def pg_cluster() -> Iterator[PgCluster]:
     the test may stop it without touching the shared test server."""
     bindir = pg_binaries()
     if bindir is None:
-        service_missing("PostgreSQL binaries (pg_ctl)",
-                        "no /usr/lib/postgresql/*/bin/pg_ctl with initdb beside it")
+        service_missing(
+            "PostgreSQL binaries (pg_ctl)",
+            "no /usr/lib/postgresql/*/bin/pg_ctl with initdb beside it",
+        )
     cluster = PgCluster(bindir)  # type: ignore[arg-type]
     try:
         cluster.init()

@@ -37,8 +37,14 @@ MRN_SYSTEM = "urn:oid:2.999.1.1.1"
 
 def _hl7(data: bytes) -> None:
     try:
-        parse_oru(data, received_at=RECEIVED, codes=CODES, source_system="fuzz",
-                  site_tz=SITE_TZ, patient_id_system=MRN_SYSTEM)
+        parse_oru(
+            data,
+            received_at=RECEIVED,
+            codes=CODES,
+            source_system="fuzz",
+            site_tz=SITE_TZ,
+            patient_id_system=MRN_SYSTEM,
+        )
     except Hl7Error as exc:
         if exc.ack_code not in ("AE", "AR") or not exc.reason:
             raise AssertionError(f"Hl7Error without a proper answer: {exc!r}") from exc
@@ -51,8 +57,9 @@ def _fhir(data: bytes) -> None:
         return
     if not isinstance(resource, dict):
         return
-    builder = FhirReadingBuilder(CODES, source_system="fuzz", patient_id_system=MRN_SYSTEM,
-                                 received_at_fn=lambda: RECEIVED)
+    builder = FhirReadingBuilder(
+        CODES, source_system="fuzz", patient_id_system=MRN_SYSTEM, received_at_fn=lambda: RECEIVED
+    )
     batch = builder.read(resource)
     for rejection in batch.rejections:
         if not rejection.reason:
@@ -75,9 +82,15 @@ def write_seeds(folder: Path) -> None:
 
     folder.mkdir(parents=True, exist_ok=True)
     hl7 = [hs.ABG_251, hs.ABG_KPA_23, hs.VENOUS_SPM, hs.PULSE_OX, hs.VENT, hs.MIXED]
-    fhir = [fs.patient(), fs.encounter(), fs.quantity_obs("s1", "2703-7", 9.1, "kPa"),
-            fs.gas_panel_with_components(), fs.spo2_with_flow(), fs.device_obs(),
-            fs.venous_po2()]
+    fhir = [
+        fs.patient(),
+        fs.encounter(),
+        fs.quantity_obs("s1", "2703-7", 9.1, "kPa"),
+        fs.gas_panel_with_components(),
+        fs.spo2_with_flow(),
+        fs.device_obs(),
+        fs.venous_po2(),
+    ]
     for i, text in enumerate(hl7):
         (folder / f"hl7-{i}").write_bytes(b"\x00" + text.encode())
     for i, resource in enumerate(fhir):

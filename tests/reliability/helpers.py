@@ -44,10 +44,27 @@ from tests.integration.service import (
 )
 
 __all__ = [
-    "API_TOKEN", "BOARD_TOKEN", "REPO", "ack_code", "free_port", "site_toml",
-    "Receiver", "ServiceProcess", "MllpSession", "gas", "PgCluster", "pg_binaries",
-    "stored_control_ids", "count_rows", "outbox_rows", "notifying_events", "wait_until",
-    "minutes_ago", "SB", "EB", "CR",
+    "API_TOKEN",
+    "BOARD_TOKEN",
+    "REPO",
+    "ack_code",
+    "free_port",
+    "site_toml",
+    "Receiver",
+    "ServiceProcess",
+    "MllpSession",
+    "gas",
+    "PgCluster",
+    "pg_binaries",
+    "stored_control_ids",
+    "count_rows",
+    "outbox_rows",
+    "notifying_events",
+    "wait_until",
+    "minutes_ago",
+    "SB",
+    "EB",
+    "CR",
 ]
 
 # MLLP framing (HL7 v2.5.1 Appendix C, minimal lower layer protocol): VT ... FS CR.
@@ -67,12 +84,23 @@ def wait_until(predicate: Callable[[], Any], timeout: float, every: float = 0.2)
 # --- HL7 messages ----------------------------------------------------------------------------
 
 
-def gas(control_id: str, mrn: str, filler: str, *, pao2: float, fio2_percent: float = 60,
-        drawn: datetime, unit: str = "ICU-North", bed: str = "1") -> str:
+def gas(
+    control_id: str,
+    mrn: str,
+    filler: str,
+    *,
+    pao2: float,
+    fio2_percent: float = 60,
+    drawn: datetime,
+    unit: str = "ICU-North",
+    bed: str = "1",
+) -> str:
     """A small ORU^R01: PaO2, PaCO2 and FiO2 of one arterial sample (invented)."""
     when = drawn.astimezone(UTC).strftime("%Y%m%d%H%M%S+0000")
     return h.message(
-        h.msh(control_id, when=when), h.pid(mrn), h.pv1(unit, "7", bed),
+        h.msh(control_id, when=when),
+        h.pid(mrn),
+        h.pv1(unit, "7", bed),
         h.obr(filler, collected=when),
         h.obx(1, "2703-7", f"{pao2:g}", "mm[Hg]", text="PO2 arterial"),
         h.obx(2, "2019-8", "40", "mm[Hg]", text="PCO2 arterial"),
@@ -193,17 +221,27 @@ class ServiceProcess:
         self.starts = 0
 
     def start(self, timeout: float = 60.0) -> None:
-        env = {**os.environ, "GASGAP_TEST_API_TOKEN": API_TOKEN,
-               "GASGAP_TEST_BOARD_TOKEN": BOARD_TOKEN, "PYTHONUNBUFFERED": "1"}
+        env = {
+            **os.environ,
+            "GASGAP_TEST_API_TOKEN": API_TOKEN,
+            "GASGAP_TEST_BOARD_TOKEN": BOARD_TOKEN,
+            "PYTHONUNBUFFERED": "1",
+        }
         with open(self.log_path, "ab") as log_file:
-            self.process = subprocess.Popen(serve_command(self.config), cwd=REPO, env=env,
-                                            stdout=log_file, stderr=subprocess.STDOUT)
+            self.process = subprocess.Popen(
+                serve_command(self.config),
+                cwd=REPO,
+                env=env,
+                stdout=log_file,
+                stderr=subprocess.STDOUT,
+            )
         self.starts += 1
         deadline = time.monotonic() + timeout
         while True:
             if self.process.poll() is not None:
-                raise AssertionError(f"service exited with {self.process.returncode}:\n"
-                                     f"{self.log_text()[-3000:]}")
+                raise AssertionError(
+                    f"service exited with {self.process.returncode}:\n{self.log_text()[-3000:]}"
+                )
             try:
                 if httpx.get(self.base + "/health", timeout=2).status_code in (200, 503):
                     return
@@ -211,8 +249,9 @@ class ServiceProcess:
                 pass
             if time.monotonic() > deadline:
                 self.kill()
-                raise AssertionError(f"service not answering in {timeout}s:\n"
-                                     f"{self.log_text()[-3000:]}")
+                raise AssertionError(
+                    f"service not answering in {timeout}s:\n{self.log_text()[-3000:]}"
+                )
             time.sleep(0.1)
 
     def kill(self) -> None:
@@ -242,8 +281,10 @@ class ServiceProcess:
 
 def pg_binaries() -> Path | None:
     """The newest ``/usr/lib/postgresql/*/bin`` that has pg_ctl and initdb."""
-    found = sorted(glob("/usr/lib/postgresql/*/bin/pg_ctl"),
-                   key=lambda p: int(p.split("/")[4]) if p.split("/")[4].isdigit() else 0)
+    found = sorted(
+        glob("/usr/lib/postgresql/*/bin/pg_ctl"),
+        key=lambda p: int(p.split("/")[4]) if p.split("/")[4].isdigit() else 0,
+    )
     for pg_ctl in reversed(found):
         folder = Path(pg_ctl).parent
         if (folder / "initdb").exists():
@@ -276,29 +317,55 @@ class PgCluster:
         command = [str(self.bindir / args[0]), *args[1:]]
         if self._as_postgres:
             runner = shutil.which("runuser")
-            command = ([runner, "-u", "postgres", "--", *command] if runner
-                       else ["su", "postgres", "-c", " ".join(command)])
-        return subprocess.run(command, capture_output=True, text=True, timeout=timeout,
-                              cwd=self.root)
+            command = (
+                [runner, "-u", "postgres", "--", *command]
+                if runner
+                else ["su", "postgres", "-c", " ".join(command)]
+            )
+        return subprocess.run(
+            command, capture_output=True, text=True, timeout=timeout, cwd=self.root
+        )
 
     def init(self) -> None:
-        done = self._run("initdb", "-D", str(self.data), "-U", "postgres", "--auth=trust",
-                         "-E", "UTF8", "--no-sync", timeout=120)
+        done = self._run(
+            "initdb",
+            "-D",
+            str(self.data),
+            "-U",
+            "postgres",
+            "--auth=trust",
+            "-E",
+            "UTF8",
+            "--no-sync",
+            timeout=120,
+        )
         if done.returncode != 0:
             raise RuntimeError(f"initdb failed: {done.stderr[-2000:]}")
 
     def start(self) -> None:
-        options = (f"-p {self.port} -c listen_addresses=127.0.0.1 -k {self.root} "
-                   "-c fsync=off -c max_connections=50")
-        done = self._run("pg_ctl", "-D", str(self.data), "-l", str(self.logfile), "-w",
-                         "-t", "60", "-o", options, "start", timeout=90)
+        options = (
+            f"-p {self.port} -c listen_addresses=127.0.0.1 -k {self.root} "
+            "-c fsync=off -c max_connections=50"
+        )
+        done = self._run(
+            "pg_ctl",
+            "-D",
+            str(self.data),
+            "-l",
+            str(self.logfile),
+            "-w",
+            "-t",
+            "60",
+            "-o",
+            options,
+            "start",
+            timeout=90,
+        )
         if done.returncode != 0:
-            raise RuntimeError(f"pg_ctl start failed: {done.stderr[-2000:]} "
-                               f"{self._log_tail()}")
+            raise RuntimeError(f"pg_ctl start failed: {done.stderr[-2000:]} {self._log_tail()}")
 
     def stop(self, mode: str = "fast") -> None:
-        self._run("pg_ctl", "-D", str(self.data), "-m", mode, "-w", "-t", "60", "stop",
-                  timeout=90)
+        self._run("pg_ctl", "-D", str(self.data), "-m", mode, "-w", "-t", "60", "stop", timeout=90)
 
     def _log_tail(self) -> str:
         try:
@@ -315,8 +382,9 @@ class PgCluster:
 
 
 def _engine(url: str) -> sa.Engine:
-    return sa.create_engine(url, connect_args={"connect_timeout": 5} if "postgresql" in url
-                            else {"timeout": 30})
+    return sa.create_engine(
+        url, connect_args={"connect_timeout": 5} if "postgresql" in url else {"timeout": 30}
+    )
 
 
 def stored_control_ids(url: str, source_prefix: str = "hl7:") -> Counter[str]:
@@ -327,8 +395,11 @@ def stored_control_ids(url: str, source_prefix: str = "hl7:") -> Counter[str]:
     engine = _engine(url)
     try:
         with engine.connect() as conn:
-            ids = conn.execute(sa.select(readings.c.delivery_id)
-                               .where(readings.c.delivery_id.like(f"{source_prefix}%"))).scalars()
+            ids = conn.execute(
+                sa.select(readings.c.delivery_id).where(
+                    readings.c.delivery_id.like(f"{source_prefix}%")
+                )
+            ).scalars()
             return Counter(d.rsplit("@", 1)[1].rsplit(":", 1)[0] for d in ids)
     finally:
         engine.dispose()
@@ -356,9 +427,15 @@ def outbox_rows(url: str, channel: str | None = None) -> list[dict[str, Any]]:
     engine = _engine(url)
     try:
         with engine.connect() as conn:
-            query = sa.select(outbox.c.id, outbox.c.idempotency_key, outbox.c.channel,
-                              outbox.c.patient_key, outbox.c.alert_id, outbox.c.status,
-                              outbox.c.attempts).order_by(outbox.c.id)
+            query = sa.select(
+                outbox.c.id,
+                outbox.c.idempotency_key,
+                outbox.c.channel,
+                outbox.c.patient_key,
+                outbox.c.alert_id,
+                outbox.c.status,
+                outbox.c.attempts,
+            ).order_by(outbox.c.id)
             if channel is not None:
                 query = query.where(outbox.c.channel == channel)
             return [dict(row._mapping) for row in conn.execute(query)]
@@ -376,9 +453,16 @@ def notifying_events(url: str) -> list[dict[str, Any]]:
     engine = _engine(url)
     try:
         with engine.connect() as conn:
-            query = (sa.select(alert_events.c.alert_id, alert_events.c.patient_key,
-                               alert_events.c.event, alert_events.c.at)
-                     .where(alert_events.c.event.in_(kinds)).order_by(alert_events.c.id))
+            query = (
+                sa.select(
+                    alert_events.c.alert_id,
+                    alert_events.c.patient_key,
+                    alert_events.c.event,
+                    alert_events.c.at,
+                )
+                .where(alert_events.c.event.in_(kinds))
+                .order_by(alert_events.c.id)
+            )
             return [dict(row._mapping) for row in conn.execute(query)]
     finally:
         engine.dispose()

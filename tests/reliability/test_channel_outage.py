@@ -46,7 +46,8 @@ DOWN_FOR_S = 3.0
 
 @pytest.mark.timeout(120)
 def test_notifications_wait_for_a_down_webhook_then_arrive_once_in_order(
-    tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     assert expected_priority(55, 0.60, 1600)[1] == "medium"
     assert expected_priority(40, 0.60, 1600)[1] == "high"
@@ -57,12 +58,14 @@ def test_notifications_wait_for_a_down_webhook_then_arrive_once_in_order(
     receiver = Receiver()  # its port is fixed now, but nothing listens yet
     db_url = f"sqlite:///{tmp_path}/gasgap.db"
     config_path = tmp_path / "site.toml"
-    config_path.write_text(site_toml(db_url=db_url, http_port=free_port(), mllp_port=None,
-                                     webhook_url=receiver.url))
+    config_path.write_text(
+        site_toml(db_url=db_url, http_port=free_port(), mllp_port=None, webhook_url=receiver.url)
+    )
     service = build_service(load_config(config_path))
     dispatcher = service.dispatcher
-    dispatcher.policy = DispatchPolicy(max_attempts=100, base=timedelta(seconds=0.2),
-                                       cap=timedelta(seconds=1), jitter=0.25)
+    dispatcher.policy = DispatchPolicy(
+        max_attempts=100, base=timedelta(seconds=0.2), cap=timedelta(seconds=1), jitter=0.25
+    )
     dispatcher.lease_seconds = 5
     try:
         start = minutes_ago(6 * 60)
@@ -71,8 +74,14 @@ def test_notifications_wait_for_a_down_webhook_then_arrive_once_in_order(
             for i, mrn in enumerate(PATIENTS):
                 n += 1
                 control = f"CH{n:04d}"
-                text = gas(control, mrn, f"F-{control}", pao2=pao2,
-                           drawn=start + timedelta(minutes=60 * step + i), bed=str(i + 1))
+                text = gas(
+                    control,
+                    mrn,
+                    f"F-{control}",
+                    pao2=pao2,
+                    drawn=start + timedelta(minutes=60 * step + i),
+                    bed=str(i + 1),
+                )
                 assert service.on_hl7(text.encode()).code == "AA"
 
         # Down: every round fails with connection refused; items wait and retry.
@@ -142,8 +151,9 @@ def test_gasgap_serve_retries_a_down_webhook_on_its_own_schedule(tmp_path: Path)
     db_url = f"sqlite:///{tmp_path}/gasgap.db"
     http_port, mllp_port = free_port(), free_port()
     config = tmp_path / "site.toml"
-    config.write_text(site_toml(db_url=db_url, http_port=http_port, mllp_port=mllp_port,
-                                webhook_url=receiver.url))
+    config.write_text(
+        site_toml(db_url=db_url, http_port=http_port, mllp_port=mllp_port, webhook_url=receiver.url)
+    )
     service = ServiceProcess(config, http_port, tmp_path / "service.log")
     try:
         service.start()
@@ -152,13 +162,24 @@ def test_gasgap_serve_retries_a_down_webhook_on_its_own_schedule(tmp_path: Path)
         for step, pao2 in enumerate((55, 40)):
             for i, mrn in enumerate(PATIENTS[:2]):
                 control = f"CS{step}{i}"
-                text = gas(control, mrn, f"F-{control}", pao2=pao2,
-                           drawn=start + timedelta(minutes=60 * step + i), bed=str(i + 1))
+                text = gas(
+                    control,
+                    mrn,
+                    f"F-{control}",
+                    pao2=pao2,
+                    drawn=start + timedelta(minutes=60 * step + i),
+                    bed=str(i + 1),
+                )
                 assert session.send(text) == "AA"
         session.close()
-        failed = wait_until(lambda: all(r["attempts"] >= 1 for r in outbox_rows(db_url, CHANNEL)
-                                        if r["id"] in _heads(outbox_rows(db_url, CHANNEL))),
-                            timeout=20)
+        failed = wait_until(
+            lambda: all(
+                r["attempts"] >= 1
+                for r in outbox_rows(db_url, CHANNEL)
+                if r["id"] in _heads(outbox_rows(db_url, CHANNEL))
+            ),
+            timeout=20,
+        )
         assert failed, outbox_rows(db_url, CHANNEL)
         # A restart in between (SIGKILL): the new process has only the backlog it finds
         # in the database, and no new message will come to wake its outbox.
@@ -167,7 +188,9 @@ def test_gasgap_serve_retries_a_down_webhook_on_its_own_schedule(tmp_path: Path)
         receiver.start()
         delivered = wait_until(
             lambda: all(r["status"] == "sent" for r in outbox_rows(db_url, CHANNEL)),
-            timeout=120, every=1.0)
+            timeout=120,
+            every=1.0,
+        )
         assert delivered, outbox_rows(db_url, CHANNEL)
         service.stop()
     finally:

@@ -78,12 +78,21 @@ def _plan(connection: int) -> list[tuple[str, str]]:
         control = f"CR{connection}{n:05d}"
         drawn = start + timedelta(minutes=n, seconds=rng.randint(0, 30))
         if mrn.endswith("3"):
-            text = gas(control, mrn, f"F-{control}", pao2=95, fio2_percent=21, drawn=drawn,
-                       unit="Ward-5B", bed=str(connection))
+            text = gas(
+                control,
+                mrn,
+                f"F-{control}",
+                pao2=95,
+                fio2_percent=21,
+                drawn=drawn,
+                unit="Ward-5B",
+                bed=str(connection),
+            )
         else:
             pao2 = ICU_PAO2_CYCLE[(n // 3) % len(ICU_PAO2_CYCLE)]
-            text = gas(control, mrn, f"F-{control}", pao2=pao2, drawn=drawn,
-                       bed=f"{connection}{mrn[-1]}")
+            text = gas(
+                control, mrn, f"F-{control}", pao2=pao2, drawn=drawn, bed=f"{connection}{mrn[-1]}"
+            )
         out.append((control, text))
     return out
 
@@ -136,22 +145,27 @@ def test_sigkill_during_an_mllp_stream_loses_and_doubles_nothing(tmp_path: Path)
     receiver.start()
     http_port, mllp_port = free_port(), free_port()
     config = tmp_path / "site.toml"
-    config.write_text(site_toml(db_url=db_url, http_port=http_port, mllp_port=mllp_port,
-                                webhook_url=receiver.url))
+    config.write_text(
+        site_toml(db_url=db_url, http_port=http_port, mllp_port=mllp_port, webhook_url=receiver.url)
+    )
     service = ServiceProcess(config, http_port, tmp_path / "service.log")
     feed = Feed(mllp_port)
     kill_rng = random.Random(SEED)
     kills = 0
     try:
         service.start()
-        senders = [threading.Thread(target=feed.run, args=(c,), daemon=True)
-                   for c in range(CONNECTIONS)]
+        senders = [
+            threading.Thread(target=feed.run, args=(c,), daemon=True) for c in range(CONNECTIONS)
+        ]
         started = time.monotonic()
         for thread in senders:
             thread.start()
         # Kill at seeded random moments while the feed runs; at least MIN_KILLS times.
-        while (any(t.is_alive() for t in senders) and kills < MAX_KILLS
-               and time.monotonic() < feed.deadline):
+        while (
+            any(t.is_alive() for t in senders)
+            and kills < MAX_KILLS
+            and time.monotonic() < feed.deadline
+        ):
             time.sleep(kill_rng.uniform(*KILL_EVERY_S))
             if not any(t.is_alive() for t in senders):
                 break
@@ -165,7 +179,8 @@ def test_sigkill_during_an_mllp_stream_loses_and_doubles_nothing(tmp_path: Path)
         assert not feed.failures, feed.failures
         assert kills >= MIN_KILLS, (
             f"the feed finished after {kills} kills in {feed_seconds:.0f}s; "
-            f"send more messages so the run is killed at least {MIN_KILLS} times")
+            f"send more messages so the run is killed at least {MIN_KILLS} times"
+        )
 
         # Every notification reaches the receiver in the end (a lease left by a kill
         # runs out after 60 s, then the item is due again).
@@ -173,8 +188,9 @@ def test_sigkill_during_an_mllp_stream_loses_and_doubles_nothing(tmp_path: Path)
             rows = outbox_rows(db_url, ICU_CHANNEL)
             return bool(rows) and all(r["status"] == "sent" for r in rows)
 
-        assert wait_until(drained, timeout=150, every=1.0), (
-            [r for r in outbox_rows(db_url, ICU_CHANNEL) if r["status"] != "sent"][:5])
+        assert wait_until(drained, timeout=150, every=1.0), [
+            r for r in outbox_rows(db_url, ICU_CHANNEL) if r["status"] != "sent"
+        ][:5]
         service.stop()
     finally:
         service.kill()
@@ -190,8 +206,11 @@ def test_sigkill_during_an_mllp_stream_loses_and_doubles_nothing(tmp_path: Path)
 
     # 2. No flag lost: each notifying event of an ICU-North flag has its outbox row.
     rows = outbox_rows(db_url, ICU_CHANNEL)
-    events = [e for e in notifying_events(db_url) if e["patient_key"].split("|")[-1]
-              .startswith("HM7") and not e["patient_key"].endswith("3")]
+    events = [
+        e
+        for e in notifying_events(db_url)
+        if e["patient_key"].split("|")[-1].startswith("HM7") and not e["patient_key"].endswith("3")
+    ]
     per_alert_events = Counter(e["alert_id"] for e in events)
     per_alert_rows = Counter(r["alert_id"] for r in rows)
     assert per_alert_events == per_alert_rows
@@ -206,6 +225,8 @@ def test_sigkill_during_an_mllp_stream_loses_and_doubles_nothing(tmp_path: Path)
     assert set(counts) == sent_keys
     assert len(counts) == len(rows)
     repeats = sum(counts.values()) - len(counts)
-    print(f"\ncrash run: {len(plan)} messages, {kills} SIGKILLs, {feed.resends} resends "
-          f"({dict(feed.non_aa)}), {len(rows)} notifications, {repeats} raw repeats at "
-          f"the receiver, feed {feed_seconds:.0f}s")
+    print(
+        f"\ncrash run: {len(plan)} messages, {kills} SIGKILLs, {feed.resends} resends "
+        f"({dict(feed.non_aa)}), {len(rows)} notifications, {repeats} raw repeats at "
+        f"the receiver, feed {feed_seconds:.0f}s"
+    )

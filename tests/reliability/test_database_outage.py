@@ -60,8 +60,10 @@ def fhir_endpoint() -> Iterator[tuple[str, dict[str, Any]]]:
             path = self.path.split("?", 1)[0]
             if path.endswith("/Observation"):
                 state["searches"] += 1
-                found = [dict(o, meta={"versionId": "1", "lastUpdated": when})
-                         for o in state["observations"]]
+                found = [
+                    dict(o, meta={"versionId": "1", "lastUpdated": when})
+                    for o in state["observations"]
+                ]
             elif path.endswith("/Patient"):
                 found = [fs.patient("hg-out-1", mrn="HM880001")]
             elif path.endswith("/Encounter"):
@@ -90,17 +92,26 @@ def fhir_endpoint() -> Iterator[tuple[str, dict[str, Any]]]:
 def _message(n: int) -> tuple[str, str]:
     control = f"DB{n:04d}"
     mrn = f"HM88{n % 4:04d}"
-    return control, gas(control, mrn, f"F-{control}", pao2=70 + n % 20, fio2_percent=40,
-                        drawn=minutes_ago(200 - n), bed=str(n % 4))
+    return control, gas(
+        control,
+        mrn,
+        f"F-{control}",
+        pao2=70 + n % 20,
+        fio2_percent=40,
+        drawn=minutes_ago(200 - n),
+        bed=str(n % 4),
+    )
 
 
 def _observations() -> list[dict[str, Any]]:
     when = minutes_ago(20).isoformat()
     return [
-        fs.quantity_obs("hg-out-po2", "2703-7", 72, "mm[Hg]", pid="hg-out-1",
-                        eid="hg-out-enc", when=when),
-        fs.quantity_obs("hg-out-fio2", "3150-0", 40, "%", pid="hg-out-1",
-                        eid="hg-out-enc", when=when),
+        fs.quantity_obs(
+            "hg-out-po2", "2703-7", 72, "mm[Hg]", pid="hg-out-1", eid="hg-out-enc", when=when
+        ),
+        fs.quantity_obs(
+            "hg-out-fio2", "3150-0", 40, "%", pid="hg-out-1", eid="hg-out-enc", when=when
+        ),
     ]
 
 
@@ -108,15 +119,21 @@ def _observations() -> list[dict[str, Any]]:
 @pytest.mark.postgres
 @pytest.mark.timeout(400)
 def test_database_outage_answers_ar_then_recovers_without_restart(
-    pg_cluster: PgCluster, tmp_path: Path,
+    pg_cluster: PgCluster,
+    tmp_path: Path,
 ) -> None:
     receiver = Receiver()
     receiver.start()
     http_port, mllp_port = free_port(), free_port()
     with fhir_endpoint() as (fhir_url, fhir_state):
         config = tmp_path / "site.toml"
-        text = site_toml(db_url=pg_cluster.url, http_port=http_port, mllp_port=mllp_port,
-                         webhook_url=receiver.url, fhir=[(FHIR_SOURCE, fhir_url, 5)])
+        text = site_toml(
+            db_url=pg_cluster.url,
+            http_port=http_port,
+            mllp_port=mllp_port,
+            webhook_url=receiver.url,
+            fhir=[(FHIR_SOURCE, fhir_url, 5)],
+        )
         # Logs may show only the last four of the MRN, also in the error tracebacks.
         config.write_text(text.replace('display_key = "mrn"', 'display_key = "mrn-last4"'))
         service = ServiceProcess(config, http_port, tmp_path / "service.log")
@@ -164,7 +181,9 @@ def test_database_outage_answers_ar_then_recovers_without_restart(
 
             polled = wait_until(
                 lambda: count_rows(pg_cluster.url, "readings", source_system=FHIR_SOURCE) >= 2,
-                timeout=40, every=1.0)
+                timeout=40,
+                every=1.0,
+            )
             health_after = httpx.get(service.base + "/health", timeout=10)
             assert service.process.pid == pid and service.process.poll() is None  # type: ignore[union-attr]
             assert service.starts == 1
@@ -176,13 +195,16 @@ def test_database_outage_answers_ar_then_recovers_without_restart(
     assert during and all(code in ("AR", "no ACK") for code in during.values()), during
     assert "AR" in during.values(), "the listener answers AR (resend later), not silence"
     assert health.status_code == 503, health.text
-    assert (f"scheduled job poll:{FHIR_SOURCE} failed" in log_during
-            or f"poll of {FHIR_SOURCE} failed" in log_during), log_during[-3000:]
+    assert (
+        f"scheduled job poll:{FHIR_SOURCE} failed" in log_during
+        or f"poll of {FHIR_SOURCE} failed" in log_during
+    ), log_during[-3000:]
     # Error paths (tracebacks of a lost connection) carry no full identifier either.
     full_log = service.log_text()
     assert "Traceback" in full_log
-    leaked = [m for m in ("HM880000", "HM880001", "HM880002", "HM880003", "Thornbury")
-              if m in full_log]
+    leaked = [
+        m for m in ("HM880000", "HM880001", "HM880002", "HM880003", "Thornbury") if m in full_log
+    ]
     assert not leaked, f"identifiers in the log: {leaked}"
     # After: every message of the feed stored exactly once (three OBX each).
     stored = stored_control_ids(pg_cluster.url)

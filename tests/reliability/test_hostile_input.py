@@ -59,8 +59,15 @@ def _good(prefix: str = "GD") -> tuple[str, bytes]:
     """A good gas, drawn a minute after the one before (a lab sends in draw order)."""
     n = next(_ids)
     control = f"{prefix}{n:05d}"
-    text = gas(control, f"HM44{n % 7:04d}", f"F-{control}", pao2=80, fio2_percent=30,
-               drawn=_FIRST_DRAW + timedelta(minutes=n), unit="Ward-5B")
+    text = gas(
+        control,
+        f"HM44{n % 7:04d}",
+        f"F-{control}",
+        pao2=80,
+        fio2_percent=30,
+        drawn=_FIRST_DRAW + timedelta(minutes=n),
+        unit="Ward-5B",
+    )
     return control, text.encode()
 
 
@@ -104,8 +111,12 @@ def _msa(ack: bytes) -> tuple[str, str, str]:
     return fields[1], fields[2], fields[3]
 
 
-def _exchange(port: int, pieces: list[bytes], wait_for: str, timeout: float = 15.0,
-              ) -> list[tuple[str, str, str]]:
+def _exchange(
+    port: int,
+    pieces: list[bytes],
+    wait_for: str,
+    timeout: float = 15.0,
+) -> list[tuple[str, str, str]]:
     """Send ``pieces`` (one write each) on one connection; read ACKs until the one whose
     MSA-2 is ``wait_for`` arrives. Fails on timeout: the listener must not hang."""
     answers: list[tuple[str, str, str]] = []
@@ -120,7 +131,8 @@ def _exchange(port: int, pieces: list[bytes], wait_for: str, timeout: float = 15
                 chunk = sock.recv(65536)
             except TimeoutError:
                 raise AssertionError(
-                    f"no ACK for {wait_for} in {timeout}s; got {answers}") from None
+                    f"no ACK for {wait_for} in {timeout}s; got {answers}"
+                ) from None
             if not chunk:
                 raise AssertionError(f"connection closed before the ACK for {wait_for}: {answers}")
             buffer += chunk
@@ -146,13 +158,16 @@ def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[ServicePr
     receiver.start()
     http_port, mllp_port = free_port(), free_port()
     db_url = f"sqlite:///{tmp}/gasgap.db"
-    text = site_toml(db_url=db_url, http_port=http_port, mllp_port=mllp_port,
-                     webhook_url=receiver.url)
-    text = text.replace(f"port = {mllp_port}\n",
-                        f"port = {mllp_port}\nmax_message_bytes = {MAX_MESSAGE_BYTES}\n"
-                        # above the 150 held connections below; the cap itself is
-                        # tested in tests/integration/test_mllp.py
-                        "max_connections = 200\n")
+    text = site_toml(
+        db_url=db_url, http_port=http_port, mllp_port=mllp_port, webhook_url=receiver.url
+    )
+    text = text.replace(
+        f"port = {mllp_port}\n",
+        f"port = {mllp_port}\nmax_message_bytes = {MAX_MESSAGE_BYTES}\n"
+        # above the 150 held connections below; the cap itself is
+        # tested in tests/integration/test_mllp.py
+        "max_connections = 200\n",
+    )
     config = tmp / "site.toml"
     config.write_text(text)
     service = ServiceProcess(config, http_port, tmp / "service.log")
@@ -160,7 +175,8 @@ def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[ServicePr
     try:
         yield service, mllp_port, db_url
         assert service.process is not None and service.process.poll() is None, (
-            "the service died under hostile input:\n" + service.log_text()[-3000:])
+            "the service died under hostile input:\n" + service.log_text()[-3000:]
+        )
     finally:
         service.kill()
         receiver.stop()
@@ -170,12 +186,18 @@ GOOD_SENT: set[str] = set()
 
 
 @pytest.mark.slow
-@settings(max_examples=1000, deadline=None, derandomize=True,
-          suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
-@given(bad=mutated_bytes(), framed=st.booleans(), garbage=st.binary(max_size=64),
-       data=st.data())
+@settings(
+    max_examples=1000,
+    deadline=None,
+    derandomize=True,
+    suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
+)
+@given(bad=mutated_bytes(), framed=st.booleans(), garbage=st.binary(max_size=64), data=st.data())
 def test_mutated_frames_between_good_messages(
-    served: tuple[ServiceProcess, int, str], bad: bytes, framed: bool, garbage: bytes,
+    served: tuple[ServiceProcess, int, str],
+    bad: bytes,
+    framed: bool,
+    garbage: bytes,
     data: st.DataObject,
 ) -> None:
     _service, port, _db = served
@@ -247,8 +269,9 @@ def test_slow_and_abandoned_partial_frames_do_not_block_others(
         for i in range(150):  # bounded: 150 loopback connections, each a few bytes
             # from 30 loopback addresses (all of 127/8 is loopback on Linux), five each:
             # under the per-address cap of 8, so they stay open and fill the listener
-            sock = socket.create_connection(("127.0.0.1", port), timeout=10,
-                                            source_address=(f"127.0.0.{2 + i % 30}", 0))
+            sock = socket.create_connection(
+                ("127.0.0.1", port), timeout=10, source_address=(f"127.0.0.{2 + i % 30}", 0)
+            )
             partial = SB + _good()[1][: 5 + i % 200]
             sock.sendall(partial[: 1 + i % len(partial)])
             held.append(sock)
@@ -288,8 +311,12 @@ def _ingest(path: Path) -> tuple[Any, list[str], str]:
     url = f"sqlite:///{path.with_suffix('.db')}"
     db = open_database(url)
     try:
-        report = ingest_files([path], Pipeline(db), SourceContext(patient_id_system=fs.MRN_SYSTEM),
-                              now=lambda: datetime.now(UTC))
+        report = ingest_files(
+            [path],
+            Pipeline(db),
+            SourceContext(patient_id_system=fs.MRN_SYSTEM),
+            now=lambda: datetime.now(UTC),
+        )
         with db.begin(read_only=True) as conn:
             reasons = [q.reason for q in list_quarantine(conn, limit=100_000)]
     finally:
@@ -298,8 +325,9 @@ def _ingest(path: Path) -> tuple[Any, list[str], str]:
 
 
 def _observation(oid: str, value: float, when: datetime) -> dict[str, Any]:
-    return fs.quantity_obs(oid, "2703-7", value, "mm[Hg]", pid="hg-fz-1", eid=None,
-                           when=when.isoformat(), version="1")
+    return fs.quantity_obs(
+        oid, "2703-7", value, "mm[Hg]", pid="hg-fz-1", eid=None, when=when.isoformat(), version="1"
+    )
 
 
 NDJSON_BYTES = b'{}[]":,0123456789.-eE truefalsn\\u"ab\x00\xff\t\r'
@@ -326,11 +354,16 @@ def _stdlib_json_object(line: bytes) -> bool:
 
 
 @pytest.mark.slow
-@settings(max_examples=80, deadline=None, derandomize=True,
-          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+@settings(
+    max_examples=80,
+    deadline=None,
+    derandomize=True,
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
 @given(bad=st.lists(mutated_line(), min_size=1, max_size=6))
 def test_mutated_ndjson_lines_are_quarantined_and_good_lines_stored(
-    tmp_path: Path, bad: list[bytes],
+    tmp_path: Path,
+    bad: list[bytes],
 ) -> None:
     n = next(_ids)
     when = datetime.now(UTC) - timedelta(hours=2)
@@ -365,12 +398,20 @@ def _delivery_ids(url: str) -> list[str]:
 
 
 @pytest.mark.slow
-@settings(max_examples=50, deadline=None, derandomize=True,
-          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
-@given(bad=st.lists(mutated_bytes(alphabet=HL7_BYTES.replace(SB, b"").replace(EB, b"")),
-                    min_size=1, max_size=5))
+@settings(
+    max_examples=50,
+    deadline=None,
+    derandomize=True,
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
+@given(
+    bad=st.lists(
+        mutated_bytes(alphabet=HL7_BYTES.replace(SB, b"").replace(EB, b"")), min_size=1, max_size=5
+    )
+)
 def test_mutated_hl7_messages_in_a_file_are_quarantined_and_good_ones_stored(
-    tmp_path: Path, bad: list[bytes],
+    tmp_path: Path,
+    bad: list[bytes],
 ) -> None:
     good: list[str] = []
     parts: list[bytes] = []
@@ -409,15 +450,32 @@ def test_atheris_run_over_the_hl7_and_fhir_readers(tmp_path: Path) -> None:
     harness = Path(__file__).with_name("fuzz_atheris.py")
     corpus = tmp_path / "corpus"
     repo = str(Path(__file__).resolve().parents[2])
-    seeded = subprocess.run([sys.executable, str(harness), "--seeds", str(corpus)], cwd=repo,
-                            capture_output=True, text=True, timeout=60)
+    seeded = subprocess.run(
+        [sys.executable, str(harness), "--seeds", str(corpus)],
+        cwd=repo,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert seeded.returncode == 0, seeded.stderr
     run = subprocess.run(
-        [sys.executable, str(harness), "-runs=40000", "-max_total_time=40", "-seed=20261202",
-         f"-artifact_prefix={tmp_path}/", "-print_final_stats=1", str(corpus)],
-        cwd=repo, capture_output=True, text=True, timeout=150,
+        [
+            sys.executable,
+            str(harness),
+            "-runs=40000",
+            "-max_total_time=40",
+            "-seed=20261202",
+            f"-artifact_prefix={tmp_path}/",
+            "-print_final_stats=1",
+            str(corpus),
+        ],
+        cwd=repo,
+        capture_output=True,
+        text=True,
+        timeout=150,
     )
-    crashes = sorted(p.name for p in tmp_path.iterdir()
-                     if p.name.startswith(("crash-", "timeout-")))
+    crashes = sorted(
+        p.name for p in tmp_path.iterdir() if p.name.startswith(("crash-", "timeout-"))
+    )
     assert run.returncode == 0 and not crashes, (crashes, run.stderr[-4000:])
     assert "Done" in run.stderr, run.stderr[-2000:]

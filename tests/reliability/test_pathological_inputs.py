@@ -49,31 +49,54 @@ _counter = iter(range(10_000))
 def _normal() -> tuple[str, str]:
     n = next(_counter)
     control = f"NORM{n:04d}"
-    return control, gas(control, f"HM5500{n % 10:02d}", f"F-{control}", pao2=92,
-                        fio2_percent=30, drawn=minutes_ago(120 - n), unit="Ward-5B")
+    return control, gas(
+        control,
+        f"HM5500{n % 10:02d}",
+        f"F-{control}",
+        pao2=92,
+        fio2_percent=30,
+        drawn=minutes_ago(120 - n),
+        unit="Ward-5B",
+    )
 
 
 def ambiguous_oru(obx_count: int = 5000) -> bytes:
-    obxs = [h.obx(n, "2703-7", str(80 + n % 9), "mm[Hg]", text="PO2 arterial")
-            for n in range(1, obx_count + 1)]
+    obxs = [
+        h.obx(n, "2703-7", str(80 + n % 9), "mm[Hg]", text="PO2 arterial")
+        for n in range(1, obx_count + 1)
+    ]
     when = minutes_ago(200).strftime("%Y%m%d%H%M%S+0000")
-    return h.message(h.msh("PATH5000", when=when), h.pid("HM559999"),
-                     h.obr("F-PATH5000", collected=when), *obxs).encode()
+    return h.message(
+        h.msh("PATH5000", when=when), h.pid("HM559999"), h.obr("F-PATH5000", collected=when), *obxs
+    ).encode()
 
 
 def big_bundle(n: int = 2500) -> bytes:
     when = minutes_ago(90).isoformat()
-    resources: list[dict[str, Any]] = [fs.patient("hg-big", mrn="HM558888"),
-                                       fs.encounter("hg-big-enc", pid="hg-big")]
-    resources += [fs.quantity_obs(f"hg-big-{i}", "2703-7", 70 + i % 30, "mm[Hg]",
-                                  pid="hg-big", eid="hg-big-enc", when=when)
-                  for i in range(n)]
+    resources: list[dict[str, Any]] = [
+        fs.patient("hg-big", mrn="HM558888"),
+        fs.encounter("hg-big-enc", pid="hg-big"),
+    ]
+    resources += [
+        fs.quantity_obs(
+            f"hg-big-{i}",
+            "2703-7",
+            70 + i % 30,
+            "mm[Hg]",
+            pid="hg-big",
+            eid="hg-big-enc",
+            when=when,
+        )
+        for i in range(n)
+    ]
     return json.dumps(fs.bundle("history", resources)).encode()
 
 
 def deep_resource(levels: int = 900) -> bytes:
-    return (b'{"resourceType": "Observation", "id": "hg-deep", "status": "final", '
-            b'"extension": ' + b"[" * levels + b"]" * levels + b"}")
+    return (
+        b'{"resourceType": "Observation", "id": "hg-deep", "status": "final", '
+        b'"extension": ' + b"[" * levels + b"]" * levels + b"}"
+    )
 
 
 def _db_bytes(path: Path) -> int:
@@ -93,9 +116,13 @@ def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[ServicePr
     receiver = Receiver()
     receiver.start()
     http_port, mllp_port = free_port(), free_port()
-    text = site_toml(db_url=f"sqlite:///{db_path}", http_port=http_port, mllp_port=mllp_port,
-                     webhook_url=receiver.url, fhir=[(HOOK_SOURCE, "http://127.0.0.1:9/fhir",
-                                                      3600)])
+    text = site_toml(
+        db_url=f"sqlite:///{db_path}",
+        http_port=http_port,
+        mllp_port=mllp_port,
+        webhook_url=receiver.url,
+        fhir=[(HOOK_SOURCE, "http://127.0.0.1:9/fhir", 3600)],
+    )
     text = text.replace("max_request_bytes = 65536", "max_request_bytes = 4000000")
     text = text.replace("[http]\n", '[http]\nhook_secret_env = "GASGAP_TEST_HOOK"\n')
     config = tmp / "site.toml"
@@ -160,16 +187,23 @@ def test_oversized_message(served: tuple[ServiceProcess, int, Path]) -> None:
     code, took, _ = _while(lambda: _mllp_send(port, raw), port)
     assert code == "AE" and took < 1.0, (code, took)
     assert _db_bytes(db_path) - before <= 2 * len(raw)
-    kept = httpx.get(service.base + "/api/quarantine", params={"source": "hl7:lab"},
-                     headers={"Authorization": f"Bearer {API_TOKEN}"}, timeout=10).json()
+    kept = httpx.get(
+        service.base + "/api/quarantine",
+        params={"source": "hl7:lab"},
+        headers={"Authorization": f"Bearer {API_TOKEN}"},
+        timeout=10,
+    ).json()
     heads = [i for i in kept["items"] if "limit" in i["reason"]]
     assert heads and heads[0]["payload_bytes"] <= 65536  # its head, bounded
 
 
 def _hook(service: ServiceProcess, body: bytes) -> int:
-    response = httpx.post(f"{service.base}/hooks/fhir/{HOOK_SOURCE}", content=body,
-                          headers={"X-Gasgap-Hook-Secret": HOOK_SECRET,
-                                   "Content-Type": "application/fhir+json"}, timeout=120)
+    response = httpx.post(
+        f"{service.base}/hooks/fhir/{HOOK_SOURCE}",
+        content=body,
+        headers={"X-Gasgap-Hook-Secret": HOOK_SECRET, "Content-Type": "application/fhir+json"},
+        timeout=120,
+    )
     return response.status_code
 
 
@@ -179,8 +213,9 @@ def test_bundle_of_2500_observations(served: tuple[ServiceProcess, int, Path]) -
     service, port, _ = served
     waits = []
     done: dict[str, int] = {}
-    thread = threading.Thread(target=lambda: done.update(status=_hook(service, big_bundle())),
-                              daemon=True)
+    thread = threading.Thread(
+        target=lambda: done.update(status=_hook(service, big_bundle())), daemon=True
+    )
     thread.start()
     for pause in (0.3, 4.0, 4.0):  # early, and twice while the later parts are stored
         time.sleep(pause)
@@ -207,5 +242,9 @@ def test_resource_nested_900_deep(served: tuple[ServiceProcess, int, Path]) -> N
     assert _db_bytes(db_path) - before <= 2 * len(body) + 65536  # + the normal gas
     health = httpx.get(service.base + "/health", timeout=10)
     assert health.status_code == 200
-    assert httpx.get(service.base + "/api/quarantine",
-                     headers={"Authorization": f"Bearer {API_TOKEN}"}).status_code == 200
+    assert (
+        httpx.get(
+            service.base + "/api/quarantine", headers={"Authorization": f"Bearer {API_TOKEN}"}
+        ).status_code
+        == 200
+    )

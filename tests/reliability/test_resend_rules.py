@@ -55,17 +55,37 @@ def _plan() -> list[tuple[str, str, str]]:
         drawn = minutes_ago(MESSAGES + 30 - n)
         if n % 9 == 4:  # every value unreadable: refused result by result (AE)
             when = drawn.strftime("%Y%m%d%H%M%S+0000")
-            text = h.message(h.msh(control, when=when), h.pid(f"HM66{n:04d}"), h.obr(f"F-{control}",
-                             collected=when),
-                             h.obx(1, "2703-7", "abc", "mm[Hg]", text="PO2 arterial"))
+            text = h.message(
+                h.msh(control, when=when),
+                h.pid(f"HM66{n:04d}"),
+                h.obr(f"F-{control}", collected=when),
+                h.obx(1, "2703-7", "abc", "mm[Hg]", text="PO2 arterial"),
+            )
             out.append((control, text, "AE"))
         elif n % 9 == 7:  # no OBX-3 code anywhere: nothing readable (AE, kept whole)
-            text = h.message(h.msh(control), h.pid(f"HM66{n:04d}"), h.obr(f"F-{control}"),
-                             "OBX|1|NM|||91|mm[Hg]|||||F")
+            text = h.message(
+                h.msh(control),
+                h.pid(f"HM66{n:04d}"),
+                h.obr(f"F-{control}"),
+                "OBX|1|NM|||91|mm[Hg]|||||F",
+            )
             out.append((control, text, "AE"))
         else:
-            out.append((control, gas(control, f"HM66{n % 3:04d}", f"F-{control}", pao2=90,
-                                     fio2_percent=30, drawn=drawn, unit="Ward-5B"), "AA"))
+            out.append(
+                (
+                    control,
+                    gas(
+                        control,
+                        f"HM66{n % 3:04d}",
+                        f"F-{control}",
+                        pao2=90,
+                        fio2_percent=30,
+                        drawn=drawn,
+                        unit="Ward-5B",
+                    ),
+                    "AA",
+                )
+            )
     return out
 
 
@@ -116,8 +136,9 @@ def test_an_engine_resending_ar_and_silence_loses_nothing_through_a_lock(tmp_pat
     receiver.start()
     http_port, mllp_port = free_port(), free_port()
     config = tmp_path / "site.toml"
-    config.write_text(site_toml(db_url=db_url, http_port=http_port, mllp_port=mllp_port,
-                                webhook_url=receiver.url))
+    config.write_text(
+        site_toml(db_url=db_url, http_port=http_port, mllp_port=mllp_port, webhook_url=receiver.url)
+    )
     service = ServiceProcess(config, http_port, tmp_path / "service.log")
     plan = _plan()
     engine = InterfaceEngine(mllp_port)
@@ -139,16 +160,19 @@ def test_an_engine_resending_ar_and_silence_loses_nothing_through_a_lock(tmp_pat
         receiver.stop()
 
     expected = {control: want for control, _, want in plan}
-    assert engine.final == expected, {c: (engine.final.get(c), w) for c, w in expected.items()
-                                      if engine.final.get(c) != w}
+    assert engine.final == expected, {
+        c: (engine.final.get(c), w) for c, w in expected.items() if engine.final.get(c) != w
+    }
     outage_answers = {code for _, code in engine.answers} - {"AA", "AE"}
     assert "AR" in outage_answers, engine.answers  # the outage was said, and said as AR
     stored = stored_control_ids(db_url)
     assert {c: stored.get(c) for c, w in expected.items() if w == "AA" and stored.get(c) != 3} == {}
     engine_sa = sa.create_engine(db_url)
     with engine_sa.connect() as conn:
-        kept = [r.raw_text or bytes(r.raw_bytes).decode("utf-8", "replace")
-                for r in conn.execute(sa.select(quarantine_payloads))]
+        kept = [
+            r.raw_text or bytes(r.raw_bytes).decode("utf-8", "replace")
+            for r in conn.execute(sa.select(quarantine_payloads))
+        ]
     engine_sa.dispose()
     for control, want in expected.items():
         if want == "AE":

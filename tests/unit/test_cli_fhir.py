@@ -31,8 +31,9 @@ def test_jwks_prints_the_public_key_only(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:
     key = ec.generate_private_key(ec.SECP384R1())
-    pem = key.private_bytes(serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8,
-                            serialization.NoEncryption()).decode()
+    pem = key.private_bytes(
+        serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8, serialization.NoEncryption()
+    ).decode()
     monkeypatch.setenv("GASGAP_T_FHIR_KEY", pem)
     site = tmp_path / "site.toml"
     site.write_text(SITE)

@@ -42,8 +42,21 @@ UREG = pint.UnitRegistry()
 #: LOINC codes of the reference sheet, section 10 (checked there in GECCO / MII ICU /
 #: US Core artefacts); 718-7 haemoglobin and the venous pH / panel codes are from memory.
 REFERENCE_LOINC = {
-    "2703-7", "2705-2", "2019-8", "2021-4", "2744-1", "2708-6", "59408-5", "3150-0",
-    "19994-3", "3151-8", "107117-4", "76248-4", "76530-5", "8310-5", "24336-0",
+    "2703-7",
+    "2705-2",
+    "2019-8",
+    "2021-4",
+    "2744-1",
+    "2708-6",
+    "59408-5",
+    "3150-0",
+    "19994-3",
+    "3151-8",
+    "107117-4",
+    "76248-4",
+    "76530-5",
+    "8310-5",
+    "24336-0",
 }
 FROM_MEMORY_LOINC = {"718-7", "2746-6", "24339-4"}
 
@@ -69,10 +82,16 @@ def obx_rows(message: str) -> list[dict[str, str]]:
     rows = []
     for obx in parsed.segments("OBX"):
         code = str(obx[3]).split("^")
-        rows.append({
-            "code": code[0], "system": code[2], "value": str(obx[5]),
-            "unit": str(obx[6]).split("^")[0], "status": str(obx[11]), "time": str(obx[14]),
-        })
+        rows.append(
+            {
+                "code": code[0],
+                "system": code[2],
+                "value": str(obx[5]),
+                "unit": str(obx[6]).split("^")[0],
+                "status": str(obx[11]),
+                "time": str(obx[14]),
+            }
+        )
     return rows
 
 
@@ -81,8 +100,11 @@ def header(message: str) -> dict[str, str]:
     msh, pid, obr = parsed.segment("MSH"), parsed.segment("PID"), parsed.segment("OBR")
     spm = parsed.segment("SPM")
     return {
-        "control_id": str(msh[10]), "sent": str(msh[7]), "mrn": str(pid[3]).split("^")[0],
-        "order": str(obr[3]).split("^")[0], "drawn": str(obr[7]),
+        "control_id": str(msh[10]),
+        "sent": str(msh[7]),
+        "mrn": str(pid[3]).split("^")[0],
+        "order": str(obr[3]).split("^")[0],
+        "drawn": str(obr[7]),
         "specimen": str(spm[4]).split("^")[0],
     }
 
@@ -240,10 +262,19 @@ def test_every_demo_hl7_message_parses_with_hl7apy_and_python_hl7(demo: Path) ->
 
 
 def test_demo_uses_the_reference_sheets_loinc_codes(demo: Path, charting: list[dict]) -> None:
-    used = {r["code"] for name in (generate.LAB_FILE, generate.LATE_FILE)
-            for m in hl7_messages(demo / name) for r in obx_rows(m) if r["system"] == "LN"}
-    used |= {c["code"] for r in charting for c in r["code"]["coding"]
-             if c["system"] == "http://loinc.org"}
+    used = {
+        r["code"]
+        for name in (generate.LAB_FILE, generate.LATE_FILE)
+        for m in hl7_messages(demo / name)
+        for r in obx_rows(m)
+        if r["system"] == "LN"
+    }
+    used |= {
+        c["code"]
+        for r in charting
+        for c in r["code"]["coding"]
+        if c["system"] == "http://loinc.org"
+    }
     assert used <= REFERENCE_LOINC | FROM_MEMORY_LOINC
     assert {"2703-7", "2705-2", "59408-5", "3150-0", "19994-3", "76248-4"} <= used
 
@@ -362,8 +393,12 @@ def test_fio2_is_a_fraction_from_the_lab_and_a_percent_in_the_chart(
     head, rows = gases["HGH-1009"][0]
     lab = next(r for r in rows if r["code"] == "3150-0")
     assert lab["unit"] == "1"
-    chart = [r for r in charting if r["code"]["coding"][0]["code"] == "3150-0"
-             and r["subject"]["reference"] == "Patient/hgh1009"]
+    chart = [
+        r
+        for r in charting
+        if r["code"]["coding"][0]["code"] == "3150-0"
+        and r["subject"]["reference"] == "Patient/hgh1009"
+    ]
     assert {r["valueQuantity"]["code"] for r in chart} == {"%"}
     assert float(lab["value"]) * 100 == pytest.approx(chart[0]["valueQuantity"]["value"])
 
@@ -381,8 +416,11 @@ def test_late_gas_arrives_after_a_later_drawn_gas(demo: Path, gases: Gases) -> N
     late = [header(m) for m in hl7_messages(demo / generate.LATE_FILE)]
     assert len(late) == 1
     on_time = [h for h, _ in gases[late[0]["mrn"]] if h["control_id"] != late[0]["control_id"]]
-    overtaken = [h for h in on_time if dtm(h["drawn"]) > dtm(late[0]["drawn"])
-                 and dtm(h["sent"]) < dtm(late[0]["sent"])]
+    overtaken = [
+        h
+        for h in on_time
+        if dtm(h["drawn"]) > dtm(late[0]["drawn"]) and dtm(h["sent"]) < dtm(late[0]["sent"])
+    ]
     assert overtaken
     late_by = dtm(late[0]["sent"]) - dtm(late[0]["drawn"])
     assert late_by >= (dtm(overtaken[0]["sent"]) - dtm(overtaken[0]["drawn"])) * 3
@@ -391,7 +429,8 @@ def test_late_gas_arrives_after_a_later_drawn_gas(demo: Path, gases: Gases) -> N
 def test_record_system_gas_is_corrected_as_a_new_version(demo: Path) -> None:
     lines = [r for r in fhir_lines(demo / generate.EHR_FILE) if r["id"].endswith("g1012-2-paco2")]
     assert [(r["meta"]["versionId"], r["status"], r["valueQuantity"]["value"]) for r in lines] == [
-        ("1", "final", 58), ("2", "corrected", 41.0)
+        ("1", "final", 58),
+        ("2", "corrected", 41.0),
     ]
 
 
@@ -436,8 +475,10 @@ def test_icu_feed_validates_and_has_the_expected_kinds(icu: Path) -> None:
     messages = hl7_messages(icu / generate.LAB_FILE)
     assert_fhir_conformant(lines)
     assert_hl7_conformant(messages)
-    kinds = Counter(r["code"]["coding"][0]["code"] if r["resourceType"] == "Observation"
-                    else r["resourceType"] for r in lines)
+    kinds = Counter(
+        r["code"]["coding"][0]["code"] if r["resourceType"] == "Observation" else r["resourceType"]
+        for r in lines
+    )
     # 2 beds x 48 h, the first admission within 12 h and gaps of 2-24 h between stays.
     assert 40 <= kinds["59408-5"] <= 96  # SpO2 hourly while occupied
     assert 2 <= kinds["Patient"] <= 6

@@ -189,9 +189,7 @@ def upgrade() -> None:
             name="fk_derivation_inputs_derivation_id_derivations",
             ondelete="CASCADE",
         ),
-        sa.PrimaryKeyConstraint(
-            "derivation_id", "reading_logical_id", name="pk_derivation_inputs"
-        ),
+        sa.PrimaryKeyConstraint("derivation_id", "reading_logical_id", name="pk_derivation_inputs"),
     )
     op.create_index(
         "ix_derivation_inputs_reading_logical_id", "derivation_inputs", ["reading_logical_id"]
@@ -254,13 +252,9 @@ def upgrade() -> None:
         sa.Column("last_error", sa.Text(), nullable=True),
         sa.Column("sent_at", TIME, nullable=True),
         sa.PrimaryKeyConstraint("id", name="pk_outbox"),
-        sa.UniqueConstraint(
-            "idempotency_key", "channel", name="uq_outbox_idempotency_key_channel"
-        ),
+        sa.UniqueConstraint("idempotency_key", "channel", name="uq_outbox_idempotency_key_channel"),
     )
-    op.create_index(
-        "ix_outbox_status_next_attempt_at", "outbox", ["status", "next_attempt_at"]
-    )
+    op.create_index("ix_outbox_status_next_attempt_at", "outbox", ["status", "next_attempt_at"])
     op.create_index(
         "ix_outbox_patient_key_channel_status", "outbox", ["patient_key", "channel", "status"]
     )

@@ -27,13 +27,14 @@ def upgrade() -> None:
             sa.Column("processed", sa.Boolean(), nullable=False, server_default=sa.true())
         )
     op.create_index(
-        "ix_readings_unprocessed", "readings", ["patient_key"],
-        sqlite_where=sa.text("NOT processed"), postgresql_where=sa.text("NOT processed"),
+        "ix_readings_unprocessed",
+        "readings",
+        ["patient_key"],
+        sqlite_where=sa.text("NOT processed"),
+        postgresql_where=sa.text("NOT processed"),
     )
     with op.batch_alter_table("patients") as batch:
-        batch.add_column(
-            sa.Column("revision", sa.Integer(), nullable=False, server_default="0")
-        )
+        batch.add_column(sa.Column("revision", sa.Integer(), nullable=False, server_default="0"))
     with op.batch_alter_table("alerts") as batch:
         batch.add_column(
             sa.Column("historical", sa.Boolean(), nullable=False, server_default=sa.false())

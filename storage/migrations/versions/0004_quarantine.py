@@ -36,9 +36,7 @@ def upgrade() -> None:
     )
     with op.batch_alter_table("quarantine") as batch:
         batch.add_column(sa.Column("payload_digest", sa.String(), nullable=True))
-        batch.add_column(
-            sa.Column("occurrences", sa.Integer(), nullable=False, server_default="1")
-        )
+        batch.add_column(sa.Column("occurrences", sa.Integer(), nullable=False, server_default="1"))
         batch.add_column(sa.Column("resolved_at", TIME, nullable=True))
         batch.add_column(sa.Column("resolution", sa.Text(), nullable=True))
     op.create_index("ix_quarantine_payload_digest", "quarantine", ["payload_digest"])

@@ -88,8 +88,11 @@ def smart_fhir_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Smar
             "token_lifetime": 600,
             "enforce_scopes": True,
             "smart_clients": [
-                {"client_id": "gasgap-test", "jwks": ec_jwks,
-                 "scopes": f"{READ_SCOPES} system/*.rds"},
+                {
+                    "client_id": "gasgap-test",
+                    "jwks": ec_jwks,
+                    "scopes": f"{READ_SCOPES} system/*.rds",
+                },
                 {"client_id": "gasgap-rsa", "jwks": rsa_jwks, "scopes": READ_SCOPES},
                 {"client_id": "gasgap-narrow", "jwks": ec_jwks, "scopes": "system/Patient.rs"},
             ],

@@ -61,8 +61,10 @@ def population(smart_fhir_server: SmartServer) -> Iterator[dict[str, Any]]:
     with httpx.Client(
         base_url=smart_fhir_server.base_url,
         timeout=10,
-        headers={"Authorization": f"Bearer {LOADER_TOKEN}",
-                 "Content-Type": "application/fhir+json"},
+        headers={
+            "Authorization": f"Bearer {LOADER_TOKEN}",
+            "Content-Type": "application/fhir+json",
+        },
     ) as client:
         for n in range(3):
             pid, eid, mrn = f"hg-bk-{tag}-{n}", f"hg-bk-enc-{tag}-{n}", f"HGB{tag.upper()}{n}"
@@ -70,26 +72,61 @@ def population(smart_fhir_server: SmartServer) -> Iterator[dict[str, Any]]:
             put(client, s.encounter(eid, pid))
             for day in (1, 2):
                 when = WHEN.format(day=day, hour=n + 1)
-                put(client, s.quantity_obs(f"po2-{tag}-{n}-{day}", "2703-7", 60.0 + 10 * day,
-                                           "mm[Hg]", pid=pid, eid=eid, when=when))
-                put(client, s.quantity_obs(f"fi-{tag}-{n}-{day}", "3150-0", 40, "%",
-                                           pid=pid, eid=eid, when=when))
+                put(
+                    client,
+                    s.quantity_obs(
+                        f"po2-{tag}-{n}-{day}",
+                        "2703-7",
+                        60.0 + 10 * day,
+                        "mm[Hg]",
+                        pid=pid,
+                        eid=eid,
+                        when=when,
+                    ),
+                )
+                put(
+                    client,
+                    s.quantity_obs(
+                        f"fi-{tag}-{n}-{day}", "3150-0", 40, "%", pid=pid, eid=eid, when=when
+                    ),
+                )
             people.append({"pid": pid, "mrn": mrn})
-        hr = s.quantity_obs(f"hr-{tag}", "8867-4", 88, "/min", pid=people[0]["pid"],
-                            eid=f"hg-bk-enc-{tag}-0", when=WHEN.format(day=1, hour=1))
+        hr = s.quantity_obs(
+            f"hr-{tag}",
+            "8867-4",
+            88,
+            "/min",
+            pid=people[0]["pid"],
+            eid=f"hg-bk-enc-{tag}-0",
+            when=WHEN.format(day=1, hour=1),
+        )
         put(client, hr)
-        put(client, {"resourceType": "Group", "id": f"hg-bk-grp-{tag}", "type": "person",
-                     "actual": True,
-                     "member": [{"entity": {"reference": f"Patient/{p['pid']}"}}
-                                for p in people[:2]]})
+        put(
+            client,
+            {
+                "resourceType": "Group",
+                "id": f"hg-bk-grp-{tag}",
+                "type": "person",
+                "actual": True,
+                "member": [{"entity": {"reference": f"Patient/{p['pid']}"}} for p in people[:2]],
+            },
+        )
     yield {"tag": tag, "people": people, "group": f"hg-bk-grp-{tag}"}
 
 
 def smart(server: SmartServer) -> SmartAuth:
-    settings = SmartSettings(client_id="gasgap-test", private_key_env=KEY_ENV,
-                             key_id="hg-ec-1", algorithm="ES384",
-                             scopes=("system/Observation.rs", "system/Patient.rs",
-                                     "system/Encounter.rs", "system/*.rds"))
+    settings = SmartSettings(
+        client_id="gasgap-test",
+        private_key_env=KEY_ENV,
+        key_id="hg-ec-1",
+        algorithm="ES384",
+        scopes=(
+            "system/Observation.rs",
+            "system/Patient.rs",
+            "system/Encounter.rs",
+            "system/*.rds",
+        ),
+    )
     return SmartAuth(settings, server.base_url, lookup=lambda name: server.ec_key_pem)
 
 
@@ -158,12 +195,16 @@ def test_export_crashed_mid_download_carries_on_and_loads(
 ) -> None:
     folder = tmp_path / "export"
     since = datetime.now(UTC) - timedelta(minutes=10)
-    request = ExportRequest(type_filters=(observation_type_filter(CodeTable.load()),),
-                            since=since)
+    request = ExportRequest(type_filters=(observation_type_filter(CodeTable.load()),), since=since)
     crash = CrashOnSecondFile()
     auth = smart(smart_fhir_server)
-    with BulkExporter(smart_fhir_server.base_url, folder, auth=auth, progress=crash,
-                      sleep=lambda _s: time.sleep(0.2)) as first:
+    with BulkExporter(
+        smart_fhir_server.base_url,
+        folder,
+        auth=auth,
+        progress=crash,
+        sleep=lambda _s: time.sleep(0.2),
+    ) as first:
         with pytest.raises(Crash):
             first.run(request)
     auth.close()
@@ -178,9 +219,22 @@ def test_export_crashed_mid_download_carries_on_and_loads(
     # restart: the command with the same folder carries on (no new kick-off)
     monkeypatch.setenv(KEY_ENV, smart_fhir_server.ec_key_pem)
     db_url = f"sqlite:///{tmp_path / 'gasgap.db'}"
-    code = main(["fhir", "backfill", "--config", str(site_file(tmp_path, smart_fhir_server)),
-                 "--db", db_url, "--dir", str(folder),
-                 "--since", since.isoformat(), "--no-progress", "--json"])
+    code = main(
+        [
+            "fhir",
+            "backfill",
+            "--config",
+            str(site_file(tmp_path, smart_fhir_server)),
+            "--db",
+            db_url,
+            "--dir",
+            str(folder),
+            "--since",
+            since.isoformat(),
+            "--no-progress",
+            "--json",
+        ]
+    )
     out = capsys.readouterr()
     assert code == 0, out.err
     summary = json.loads(out.out)
@@ -195,7 +249,8 @@ def test_export_crashed_mid_download_carries_on_and_loads(
     assert len(observations) == 12
     assert not any(o["id"].startswith("hr-") for o in observations)
     assert {p["id"] for p in lines_of(folder, "Patient")} >= {
-        p["pid"] for p in population["people"]}
+        p["pid"] for p in population["people"]
+    }
 
     # the job is gone from the server (DELETE), asked with a valid token
     checker = smart(smart_fhir_server)
@@ -211,7 +266,9 @@ def test_export_crashed_mid_download_carries_on_and_loads(
         with db.begin(read_only=True) as conn:
             for person in population["people"]:
                 got = readings_for_patient(
-                    conn, person["mrn"], datetime(2026, 3, 1, tzinfo=UTC),
+                    conn,
+                    person["mrn"],
+                    datetime(2026, 3, 1, tzinfo=UTC),
                     datetime(2026, 3, 3, tzinfo=UTC),
                 )
                 assert sorted((r.kind, r.value) for r in got) == sorted(
@@ -222,9 +279,22 @@ def test_export_crashed_mid_download_carries_on_and_loads(
         db.dispose()
 
     # a second run loads nothing new (same identities)
-    code = main(["fhir", "backfill", "--config", str(site_file(tmp_path, smart_fhir_server)),
-                 "--db", db_url, "--dir", str(folder),
-                 "--since", since.isoformat(), "--no-progress", "--json"])
+    code = main(
+        [
+            "fhir",
+            "backfill",
+            "--config",
+            str(site_file(tmp_path, smart_fhir_server)),
+            "--db",
+            db_url,
+            "--dir",
+            str(folder),
+            "--since",
+            since.isoformat(),
+            "--no-progress",
+            "--json",
+        ]
+    )
     again = json.loads(capsys.readouterr().out)
     assert code == 0 and again["stored"] == 0 and again["duplicates"] >= 12
 
@@ -234,8 +304,9 @@ def test_group_export_brings_only_the_group(
 ) -> None:
     auth = smart(smart_fhir_server)
     request = ExportRequest(level=ExportLevel.GROUP, group_id=population["group"])
-    with BulkExporter(smart_fhir_server.base_url, tmp_path / "g", auth=auth,
-                      sleep=lambda _s: time.sleep(0.2)) as exporter:
+    with BulkExporter(
+        smart_fhir_server.base_url, tmp_path / "g", auth=auth, sleep=lambda _s: time.sleep(0.2)
+    ) as exporter:
         result = exporter.run(request)
     auth.close()
     patients = {p["id"] for p in lines_of(tmp_path / "g", "Patient")}
@@ -249,9 +320,11 @@ def test_a_different_export_in_the_same_folder_is_refused(
 ) -> None:
     folder = tmp_path / "x"
     folder.mkdir()
-    ExportState(smart_fhir_server.base_url,
-                ExportRequest(level=ExportLevel.PATIENT).as_state()).save(folder)
-    with BulkExporter(smart_fhir_server.base_url, folder) as exporter, pytest.raises(
-        Exception, match="holds another export"
+    ExportState(
+        smart_fhir_server.base_url, ExportRequest(level=ExportLevel.PATIENT).as_state()
+    ).save(folder)
+    with (
+        BulkExporter(smart_fhir_server.base_url, folder) as exporter,
+        pytest.raises(Exception, match="holds another export"),
     ):
         exporter.run(ExportRequest())

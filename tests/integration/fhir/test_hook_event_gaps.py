@@ -28,12 +28,14 @@ SECRET = "hook-secret-for-gap-tests-7c1a"
 @pytest.fixture
 def service(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Iterator[Service]:
     monkeypatch.setenv("GASGAP_T_HOOK", SECRET)
-    config = validate_config({
-        "site": {"name": "Hollowmere General Hospital", "timezone": "Europe/London"},
-        "sources": {"fhir": [{"name": SOURCE, "base_url": "http://127.0.0.1:9/fhir"}]},
-        "database": {"url": f"sqlite:///{tmp_path}/gasgap.db"},
-        "http": {"hook_secret_env": "GASGAP_T_HOOK"},
-    })
+    config = validate_config(
+        {
+            "site": {"name": "Hollowmere General Hospital", "timezone": "Europe/London"},
+            "sources": {"fhir": [{"name": SOURCE, "base_url": "http://127.0.0.1:9/fhir"}]},
+            "database": {"url": f"sqlite:///{tmp_path}/gasgap.db"},
+            "http": {"hook_secret_env": "GASGAP_T_HOOK"},
+        }
+    )
     built = build_service(config, clock=lambda: NOW, channels={"log": _Silent()})
     yield built
     built.db.dispose()
@@ -44,12 +46,17 @@ def note(sub: str, kind: str, since: int, numbers: list[int], resources: list[di
         {"name": "subscription", "valueReference": {"reference": sub}},
         {"name": "type", "valueCode": kind},
         {"name": "events-since-subscription-start", "valueString": str(since)},
-    ] + [{"name": "notification-event",
-          "part": [{"name": "event-number", "valueString": str(n)}]} for n in numbers]
-    entries = [{"fullUrl": "urn:uuid:s", "resource": {"resourceType": "Parameters",
-                                                      "parameter": params}}]
-    entries += [{"fullUrl": f"http://127.0.0.1:9/fhir/{r['resourceType']}/{r['id']}",
-                 "resource": r} for r in resources]
+    ] + [
+        {"name": "notification-event", "part": [{"name": "event-number", "valueString": str(n)}]}
+        for n in numbers
+    ]
+    entries = [
+        {"fullUrl": "urn:uuid:s", "resource": {"resourceType": "Parameters", "parameter": params}}
+    ]
+    entries += [
+        {"fullUrl": f"http://127.0.0.1:9/fhir/{r['resourceType']}/{r['id']}", "resource": r}
+        for r in resources
+    ]
     return orjson.dumps({"resourceType": "Bundle", "type": "history", "entry": entries})
 
 
@@ -65,8 +72,11 @@ def test_a_gap_in_event_numbers_starts_a_poll(service: Service) -> None:
         return client.post(f"/hooks/fhir/{SOURCE}", content=body, headers=headers).status_code
 
     assert post(note(sub, "handshake", 0, [], [])) == 200
-    first = [fs.patient(), fs.encounter(),
-             fs.quantity_obs("hg-g-1", "2703-7", 58, "mm[Hg]", when="2026-11-30T08:15:00Z")]
+    first = [
+        fs.patient(),
+        fs.encounter(),
+        fs.quantity_obs("hg-g-1", "2703-7", 58, "mm[Hg]", when="2026-11-30T08:15:00Z"),
+    ]
     assert post(note(sub, "event-notification", 1, [1], first)) == 200
     assert polled == []  # event 1 after the handshake: nothing missed
     third = [fs.quantity_obs("hg-g-3", "2703-7", 61, "mm[Hg]", when="2026-11-30T08:45:00Z")]

@@ -62,8 +62,10 @@ def loader(server: SmartServer) -> httpx.Client:
     return httpx.Client(
         base_url=server.base_url,
         timeout=10,
-        headers={"Authorization": f"Bearer {LOADER_TOKEN}",
-                 "Content-Type": "application/fhir+json"},
+        headers={
+            "Authorization": f"Bearer {LOADER_TOKEN}",
+            "Content-Type": "application/fhir+json",
+        },
     )
 
 
@@ -79,8 +81,18 @@ def ward(smart_fhir_server: SmartServer) -> Iterator[dict[str, str]]:
     with loader(smart_fhir_server) as client:
         put(client, s.patient(ids["pid"], ids["mrn"], "1949-06-03"))
         put(client, s.encounter(ids["eid"], ids["pid"]))
-        put(client, s.quantity_obs(f"pao2-{tag}", "2703-7", 68.0, "mm[Hg]", pid=ids["pid"],
-                                   eid=ids["eid"], when="2026-11-30T09:40:00+01:00"))
+        put(
+            client,
+            s.quantity_obs(
+                f"pao2-{tag}",
+                "2703-7",
+                68.0,
+                "mm[Hg]",
+                pid=ids["pid"],
+                eid=ids["eid"],
+                when="2026-11-30T09:40:00+01:00",
+            ),
+        )
     yield ids
 
 
@@ -119,8 +131,9 @@ def test_a_key_nobody_registered_is_refused_as_invalid_client(
 
 def test_an_expired_assertion_is_refused(smart_fhir_server: SmartServer) -> None:
     # an assertion signed by a machine whose clock is ten minutes behind: exp is past
-    auth = smart(smart_fhir_server, smart_fhir_server.ec_key_pem,
-                 wall_clock=lambda: time.time() - 600)
+    auth = smart(
+        smart_fhir_server, smart_fhir_server.ec_key_pem, wall_clock=lambda: time.time() - 600
+    )
     with pytest.raises(SmartAuthError) as info:
         auth.token()
     assert info.value.error == "invalid_client"
@@ -128,8 +141,7 @@ def test_an_expired_assertion_is_refused(smart_fhir_server: SmartServer) -> None
 
 
 def test_a_scope_the_client_was_not_granted_is_refused(smart_fhir_server: SmartServer) -> None:
-    auth = smart(smart_fhir_server, smart_fhir_server.ec_key_pem,
-                 scopes=["system/Observation.cud"])
+    auth = smart(smart_fhir_server, smart_fhir_server.ec_key_pem, scopes=["system/Observation.cud"])
     with pytest.raises(SmartAuthError) as info:
         auth.token()
     assert info.value.error == "invalid_scope"
@@ -139,10 +151,18 @@ def test_a_token_without_the_observation_scope_is_reported_by_the_poll(
     smart_fhir_server: SmartServer, ward: dict[str, str]
 ) -> None:
     # the EHR granted Patient only: the token comes, the Observation search is refused
-    auth = smart(smart_fhir_server, smart_fhir_server.ec_key_pem, client_id="gasgap-narrow",
-                 scopes=["system/Patient.rs"])
-    with FhirPoller(smart_fhir_server.base_url, codes=CodeTable.load(), auth=auth,
-                    sleep=lambda _s: None) as poller, pytest.raises(FhirSourceError) as info:
+    auth = smart(
+        smart_fhir_server,
+        smart_fhir_server.ec_key_pem,
+        client_id="gasgap-narrow",
+        scopes=["system/Patient.rs"],
+    )
+    with (
+        FhirPoller(
+            smart_fhir_server.base_url, codes=CodeTable.load(), auth=auth, sleep=lambda _s: None
+        ) as poller,
+        pytest.raises(FhirSourceError) as info,
+    ):
         poller.poll(None)
     assert "HTTP 403" in str(info.value) and "Observation" in str(info.value)
 
@@ -152,16 +172,22 @@ def test_a_polled_source_behind_smart_reads_its_gas(
 ) -> None:
     auth = smart(smart_fhir_server, smart_fhir_server.ec_key_pem)
     start = datetime.now(UTC) - timedelta(minutes=5)
-    with FhirPoller(smart_fhir_server.base_url, codes=CodeTable.load(), auth=auth,
-                    patient_id_system=s.MRN_SYSTEM, sleep=lambda _s: None) as poller:
+    with FhirPoller(
+        smart_fhir_server.base_url,
+        codes=CodeTable.load(),
+        auth=auth,
+        patient_id_system=s.MRN_SYSTEM,
+        sleep=lambda _s: None,
+    ) as poller:
         batch = poller.poll(start)
         mine = [r for r in batch.readings if r.patient_key == ward["mrn"]]
         assert [(r.kind, r.value) for r in mine] == [(Kind.PAO2, pytest.approx(68.0))]
         assert mine[0].birth_date is not None  # the Patient search went through too
         # the server stops taking the token (revoked, restarted): 401, new token, retry
         assert auth._token is not None
-        auth._token = AccessToken("revoked-" + auth._token.value[-8:],
-                                  auth._token.expires_at, auth._token.scopes)
+        auth._token = AccessToken(
+            "revoked-" + auth._token.value[-8:], auth._token.expires_at, auth._token.scopes
+        )
         again = poller.poll(start)
     assert [r.delivery_id for r in again.readings if r.patient_key == ward["mrn"]] == [
         r.delivery_id for r in mine

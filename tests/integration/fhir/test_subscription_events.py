@@ -89,51 +89,73 @@ def topic(url: str) -> dict[str, Any]:
             {"url": f"{ST}.url", "valueUri": url},
             {"url": f"{ST}.title", "valueString": "Blood gas result (test)"},
             {"url": f"{ST}.resourceTrigger", "extension": trigger},
-            {"url": f"{ST}.canFilterBy", "extension": [
-                {"url": "resource", "valueUri": "Observation"},
-                {"url": "filterParameter", "valueString": "patient"}]},
+            {
+                "url": f"{ST}.canFilterBy",
+                "extension": [
+                    {"url": "resource", "valueUri": "Observation"},
+                    {"url": "filterParameter", "valueString": "patient"},
+                ],
+            },
         ],
-        "code": {"coding": [{"system": "http://hl7.org/fhir/fhir-types",
-                             "code": "SubscriptionTopic"}]},
+        "code": {
+            "coding": [{"system": "http://hl7.org/fhir/fhir-types", "code": "SubscriptionTopic"}]
+        },
     }
 
 
 def put(client: httpx.Client, resource: dict[str, Any]) -> None:
-    response = client.put(f"/{resource['resourceType']}/{resource['id']}", json=resource,
-                          headers={"Content-Type": "application/fhir+json"})
+    response = client.put(
+        f"/{resource['resourceType']}/{resource['id']}",
+        json=resource,
+        headers={"Content-Type": "application/fhir+json"},
+    )
     assert response.status_code in (200, 201), response.text
 
 
-def test_a_lost_notification_is_noticed_by_its_number(
-    fhir_server: str, receiver: Receiver
-) -> None:
+def test_a_lost_notification_is_noticed_by_its_number(fhir_server: str, receiver: Receiver) -> None:
     tag = uuid.uuid4().hex[:8]
     pid = f"hg-sub-{tag}"
     topic_url = f"http://hollowmere.example/fhir/SubscriptionTopic/gas-{tag}"
     with httpx.Client(base_url=fhir_server, timeout=10) as client:
         put(client, s.patient(pid, f"HGS{tag.upper()}", "1970-01-20"))
         put(client, topic(topic_url))
-        put(client, {
-            "resourceType": "Subscription",
-            "id": f"gas-{tag}",
-            "meta": {"profile": [f"{BP}/backport-subscription"]},
-            "status": "requested",
-            "reason": "gasgap test: blood gas results",
-            "criteria": topic_url,
-            "_criteria": {"extension": [{"url": f"{BP}/backport-filter-criteria",
-                                         "valueString": f"Observation?patient=Patient/{pid}"}]},
-            "channel": {
-                "type": "rest-hook",
-                "endpoint": f"http://127.0.0.1:{receiver.port}/hooks/fhir/ehr",
-                "payload": "application/fhir+json",
-                "_payload": {"extension": [{"url": f"{BP}/backport-payload-content",
-                                            "valueCode": "full-resource"}]},
+        put(
+            client,
+            {
+                "resourceType": "Subscription",
+                "id": f"gas-{tag}",
+                "meta": {"profile": [f"{BP}/backport-subscription"]},
+                "status": "requested",
+                "reason": "gasgap test: blood gas results",
+                "criteria": topic_url,
+                "_criteria": {
+                    "extension": [
+                        {
+                            "url": f"{BP}/backport-filter-criteria",
+                            "valueString": f"Observation?patient=Patient/{pid}",
+                        }
+                    ]
+                },
+                "channel": {
+                    "type": "rest-hook",
+                    "endpoint": f"http://127.0.0.1:{receiver.port}/hooks/fhir/ehr",
+                    "payload": "application/fhir+json",
+                    "_payload": {
+                        "extension": [
+                            {"url": f"{BP}/backport-payload-content", "valueCode": "full-resource"}
+                        ]
+                    },
+                },
             },
-        })
+        )
         receiver.wait_for(1)  # the handshake
         for n in range(1, 4):
-            put(client, s.quantity_obs(f"sub-po2-{tag}-{n}", "2703-7", 60.0 + n, "mm[Hg]",
-                                       pid=pid, eid=None))
+            put(
+                client,
+                s.quantity_obs(
+                    f"sub-po2-{tag}-{n}", "2703-7", 60.0 + n, "mm[Hg]", pid=pid, eid=None
+                ),
+            )
             receiver.wait_for(1 + n)  # one at a time, so they arrive in order
 
     deliveries = [parse_notification(body, "application/fhir+json") for body in receiver.bodies]

@@ -30,31 +30,52 @@ RAW_KEYS = ("pf_at", "previous_aa", "best_pf", "change_percent", "aa_excess", "f
 
 def _alert(rule: str = "oxygenation-band", state: AlertState = AlertState.RAISED) -> Alert:
     return Alert(
-        alert_id="a-1", patient_key="urn:x|HM720001", rule=rule, priority=Priority.HIGH,
-        state=state, raised_at=NOW, updated_at=NOW, sample_id="s-1",
-        summary="P/F <= 100: P/F 79", location=Location("ICU-North", "7", "1"),
+        alert_id="a-1",
+        patient_key="urn:x|HM720001",
+        rule=rule,
+        priority=Priority.HIGH,
+        state=state,
+        raised_at=NOW,
+        updated_at=NOW,
+        sample_id="s-1",
+        summary="P/F <= 100: P/F 79",
+        location=Location("ICU-North", "7", "1"),
     )
 
 
 def _numbers() -> dict[str, object]:
     # Shaped as the band rule writes them (monitor/engine/rules.py), values invented.
-    return {"pf": 79.0, "pf_at": DRAWN.isoformat(), "adjusted": True, "pf_measured": 65.0,
-            "threshold": 100.0}
+    return {
+        "pf": 79.0,
+        "pf_at": DRAWN.isoformat(),
+        "adjusted": True,
+        "pf_measured": 65.0,
+        "threshold": 100.0,
+    }
 
 
 def _message(event: str = "raised", numbers: dict[str, object] | None = None) -> str:
     alert = _alert(state=AlertState.RETRACTED if event == "retracted" else AlertState.RAISED)
-    n = notification_for(alert, event, None, display_key="HM720001", now=NOW,
-                         numbers=_numbers() if numbers is None else numbers,
-                         tz=ZoneInfo("America/Denver"))
+    n = notification_for(
+        alert,
+        event,
+        None,
+        display_key="HM720001",
+        now=NOW,
+        numbers=_numbers() if numbers is None else numbers,
+        tz=ZoneInfo("America/Denver"),
+    )
     return render.plain_text_body(n)
 
 
 def test_the_advisory_sentence_is_said_once() -> None:
     body = _message()
     assert body.count(ADVISORY) == 1, body
-    card = render.cds_hooks_cards(notification_for(
-        _alert(), "raised", None, display_key="HM720001", now=NOW, numbers=_numbers()))
+    card = render.cds_hooks_cards(
+        notification_for(
+            _alert(), "raised", None, display_key="HM720001", now=NOW, numbers=_numbers()
+        )
+    )
     detail = card["cards"][0]["detail"]
     assert detail.count("Advisory only") == 1, detail
 
@@ -88,15 +109,34 @@ def test_offset_label_reads_the_right_way_round() -> None:
     # of Etc/GMT names is inverted); the label must say UTC+02:00.
     ahead = datetime(2026, 3, 5, 12, 0, tzinfo=ZoneInfo("Etc/GMT-2"))
     assert render.offset_label(ahead) == "UTC+02:00"
-    assert render.offset_label(datetime(2026, 7, 1, tzinfo=ZoneInfo("America/Denver"))) == \
-        "UTC\u221206:00"  # MDT, from memory; a true minus sign, as on the unit board
+    assert (
+        render.offset_label(datetime(2026, 7, 1, tzinfo=ZoneInfo("America/Denver")))
+        == "UTC\u221206:00"
+    )  # MDT, from memory; a true minus sign, as on the unit board
     assert render.offset_label(NOW) == "UTC"
 
 
-@given(st.dictionaries(
-    st.sampled_from(["pf", "best_pf", "aa_gradient", "previous_aa", "aa_rise", "fio2",
-                     "fio2_lowest", "sf", "change_percent", "aa_expected", "aa_excess"]),
-    st.floats(min_value=0, max_value=900, allow_nan=False), min_size=1))
+@given(
+    st.dictionaries(
+        st.sampled_from(
+            [
+                "pf",
+                "best_pf",
+                "aa_gradient",
+                "previous_aa",
+                "aa_rise",
+                "fio2",
+                "fio2_lowest",
+                "sf",
+                "change_percent",
+                "aa_expected",
+                "aa_excess",
+            ]
+        ),
+        st.floats(min_value=0, max_value=900, allow_nan=False),
+        min_size=1,
+    )
+)
 def test_known_number_keys_never_show_raw(numbers: dict[str, float]) -> None:
     text = "\n".join(render.number_lines(numbers))
     assert not re.search(r"\b[a-z]+_[a-z_]+\b", text), text
@@ -104,8 +144,9 @@ def test_known_number_keys_never_show_raw(numbers: dict[str, float]) -> None:
 
 
 def test_log_fields_are_plain_json_values() -> None:
-    n = notification_for(_alert(), "raised", None, display_key="HM720001", now=NOW,
-                         numbers=_numbers())
+    n = notification_for(
+        _alert(), "raised", None, display_key="HM720001", now=NOW, numbers=_numbers()
+    )
     from adapters.notify.log import log_fields
 
     fields = log_fields(n)
@@ -122,8 +163,15 @@ def test_every_event_ends_with_the_advisory(event: str) -> None:
 def test_the_site_zone_survives_the_outbox_and_rules_the_message() -> None:
     # Through the outbox the notification is stored as JSON with times in UTC; the site
     # zone travels beside them, so the sent message still reads in site time.
-    n = notification_for(_alert(), "raised", None, display_key="HM720001", now=NOW,
-                         numbers=_numbers(), tz=ZoneInfo("Etc/GMT-2"))
+    n = notification_for(
+        _alert(),
+        "raised",
+        None,
+        display_key="HM720001",
+        now=NOW,
+        numbers=_numbers(),
+        tz=ZoneInfo("Etc/GMT-2"),
+    )
     again = json_to_notification(notification_to_json(n))
     assert again.created_at == NOW and again.site_zone == "Etc/GMT-2"
     body = render.plain_text_body(again)
@@ -132,15 +180,17 @@ def test_the_site_zone_survives_the_outbox_and_rules_the_message() -> None:
 
 
 def test_the_webhook_payload_says_the_advisory_once() -> None:
-    n = notification_for(_alert(), "raised", None, display_key="HM720001", now=NOW,
-                         numbers=_numbers())
+    n = notification_for(
+        _alert(), "raised", None, display_key="HM720001", now=NOW, numbers=_numbers()
+    )
     payload = json.dumps(render.flag_payload(n), ensure_ascii=False)
     assert payload.count("Advisory only") == 1
 
 
 def test_the_card_summary_names_priority_and_patient_once() -> None:
-    n = notification_for(_alert(), "raised", None, display_key="HM720001", now=NOW,
-                         numbers=_numbers())
+    n = notification_for(
+        _alert(), "raised", None, display_key="HM720001", now=NOW, numbers=_numbers()
+    )
     summary = render.card_summary(n)
     assert summary.count("HM720001") == 1 and len(summary) < 140
     assert "HIGH" in summary

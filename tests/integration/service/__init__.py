@@ -82,7 +82,11 @@ def webhook_receiver() -> Iterator[tuple[str, Received]]:
 
 
 def site_toml(
-    *, db_url: str, http_port: int, mllp_port: int | None, webhook_url: str,
+    *,
+    db_url: str,
+    http_port: int,
+    mllp_port: int | None,
+    webhook_url: str,
     fhir: list[tuple[str, str, float]] = (),  # type: ignore[assignment]
 ) -> str:
     """A site configuration for Hollowmere (1,600 m) with the built-in rules, the
@@ -112,8 +116,13 @@ def site_toml(
     if mllp_port is not None:
         lines += ["[sources.mllp]", 'host = "127.0.0.1"', f"port = {mllp_port}", ""]
     for name, url, seconds in fhir:
-        lines += ["[[sources.fhir]]", f'name = "{name}"', f'base_url = "{url}"',
-                  f"poll_seconds = {seconds}", ""]
+        lines += [
+            "[[sources.fhir]]",
+            f'name = "{name}"',
+            f'base_url = "{url}"',
+            f"poll_seconds = {seconds}",
+            "",
+        ]
     lines += [
         "[database]",
         f'url = "{db_url}"',
@@ -177,21 +186,29 @@ def running_service(config: Path, http_port: int, log_path: Path) -> Iterator[Ru
     }
     with open(log_path, "wb") as log_file:
         process = subprocess.Popen(
-            serve_command(config), cwd=REPO, env=env, stdout=log_file, stderr=subprocess.STDOUT,
+            serve_command(config),
+            cwd=REPO,
+            env=env,
+            stdout=log_file,
+            stderr=subprocess.STDOUT,
         )
     running = Running(process, f"http://127.0.0.1:{http_port}", log_path)
     try:
         deadline = time.monotonic() + START_TIMEOUT_S
         while True:
             if process.poll() is not None:
-                raise AssertionError(f"service exited with {process.returncode}:\n{running.log_text()}")
+                raise AssertionError(
+                    f"service exited with {process.returncode}:\n{running.log_text()}"
+                )
             try:
                 if httpx.get(running.base + "/health", timeout=2).status_code == 200:
                     break
             except httpx.TransportError:
                 pass
             if time.monotonic() > deadline:
-                raise AssertionError(f"service not healthy in {START_TIMEOUT_S}s:\n{running.log_text()}")
+                raise AssertionError(
+                    f"service not healthy in {START_TIMEOUT_S}s:\n{running.log_text()}"
+                )
             time.sleep(0.2)
         yield running
     finally:

@@ -49,8 +49,9 @@ def fhir_endpoint() -> Iterator[tuple[str, list[float]]]:
             if self.path.split("?", 1)[0].endswith("/Observation"):
                 with lock:
                     asked.append(time.monotonic())
-            body = json.dumps({"resourceType": "Bundle", "type": "searchset", "total": 0,
-                               "entry": []}).encode()
+            body = json.dumps(
+                {"resourceType": "Bundle", "type": "searchset", "total": 0, "entry": []}
+            ).encode()
             self.send_response(200)
             self.send_header("Content-Type", "application/fhir+json")
             self.send_header("Content-Length", str(len(body)))
@@ -70,32 +71,45 @@ def fhir_endpoint() -> Iterator[tuple[str, list[float]]]:
 
 
 def test_two_processes_notify_each_flag_once_and_poll_once_per_interval(
-    pg_url: str, tmp_path: Path,
+    pg_url: str,
+    tmp_path: Path,
 ) -> None:
     with webhook_receiver() as (hook_url, received), fhir_endpoint() as (fhir_url, asked):
         ports = [(free_port(), free_port()) for _ in range(2)]
         configs = []
         for i, (http_port, mllp_port) in enumerate(ports):
             config = tmp_path / f"site-{i}.toml"
-            config.write_text(site_toml(
-                db_url=pg_url, http_port=http_port, mllp_port=mllp_port, webhook_url=hook_url,
-                fhir=[("hollowmere-record", fhir_url, POLL_SECONDS)],
-            ))
+            config.write_text(
+                site_toml(
+                    db_url=pg_url,
+                    http_port=http_port,
+                    mllp_port=mllp_port,
+                    webhook_url=hook_url,
+                    fhir=[("hollowmere-record", fhir_url, POLL_SECONDS)],
+                )
+            )
             configs.append(config)
         # The first process migrates the schema; the second starts on a ready database.
-        with running_service(configs[0], ports[0][0], tmp_path / "a.log") as first, \
-                running_service(configs[1], ports[1][0], tmp_path / "b.log") as second:
+        with (
+            running_service(configs[0], ports[0][0], tmp_path / "a.log") as first,
+            running_service(configs[1], ports[1][0], tmp_path / "b.log") as second,
+        ):
             started = time.monotonic()
-            gases = [hollowmere_gas(f"HGF{n:04d}", f"HM8{n:05d}", f"F-8{n:03d}", bed=str(n))
-                     for n in range(1, 7)]
+            gases = [
+                hollowmere_gas(f"HGF{n:04d}", f"HM8{n:05d}", f"F-8{n:03d}", bed=str(n))
+                for n in range(1, 7)
+            ]
             acks: list[str] = []
 
             def send(port: int, gas: str) -> None:
                 acks.append(ack_code(send_mllp(port, gas)))
 
             # Every gas goes to both processes at once: duplicates racing on one patient.
-            threads = [threading.Thread(target=send, args=(mllp, gas))
-                       for gas in gases for _, mllp in ports]
+            threads = [
+                threading.Thread(target=send, args=(mllp, gas))
+                for gas in gases
+                for _, mllp in ports
+            ]
             for t in threads:
                 t.start()
             for t in threads:
@@ -113,8 +127,9 @@ def test_two_processes_notify_each_flag_once_and_poll_once_per_interval(
             assert len(keys) == 6, keys
             assert len(set(keys)) == 6
             both = {f["id"] for f in open_flags()}
-            from_second = {f["id"] for f in httpx.get(second.base + "/api/flags",
-                                                      headers=AUTH).json()["flags"]}
+            from_second = {
+                f["id"] for f in httpx.get(second.base + "/api/flags", headers=AUTH).json()["flags"]
+            }
             assert both == from_second
 
             assert first.stop() == 0

@@ -28,15 +28,14 @@ def _deep_observation(levels: int) -> dict[str, object]:
     nested: list[object] = []
     for _ in range(levels - 1):
         nested = [nested]
-    return {"resourceType": "Observation", "id": "hg-deep", "status": "final",
-            "extension": nested}
+    return {"resourceType": "Observation", "id": "hg-deep", "status": "final", "extension": nested}
 
 
 def test_a_wrong_resource_type_is_refused_with_422_and_kept(service: Service) -> None:  # noqa: F811
-    body = json.dumps({"resourceType": "MedicationRequest", "id": "hg-med-1",
-                       "status": "active"}).encode()
-    response = AppClient(service.app).post(f"/hooks/fhir/{SOURCE}", content=body,
-                                           headers=HEADERS)
+    body = json.dumps(
+        {"resourceType": "MedicationRequest", "id": "hg-med-1", "status": "active"}
+    ).encode()
+    response = AppClient(service.app).post(f"/hooks/fhir/{SOURCE}", content=body, headers=HEADERS)
     assert response.status_code == 422, response.text
     assert "MedicationRequest" in response.json()["detail"]
     with service.db.begin(read_only=True) as conn:
@@ -51,14 +50,14 @@ def test_a_resource_nested_800_deep_is_refused_and_the_rest_stored(
     deep = _deep_observation(800)
     json.loads(json.dumps(deep))  # valid JSON: Python's own parser takes it
     resources = [
-        fs.patient(), fs.encounter(),
+        fs.patient(),
+        fs.encounter(),
         fs.quantity_obs("hg-h-pao2", "2703-7", 55, "mm[Hg]", when="2026-11-30T08:15:00Z"),
         deep,
         fs.quantity_obs("hg-h-fio2", "3150-0", 60, "%", when="2026-11-30T08:15:00Z"),
     ]
     body = json.dumps(fs.bundle("history", resources)).encode()
-    response = AppClient(service.app).post(f"/hooks/fhir/{SOURCE}", content=body,
-                                           headers=HEADERS)
+    response = AppClient(service.app).post(f"/hooks/fhir/{SOURCE}", content=body, headers=HEADERS)
     assert response.status_code == 200, response.text
     assert response.json()["stored"] == 2 and response.json()["quarantined"] >= 1
     with service.db.begin(read_only=True) as conn:
@@ -69,6 +68,5 @@ def test_a_resource_nested_800_deep_is_refused_and_the_rest_stored(
 
 def test_a_lone_deep_resource_gets_422_not_500(service: Service) -> None:  # noqa: F811
     body = json.dumps(_deep_observation(600)).encode()
-    response = AppClient(service.app).post(f"/hooks/fhir/{SOURCE}", content=body,
-                                           headers=HEADERS)
+    response = AppClient(service.app).post(f"/hooks/fhir/{SOURCE}", content=body, headers=HEADERS)
     assert response.status_code == 422, response.text

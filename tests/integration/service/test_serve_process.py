@@ -55,11 +55,20 @@ def expected_priority(pao2: float, fio2: float, elevation_m: float) -> tuple[flo
     return adjusted, None
 
 
-def hollowmere_gas(control_id: str, mrn: str, filler: str, *, pao2: str = "55",
-                   bed: str = "1", minutes_ago: int = 10) -> str:
+def hollowmere_gas(
+    control_id: str,
+    mrn: str,
+    filler: str,
+    *,
+    pao2: str = "55",
+    bed: str = "1",
+    minutes_ago: int = 10,
+) -> str:
     drawn = (datetime.now(UTC) - timedelta(minutes=minutes_ago)).strftime("%Y%m%d%H%M+0000")
     return h.message(
-        h.msh(control_id, when=drawn), h.pid(mrn), h.pv1("ICU-North", "7", bed),
+        h.msh(control_id, when=drawn),
+        h.pid(mrn),
+        h.pv1("ICU-North", "7", bed),
         h.obr(filler, collected=drawn),
         h.obx(1, "2703-7", pao2, "mm[Hg]", text="PO2 arterial"),
         h.obx(2, "2019-8", "40", "mm[Hg]", text="PCO2 arterial"),
@@ -75,8 +84,12 @@ def service(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Running,
     with webhook_receiver() as (url, received):
         http_port, mllp_port = free_port(), free_port()
         config = tmp / "site.toml"
-        text = site_toml(db_url=f"sqlite:///{tmp}/gasgap.db", http_port=http_port,
-                         mllp_port=mllp_port, webhook_url=url)
+        text = site_toml(
+            db_url=f"sqlite:///{tmp}/gasgap.db",
+            http_port=http_port,
+            mllp_port=mllp_port,
+            webhook_url=url,
+        )
         config.write_text(text.replace('display_key = "mrn"', 'display_key = "mrn-last4"'))
         with running_service(config, http_port, tmp / "service.log") as running:
             yield running, mllp_port, received
@@ -121,8 +134,12 @@ def test_health_reports_database_and_backlog(service: tuple[Running, int, Receiv
 
 
 def _samples(text: str, name: str) -> list[Any]:
-    return [s for family in text_string_to_metric_families(text) for s in family.samples
-            if s.name == name]
+    return [
+        s
+        for family in text_string_to_metric_families(text)
+        for s in family.samples
+        if s.name == name
+    ]
 
 
 def test_metrics_are_prometheus_text_with_the_flag_counted(
@@ -135,8 +152,11 @@ def test_metrics_are_prometheus_text_with_the_flag_counted(
     response = httpx.get(running.base + "/metrics")
     assert response.status_code == 200
     assert response.headers["content-type"].startswith("text/plain")
-    raised = [s for s in _samples(response.text, "gasgap_flag_events_total")
-              if s.labels.get("event") == "raised"]
+    raised = [
+        s
+        for s in _samples(response.text, "gasgap_flag_events_total")
+        if s.labels.get("event") == "raised"
+    ]
     assert [(s.labels["rule"], s.labels["priority"], s.value) for s in raised] == [
         ("oxygenation-band", "medium", 1.0)
     ]
@@ -150,8 +170,9 @@ def test_api_refuses_missing_or_wrong_token(service: tuple[Running, int, Receive
     assert httpx.get(running.base + "/api/flags").status_code == 401
     wrong = {"Authorization": "Bearer not-the-token"}
     assert httpx.get(running.base + "/api/flags", headers=wrong).status_code == 401
-    post = httpx.post(running.base + "/api/flags/x/acknowledge", json={"by": "A. Nurse"},
-                      headers=wrong)
+    post = httpx.post(
+        running.base + "/api/flags/x/acknowledge", json={"by": "A. Nurse"}, headers=wrong
+    )
     assert post.status_code == 401
 
 
@@ -167,32 +188,50 @@ def test_oversized_body_is_refused_with_413(service: tuple[Running, int, Receive
 
     streamed = httpx.post(running.base + "/hooks/fhir/none", content=chunks())
     assert streamed.status_code in (401, 404, 413)  # refused either way, never stored
-    streamed = httpx.post(running.base + "/api/flags/x/acknowledge", content=chunks(),
-                          headers={**AUTH, "content-type": "application/json"})
+    streamed = httpx.post(
+        running.base + "/api/flags/x/acknowledge",
+        content=chunks(),
+        headers={**AUTH, "content-type": "application/json"},
+    )
     assert streamed.status_code == 413
 
 
 def test_acknowledge_through_the_api_records_who(service: tuple[Running, int, Received]) -> None:
     running, mllp_port, received = service
-    assert ack_code(send_mllp(mllp_port, hollowmere_gas("HGH9002", "HM555002", "F-9002",
-                                                        bed="2"))) == "AA"
-    flag = wait_for(lambda: [f for f in httpx.get(running.base + "/api/flags", headers=AUTH)
-                             .json()["flags"] if f["patient_key"].endswith("HM555002")])[0]
-    response = httpx.post(running.base + f"/api/flags/{flag['id']}/acknowledge",
-                          json={"by": "R. Okafor (charge nurse)"}, headers=AUTH)
+    assert (
+        ack_code(send_mllp(mllp_port, hollowmere_gas("HGH9002", "HM555002", "F-9002", bed="2")))
+        == "AA"
+    )
+    flag = wait_for(
+        lambda: [
+            f
+            for f in httpx.get(running.base + "/api/flags", headers=AUTH).json()["flags"]
+            if f["patient_key"].endswith("HM555002")
+        ]
+    )[0]
+    response = httpx.post(
+        running.base + f"/api/flags/{flag['id']}/acknowledge",
+        json={"by": "R. Okafor (charge nurse)"},
+        headers=AUTH,
+    )
     assert response.status_code == 200, response.text
     assert response.json()["flag"]["acknowledged_by"] == "R. Okafor (charge nurse)"
     trail = httpx.get(running.base + f"/api/flags/{flag['id']}", headers=AUTH).json()
     acks = [e for e in trail["events"] if e["event"] == "acknowledged"]
     assert [e["by"] for e in acks] == ["R. Okafor (charge nurse)"]
-    again = httpx.post(running.base + f"/api/flags/{flag['id']}/acknowledge",
-                       json={"by": "Someone Else"}, headers=AUTH)
+    again = httpx.post(
+        running.base + f"/api/flags/{flag['id']}/acknowledge",
+        json={"by": "Someone Else"},
+        headers=AUTH,
+    )
     assert again.status_code == 409
-    blank = httpx.post(running.base + f"/api/flags/{flag['id']}/acknowledge",
-                       json={"by": "   "}, headers=AUTH)
+    blank = httpx.post(
+        running.base + f"/api/flags/{flag['id']}/acknowledge", json={"by": "   "}, headers=AUTH
+    )
     assert blank.status_code == 422
-    unknown = httpx.post(running.base + "/api/flags/no-such-flag/acknowledge",
-                         json={"by": "A. Nurse"}, headers=AUTH)
+    unknown = httpx.post(
+        running.base + "/api/flags/no-such-flag/acknowledge", json={"by": "A. Nurse"}, headers=AUTH
+    )
     assert unknown.status_code == 404
 
 
@@ -238,20 +277,46 @@ def test_config_check_and_db_upgrade_commands(tmp_path: Path) -> None:
 
     bad = tmp_path / "bad.toml"
     bad.write_text('[http]\napi_token = "in-clear"\n')
-    result = subprocess.run([sys.executable, "-m", "monitor.cli_serve", "config", "check",
-                             str(bad)], cwd=REPO, capture_output=True, text=True, timeout=60)
+    result = subprocess.run(
+        [sys.executable, "-m", "monitor.cli_serve", "config", "check", str(bad)],
+        cwd=REPO,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert result.returncode == 2 and "api_token" in result.stderr
-    good = subprocess.run([sys.executable, "-m", "monitor.cli_serve", "config", "check",
-                           str(REPO / "fixtures" / "site-example.toml")], cwd=REPO,
-                          capture_output=True, text=True, timeout=60)
+    good = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "monitor.cli_serve",
+            "config",
+            "check",
+            str(REPO / "fixtures" / "site-example.toml"),
+        ],
+        cwd=REPO,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert good.returncode == 0, good.stderr
     url = f"sqlite:///{tmp_path}/fresh.db"
-    up = subprocess.run([sys.executable, "-m", "monitor.cli_serve", "db", "upgrade", "--db", url],
-                        cwd=REPO, capture_output=True, text=True, timeout=60)
+    up = subprocess.run(
+        [sys.executable, "-m", "monitor.cli_serve", "db", "upgrade", "--db", url],
+        cwd=REPO,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert up.returncode == 0, up.stderr
     assert (tmp_path / "fresh.db").exists()
-    listed = subprocess.run([sys.executable, "-m", "monitor.cli_serve", "alerts", "--db", url,
-                             "--json"], cwd=REPO, capture_output=True, text=True, timeout=60)
+    listed = subprocess.run(
+        [sys.executable, "-m", "monitor.cli_serve", "alerts", "--db", url, "--json"],
+        cwd=REPO,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert listed.returncode == 0, listed.stderr
     assert '"flags": []' in listed.stdout
 
@@ -269,8 +334,14 @@ def test_sigterm_during_a_message_finishes_it_before_exiting(tmp_path: Path) -> 
     with webhook_receiver() as (url, _received):
         http_port, mllp_port = free_port(), free_port()
         config = tmp_path / "site.toml"
-        config.write_text(site_toml(db_url=f"sqlite:///{tmp_path}/gasgap.db",
-                                    http_port=http_port, mllp_port=mllp_port, webhook_url=url))
+        config.write_text(
+            site_toml(
+                db_url=f"sqlite:///{tmp_path}/gasgap.db",
+                http_port=http_port,
+                mllp_port=mllp_port,
+                webhook_url=url,
+            )
+        )
         with running_service(config, http_port, tmp_path / "service.log") as running:
             gas = hollowmere_gas("HGH9301", "HM930001", "F-9301")
             with socket.create_connection(("127.0.0.1", mllp_port), timeout=30) as sock:

@@ -13,8 +13,8 @@ from collections.abc import Iterator
 from datetime import UTC, datetime
 from pathlib import Path
 
-import pytest
 import httpx
+import pytest
 
 from monitor.config import validate_config
 from monitor.logs import IdentifierGuard, setup_logging
@@ -68,16 +68,29 @@ def service(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Iterator[Service
     monkeypatch.setenv("GASGAP_T_API", "api-token-in-process")
     monkeypatch.setenv("GASGAP_T_BOARD_PW", "board-password-in-process")
     monkeypatch.setenv("GASGAP_T_HOOK", HOOK_SECRET)
-    config = validate_config({
-        "site": {"name": "Hollowmere General Hospital", "elevation_m": 1600,
-                 "timezone": "America/Denver", "display_key": "mrn-last4"},
-        "sources": {"fhir": [{"name": SOURCE, "base_url": "http://127.0.0.1:9/fhir",
-                              "poll_seconds": 60}]},
-        "database": {"url": f"sqlite:///{tmp_path}/gasgap.db"},
-        "http": {"api_token_env": "GASGAP_T_API", "board_user": "charge",
-                 "board_password_env": "GASGAP_T_BOARD_PW", "hook_secret_env": "GASGAP_T_HOOK",
-                 "max_request_bytes": 4096},
-    })
+    config = validate_config(
+        {
+            "site": {
+                "name": "Hollowmere General Hospital",
+                "elevation_m": 1600,
+                "timezone": "America/Denver",
+                "display_key": "mrn-last4",
+            },
+            "sources": {
+                "fhir": [
+                    {"name": SOURCE, "base_url": "http://127.0.0.1:9/fhir", "poll_seconds": 60}
+                ]
+            },
+            "database": {"url": f"sqlite:///{tmp_path}/gasgap.db"},
+            "http": {
+                "api_token_env": "GASGAP_T_API",
+                "board_user": "charge",
+                "board_password_env": "GASGAP_T_BOARD_PW",
+                "hook_secret_env": "GASGAP_T_HOOK",
+                "max_request_bytes": 4096,
+            },
+        }
+    )
     built = build_service(config, clock=lambda: NOW, channels={"log": _Silent()})
     yield built
     built.db.dispose()
@@ -95,29 +108,38 @@ def test_hook_ping_starts_a_poll_of_that_source(service: Service) -> None:
     ctx: WebContext = service.app.state.ctx
     ctx.poll_now = {SOURCE: lambda: polled.append(SOURCE)}
     client = AppClient(service.app)
-    response = client.post(f"/hooks/fhir/{SOURCE}", content=b"",
-                           headers={"X-Gasgap-Hook-Secret": HOOK_SECRET})
+    response = client.post(
+        f"/hooks/fhir/{SOURCE}", content=b"", headers={"X-Gasgap-Hook-Secret": HOOK_SECRET}
+    )
     assert response.status_code == 202
     assert polled == [SOURCE]
-    unknown = client.post("/hooks/fhir/elsewhere", content=b"",
-                          headers={"X-Gasgap-Hook-Secret": HOOK_SECRET})
+    unknown = client.post(
+        "/hooks/fhir/elsewhere", content=b"", headers={"X-Gasgap-Hook-Secret": HOOK_SECRET}
+    )
     assert unknown.status_code == 404
 
 
 def test_hook_bundle_is_stored_through_the_pipeline(service: Service) -> None:
     resources = [
-        fs.patient(), fs.encounter(),
+        fs.patient(),
+        fs.encounter(),
         fs.quantity_obs("hg-h-pao2", "2703-7", 55, "mm[Hg]", when="2026-11-30T08:15:00Z"),
         fs.quantity_obs("hg-h-fio2", "3150-0", 60, "%", when="2026-11-30T08:15:00Z"),
     ]
     body = json.dumps(fs.bundle("history", resources)).encode()
     client = AppClient(service.app)
-    response = client.post(f"/hooks/fhir/{SOURCE}", content=body, headers={
-        "X-Gasgap-Hook-Secret": HOOK_SECRET, "Content-Type": "application/fhir+json"})
+    response = client.post(
+        f"/hooks/fhir/{SOURCE}",
+        content=body,
+        headers={"X-Gasgap-Hook-Secret": HOOK_SECRET, "Content-Type": "application/fhir+json"},
+    )
     assert response.status_code == 200, response.text
     assert response.json()["stored"] >= 2
-    not_fhir = client.post(f"/hooks/fhir/{SOURCE}", content=b"<xml/>", headers={
-        "X-Gasgap-Hook-Secret": HOOK_SECRET, "Content-Type": "application/xml"})
+    not_fhir = client.post(
+        f"/hooks/fhir/{SOURCE}",
+        content=b"<xml/>",
+        headers={"X-Gasgap-Hook-Secret": HOOK_SECRET, "Content-Type": "application/xml"},
+    )
     assert not_fhir.status_code == 400
 
 
@@ -133,18 +155,23 @@ def test_board_uses_basic_auth_when_a_board_user_is_configured(service: Service)
 def test_acknowledge_form_from_another_site_is_refused(service: Service) -> None:
     client = AppClient(service.app)
     response = client.post(
-        "/board/flags/any/acknowledge", content=b"by=Someone&back=/board",
+        "/board/flags/any/acknowledge",
+        content=b"by=Someone&back=/board",
         auth=("charge", "board-password-in-process"),
-        headers={"Origin": "https://elsewhere.example", "Content-Type":
-                 "application/x-www-form-urlencoded"},
+        headers={
+            "Origin": "https://elsewhere.example",
+            "Content-Type": "application/x-www-form-urlencoded",
+        },
     )
     assert response.status_code == 403
 
 
 def test_health_is_503_when_the_database_is_unreachable() -> None:
     # Port 9 on loopback (discard) has no PostgreSQL: the connection is refused.
-    gone = Database(create_engine("postgresql+psycopg://postgres@127.0.0.1:9/none?connect_timeout=2"),
-                    "postgresql+psycopg://postgres@127.0.0.1:9/none")
+    gone = Database(
+        create_engine("postgresql+psycopg://postgres@127.0.0.1:9/none?connect_timeout=2"),
+        "postgresql+psycopg://postgres@127.0.0.1:9/none",
+    )
     app = create_app(None, gone, None, security=WebSecurity())
     response = AppClient(app).get("/health")
     assert response.status_code == 503

@@ -44,8 +44,15 @@ def test_only_one_open_alert_per_patient_and_rule(database: Database) -> None:
         save_alert(conn, alert("A-3", rule="aa-gradient-high"))
         save_alert(conn, alert("A-4", patient_key="HMG-000202"))
         # Once the first is resolved the rule may fire again.
-        save_alert(conn, alert("A-1", state=AlertState.RESOLVED, closed_at=T0 + minutes(60),
-                               updated_at=T0 + minutes(60)))
+        save_alert(
+            conn,
+            alert(
+                "A-1",
+                state=AlertState.RESOLVED,
+                closed_at=T0 + minutes(60),
+                updated_at=T0 + minutes(60),
+            ),
+        )
         save_alert(conn, alert("A-5", raised_at=T0 + minutes(90)))
         still_open = [a.alert_id for a in open_alerts(conn, "HMG-000101")]
     assert sorted(still_open) == ["A-3", "A-5"]
@@ -69,11 +76,16 @@ def test_the_database_itself_refuses_a_second_open_alert(database: Database) -> 
 def test_open_alerts_by_unit_highest_priority_first(database: Database) -> None:
     with database.begin() as conn:
         save_alert(conn, alert("A-low", rule="r1", priority=Priority.LOW))
-        save_alert(conn, alert("A-high", rule="r2", priority=Priority.HIGH,
-                               raised_at=T0 + minutes(5)))
+        save_alert(
+            conn, alert("A-high", rule="r2", priority=Priority.HIGH, raised_at=T0 + minutes(5))
+        )
         save_alert(conn, alert("A-med", rule="r3", priority=Priority.MEDIUM))
-        save_alert(conn, alert("A-ward", rule="r4", priority=Priority.HIGH, location=WARD,
-                               patient_key="HMG-000404"))
+        save_alert(
+            conn,
+            alert(
+                "A-ward", rule="r4", priority=Priority.HIGH, location=WARD, patient_key="HMG-000404"
+            ),
+        )
         icu = [a.alert_id for a in open_alerts(conn, unit="ICU-North")]
         everyone = open_alerts(conn)
     assert icu == ["A-high", "A-med", "A-low"]
@@ -83,10 +95,16 @@ def test_open_alerts_by_unit_highest_priority_first(database: Database) -> None:
 def test_last_closed_alert_is_the_most_recently_closed(database: Database) -> None:
     with database.begin() as conn:
         for n, closed in ((1, 60), (2, 180), (3, 120)):
-            save_alert(conn, alert(f"A-{n}", state=AlertState.RESOLVED,
-                                   raised_at=T0 + minutes(closed - 30),
-                                   updated_at=T0 + minutes(closed),
-                                   closed_at=T0 + minutes(closed)))
+            save_alert(
+                conn,
+                alert(
+                    f"A-{n}",
+                    state=AlertState.RESOLVED,
+                    raised_at=T0 + minutes(closed - 30),
+                    updated_at=T0 + minutes(closed),
+                    closed_at=T0 + minutes(closed),
+                ),
+            )
         save_alert(conn, alert("A-open", raised_at=T0 + minutes(200)))
         last = last_closed_alert(conn, "HMG-000101", "pf-falling")
         none = last_closed_alert(conn, "HMG-000101", "never-fired")
@@ -105,14 +123,24 @@ def test_recent_alerts_since_a_time(database: Database) -> None:
 
 def test_audit_events_are_kept_in_order(database: Database) -> None:
     def event(name: str, at_min: int, state: AlertState, alert_id: str = "A-1") -> AlertEvent:
-        return AlertEvent(alert_id=alert_id, patient_key="HMG-000101", rule="pf-falling",
-                          event=name, at=T0 + minutes(at_min), priority=Priority.MEDIUM,
-                          state=state, sample_id="OBR-HMG-1001^PAO2",
-                          by="charge nurse N4" if name == "acknowledged" else None,
-                          note="seen at bedside" if name == "acknowledged" else "")
-    trail = [event("raised", 0, AlertState.RAISED),
-             event("acknowledged", 7, AlertState.ACKNOWLEDGED),
-             event("resolved", 90, AlertState.RESOLVED)]
+        return AlertEvent(
+            alert_id=alert_id,
+            patient_key="HMG-000101",
+            rule="pf-falling",
+            event=name,
+            at=T0 + minutes(at_min),
+            priority=Priority.MEDIUM,
+            state=state,
+            sample_id="OBR-HMG-1001^PAO2",
+            by="charge nurse N4" if name == "acknowledged" else None,
+            note="seen at bedside" if name == "acknowledged" else "",
+        )
+
+    trail = [
+        event("raised", 0, AlertState.RAISED),
+        event("acknowledged", 7, AlertState.ACKNOWLEDGED),
+        event("resolved", 90, AlertState.RESOLVED),
+    ]
     with database.begin() as conn:
         written = append_alert_events(conn, reversed(trail))
         nothing = append_alert_events(conn, [])

@@ -86,8 +86,11 @@ def test_retraction_is_a_version_and_a_re_derivation_revives_the_sample(
     with database.begin() as conn:
         save_derivation(conn, derivation(), at=T0, reason="new gas")
         ids = retract_derivations(
-            conn, "HMG-000101", ["OBR-HMG-1001^PAO2", "NOT-DERIVED"],
-            at=T0 + minutes(40), reason="PaO2 entered in error",
+            conn,
+            "HMG-000101",
+            ["OBR-HMG-1001^PAO2", "NOT-DERIVED"],
+            at=T0 + minutes(40),
+            reason="PaO2 entered in error",
         )
         twice = retract_derivations(
             conn, "HMG-000101", ["OBR-HMG-1001^PAO2"], at=T0 + minutes(41), reason="again"
@@ -125,8 +128,10 @@ def test_current_derivations_filters_by_time_and_estimate(database: Database) ->
         for hours, estimated in ((0, False), (2, True), (4, False)):
             at = T0 + timedelta(hours=hours)
             save_derivation(
-                conn, derivation(f"S-{hours}", drawn_at=at, estimated=estimated),
-                at=at, reason="new",
+                conn,
+                derivation(f"S-{hours}", drawn_at=at, estimated=estimated),
+                at=at,
+                reason="new",
             )
         window = current_derivations(
             conn, "HMG-000101", since=T0 + minutes(1), until=T0 + timedelta(hours=4)
@@ -159,8 +164,14 @@ def test_purge_keeps_derivations_and_the_alert_audit(database: Database) -> None
     gas = reading("OLD-GAS^PAO2", effective_at=old)
     flag = alert("A-OLD", raised_at=old)
     event = AlertEvent(
-        alert_id="A-OLD", patient_key="HMG-000101", rule="pf-falling", event="raised",
-        at=old, priority=Priority.MEDIUM, state=AlertState.RAISED, sample_id="OLD-GAS^PAO2",
+        alert_id="A-OLD",
+        patient_key="HMG-000101",
+        rule="pf-falling",
+        event="raised",
+        at=old,
+        priority=Priority.MEDIUM,
+        state=AlertState.RAISED,
+        sample_id="OLD-GAS^PAO2",
     )
     with database.begin() as conn:
         store_readings(conn, [gas])

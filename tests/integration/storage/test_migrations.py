@@ -109,9 +109,13 @@ def test_in_memory_sqlite_keeps_one_database_across_transactions() -> None:
     db = open_database("sqlite://")
     try:
         with db.begin() as conn:
-            conn.execute(sa.text("insert into quarantine (source, received_at, reason, "
-                                 "reason_key, raw_text, payload_size, truncated) values "
-                                 "('replay', '2026-03-14 06:00:00', 'x', 'x', 'x', 1, 0)"))
+            conn.execute(
+                sa.text(
+                    "insert into quarantine (source, received_at, reason, "
+                    "reason_key, raw_text, payload_size, truncated) values "
+                    "('replay', '2026-03-14 06:00:00', 'x', 'x', 'x', 1, 0)"
+                )
+            )
         with db.begin(read_only=True) as conn:
             assert conn.execute(sa.text("select count(*) from quarantine")).scalar_one() == 1
     finally:
@@ -122,8 +126,12 @@ def test_rollback_on_error_leaves_nothing_behind(db_url: str) -> None:
     db = open_database(db_url)
     try:
         with pytest.raises(RuntimeError), db.begin() as conn:
-            conn.execute(sa.text("insert into source_cursors (source, updated_at) "
-                                 "values ('fhir-poll', CURRENT_TIMESTAMP)"))
+            conn.execute(
+                sa.text(
+                    "insert into source_cursors (source, updated_at) "
+                    "values ('fhir-poll', CURRENT_TIMESTAMP)"
+                )
+            )
             raise RuntimeError("step failed")
         with db.begin(read_only=True) as conn:
             assert conn.execute(sa.text("select count(*) from source_cursors")).scalar_one() == 0

@@ -75,8 +75,14 @@ def test_a_patients_later_message_waits_for_the_earlier_one(database: Database) 
         webhook_first = next(i for i in first if i.channel == WEBHOOK)
         email_first = next(i for i in first if i.channel == EMAIL)
         mark_sent(conn, email_first.id, T0 + minutes(2))
-        mark_failed(conn, webhook_first.id, T0 + minutes(2), "HTTP 503 from receiver",
-                    next_attempt_at=T0 + minutes(7), dead=False)
+        mark_failed(
+            conn,
+            webhook_first.id,
+            T0 + minutes(2),
+            "HTTP 503 from receiver",
+            next_attempt_at=T0 + minutes(7),
+            dead=False,
+        )
         # The e-mail queue moves on; the webhook's "resolved" waits for its "raised".
         second = claim_due(conn, T0 + minutes(3))
         mark_sent(conn, second[0].id, T0 + minutes(3))
@@ -84,7 +90,8 @@ def test_a_patients_later_message_waits_for_the_earlier_one(database: Database) 
         mark_sent(conn, retry[0].id, T0 + minutes(7))
         third = claim_due(conn, T0 + minutes(8))
     assert [(i.channel, i.notification.event) for i in first] == [
-        (WEBHOOK, "raised"), (EMAIL, "raised")
+        (WEBHOOK, "raised"),
+        (EMAIL, "raised"),
     ]
     assert [(i.channel, i.notification.event) for i in second] == [(EMAIL, "resolved")]
     assert [(i.channel, i.notification.event, i.attempts) for i in retry] == [
@@ -98,8 +105,7 @@ def test_a_dead_item_no_longer_holds_the_queue(database: Database) -> None:
         enqueue(conn, notification("A-1:raised"), [WEBHOOK], at=T0)
         enqueue(conn, notification("A-1:resolved", event="resolved"), [WEBHOOK], at=T0)
         [first] = claim_due(conn, T0)
-        mark_failed(conn, first.id, T0, "receiver refused the body", next_attempt_at=T0,
-                    dead=True)
+        mark_failed(conn, first.id, T0, "receiver refused the body", next_attempt_at=T0, dead=True)
         [after] = claim_due(conn, T0)
         [dead] = outbox_items(conn, status=OutboxStatus.DEAD)
     assert after.notification.event == "resolved"
@@ -110,8 +116,12 @@ def test_a_dead_item_no_longer_holds_the_queue(database: Database) -> None:
 def test_claim_limit_and_other_patients_are_independent(database: Database) -> None:
     with database.begin() as conn:
         for n in range(5):
-            enqueue(conn, notification(f"A-{n}:raised", alert_id=f"A-{n}",
-                                       patient_key=f"HMG-00010{n}"), [WEBHOOK], at=T0)
+            enqueue(
+                conn,
+                notification(f"A-{n}:raised", alert_id=f"A-{n}", patient_key=f"HMG-00010{n}"),
+                [WEBHOOK],
+                at=T0,
+            )
         some = claim_due(conn, T0, limit=3)
         rest = claim_due(conn, T0, limit=10)
     assert [i.notification.alert_id for i in some] == ["A-0", "A-1", "A-2"]
@@ -129,8 +139,12 @@ def pg_database(pg_url: str) -> Iterator[Database]:
 def test_two_connections_skip_each_others_locked_items(pg_database: Database) -> None:
     with pg_database.begin() as conn:
         for n in range(6):
-            enqueue(conn, notification(f"A-{n}:raised", alert_id=f"A-{n}",
-                                       patient_key=f"HMG-00020{n}"), [WEBHOOK], at=T0)
+            enqueue(
+                conn,
+                notification(f"A-{n}:raised", alert_id=f"A-{n}", patient_key=f"HMG-00020{n}"),
+                [WEBHOOK],
+                at=T0,
+            )
     with pg_database.engine.connect() as a, pg_database.engine.connect() as b:
         a.begin()
         b.begin()
@@ -151,8 +165,14 @@ def test_concurrent_senders_deliver_each_item_once_in_patient_order(database: Da
     with database.begin() as conn:
         for key in patients:
             for event in ("raised", "escalated", "resolved"):
-                enqueue(conn, notification(f"{key}:{event}", alert_id=f"{key}-A",
-                                           patient_key=key, event=event), [WEBHOOK], at=T0)
+                enqueue(
+                    conn,
+                    notification(
+                        f"{key}:{event}", alert_id=f"{key}-A", patient_key=key, event=event
+                    ),
+                    [WEBHOOK],
+                    at=T0,
+                )
     sent: list[tuple[int, str, str]] = []
     errors: list[BaseException] = []
     lock = threading.Lock()
@@ -168,8 +188,9 @@ def test_concurrent_senders_deliver_each_item_once_in_patient_order(database: Da
                     with database.begin() as conn:
                         mark_sent(conn, item.id, T0)
                     with lock:
-                        sent.append((item.id, item.notification.patient_key,
-                                     item.notification.event))
+                        sent.append(
+                            (item.id, item.notification.patient_key, item.notification.event)
+                        )
                 if not items:
                     time.sleep(0.005)
         except BaseException as exc:  # reported to the main thread below

@@ -33,10 +33,20 @@ BAD_OBX = (
 
 def test_refused_payloads_are_kept_with_their_reason(database: Database) -> None:
     with database.begin() as conn:
-        first = quarantine(conn, source="hl7-mllp", raw=BAD_OBX,
-                           reason="OBX-5 is not a number: 'abc'", received_at=T0)
-        second = quarantine(conn, source="fhir-poll", raw='{"resourceType": "Observation"}',
-                            reason="Observation.subject missing", received_at=T0 + minutes(1))
+        first = quarantine(
+            conn,
+            source="hl7-mllp",
+            raw=BAD_OBX,
+            reason="OBX-5 is not a number: 'abc'",
+            received_at=T0,
+        )
+        second = quarantine(
+            conn,
+            source="fhir-poll",
+            raw='{"resourceType": "Observation"}',
+            reason="Observation.subject missing",
+            received_at=T0 + minutes(1),
+        )
         newest_first = list_quarantine(conn, limit=10)
         only_hl7 = list_quarantine(conn, source="hl7-mllp")
         total = count_quarantine(conn)
@@ -59,8 +69,9 @@ def test_top_reasons_group_by_the_first_clause(database: Database) -> None:
     ]
     with database.begin() as conn:
         for n, reason in enumerate(reasons):
-            quarantine(conn, source="hl7-file", raw=f"row {n}", reason=reason,
-                       received_at=T0 + minutes(n))
+            quarantine(
+                conn, source="hl7-file", raw=f"row {n}", reason=reason, received_at=T0 + minutes(n)
+            )
         top = quarantine_reasons(conn, top=2)
     assert top == [("pao2 value must be in [5, 800] mm[Hg]", 3), ("OBX-5 is not a number", 2)]
     assert reason_key("   ") == "no reason given"
@@ -165,8 +176,14 @@ def test_lock_keys_are_stable_across_processes() -> None:
     keys = set()
     for seed in ("1", "2"):
         env = {**os.environ, "PYTHONHASHSEED": seed}
-        out = subprocess.run([sys.executable, "-c", code], env=env, check=True,
-                             capture_output=True, text=True, timeout=60)
+        out = subprocess.run(
+            [sys.executable, "-c", code],
+            env=env,
+            check=True,
+            capture_output=True,
+            text=True,
+            timeout=60,
+        )
         keys.add(int(out.stdout))
     assert keys == {lock_key("patient:HMG-000101")}
     assert -(2**63) <= lock_key("x") < 2**63

@@ -37,8 +37,10 @@ OBX_COUNT = 5000
 
 
 def _ambiguous_message() -> bytes:
-    obxs = [h.obx(n, "2703-7", str(80 + n % 7), "mm[Hg]", text="PO2 arterial")
-            for n in range(1, OBX_COUNT + 1)]
+    obxs = [
+        h.obx(n, "2703-7", str(80 + n % 7), "mm[Hg]", text="PO2 arterial")
+        for n in range(1, OBX_COUNT + 1)
+    ]
     return h.message(h.msh("HGHBIG1"), h.pid("HM900001"), h.obr("F-BIG-1"), *obxs).encode()
 
 
@@ -55,8 +57,9 @@ def _file_bytes(db: Database, path: str) -> int:
     plain = sqlite3.connect(path, isolation_level=None)
     plain.execute("PRAGMA wal_checkpoint(TRUNCATE)")
     plain.close()
-    return os.path.getsize(path) + (os.path.getsize(path + "-wal")
-                                    if os.path.exists(path + "-wal") else 0)
+    return os.path.getsize(path) + (
+        os.path.getsize(path + "-wal") if os.path.exists(path + "-wal") else 0
+    )
 
 
 def test_5000_alike_rejections_keep_the_message_once_in_at_most_twice_its_size(
@@ -73,8 +76,9 @@ def test_5000_alike_rejections_keep_the_message_once_in_at_most_twice_its_size(
     growth = _file_bytes(db, path) - before
     with db.begin(read_only=True) as conn:
         rows = list_quarantine(conn, limit=10)
-        payloads = conn.execute(sa.select(sa.func.count()).select_from(quarantine_payloads)
-                                ).scalar_one()
+        payloads = conn.execute(
+            sa.select(sa.func.count()).select_from(quarantine_payloads)
+        ).scalar_one()
         full = get_quarantined(conn, rows[0].id)
     assert payloads == 1
     assert len(rows) <= 2 and sum(r.occurrences for r in rows) == OBX_COUNT
@@ -86,8 +90,10 @@ def test_5000_alike_rejections_keep_the_message_once_in_at_most_twice_its_size(
 
 def test_quarantine_many_groups_before_writing(database: Database) -> None:  # noqa: F811
     raw = b"MSH|^~\\&|HGH-LAB|HOLLOWMERE|||20260315||ORU^R01|X1|P|2.5.1\rOBX|1\r"
-    items = [("hl7:lab", raw, f"message X1 OBX[{n}]-5: value 'abc' is not a number")
-             for n in range(1, 301)]
+    items = [
+        ("hl7:lab", raw, f"message X1 OBX[{n}]-5: value 'abc' is not a number")
+        for n in range(1, 301)
+    ]
     items.append(("hl7:lab", raw, "message X1 PID-3: patient identifier is empty"))
     with database.begin() as conn:
         ids = quarantine_many(conn, items, received_at=T0)
@@ -108,13 +114,22 @@ def test_purge_removes_the_payload_with_its_last_row(database: Database) -> None
     assert kept == [new]
 
 
-@settings(max_examples=40, deadline=None,
-          suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(st.lists(st.tuples(st.sampled_from(["a", "b", "c\x00"]),
-                          st.sampled_from(["OBX[1]-5: bad", "OBX[2]-5: bad", "PID-3: empty"])),
-                min_size=1, max_size=30))
+@settings(
+    max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(
+    st.lists(
+        st.tuples(
+            st.sampled_from(["a", "b", "c\x00"]),
+            st.sampled_from(["OBX[1]-5: bad", "OBX[2]-5: bad", "PID-3: empty"]),
+        ),
+        min_size=1,
+        max_size=30,
+    )
+)
 def test_payloads_are_kept_once_and_every_rejection_counted(
-    database: Database, rejections: list[tuple[str, str]],  # noqa: F811
+    database: Database,
+    rejections: list[tuple[str, str]],  # noqa: F811
 ) -> None:
     with database.begin() as conn:
         conn.execute(sa.delete(quarantine_table))
@@ -122,8 +137,9 @@ def test_payloads_are_kept_once_and_every_rejection_counted(
         for raw, reason in rejections:
             # a new string object each time: the digest, not identity, decides
             quarantine(conn, source="s", raw="".join([raw]), reason=reason, received_at=T0)
-        payloads = conn.execute(sa.select(sa.func.count()).select_from(quarantine_payloads)
-                                ).scalar_one()
+        payloads = conn.execute(
+            sa.select(sa.func.count()).select_from(quarantine_payloads)
+        ).scalar_one()
         total = conn.execute(sa.select(sa.func.sum(quarantine_table.c.occurrences))).scalar_one()
     assert payloads == len({raw for raw, _ in rejections})
     assert total == len(rejections)

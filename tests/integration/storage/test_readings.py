@@ -121,8 +121,9 @@ def test_latest_reading_at_or_before_a_time(database: Database) -> None:
         reading(f"FIO2-{i}", kind=Kind.FIO2, value=v, effective_at=T0 + minutes(30 * i))
         for i, v in enumerate((0.3, 0.4, 0.5))
     ]
-    other_patient = reading("FIO2-X", kind=Kind.FIO2, value=0.9, patient_key="HMG-000202",
-                            effective_at=T0 + minutes(40))
+    other_patient = reading(
+        "FIO2-X", kind=Kind.FIO2, value=0.9, patient_key="HMG-000202", effective_at=T0 + minutes(40)
+    )
     with database.begin() as conn:
         store_readings(conn, [*fio2, other_patient])
         at_exact = latest_reading(conn, "HMG-000101", Kind.FIO2, T0 + minutes(30))
@@ -186,14 +187,27 @@ def test_a_naive_time_is_refused_with_a_reason(database: Database) -> None:
 
 def test_patients_keep_the_newest_news(database: Database) -> None:
     with database.begin() as conn:
-        upsert_patient(conn, "HMG-000101", birth_date=date(1957, 4, 2), location=ICU,
-                       display_key="N4-2", at=T0)
+        upsert_patient(
+            conn, "HMG-000101", birth_date=date(1957, 4, 2), location=ICU, display_key="N4-2", at=T0
+        )
         # A late message from before the transfer must not move the patient back.
-        upsert_patient(conn, "HMG-000101", birth_date=None, location=WARD,
-                       display_key=None, at=T0 - minutes(60))
+        upsert_patient(
+            conn,
+            "HMG-000101",
+            birth_date=None,
+            location=WARD,
+            display_key=None,
+            at=T0 - minutes(60),
+        )
         # A newer message without a birth date keeps the one we know.
-        upsert_patient(conn, "HMG-000101", birth_date=None, location=Location("Ward-5B"),
-                       display_key=None, at=T0 + minutes(60))
+        upsert_patient(
+            conn,
+            "HMG-000101",
+            birth_date=None,
+            location=Location("Ward-5B"),
+            display_key=None,
+            at=T0 + minutes(60),
+        )
         patient = get_patient(conn, "HMG-000101")
         store_readings(conn, [reading(patient_key="HMG-000303")])
         keys = patient_keys(conn)

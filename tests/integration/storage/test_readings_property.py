@@ -84,8 +84,9 @@ def test_any_batch_stored_twice_in_any_order_gives_the_same_current_set(
     assert current == _expected_current(batch)
 
 
-@settings(max_examples=25, deadline=None,
-          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
 @given(batch=deliveries(), data=st.data())
 def test_two_orders_in_separate_databases_agree(
     database: Database, batch: list[Reading], data: st.DataObject
@@ -98,8 +99,11 @@ def test_two_orders_in_separate_databases_agree(
                 for one in order:  # one delivery per call: the most arrival orders
                     store_readings(conn, [one])
                 results.append(
-                    {lid: r.delivery_id for lid in LOGICAL_IDS
-                     if (r := reading_by_logical_id(conn, lid)) is not None}
+                    {
+                        lid: r.delivery_id
+                        for lid in LOGICAL_IDS
+                        if (r := reading_by_logical_id(conn, lid)) is not None
+                    }
                 )
             finally:
                 transaction.rollback()

@@ -26,11 +26,13 @@ from tests.integration.storage import T0, database  # noqa: F401
 
 numbers = st.none() | st.floats(allow_nan=False, allow_infinity=False)
 times = st.datetimes(
-    min_value=datetime(2000, 1, 1), max_value=datetime(2099, 12, 31),
+    min_value=datetime(2000, 1, 1),
+    max_value=datetime(2099, 12, 31),
     timezones=st.sampled_from([UTC, timezone(timedelta(hours=2)), timezone(timedelta(hours=-7))]),
 )
-text = st.text(st.characters(blacklist_categories=("Cs",), blacklist_characters="\x00"),
-               max_size=20)
+text = st.text(
+    st.characters(blacklist_categories=("Cs",), blacklist_characters="\x00"), max_size=20
+)
 inputs = st.builds(
     InputUsed,
     role=text,
@@ -54,20 +56,27 @@ def derivations(draw: st.DrawFn) -> Derivation:
         **{name: draw(numbers) for name in DERIVATION_NUMBERS},
         # A Location with no field set is stored as "no location" (documented in
         # storage.serialize), so the strategy leaves it out.
-        location=draw(st.none() | st.builds(Location, st.none() | text, st.none() | text,
-                                            st.none() | text).filter(lambda loc: loc.label()
-                                                                     != "unknown location")),
+        location=draw(
+            st.none()
+            | st.builds(Location, st.none() | text, st.none() | text, st.none() | text).filter(
+                lambda loc: loc.label() != "unknown location"
+            )
+        ),
         estimated=draw(st.booleans()),
         preliminary=draw(st.booleans()),
-        constants=draw(st.dictionaries(text, st.floats(allow_nan=False, allow_infinity=False)
-                                       | text, max_size=3)),
+        constants=draw(
+            st.dictionaries(
+                text, st.floats(allow_nan=False, allow_infinity=False) | text, max_size=3
+            )
+        ),
         inputs=tuple(draw(st.lists(inputs, max_size=4))),
         flags=frozenset(draw(st.sets(st.sampled_from(list(QualityFlag))))),
     )
 
 
-@settings(max_examples=40, deadline=None,
-          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
 @given(original=derivations())
 def test_any_derivation_round_trips_field_for_field(
     database: Database, original: Derivation

@@ -52,15 +52,20 @@ class Peer:
             if self.polls == 1:
                 return httpx.Response(429, headers={"Retry-After": "7"})
             if self.polls < 4:
-                return httpx.Response(202, headers={"Retry-After": "3",
-                                                    "X-Progress": f"step {self.polls}"})
-            return httpx.Response(200, json={
-                "transactionTime": "2026-03-31T23:00:00Z",
-                "requiresAccessToken": self.requires_token,
-                "output": [{"type": "Patient",
-                            "url": f"https://{self.file_host}/files/p.ndjson"}],
-                "error": [],
-            })
+                return httpx.Response(
+                    202, headers={"Retry-After": "3", "X-Progress": f"step {self.polls}"}
+                )
+            return httpx.Response(
+                200,
+                json={
+                    "transactionTime": "2026-03-31T23:00:00Z",
+                    "requiresAccessToken": self.requires_token,
+                    "output": [
+                        {"type": "Patient", "url": f"https://{self.file_host}/files/p.ndjson"}
+                    ],
+                    "error": [],
+                },
+            )
         if path.endswith("/status/1") and request.method == "DELETE":
             return httpx.Response(202)
         if path.startswith("/files/"):
@@ -80,9 +85,14 @@ def run(peer: Peer, tmp_path: Path) -> tuple[list[float], list[str]]:
         def file_bytes(self, size: int) -> None: ...
         def file_done(self, name: str, size: int) -> None: ...
 
-    with BulkExporter(BASE, tmp_path, auth=BearerAuth("not-a-real-token"),
-                      client=httpx.Client(transport=httpx.MockTransport(peer)),
-                      sleep=waits.append, progress=Progress()) as exporter:
+    with BulkExporter(
+        BASE,
+        tmp_path,
+        auth=BearerAuth("not-a-real-token"),
+        client=httpx.Client(transport=httpx.MockTransport(peer)),
+        sleep=waits.append,
+        progress=Progress(),
+    ) as exporter:
         exporter.run(ExportRequest())
     return waits, statuses
 
@@ -112,8 +122,11 @@ def test_token_never_goes_to_another_host(tmp_path: Path) -> None:
 
 
 def test_kickoff_parameters(tmp_path: Path) -> None:
-    request = ExportRequest(level=ExportLevel.GROUP, group_id="icu-north",
-                            type_filters=(observation_type_filter(CodeTable.load()),))
+    request = ExportRequest(
+        level=ExportLevel.GROUP,
+        group_id="icu-north",
+        type_filters=(observation_type_filter(CodeTable.load()),),
+    )
     assert request.path() == "Group/icu-north/$export"
     params = dict(request.params())
     assert params["_type"] == "Patient,Encounter,Observation"
@@ -150,13 +163,14 @@ def test_combined_file_puts_context_first_and_observations_in_time_order(
 
 @settings(max_examples=50, deadline=None)
 @given(st.lists(st.sampled_from(["Patient", "Encounter", "Observation"]), max_size=30))
-def test_combined_file_keeps_every_line(tmp_path_factory: pytest.TempPathFactory,
-                                        types: list[str]) -> None:
+def test_combined_file_keeps_every_line(
+    tmp_path_factory: pytest.TempPathFactory, types: list[str]
+) -> None:
     folder = tmp_path_factory.mktemp("c")
     src = folder / "in.ndjson"
-    src.write_text("".join(
-        json.dumps({"resourceType": t, "id": f"r{i}"}) + "\n" for i, t in enumerate(types)
-    ))
+    src.write_text(
+        "".join(json.dumps({"resourceType": t, "id": f"r{i}"}) + "\n" for i, t in enumerate(types))
+    )
     out, count = combine_for_loading([src], folder / "load.ndjson")
     got = [json.loads(line) for line in out.read_text().splitlines()]
     assert count == len(types)

@@ -13,8 +13,9 @@ from adapters.fhir.limits import MAX_DEPTH, bounded_head, nesting_depth, split_t
 
 JSON_VALUES = st.recursive(
     st.none() | st.booleans() | st.integers() | st.text(max_size=8),
-    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=4), inner,
-                                                                 max_size=4),
+    lambda inner: (
+        st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=4), inner, max_size=4)
+    ),
     max_leaves=30,
 )
 
@@ -46,6 +47,7 @@ def test_depth_agrees_with_a_plain_recursive_count(value: object) -> None:
         if isinstance(v, list):
             return 1 + max((depth(c) for c in v), default=0)
         return 0
+
     assert nesting_depth(value) == depth(value)
 
 

@@ -142,8 +142,11 @@ def test_each_assertion_has_its_own_jti(rsa_key: rsa.RSAPrivateKey) -> None:
     jtis = set()
     for _ in range(5):
         claims = jwt.decode(
-            auth.client_assertion(TOKEN_URL), rsa_key.public_key(), algorithms=["RS384"],
-            audience=TOKEN_URL, options={"verify_exp": False, "verify_iat": False},
+            auth.client_assertion(TOKEN_URL),
+            rsa_key.public_key(),
+            algorithms=["RS384"],
+            audience=TOKEN_URL,
+            options={"verify_exp": False, "verify_iat": False},
         )
         jtis.add(claims["jti"])
     assert len(jtis) == 5  # SMART: a jti is never reused
@@ -184,8 +187,10 @@ def test_refusal_names_the_error_and_shows_no_secret(
     ec_key: ec.EllipticCurvePrivateKey, error: str, caplog: pytest.LogCaptureFixture
 ) -> None:
     peer, clock = TokenPeer(), [0.0]
-    peer.token_error = (400 if error == "invalid_scope" else 401,
-                        {"error": error, "error_description": "refused by policy"})
+    peer.token_error = (
+        400 if error == "invalid_scope" else 401,
+        {"error": error, "error_description": "refused by policy"},
+    )
     auth = make_auth(ec_key, peer, clock)
     caplog.set_level(logging.DEBUG)
     with pytest.raises(SmartAuthError) as info:
@@ -206,16 +211,24 @@ def test_discovery_reads_the_token_endpoint(ec_key: ec.EllipticCurvePrivateKey) 
     def peer(request: httpx.Request) -> httpx.Response:
         seen.append(str(request.url))
         if request.url.path.endswith("/.well-known/smart-configuration"):
-            return httpx.Response(200, json={
-                "token_endpoint": TOKEN_URL,
-                "token_endpoint_auth_methods_supported": ["private_key_jwt"],
-                "token_endpoint_auth_signing_alg_values_supported": ["RS384", "ES384"],
-            })
-        return httpx.Response(200, json={"access_token": "t", "token_type": "Bearer",
-                                         "expires_in": 60})
+            return httpx.Response(
+                200,
+                json={
+                    "token_endpoint": TOKEN_URL,
+                    "token_endpoint_auth_methods_supported": ["private_key_jwt"],
+                    "token_endpoint_auth_signing_alg_values_supported": ["RS384", "ES384"],
+                },
+            )
+        return httpx.Response(
+            200, json={"access_token": "t", "token_type": "Bearer", "expires_in": 60}
+        )
 
-    auth = SmartAuth(settings(token_url=None), BASE, key=ec_key,
-                     client=httpx.Client(transport=httpx.MockTransport(peer)))
+    auth = SmartAuth(
+        settings(token_url=None),
+        BASE,
+        key=ec_key,
+        client=httpx.Client(transport=httpx.MockTransport(peer)),
+    )
     assert auth.token().value == "t"
     assert seen == [f"{BASE}/.well-known/smart-configuration", TOKEN_URL]
 
@@ -224,13 +237,20 @@ def test_discovery_refuses_a_server_without_our_algorithm(
     ec_key: ec.EllipticCurvePrivateKey,
 ) -> None:
     def peer(request: httpx.Request) -> httpx.Response:
-        return httpx.Response(200, json={
-            "token_endpoint": TOKEN_URL,
-            "token_endpoint_auth_signing_alg_values_supported": ["RS384"],
-        })
+        return httpx.Response(
+            200,
+            json={
+                "token_endpoint": TOKEN_URL,
+                "token_endpoint_auth_signing_alg_values_supported": ["RS384"],
+            },
+        )
 
-    auth = SmartAuth(settings(token_url=None), BASE, key=ec_key,
-                     client=httpx.Client(transport=httpx.MockTransport(peer)))
+    auth = SmartAuth(
+        settings(token_url=None),
+        BASE,
+        key=ec_key,
+        client=httpx.Client(transport=httpx.MockTransport(peer)),
+    )
     with pytest.raises(SmartAuthError, match="not ES384"):
         auth.token()
 

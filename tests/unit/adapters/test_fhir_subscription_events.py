@@ -29,10 +29,13 @@ def r4(kind: str, since: int, numbers: list[int], resources: int = 0) -> bytes:
         {"name": "notification-event", "part": [{"name": "event-number", "valueString": str(n)}]}
         for n in numbers
     ]
-    entries = [{"fullUrl": "urn:uuid:1", "resource": {"resourceType": "Parameters",
-                                                      "parameter": params}}]
-    entries += [{"fullUrl": f"{SUB}/x{i}", "resource": {"resourceType": "Observation",
-                                                         "id": f"x{i}"}} for i in range(resources)]
+    entries = [
+        {"fullUrl": "urn:uuid:1", "resource": {"resourceType": "Parameters", "parameter": params}}
+    ]
+    entries += [
+        {"fullUrl": f"{SUB}/x{i}", "resource": {"resourceType": "Observation", "id": f"x{i}"}}
+        for i in range(resources)
+    ]
     return orjson.dumps({"resourceType": "Bundle", "type": "history", "entry": entries})
 
 
@@ -44,11 +47,16 @@ def test_r4_parameters_form() -> None:
 
 
 def test_r4b_subscription_status_form() -> None:
-    status = {"resourceType": "SubscriptionStatus", "type": "event-notification",
-              "subscription": {"reference": SUB}, "eventsSinceSubscriptionStart": "12",
-              "notificationEvent": [{"eventNumber": "11"}, {"eventNumber": "12"}]}
-    body = orjson.dumps({"resourceType": "Bundle", "type": "history",
-                         "entry": [{"resource": status}]})
+    status = {
+        "resourceType": "SubscriptionStatus",
+        "type": "event-notification",
+        "subscription": {"reference": SUB},
+        "eventsSinceSubscriptionStart": "12",
+        "notificationEvent": [{"eventNumber": "11"}, {"eventNumber": "12"}],
+    }
+    body = orjson.dumps(
+        {"resourceType": "Bundle", "type": "history", "entry": [{"resource": status}]}
+    )
     d = parse_notification(body, "application/fhir+json")
     assert d.kind is HookKind.PING  # id-only: nothing to read, poll
     assert (d.events_since_start, d.event_numbers) == (12, (11, 12))
@@ -56,13 +64,16 @@ def test_r4b_subscription_status_form() -> None:
 
 def test_a_skipped_number_asks_for_a_poll() -> None:
     gaps = EventGapTracker()
-    seen = [gaps.check("ehr", parse_notification(body, None)) for body in (
-        r4("handshake", 0, []),
-        r4("event-notification", 1, [1], 1),
-        r4("event-notification", 3, [3], 1),  # 2 was lost
-        r4("heartbeat", 3, []),
-        r4("heartbeat", 5, []),  # 4 and 5 happened, never came
-    )]
+    seen = [
+        gaps.check("ehr", parse_notification(body, None))
+        for body in (
+            r4("handshake", 0, []),
+            r4("event-notification", 1, [1], 1),
+            r4("event-notification", 3, [3], 1),  # 2 was lost
+            r4("heartbeat", 3, []),
+            r4("heartbeat", 5, []),  # 4 and 5 happened, never came
+        )
+    ]
     assert [c.poll_needed for c in seen] == [False, False, True, False, True]
     assert (seen[2].missed_from, seen[2].missed_to) == (2, 2)
     assert (seen[4].missed_from, seen[4].missed_to) == (4, 5)

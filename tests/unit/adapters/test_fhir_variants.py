@@ -34,7 +34,10 @@ def codes() -> CodeTable:
 
 def new_builder(codes: CodeTable, register: PatientRegister | None = None) -> FhirReadingBuilder:
     return FhirReadingBuilder(
-        codes, source_system=s.SOURCE, patient_id_system=s.MRN_SYSTEM, received_at=RECEIVED,
+        codes,
+        source_system=s.SOURCE,
+        patient_id_system=s.MRN_SYSTEM,
+        received_at=RECEIVED,
         register=register,
     )
 
@@ -82,8 +85,9 @@ def test_file_and_line_order_do_not_change_keys(codes: CodeTable) -> None:
         reg = PatientRegister(RegisterSettings(patient_id_system=s.MRN_SYSTEM))
         b = new_builder(codes, reg)
         batch = b.read_all(order)
-        got = sorted((x.logical_id, reg.canonical(x.patient_key), x.panel_id)
-                     for x in batch.readings)
+        got = sorted(
+            (x.logical_id, reg.canonical(x.patient_key), x.panel_id) for x in batch.readings
+        )
         expected = expected or got
         assert got == expected
     assert expected and {k for _, k, _ in expected} == {"HG100001"}
@@ -109,17 +113,28 @@ def test_location_text_is_not_split_wrongly(text: str, expected: Location) -> No
 
 
 def test_encounter_location_last_one_when_none_current() -> None:
-    enc = r.Encounter.model_validate({
-        "resourceType": "Encounter",
-        "location": [
-            {"location": {"display": "Ward-5B"}, "status": "completed",
-             "period": {"start": "2026-11-28T10:00:00Z", "end": "2026-11-29T10:00:00Z"}},
-            {"location": {"display": "ICU-North, Room 4, Bed 2"}, "status": "completed",
-             "period": {"start": "2026-11-29T10:00:00Z", "end": "2026-11-30T07:00:00Z"}},
-            {"location": {"display": "Hollowmere General"}, "status": "active",
-             "physicalType": {"coding": [{"code": "si"}]}},
-        ],
-    })
+    enc = r.Encounter.model_validate(
+        {
+            "resourceType": "Encounter",
+            "location": [
+                {
+                    "location": {"display": "Ward-5B"},
+                    "status": "completed",
+                    "period": {"start": "2026-11-28T10:00:00Z", "end": "2026-11-29T10:00:00Z"},
+                },
+                {
+                    "location": {"display": "ICU-North, Room 4, Bed 2"},
+                    "status": "completed",
+                    "period": {"start": "2026-11-29T10:00:00Z", "end": "2026-11-30T07:00:00Z"},
+                },
+                {
+                    "location": {"display": "Hollowmere General"},
+                    "status": "active",
+                    "physicalType": {"coding": [{"code": "si"}]},
+                },
+            ],
+        }
+    )
     # FHIR location-physical-type "si" is a site, not where the patient lies (from memory)
     assert encounter_location(enc) == Location("ICU-North", "4", "2")
 
@@ -136,8 +151,11 @@ def test_encounter_location_becomes_a_patient_fact(codes: CodeTable) -> None:
 
 
 def _with_specimen(obs: dict, code: str, *, contained: bool = True) -> dict:
-    spec = {"resourceType": "Specimen", "id": "sp1",
-            "type": {"coding": [{"system": SNOMED, "code": code}]}}
+    spec = {
+        "resourceType": "Specimen",
+        "id": "sp1",
+        "type": {"coding": [{"system": SNOMED, "code": code}]},
+    }
     if contained:
         obs["contained"] = [spec]
         obs["specimen"] = {"reference": "#sp1"}
@@ -161,9 +179,14 @@ def test_blood_unspecified_leaves_an_in_blood_code_unknown(codes: CodeTable) -> 
     assert b.read(obs).readings[0].specimen is Specimen.UNKNOWN
 
 
-@pytest.mark.parametrize(("code", "specimen"), [("122555007", Specimen.VENOUS),
-                                                ("122554006", Specimen.CAPILLARY),
-                                                ("116176007", Specimen.VENOUS)])
+@pytest.mark.parametrize(
+    ("code", "specimen"),
+    [
+        ("122555007", Specimen.VENOUS),
+        ("122554006", Specimen.CAPILLARY),
+        ("116176007", Specimen.VENOUS),
+    ],
+)
 def test_non_arterial_specimen_wins_over_an_arterial_code_with_a_note(
     codes: CodeTable, code: str, specimen: Specimen
 ) -> None:
@@ -177,10 +200,14 @@ def test_non_arterial_specimen_wins_over_an_arterial_code_with_a_note(
 
 def test_referenced_specimen_read_earlier_decides(codes: CodeTable) -> None:
     b = new_builder(codes)
-    spec = {"resourceType": "Specimen", "id": "sp1",
-            "type": {"coding": [{"system": SNOMED, "code": "122552005"}]}}
-    obs = _with_specimen(s.quantity_obs("o1", "11556-8", 80, "mm[Hg]", eid=None), "x",
-                         contained=False)
+    spec = {
+        "resourceType": "Specimen",
+        "id": "sp1",
+        "type": {"coding": [{"system": SNOMED, "code": "122552005"}]},
+    }
+    obs = _with_specimen(
+        s.quantity_obs("o1", "11556-8", 80, "mm[Hg]", eid=None), "x", contained=False
+    )
     batch = b.read_all([obs, spec])  # context first, whatever the order
     assert batch.readings[0].specimen is Specimen.ARTERIAL and not batch.skipped
 
@@ -190,27 +217,33 @@ def test_referenced_specimen_read_earlier_decides(codes: CodeTable) -> None:
 
 def test_diagnostic_report_groups_members_in_any_order(codes: CodeTable) -> None:
     members = s.gas_panel_with_members()[:3]
-    report = {"resourceType": "DiagnosticReport", "id": "dr1", "status": "final",
-              "code": {"coding": [{"system": s.LOINC, "code": "24336-0"}]},
-              "result": [{"reference": f"Observation/{m['id']}"} for m in members]}
+    report = {
+        "resourceType": "DiagnosticReport",
+        "id": "dr1",
+        "status": "final",
+        "code": {"coding": [{"system": s.LOINC, "code": "24336-0"}]},
+        "result": [{"reference": f"Observation/{m['id']}"} for m in members],
+    }
     b = new_builder(codes)
     early = b.read(members[0])  # a member before its report, as a stream gives it
     assert early.readings[0].panel_id is None
     batch = b.read(report)
-    assert ("fhir:" + s.SOURCE + ":Observation/" + members[0]["id"], "DiagnosticReport/dr1") \
-        in batch.panel_members  # the caller re-groups the stored member
+    assert (
+        "fhir:" + s.SOURCE + ":Observation/" + members[0]["id"],
+        "DiagnosticReport/dr1",
+    ) in batch.panel_members  # the caller re-groups the stored member
     later = b.read(members[1])
     assert later.readings[0].panel_id == "DiagnosticReport/dr1"
     b2 = new_builder(codes)
-    assert {x.panel_id for x in b2.read_all([*members, report]).readings} == \
-        {"DiagnosticReport/dr1"}
+    assert {x.panel_id for x in b2.read_all([*members, report]).readings} == {
+        "DiagnosticReport/dr1"
+    }
 
 
 # --- comparator ---------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize(("comparator", "value"), [(">", 500), ("<", 5), (">=", 600),
-                                                   ("<=", 10)])
+@pytest.mark.parametrize(("comparator", "value"), [(">", 500), ("<", 5), (">=", 600), ("<=", 10)])
 def test_quantity_with_comparator_is_censored_never_a_reading(
     codes: CodeTable, comparator: str, value: float
 ) -> None:
@@ -254,19 +287,30 @@ def test_2708_6_in_vital_signs_is_pulse_oximetry(codes: CodeTable) -> None:
 
 @pytest.mark.parametrize(
     ("text", "device"),
-    [("nasal_cannula", O2Device.NASAL_CANNULA), ("nasal cannula", O2Device.NASAL_CANNULA),
-     ("NC", O2Device.NASAL_CANNULA), ("Nasal Cannula", O2Device.NASAL_CANNULA),
-     ("non-rebreather", O2Device.RESERVOIR_MASK), ("Non Rebreather Mask", O2Device.RESERVOIR_MASK),
-     ("room_air", O2Device.ROOM_AIR), ("High-flow nasal cannula", O2Device.HIGH_FLOW_NASAL)],
+    [
+        ("nasal_cannula", O2Device.NASAL_CANNULA),
+        ("nasal cannula", O2Device.NASAL_CANNULA),
+        ("NC", O2Device.NASAL_CANNULA),
+        ("Nasal Cannula", O2Device.NASAL_CANNULA),
+        ("non-rebreather", O2Device.RESERVOIR_MASK),
+        ("Non Rebreather Mask", O2Device.RESERVOIR_MASK),
+        ("room_air", O2Device.ROOM_AIR),
+        ("High-flow nasal cannula", O2Device.HIGH_FLOW_NASAL),
+    ],
 )
 def test_device_words(codes: CodeTable, text: str, device: O2Device) -> None:
     # common practice, no source: the words charting systems use for these devices
     assert codes.device(None, None, text) is device
 
 
-@pytest.mark.parametrize(("code", "device"), [("336623009", O2Device.NASAL_CANNULA),
-                                              ("427591007", O2Device.RESERVOIR_MASK),
-                                              ("428285009", O2Device.VENTURI_MASK)])
+@pytest.mark.parametrize(
+    ("code", "device"),
+    [
+        ("336623009", O2Device.NASAL_CANNULA),
+        ("427591007", O2Device.RESERVOIR_MASK),
+        ("428285009", O2Device.VENTURI_MASK),
+    ],
+)
 def test_snomed_device_codes(codes: CodeTable, code: str, device: O2Device) -> None:
     # SNOMED CT device codes, IHE PCC value set (sheet section 10)
     assert codes.device(SNOMED, code) is device

@@ -15,23 +15,33 @@ from hypothesis import strategies as st
 from adapters.hl7v2.ack import ack_for_batch, build_ack, safe_text, unreadable_reason
 from tests import hl7_samples as s
 
-DRIVER = ("(sqlite3.OperationalError) database is locked\n[SQL: INSERT INTO quarantine "
-          "(source) VALUES (?)]\n[parameters: ('hl7:lab',)]\n(Background on this error at: "
-          "https://sqlalche.me/e/21/e3q8)")
+DRIVER = (
+    "(sqlite3.OperationalError) database is locked\n[SQL: INSERT INTO quarantine "
+    "(source) VALUES (?)]\n[parameters: ('hl7:lab',)]\n(Background on this error at: "
+    "https://sqlalche.me/e/21/e3q8)"
+)
 
 
 def test_a_driver_dump_and_its_link_never_reach_the_ack() -> None:
-    ack = build_ack(s.ABG_251.encode(), "AR", f"failed: {DRIVER}", control_id="A1",
-                    timestamp="20260315090000",
-                    error_code="207").decode()
+    ack = build_ack(
+        s.ABG_251.encode(),
+        "AR",
+        f"failed: {DRIVER}",
+        control_id="A1",
+        timestamp="20260315090000",
+        error_code="207",
+    ).decode()
     assert "INSERT" not in ack and "sqlalche.me" not in ack and "parameters" not in ack
     parsed = parse_message(ack, validation_level=VALIDATION_LEVEL.STRICT, find_groups=True)
     parsed.validate()
     assert parsed.msa.msa_1.to_er7() == "AR"
 
 
-@given(st.text(max_size=300), st.sampled_from(["http://", "https://", "HTTPS://", "www."]),
-       st.text(alphabet="abcdefghij./-_?=", min_size=1, max_size=40))
+@given(
+    st.text(max_size=300),
+    st.sampled_from(["http://", "https://", "HTTPS://", "www."]),
+    st.text(alphabet="abcdefghij./-_?=", min_size=1, max_size=40),
+)
 def test_no_link_survives_in_any_reason(before: str, scheme: str, rest: str) -> None:
     cleaned = safe_text(f"{before} {scheme}{rest} end")
     assert scheme.lower() not in cleaned.lower()

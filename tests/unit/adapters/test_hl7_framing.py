@@ -52,8 +52,10 @@ def test_one_byte_at_a_time() -> None:
     assert not framer.in_message
 
 
-@given(st.lists(st.integers(min_value=0, max_value=3 * len(M1)), max_size=12),
-       st.permutations([M1, M2, M3]))
+@given(
+    st.lists(st.integers(min_value=0, max_value=3 * len(M1)), max_size=12),
+    st.permutations([M1, M2, M3]),
+)
 def test_any_split_of_any_order_of_frames_gives_the_same_messages(
     cuts: list[int], messages: list[bytes]
 ) -> None:
@@ -117,8 +119,9 @@ def test_a_file_of_consecutive_messages_with_crlf(tmp_path: Path) -> None:
 
 def test_a_file_of_mllp_frames_in_a_batch_envelope(tmp_path: Path) -> None:
     path = tmp_path / "feed.hl7"
-    path.write_bytes(b"FHS|^~\\&|HGH-LAB\rBHS|^~\\&|HGH-LAB\r" + wrapped(M1) + wrapped(M2)
-                     + b"BTS|2\rFTS|1\r")
+    path.write_bytes(
+        b"FHS|^~\\&|HGH-LAB\rBHS|^~\\&|HGH-LAB\r" + wrapped(M1) + wrapped(M2) + b"BTS|2\rFTS|1\r"
+    )
     assert list(iter_hl7_file(path)) == [M1, M2]
 
 
@@ -129,8 +132,9 @@ def test_stray_lines_are_not_glued_onto_a_neighbouring_message(tmp_path: Path) -
     assert messages[0] == M1 and messages[-1] == M2 and len(messages) == 3
 
 
-def test_a_crlf_split_across_read_chunks_is_one_line_end(tmp_path: Path,
-                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+def test_a_crlf_split_across_read_chunks_is_one_line_end(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     import adapters.hl7v2.files as files
 
     monkeypatch.setattr(files, "_CHUNK", 7)  # tiny reads put CR and LF in different chunks

@@ -21,9 +21,14 @@ HL7_CHARS = "|^~\\&\r\n" + "0123456789.-+ %[]AZFCPWXUDIOBNSV" + "\x0b\x1c\xff"
 
 def parse_or_error(raw: bytes | str) -> ParsedMessage | Hl7Error:
     try:
-        return parse_oru(raw, received_at=datetime(2026, 3, 15, tzinfo=UTC), codes=CODES,
-                         source_system="fuzz", site_tz=timezone(timedelta(hours=-7)),
-                         patient_id_system=s.MRN_SYSTEM)
+        return parse_oru(
+            raw,
+            received_at=datetime(2026, 3, 15, tzinfo=UTC),
+            codes=CODES,
+            source_system="fuzz",
+            site_tz=timezone(timedelta(hours=-7)),
+            patient_id_system=s.MRN_SYSTEM,
+        )
     except Hl7Error as exc:
         assert exc.ack_code in ("AE", "AR") and exc.reason
         return exc
@@ -71,4 +76,5 @@ def test_arbitrary_bytes_are_read_or_refused(raw: bytes) -> None:
 def test_an_ack_can_always_be_built_and_names_ae(raw: str | bytes) -> None:
     ack = build_ack(raw, "AE", "fuzz", control_id="F1")
     assert ack.startswith(b"MSH") and b"\rMSA|AE|" in ack.replace(
-        recover_header(raw).field_sep.encode("utf-8", "replace"), b"|")
+        recover_header(raw).field_sep.encode("utf-8", "replace"), b"|"
+    )

@@ -26,8 +26,13 @@ SITE_TZ = timezone(timedelta(hours=-7))
 
 
 def parse(raw: bytes | str, **kw: object) -> ParsedMessage:
-    args: dict[str, object] = dict(received_at=RECEIVED, codes=CODES, source_system="hgh-lab",
-                                   site_tz=SITE_TZ, patient_id_system=s.MRN_SYSTEM)
+    args: dict[str, object] = dict(
+        received_at=RECEIVED,
+        codes=CODES,
+        source_system="hgh-lab",
+        site_tz=SITE_TZ,
+        patient_id_system=s.MRN_SYSTEM,
+    )
     args.update(kw)
     return parse_oru(raw, **args)  # type: ignore[arg-type]
 
@@ -38,8 +43,9 @@ def one(raw: bytes | str, **kw: object):  # noqa: ANN201
     return result.readings[0]
 
 
-def single_obx(*obx_segments: str, spm: str | None = None, obr: str | None = None,
-               control_id: str = "HGH0100") -> str:
+def single_obx(
+    *obx_segments: str, spm: str | None = None, obr: str | None = None, control_id: str = "HGH0100"
+) -> str:
     parts = [s.msh(control_id), s.pid(), s.pv1(), obr or s.obr(), *obx_segments]
     if spm:
         parts.append(spm)
@@ -49,11 +55,13 @@ def single_obx(*obx_segments: str, spm: str | None = None, obr: str | None = Non
 # --- the samples are valid HL7 v2 according to hl7apy ----------------------------------
 
 
-@pytest.mark.parametrize("name", ["ABG_251", "ABG_KPA_23", "VENOUS_SPM", "PULSE_OX", "VENT",
-                                  "MIXED"])
+@pytest.mark.parametrize(
+    "name", ["ABG_251", "ABG_KPA_23", "VENOUS_SPM", "PULSE_OX", "VENT", "MIXED"]
+)
 def test_samples_are_valid_hl7_according_to_hl7apy(name: str) -> None:
-    message = parse_message(getattr(s, name), validation_level=VALIDATION_LEVEL.STRICT,
-                            find_groups=True)
+    message = parse_message(
+        getattr(s, name), validation_level=VALIDATION_LEVEL.STRICT, find_groups=True
+    )
     message.validate()
     assert message.name == "ORU_R01"
 
@@ -83,8 +91,9 @@ def test_a_message_built_with_hl7apy_is_read_with_its_values_and_units() -> None
     pao2, fio2 = result.readings
     assert pao2.kind is Kind.PAO2 and pao2.specimen is Specimen.ARTERIAL
     # Pint 0.25: 9.8 kPa in conventional mmHg
-    assert pao2.value == pytest.approx(pint.UnitRegistry().Quantity(9.8, "kPa").to("mmHg").m,
-                                       rel=1e-9)
+    assert pao2.value == pytest.approx(
+        pint.UnitRegistry().Quantity(9.8, "kPa").to("mmHg").m, rel=1e-9
+    )
     assert fio2.value == pytest.approx(0.35)  # 35 % as a fraction: definition of percent
     assert pao2.patient_key == "HM100555" and pao2.birth_date == date(1949, 9, 21)
     assert pao2.location == Location("ICU-North", "7", "1")
@@ -98,7 +107,10 @@ def test_a_message_built_with_hl7apy_is_read_with_its_values_and_units() -> None
 def test_the_arterial_gas_gives_five_canonical_readings() -> None:
     result = parse(s.ABG_251)
     assert (result.control_id, result.message_type, result.version) == (
-        "HGH0001", "ORU^R01", "2.5.1")
+        "HGH0001",
+        "ORU^R01",
+        "2.5.1",
+    )
     by_kind = {r.kind: r for r in result.readings}
     assert set(by_kind) == {Kind.PAO2, Kind.PACO2, Kind.PH, Kind.SAO2, Kind.FIO2}
     assert by_kind[Kind.PAO2].value == 68 and by_kind[Kind.PAO2].unit == "mm[Hg]"
@@ -134,16 +146,22 @@ def test_a_correction_keeps_the_logical_id_and_gets_a_new_delivery_id() -> None:
 
 
 def test_the_sub_id_separates_two_results_with_the_same_code() -> None:
-    raw = single_obx(s.obx(1, "2703-7", "70", "mm[Hg]", sub_id="1"),
-                     s.obx(2, "2703-7", "72", "mm[Hg]", sub_id="2"))
+    raw = single_obx(
+        s.obx(1, "2703-7", "70", "mm[Hg]", sub_id="1"),
+        s.obx(2, "2703-7", "72", "mm[Hg]", sub_id="2"),
+    )
     ids = {r.logical_id for r in parse(raw).readings}
     assert len(ids) == 2
 
 
 def test_two_obx_for_the_same_result_in_one_message_are_both_rejected() -> None:
-    result = parse(single_obx(s.obx(1, "2703-7", "70", "mm[Hg]"),
-                              s.obx(2, "2703-7", "50", "mm[Hg]"),
-                              s.obx(3, "2019-8", "41", "mm[Hg]")))
+    result = parse(
+        single_obx(
+            s.obx(1, "2703-7", "70", "mm[Hg]"),
+            s.obx(2, "2703-7", "50", "mm[Hg]"),
+            s.obx(3, "2019-8", "41", "mm[Hg]"),
+        )
+    )
     assert [r.kind for r in result.readings] == [Kind.PACO2]
     assert [r.where for r in result.rejected] == ["OBX[1]-3", "OBX[2]-3"]
 
@@ -156,11 +174,18 @@ def test_an_empty_set_id_falls_back_to_the_obx_position_for_the_delivery_id() ->
 # --- statuses (reference sheet section 11, HL7 Table 0085) --------------------------------
 
 
-@pytest.mark.parametrize(("code", "status"), [
-    ("F", Status.FINAL), ("C", Status.CORRECTED), ("A", Status.CORRECTED),
-    ("P", Status.PRELIMINARY), ("R", Status.PRELIMINARY), ("S", Status.PRELIMINARY),
-    ("U", Status.FINAL),
-])
+@pytest.mark.parametrize(
+    ("code", "status"),
+    [
+        ("F", Status.FINAL),
+        ("C", Status.CORRECTED),
+        ("A", Status.CORRECTED),
+        ("P", Status.PRELIMINARY),
+        ("R", Status.PRELIMINARY),
+        ("S", Status.PRELIMINARY),
+        ("U", Status.FINAL),
+    ],
+)
 def test_result_status_with_a_value(code: str, status: Status) -> None:
     reading = one(single_obx(s.obx(1, "2703-7", "70", "mm[Hg]", status=code)))
     assert reading.status is status and reading.value == 70
@@ -177,8 +202,11 @@ def test_deleted_wrong_or_cancelled_results_retract_with_or_without_a_value(code
 
 @pytest.mark.parametrize("code", ["I", "O", "N", "B", "V"])
 def test_statuses_without_a_new_result_are_counted_and_ignored(code: str) -> None:
-    result = parse(single_obx(s.obx(1, "2703-7", "70", "mm[Hg]", status=code),
-                              s.obx(2, "2019-8", "41", "mm[Hg]")))
+    result = parse(
+        single_obx(
+            s.obx(1, "2703-7", "70", "mm[Hg]", status=code), s.obx(2, "2019-8", "41", "mm[Hg]")
+        )
+    )
     assert result.ignored == {code: 1}
     assert [r.kind for r in result.readings] == [Kind.PACO2]
     assert not result.rejected
@@ -216,11 +244,18 @@ def test_kpa_factor_matches_the_reference_sheet() -> None:
     assert reading.value == pytest.approx(75.00616, abs=1e-5)
 
 
-@pytest.mark.parametrize(("value", "unit", "value_type"), [
-    ("40", "%", "NM"), ("0.40", "1", "NM"), ("40 %", "", "ST"), ("40", "", "ST"),
-])
-def test_fio2_in_percent_or_fraction_becomes_a_fraction(value: str, unit: str,
-                                                        value_type: str) -> None:
+@pytest.mark.parametrize(
+    ("value", "unit", "value_type"),
+    [
+        ("40", "%", "NM"),
+        ("0.40", "1", "NM"),
+        ("40 %", "", "ST"),
+        ("40", "", "ST"),
+    ],
+)
+def test_fio2_in_percent_or_fraction_becomes_a_fraction(
+    value: str, unit: str, value_type: str
+) -> None:
     reading = one(single_obx(s.obx(1, "3150-0", value, unit, value_type=value_type)))
     assert reading.kind is Kind.FIO2 and reading.value == pytest.approx(0.40)
 
@@ -233,13 +268,19 @@ def test_a_pressure_without_a_unit_is_rejected_not_guessed() -> None:
 def test_structured_numeric_is_read_and_a_censored_value_kept_apart() -> None:
     # HL7 v2 SN = comparator^num1^separator^num2 (v2.5 chapter 2A, from memory): a
     # comparator makes the value censored, never an exact number
-    result = parse(single_obx(s.obx(1, "2744-1", "^7.41", "[pH]", value_type="SN"),
-                              s.obx(2, "2019-8", "<^20", "mm[Hg]", value_type="SN"),
-                              s.obx(3, "2703-7", ">^500", "mm[Hg]", value_type="SN")))
+    result = parse(
+        single_obx(
+            s.obx(1, "2744-1", "^7.41", "[pH]", value_type="SN"),
+            s.obx(2, "2019-8", "<^20", "mm[Hg]", value_type="SN"),
+            s.obx(3, "2703-7", ">^500", "mm[Hg]", value_type="SN"),
+        )
+    )
     assert [r.value for r in result.readings] == [pytest.approx(7.41)]
     assert not result.rejected
     assert [(c.kind, c.comparator, c.limit) for c in result.censored] == [
-        (Kind.PACO2, "<", 20.0), (Kind.PAO2, ">", 500.0)]
+        (Kind.PACO2, "<", 20.0),
+        (Kind.PAO2, ">", 500.0),
+    ]
 
 
 # --- bad parts of a message ---------------------------------------------------------------
@@ -257,11 +298,14 @@ def test_an_unknown_code_is_counted_and_skipped_not_rejected() -> None:
 
 
 def test_an_implausible_value_is_rejected_with_the_readings_reason() -> None:
-    result = parse(single_obx(s.obx(1, "2703-7", "4000", "mm[Hg]"),
-                              s.obx(2, "2019-8", "41", "mm[Hg]")))
+    result = parse(
+        single_obx(s.obx(1, "2703-7", "4000", "mm[Hg]"), s.obx(2, "2019-8", "41", "mm[Hg]"))
+    )
     assert [r.kind for r in result.readings] == [Kind.PACO2]
-    assert result.rejected[0].where == "OBX[1]-5" and "must be in [5, 800]" in \
-        result.rejected[0].reason
+    assert (
+        result.rejected[0].where == "OBX[1]-5"
+        and "must be in [5, 800]" in result.rejected[0].reason
+    )
 
 
 def test_a_result_without_any_time_is_rejected() -> None:
@@ -282,14 +326,19 @@ def test_a_venous_specimen_overrides_an_arterial_loinc() -> None:
     assert reading.kind is Kind.PAO2 and reading.specimen is Specimen.VENOUS
 
 
-@pytest.mark.parametrize(("source", "expected"), [
-    ("BLDV&Venous blood", Specimen.VENOUS), ("BLDC", Specimen.CAPILLARY),
-    ("&Arterialised capillary blood", Specimen.CAPILLARY), ("&mixed venous", Specimen.VENOUS),
-    ("BLDA", Specimen.ARTERIAL), ("", Specimen.ARTERIAL),
-])
+@pytest.mark.parametrize(
+    ("source", "expected"),
+    [
+        ("BLDV&Venous blood", Specimen.VENOUS),
+        ("BLDC", Specimen.CAPILLARY),
+        ("&Arterialised capillary blood", Specimen.CAPILLARY),
+        ("&mixed venous", Specimen.VENOUS),
+        ("BLDA", Specimen.ARTERIAL),
+        ("", Specimen.ARTERIAL),
+    ],
+)
 def test_obr15_specimen_source_with_an_arterial_loinc(source: str, expected: Specimen) -> None:
-    reading = one(single_obx(s.obx(1, "2703-7", "70", "mm[Hg]"),
-                             obr=s.obr(specimen_source=source)))
+    reading = one(single_obx(s.obx(1, "2703-7", "70", "mm[Hg]"), obr=s.obr(specimen_source=source)))
     assert reading.specimen is expected
 
 
@@ -338,8 +387,7 @@ def test_ventilator_settings_are_marked_and_the_device_is_coded() -> None:
 
 def test_a_device_as_snomed_code_is_read() -> None:
     # SNOMED CT 336623009 oxygen nasal cannula (reference sheet section 10)
-    reading = one(single_obx(s.obx(1, "107117-4", "336623009^Nasal cannula^SCT",
-                                   value_type="CWE")))
+    reading = one(single_obx(s.obx(1, "107117-4", "336623009^Nasal cannula^SCT", value_type="CWE")))
     assert reading.code_value == "nasal_cannula"
 
 
@@ -349,8 +397,10 @@ def test_a_device_as_snomed_code_is_read() -> None:
 def test_naive_times_take_the_site_zone_and_become_utc() -> None:
     reading = one(single_obx(s.obx(1, "2703-7", "70", "mm[Hg]", when="202603150832")))
     assert reading.effective_at == datetime(2026, 3, 15, 15, 32, tzinfo=UTC)
-    zoned = one(single_obx(s.obx(1, "2703-7", "70", "mm[Hg]", when="202607010832")),
-                site_tz=ZoneInfo("America/Denver"))
+    zoned = one(
+        single_obx(s.obx(1, "2703-7", "70", "mm[Hg]", when="202607010832")),
+        site_tz=ZoneInfo("America/Denver"),
+    )
     # US daylight time in July: UTC-6 (from memory: Energy Policy Act 2005 rules)
     assert zoned.effective_at == datetime(2026, 7, 1, 14, 32, tzinfo=UTC)
 
@@ -368,16 +418,19 @@ def test_a_small_negative_offset_keeps_its_sign() -> None:
 @pytest.mark.parametrize("when", ["2026031508", "20260315", "2026"])
 def test_times_coarser_than_minutes_are_rejected(when: str) -> None:
     result = parse(single_obx(s.obx(1, "2703-7", "70", "mm[Hg]", when=when)))
-    assert result.rejected[0].where == "OBX[1]-14" and "coarser than minutes" in \
-        result.rejected[0].reason
+    assert (
+        result.rejected[0].where == "OBX[1]-14"
+        and "coarser than minutes" in result.rejected[0].reason
+    )
 
 
 # --- patient ---------------------------------------------------------------------------------
 
 
 def test_the_identifier_of_the_configured_system_is_the_patient_key() -> None:
-    raw = s.message(s.msh(), s.pid(extra_ids="X77^^^OTHERLAB^PI"), s.obr(),
-                    s.obx(1, "2703-7", "70", "mm[Hg]"))
+    raw = s.message(
+        s.msh(), s.pid(extra_ids="X77^^^OTHERLAB^PI"), s.obr(), s.obx(1, "2703-7", "70", "mm[Hg]")
+    )
     assert one(raw).patient_key == "HM100234"
     # without a configured system, the best key among identifiers by text
     assert one(raw, patient_id_system=None).patient_key == "OTHERLAB|X77"
@@ -393,26 +446,33 @@ def test_a_partial_birth_date_leaves_age_unknown_with_a_warning() -> None:
 # --- whole-message errors -------------------------------------------------------------------
 
 
-@pytest.mark.parametrize(("raw", "ack_code", "words"), [
-    (s.ADT_A01, "AR", "ADT"),
-    (s.abg(version="2.6"), "AR", "2.6"),
-    (s.message(s.msh(msg_type="ORU^R30^ORU_R30"), s.pid()), "AR", "ORU^R30"),
-    (s.message(s.msh(control_id=""), s.pid()), "AE", "MSH-10"),
-    (s.message(s.msh(), s.obr(), s.obx(1, "2703-7", "70", "mm[Hg]")), "AE", "PID"),
-    ("PID|1||HM1\rOBX|1", "AE", "MSH"),
-    ("", "AE", "MSH"),
-    ("MSH|^~\\^|x", "AE", "MSH-2"),
-])
-def test_unusable_messages_raise_with_the_ack_to_send(raw: str, ack_code: str,
-                                                      words: str) -> None:
+@pytest.mark.parametrize(
+    ("raw", "ack_code", "words"),
+    [
+        (s.ADT_A01, "AR", "ADT"),
+        (s.abg(version="2.6"), "AR", "2.6"),
+        (s.message(s.msh(msg_type="ORU^R30^ORU_R30"), s.pid()), "AR", "ORU^R30"),
+        (s.message(s.msh(control_id=""), s.pid()), "AE", "MSH-10"),
+        (s.message(s.msh(), s.obr(), s.obx(1, "2703-7", "70", "mm[Hg]")), "AE", "PID"),
+        ("PID|1||HM1\rOBX|1", "AE", "MSH"),
+        ("", "AE", "MSH"),
+        ("MSH|^~\\^|x", "AE", "MSH-2"),
+    ],
+)
+def test_unusable_messages_raise_with_the_ack_to_send(raw: str, ack_code: str, words: str) -> None:
     with pytest.raises(Hl7Error) as caught:
         parse(raw)
     assert caught.value.ack_code == ack_code and words in caught.value.reason
 
 
 def test_latin1_is_decoded_when_msh18_names_it() -> None:
-    raw = s.message(s.msh(charset="8859/1"), s.pid(), s.pv1("Station-Höhe"), s.obr(),
-                    s.obx(1, "2703-7", "70", "mm[Hg]")).encode("latin-1")
+    raw = s.message(
+        s.msh(charset="8859/1"),
+        s.pid(),
+        s.pv1("Station-Höhe"),
+        s.obr(),
+        s.obx(1, "2703-7", "70", "mm[Hg]"),
+    ).encode("latin-1")
     assert one(raw).location == Location("Station-Höhe", "4", "2")
 
 
@@ -461,8 +521,7 @@ def test_an_aa_ack_is_a_valid_251_ack_echoing_the_control_id() -> None:
 
 def test_an_ae_ack_carries_the_reason_escaped_in_msa3_and_err() -> None:
     reason = "OBX[3]-5: value 'a|b^c' is not a number"
-    ack = _apy(build_ack(s.ABG_251, "AE", reason, control_id="A2",
-                         timestamp="20260315150000+0000"))
+    ack = _apy(build_ack(s.ABG_251, "AE", reason, control_id="A2", timestamp="20260315150000+0000"))
     assert ack.msa.msa_1.to_er7() == "AE"
     assert ack.msa.msa_3.to_er7() == "OBX[3]-5: value 'a\\F\\b\\S\\c' is not a number"
     assert ack.err.err_3.err_3_1.to_er7() == "207" and ack.err.err_4.to_er7() == "E"
@@ -470,13 +529,14 @@ def test_an_ae_ack_carries_the_reason_escaped_in_msa3_and_err() -> None:
 
 def test_an_ack_for_an_unparseable_message_recovers_what_msh_it_can() -> None:
     broken = b"MSH|^~\\&|HGH-LAB|HOLLOWMERE|GASGAP|HOLLOWMERE|x||ORU^R01|HGH0666|P|2.5.1\r\xff\xfe"
-    ack = _apy(build_ack(broken, "AE", "garbled", control_id="A3",
-                         timestamp="20260315150000+0000"))
+    ack = _apy(build_ack(broken, "AE", "garbled", control_id="A3", timestamp="20260315150000+0000"))
     assert ack.msa.msa_2.to_er7() == "HGH0666"
     # with no message there is no control id to echo, so MSA-2 (required) stays empty
     # and only hl7apy's tolerant level accepts it
-    nothing = _apy(build_ack(None, "AE", "no message", control_id="A4",
-                             timestamp="20260315150000+0000"), VALIDATION_LEVEL.TOLERANT)
+    nothing = _apy(
+        build_ack(None, "AE", "no message", control_id="A4", timestamp="20260315150000+0000"),
+        VALIDATION_LEVEL.TOLERANT,
+    )
     assert nothing.msa.msa_1.to_er7() == "AE" and nothing.msh.msh_12.to_er7() == "2.5.1"
 
 

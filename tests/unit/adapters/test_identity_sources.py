@@ -25,8 +25,14 @@ SITE = "urn:oid:2.999.1.1.1"
 
 def _hl7(pid_segment: str, settings: RegisterSettings):  # noqa: ANN202
     raw = h.message(h.msh(), pid_segment, h.pv1(), h.obr(), h.obx(1, "2703-7", "70", "mm[Hg]"))
-    return parse_oru(raw, received_at=RECEIVED, codes=CODES, source_system="lab",
-                     site_tz=ZoneInfo("Europe/London"), register_settings=settings)
+    return parse_oru(
+        raw,
+        received_at=RECEIVED,
+        codes=CODES,
+        source_system="lab",
+        site_tz=ZoneInfo("Europe/London"),
+        register_settings=settings,
+    )
 
 
 def _fhir_patient(mrn: str) -> dict:
@@ -42,16 +48,20 @@ def test_hl7_mrn_and_fhir_patient_are_one_person_in_any_order() -> None:
     for order in itertools.permutations(["hl7", "fhir-obs", "fhir-patient"]):
         reg = PatientRegister(settings)
         stored: list[str] = []  # keys rows were stored under, moved by re-keyings
-        builder = FhirReadingBuilder(CODES, source_system="ehr", patient_id_system=SITE,
-                                     received_at=RECEIVED, register=reg)
+        builder = FhirReadingBuilder(
+            CODES, source_system="ehr", patient_id_system=SITE, received_at=RECEIVED, register=reg
+        )
         for step in order:
             if step == "hl7":
                 for link in hl7.links:
                     reg.learn(link)
                 stored += [reg.canonical(r.patient_key) for r in hl7.readings]
                 continue
-            res = (f.quantity_obs("o1", "3150-0", 40, "%", pid="p1", eid=None)
-                   if step == "fhir-obs" else _fhir_patient("HM100234"))
+            res = (
+                f.quantity_obs("o1", "3150-0", 40, "%", pid="p1", eid=None)
+                if step == "fhir-obs"
+                else _fhir_patient("HM100234")
+            )
             batch = builder.read(res)
             for rk in batch.rekeys:
                 stored = [rk.new if k == rk.old else k for k in stored]

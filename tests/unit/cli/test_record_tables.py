@@ -57,10 +57,24 @@ def test_a_note_on_every_gas_is_said_once() -> None:
 
 def test_alerts_table_has_raised_time_with_date_and_rule_in_words() -> None:
     alerts = [
-        flag("HM730001", "1", "aa-rise", Priority.MEDIUM, NOW - timedelta(days=9),
-             "A-a rise: +30 mmHg"),
-        flag("HM730002", "2", "oxygenation-band", Priority.HIGH, NOW, "P/F <= 100: P/F 90",
-             state=AlertState.ACKNOWLEDGED, by="Ines Calloway"),
+        flag(
+            "HM730001",
+            "1",
+            "aa-rise",
+            Priority.MEDIUM,
+            NOW - timedelta(days=9),
+            "A-a rise: +30 mmHg",
+        ),
+        flag(
+            "HM730002",
+            "2",
+            "oxygenation-band",
+            Priority.HIGH,
+            NOW,
+            "P/F <= 100: P/F 90",
+            state=AlertState.ACKNOWLEDGED,
+            by="Ines Calloway",
+        ),
     ]
     text = alerts_table(alerts, DENVER, NOW)
     assert "2026-02-24 09:00" in text  # nine days before 16:00 UTC, in MST

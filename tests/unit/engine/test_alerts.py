@@ -114,16 +114,23 @@ def outcome(
 
 def derivation(sample: str = "s1", **kw: object) -> Derivation:
     values: dict[str, object] = dict(
-        patient_key=PATIENT, sample_id=sample, drawn_at=T0, specimen=Specimen.ARTERIAL,
-        equation="full", pao2=75.0, fio2=0.5, fio2_source=FiO2Source.CHARTED,
+        patient_key=PATIENT,
+        sample_id=sample,
+        drawn_at=T0,
+        specimen=Specimen.ARTERIAL,
+        equation="full",
+        pao2=75.0,
+        fio2=0.5,
+        fio2_source=FiO2Source.CHARTED,
     )
     values.update(kw)
     return Derivation(**values)  # type: ignore[arg-type]
 
 
 def raised(priority: Priority = Priority.MEDIUM, at: datetime = T0) -> Alert:
-    decision = apply_outcome(None, None, outcome("s1", priority=priority), derivation(),
-                             at, SETTINGS)
+    decision = apply_outcome(
+        None, None, outcome("s1", priority=priority), derivation(), at, SETTINGS
+    )
     assert decision.alert is not None
     return decision.alert
 
@@ -132,8 +139,9 @@ def raised(priority: Priority = Priority.MEDIUM, at: datetime = T0) -> Alert:
 
 
 def test_a_fired_outcome_raises_a_flag_with_an_audit_event():
-    decision = apply_outcome(None, None, outcome("s1", priority=Priority.MEDIUM), derivation(),
-                             T0, SETTINGS)
+    decision = apply_outcome(
+        None, None, outcome("s1", priority=Priority.MEDIUM), derivation(), T0, SETTINGS
+    )
     alert = decision.alert
     assert alert is not None and alert.state is S.RAISED
     assert alert.priority is Priority.MEDIUM and alert.sample_id == "s1"
@@ -151,8 +159,9 @@ def test_alert_ids_are_deterministic_for_a_replay():
 def test_a_worse_priority_updates_and_notifies():
     alert = raised(Priority.LOW)
     later = T0 + timedelta(hours=1)
-    decision = apply_outcome(alert, None, outcome("s2", priority=Priority.HIGH),
-                             derivation("s2"), later, SETTINGS)
+    decision = apply_outcome(
+        alert, None, outcome("s2", priority=Priority.HIGH), derivation("s2"), later, SETTINGS
+    )
     assert decision.alert is not None
     assert decision.alert.priority is Priority.HIGH
     assert decision.alert.alert_id == alert.alert_id
@@ -162,8 +171,14 @@ def test_a_worse_priority_updates_and_notifies():
 
 def test_the_same_priority_changes_nothing():
     alert = raised(Priority.MEDIUM)
-    decision = apply_outcome(alert, None, outcome("s2", priority=Priority.MEDIUM),
-                             derivation("s2"), T0 + timedelta(hours=1), SETTINGS)
+    decision = apply_outcome(
+        alert,
+        None,
+        outcome("s2", priority=Priority.MEDIUM),
+        derivation("s2"),
+        T0 + timedelta(hours=1),
+        SETTINGS,
+    )
     assert decision.alert is None and decision.events == [] and decision.notify == []
 
 
@@ -171,39 +186,65 @@ def test_a_better_priority_lowers_the_flag_with_an_event_and_no_message():
     # Issue 12 point 7: P/F 90 (high) then 240 (low): the open flag shows the present.
     alert = raised(Priority.HIGH)
     later = T0 + timedelta(hours=6)
-    decision = apply_outcome(alert, None, outcome("s2", priority=Priority.LOW, pf=240.0),
-                             derivation("s2"), later, SETTINGS)
+    decision = apply_outcome(
+        alert,
+        None,
+        outcome("s2", priority=Priority.LOW, pf=240.0),
+        derivation("s2"),
+        later,
+        SETTINGS,
+    )
     assert decision.alert is not None
     assert decision.alert.priority is Priority.LOW and decision.alert.state is S.RAISED
     assert decision.alert.sample_id == "s2" and "P/F 240" in decision.alert.summary
     assert decision.alert.alert_id == alert.alert_id
     [event] = decision.events
-    assert (event.event, event.priority, event.note) == ("lowered", Priority.LOW,
-                                                          "priority high -> low")
+    assert (event.event, event.priority, event.note) == (
+        "lowered",
+        Priority.LOW,
+        "priority high -> low",
+    )
     assert decision.notify == []
 
 
 def test_lowering_keeps_an_acknowledgement():
     acked = acknowledge(raised(Priority.HIGH), "charge.nurse", T0 + timedelta(minutes=5)).alert
     assert acked is not None
-    decision = apply_outcome(acked, None, outcome("s2", priority=Priority.MEDIUM),
-                             derivation("s2"), T0 + timedelta(hours=1), SETTINGS)
+    decision = apply_outcome(
+        acked,
+        None,
+        outcome("s2", priority=Priority.MEDIUM),
+        derivation("s2"),
+        T0 + timedelta(hours=1),
+        SETTINGS,
+    )
     assert decision.alert is not None and decision.alert.state is S.ACKNOWLEDGED
     assert decision.alert.acknowledged_by == "charge.nurse"
 
 
 def test_an_uncertain_outcome_never_lowers_a_flag():
     alert = raised(Priority.HIGH)
-    decision = apply_outcome(alert, None,
-                             outcome("s2", priority=Priority.LOW, uncertain=True),
-                             derivation("s2"), T0 + timedelta(hours=1), SETTINGS)
+    decision = apply_outcome(
+        alert,
+        None,
+        outcome("s2", priority=Priority.LOW, uncertain=True),
+        derivation("s2"),
+        T0 + timedelta(hours=1),
+        SETTINGS,
+    )
     assert decision.alert is None and decision.events == []
 
 
 def test_a_lowered_flag_is_not_escalated_at_low():
     alert = raised(Priority.HIGH)
-    lowered = apply_outcome(alert, None, outcome("s2", priority=Priority.LOW),
-                            derivation("s2"), T0 + timedelta(minutes=10), SETTINGS).alert
+    lowered = apply_outcome(
+        alert,
+        None,
+        outcome("s2", priority=Priority.LOW),
+        derivation("s2"),
+        T0 + timedelta(minutes=10),
+        SETTINGS,
+    ).alert
     assert lowered is not None
     assert escalate_due([lowered], T0 + timedelta(hours=2), SETTINGS) == []
 
@@ -211,8 +252,14 @@ def test_a_lowered_flag_is_not_escalated_at_low():
 def test_worsening_an_acknowledged_flag_asks_for_a_new_acknowledgement():
     acked = acknowledge(raised(Priority.LOW), "charge.nurse", T0 + timedelta(minutes=5)).alert
     assert acked is not None
-    decision = apply_outcome(acked, None, outcome("s2", priority=Priority.MEDIUM),
-                             derivation("s2"), T0 + timedelta(hours=1), SETTINGS)
+    decision = apply_outcome(
+        acked,
+        None,
+        outcome("s2", priority=Priority.MEDIUM),
+        derivation("s2"),
+        T0 + timedelta(hours=1),
+        SETTINGS,
+    )
     assert decision.alert is not None
     assert decision.alert.state is S.RAISED
     assert decision.alert.acknowledged_by is None
@@ -220,14 +267,19 @@ def test_worsening_an_acknowledged_flag_asks_for_a_new_acknowledgement():
 
 def test_an_unreliable_derivation_changes_nothing():
     bad = derivation("s2", flags=frozenset({QualityFlag.PAO2_ABOVE_ALVEOLAR}))
-    decision = apply_outcome(None, None, outcome("s2", priority=Priority.HIGH), bad,
-                             T0, SETTINGS)
+    decision = apply_outcome(None, None, outcome("s2", priority=Priority.HIGH), bad, T0, SETTINGS)
     assert decision.alert is None and decision.events == []
 
 
 def test_a_preliminary_outcome_raises_a_preliminary_flag():
-    decision = apply_outcome(None, None, outcome("s1", priority=Priority.LOW, preliminary=True),
-                             derivation(), T0, SETTINGS)
+    decision = apply_outcome(
+        None,
+        None,
+        outcome("s1", priority=Priority.LOW, preliminary=True),
+        derivation(),
+        T0,
+        SETTINGS,
+    )
     assert decision.alert is not None and decision.alert.preliminary
 
 
@@ -244,8 +296,14 @@ def test_a_cleared_condition_on_the_next_sample_resolves():
     alert = raised()
     at = T0 + timedelta(hours=2)
     drawn = T0 + timedelta(hours=1, minutes=40)
-    decision = apply_outcome(alert, None, outcome("s2", cleared=True, pf=345.0),
-                             derivation("s2", drawn_at=drawn), at, SETTINGS)
+    decision = apply_outcome(
+        alert,
+        None,
+        outcome("s2", cleared=True, pf=345.0),
+        derivation("s2", drawn_at=drawn),
+        at,
+        SETTINGS,
+    )
     assert decision.alert is not None
     assert decision.alert.state is S.RESOLVED and decision.alert.closed_at == at
     assert decision.alert.resolved_drawn_at == drawn
@@ -257,22 +315,34 @@ def test_a_cleared_condition_on_the_next_sample_resolves():
 
 
 def test_a_cleared_outcome_on_the_raising_sample_does_not_resolve():
-    decision = apply_outcome(raised(), None, outcome("s1", cleared=True), derivation(),
-                             T0 + timedelta(minutes=1), SETTINGS)
+    decision = apply_outcome(
+        raised(),
+        None,
+        outcome("s1", cleared=True),
+        derivation(),
+        T0 + timedelta(minutes=1),
+        SETTINGS,
+    )
     assert decision.alert is None
 
 
 def test_neither_fired_nor_cleared_keeps_the_flag_open():
-    decision = apply_outcome(raised(), None, outcome("s2"), derivation("s2"),
-                             T0 + timedelta(hours=1), SETTINGS)
+    decision = apply_outcome(
+        raised(), None, outcome("s2"), derivation("s2"), T0 + timedelta(hours=1), SETTINGS
+    )
     assert decision.alert is None
 
 
 def resolved_flag(priority: Priority = Priority.MEDIUM, drawn: datetime = T0) -> Alert:
     """A flag at ``priority`` resolved by sample s2 drawn at ``drawn``, known 20 min later."""
-    resolved = apply_outcome(raised(priority), None, outcome("s2", cleared=True),
-                             derivation("s2", drawn_at=drawn), drawn + timedelta(minutes=20),
-                             SETTINGS).alert
+    resolved = apply_outcome(
+        raised(priority),
+        None,
+        outcome("s2", cleared=True),
+        derivation("s2", drawn_at=drawn),
+        drawn + timedelta(minutes=20),
+        SETTINGS,
+    ).alert
     assert resolved is not None
     return resolved
 
@@ -283,10 +353,14 @@ def test_cooldown_of_60_minutes_draw_to_draw(minutes, raises):
     # whatever time each result became known.
     drawn = T0 + timedelta(hours=1)
     new_draw = drawn + timedelta(minutes=minutes)
-    decision = apply_outcome(None, resolved_flag(drawn=drawn),
-                             outcome("s3", priority=Priority.MEDIUM),
-                             derivation("s3", drawn_at=new_draw),
-                             new_draw + timedelta(hours=3), SETTINGS)
+    decision = apply_outcome(
+        None,
+        resolved_flag(drawn=drawn),
+        outcome("s3", priority=Priority.MEDIUM),
+        derivation("s3", drawn_at=new_draw),
+        new_draw + timedelta(hours=3),
+        SETTINGS,
+    )
     assert (decision.alert is not None) is raises
 
 
@@ -294,27 +368,40 @@ def test_cooldown_ignores_when_the_result_arrived():
     # Resolving gas drawn 07:10, known 07:30; the next drawn 07:20 (10 min later) but
     # known 09:00: processing time says 90 min, the patient's clock says 10.
     drawn = T0 + timedelta(hours=1)
-    decision = apply_outcome(None, resolved_flag(drawn=drawn),
-                             outcome("s3", priority=Priority.MEDIUM),
-                             derivation("s3", drawn_at=drawn + timedelta(minutes=10)),
-                             drawn + timedelta(minutes=110), SETTINGS)
+    decision = apply_outcome(
+        None,
+        resolved_flag(drawn=drawn),
+        outcome("s3", priority=Priority.MEDIUM),
+        derivation("s3", drawn_at=drawn + timedelta(minutes=10)),
+        drawn + timedelta(minutes=110),
+        SETTINGS,
+    )
     assert decision.alert is None
 
 
 @pytest.mark.parametrize(
     ("before", "now", "raises"),
-    [(Priority.LOW, Priority.HIGH, True), (Priority.LOW, Priority.MEDIUM, True),
-     (Priority.MEDIUM, Priority.HIGH, True), (Priority.MEDIUM, Priority.MEDIUM, False),
-     (Priority.MEDIUM, Priority.LOW, False), (Priority.HIGH, Priority.HIGH, False)],
+    [
+        (Priority.LOW, Priority.HIGH, True),
+        (Priority.LOW, Priority.MEDIUM, True),
+        (Priority.MEDIUM, Priority.HIGH, True),
+        (Priority.MEDIUM, Priority.MEDIUM, False),
+        (Priority.MEDIUM, Priority.LOW, False),
+        (Priority.HIGH, Priority.HIGH, False),
+    ],
 )
 def test_a_cooldown_never_holds_back_a_worse_result(before, now, raises):
     # Issue 12 point 1: a low P/F flag resolves; 40 min later a gas with P/F 90 arrives.
     drawn = T0 + timedelta(hours=1)
     later = drawn + timedelta(minutes=40)
-    decision = apply_outcome(None, resolved_flag(before, drawn),
-                             outcome("s3", priority=now, pf=90.0),
-                             derivation("s3", drawn_at=later), later + timedelta(minutes=20),
-                             SETTINGS)
+    decision = apply_outcome(
+        None,
+        resolved_flag(before, drawn),
+        outcome("s3", priority=now, pf=90.0),
+        derivation("s3", drawn_at=later),
+        later + timedelta(minutes=20),
+        SETTINGS,
+    )
     assert (decision.alert is not None) is raises
     if raises:
         assert decision.notify == ["raised"] and decision.alert.priority is now
@@ -322,19 +409,32 @@ def test_a_cooldown_never_holds_back_a_worse_result(before, now, raises):
 
 def test_cooldown_without_a_resolving_draw_time_falls_back_to_the_closing_time():
     closed_at = T0 + timedelta(hours=1)
-    resolved = apply_outcome(raised(), None, outcome("s2", cleared=True), None, closed_at,
-                             SETTINGS).alert
+    resolved = apply_outcome(
+        raised(), None, outcome("s2", cleared=True), None, closed_at, SETTINGS
+    ).alert
     assert resolved is not None and resolved.resolved_drawn_at is None
     for minutes, raises in ((59, False), (60, True)):
-        decision = apply_outcome(None, resolved, outcome("s3", priority=Priority.MEDIUM),
-                                 None, closed_at + timedelta(minutes=minutes), SETTINGS)
+        decision = apply_outcome(
+            None,
+            resolved,
+            outcome("s3", priority=Priority.MEDIUM),
+            None,
+            closed_at + timedelta(minutes=minutes),
+            SETTINGS,
+        )
         assert (decision.alert is not None) is raises
 
 
 def test_no_cooldown_after_a_retraction():
     retracted = retract(raised(), T0 + timedelta(minutes=5), "entered in error", "s1").alert
-    decision = apply_outcome(None, retracted, outcome("s2", priority=Priority.MEDIUM),
-                             derivation("s2"), T0 + timedelta(minutes=6), SETTINGS)
+    decision = apply_outcome(
+        None,
+        retracted,
+        outcome("s2", priority=Priority.MEDIUM),
+        derivation("s2"),
+        T0 + timedelta(minutes=6),
+        SETTINGS,
+    )
     assert decision.alert is not None
     assert decision.alert.alert_id != raised().alert_id
 
@@ -366,8 +466,12 @@ def test_acknowledging_twice_is_an_illegal_transition():
 
 @pytest.mark.parametrize(
     ("priority", "minutes", "escalates"),
-    [(Priority.MEDIUM, 29, False), (Priority.MEDIUM, 30, True), (Priority.HIGH, 31, True),
-     (Priority.LOW, 600, False)],
+    [
+        (Priority.MEDIUM, 29, False),
+        (Priority.MEDIUM, 30, True),
+        (Priority.HIGH, 31, True),
+        (Priority.LOW, 600, False),
+    ],
 )
 def test_escalation_after_30_minutes_for_medium_and_high(priority, minutes, escalates):
     alert = raised(priority)
@@ -425,28 +529,37 @@ def test_lifecycle_properties_hold_for_any_sequence(sequence):
         open_ = [a for a in alerts.values() if a.state.is_open]
         assert len(open_) <= 1, "never more than one open flag per patient and rule"
         current = open_[0] if open_ else None
-        closed = sorted((a for a in alerts.values() if not a.state.is_open),
-                        key=lambda a: a.closed_at or a.updated_at)
+        closed = sorted(
+            (a for a in alerts.values() if not a.state.is_open),
+            key=lambda a: a.closed_at or a.updated_at,
+        )
         last_closed = closed[-1] if closed else None
         sample = f"s{n}"
         if kind in ("fire", "clear", "neither"):
-            o = outcome(sample, priority=priority if kind == "fire" else None,
-                        cleared=kind == "clear")
-            decision = apply_outcome(current, last_closed, o,
-                                     derivation(sample, drawn_at=now), now, SETTINGS)
+            o = outcome(
+                sample, priority=priority if kind == "fire" else None, cleared=kind == "clear"
+            )
+            decision = apply_outcome(
+                current, last_closed, o, derivation(sample, drawn_at=now), now, SETTINGS
+            )
             if kind == "fire" and current is not None and priority.rank <= current.priority.rank:
                 assert decision.notify == []
                 if priority.rank == current.priority.rank:
                     assert decision.alert is None
                 else:
                     assert decision.alert is not None and decision.alert.priority is priority
-            if kind == "fire" and current is None and last_closed is not None and (
-                last_closed.state is S.RESOLVED and priority.rank > last_closed.priority.rank
+            if (
+                kind == "fire"
+                and current is None
+                and last_closed is not None
+                and (last_closed.state is S.RESOLVED and priority.rank > last_closed.priority.rank)
             ):
                 assert decision.alert is not None, "a cooldown never holds back a worse result"
             if decision.alert is not None and decision.alert.state is S.RAISED and current is None:
-                held = last_closed is not None and last_closed.state is S.RESOLVED and (
-                    priority.rank <= last_closed.priority.rank
+                held = (
+                    last_closed is not None
+                    and last_closed.state is S.RESOLVED
+                    and (priority.rank <= last_closed.priority.rank)
                 )
                 if held:
                     assert all(now - t >= SETTINGS.cooldown for t in resolved_at), "cooldown"

@@ -488,14 +488,16 @@ def test_reordering_the_readings_gives_the_same_derivation(data: st.DataObject) 
 # --- issue 12 ---------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize(("elevation", "adjusted"), [(0.0, False), (600.0, False),
-                                                     (1600.0, True)])
+@pytest.mark.parametrize(("elevation", "adjusted"), [(0.0, False), (600.0, False), (1600.0, True)])
 def test_the_adjusted_pf_is_stored_only_where_it_counts(elevation: float, adjusted: bool) -> None:
     # Berlin footnote: adjust "if altitude is higher than 1000 m" (sheet s.5); ISA at
     # 600 m is above 674 mmHg, at 1600 m it is 626.5 (sheet s.3). P/F 190 with PEEP 8.
     site = PairingSettings(site_elevation_m=elevation)
-    context = [lab(Kind.PACO2, 40.0), fio2(0.5, T0 - minutes(30), from_ventilator=True),
-               reading(Kind.PEEP, 8.0, T0 - minutes(20))]
+    context = [
+        lab(Kind.PACO2, 40.0),
+        fio2(0.5, T0 - minutes(30), from_ventilator=True),
+        reading(Kind.PEEP, 8.0, T0 - minutes(20)),
+    ]
     d = derive(pair(pao2(95.0), context, site), DEFAULTS)
     assert (d.pf_ratio_adjusted is not None) is adjusted
     assert d.berlin_band == ("mild" if adjusted else "moderate")  # 190 x 760/626.5 = 230.5
@@ -514,8 +516,9 @@ def test_a_change_just_before_the_draw_derives_on_the_fio2_the_blood_reflects() 
     assert counted is not None and counted.on_fio2_set == pytest.approx(87.5)
 
 
-@pytest.mark.parametrize(("born", "flagged"), [(date(2021, 3, 1), True),
-                                               (date(2008, 3, 14), False)])
+@pytest.mark.parametrize(
+    ("born", "flagged"), [(date(2021, 3, 1), True), (date(2008, 3, 14), False)]
+)
 def test_the_adult_age_normal_on_a_child_is_flagged(born: date, flagged: bool) -> None:
     # (age + 10)/4 (StatPearls, sheet s.4) is an adult formula: 5 years gives 3.75.
     context = [lab(Kind.PACO2, 40.0), device("room_air", T0 - hours(1))]

@@ -13,10 +13,15 @@ from monitor.engine.errors import InvalidInput
 from monitor.engine.model import O2Device
 
 
-@pytest.mark.parametrize(("device", "inside", "outside"), [
-    (O2Device.SIMPLE_MASK, 5.0, 4.0), (O2Device.SIMPLE_MASK, 10.0, 10.5),
-    (O2Device.RESERVOIR_MASK, 10.0, 8.0), (O2Device.NASAL_CANNULA, 6.0, 7.0),
-])
+@pytest.mark.parametrize(
+    ("device", "inside", "outside"),
+    [
+        (O2Device.SIMPLE_MASK, 5.0, 4.0),
+        (O2Device.SIMPLE_MASK, 10.0, 10.5),
+        (O2Device.RESERVOIR_MASK, 10.0, 8.0),
+        (O2Device.NASAL_CANNULA, 6.0, 7.0),
+    ],
+)
 def test_flow_at_the_range_end_is_estimated_just_outside_is_not(
     device: O2Device, inside: float, outside: float
 ) -> None:

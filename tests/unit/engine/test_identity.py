@@ -111,8 +111,7 @@ def test_facts_follow_the_link_latest_location_wins() -> None:
     reg = PatientRegister(SETTINGS)
     t1, t2 = datetime(2026, 3, 1, 8, tzinfo=UTC), datetime(2026, 3, 1, 9, tzinfo=UTC)
     reg.note(PatientFacts("ref:ehr:Patient/p1", location=Location("ICU-North", "4", "2"), at=t2))
-    reg.note(PatientFacts("HG1", birth_date=date(1961, 4, 12), location=Location("Ward-5B"),
-                          at=t1))
+    reg.note(PatientFacts("HG1", birth_date=date(1961, 4, 12), location=Location("Ward-5B"), at=t1))
     assert reg.person("HG1").location == Location("Ward-5B")
     reg.learn(link("ref:ehr:Patient/p1", "HG1"))
     person = reg.person("ref:ehr:Patient/p1")
@@ -160,12 +159,14 @@ def test_no_person_ever_has_two_site_identifiers(links: list[list[str]]) -> None
 
 
 @settings(max_examples=200, deadline=None)
-@given(st.lists(st.lists(_ALIASES.filter(lambda k: not k.startswith("HG")), min_size=1,
-                         max_size=4), max_size=12),
-       st.lists(st.sampled_from([f"HG{i}" for i in range(4)]), max_size=12))
-def test_rekeys_carry_stored_rows_to_the_final_key(
-    links: list[list[str]], mrns: list[str]
-) -> None:
+@given(
+    st.lists(
+        st.lists(_ALIASES.filter(lambda k: not k.startswith("HG")), min_size=1, max_size=4),
+        max_size=12,
+    ),
+    st.lists(st.sampled_from([f"HG{i}" for i in range(4)]), max_size=12),
+)
+def test_rekeys_carry_stored_rows_to_the_final_key(links: list[list[str]], mrns: list[str]) -> None:
     # rows stored under canonical(k) when k first arrives, then moved by each learn's
     # re-keyings, end up under the final canonical key (no disputes: one MRN a person,
     # given to the first key of each link at most)

@@ -11,8 +11,16 @@ from monitor.engine.errors import InvalidReading
 from monitor.engine.model import Kind, Location, Reading
 
 AT = datetime(2026, 3, 2, 8, 0, tzinfo=UTC)
-GOOD = Reading(patient_key="HGH-3001", kind=Kind.PAO2, value=72.0, effective_at=AT,
-               received_at=AT, source_system="lab", logical_id="l1", delivery_id="d1")
+GOOD = Reading(
+    patient_key="HGH-3001",
+    kind=Kind.PAO2,
+    value=72.0,
+    effective_at=AT,
+    received_at=AT,
+    source_system="lab",
+    logical_id="l1",
+    delivery_id="d1",
+)
 
 
 @pytest.mark.parametrize("field", ["patient_key", "original_value", "code", "panel_id"])
@@ -27,8 +35,9 @@ def test_a_nul_in_the_location_is_refused() -> None:
         replace(GOOD, location=Location(unit="ICU\x00North"))
 
 
-@pytest.mark.parametrize(("kind", "value"), [(Kind.PAO2, 4000.0), (Kind.FIO2, 1.4),
-                                             (Kind.BODY_TEMPERATURE, 50.0)])
+@pytest.mark.parametrize(
+    ("kind", "value"), [(Kind.PAO2, 4000.0), (Kind.FIO2, 1.4), (Kind.BODY_TEMPERATURE, 50.0)]
+)
 def test_values_outside_any_physiology_are_refused(kind: Kind, value: float) -> None:
     # "PaO2 of 4000" is the issue's own example of a value out of any physiological range.
     with pytest.raises(InvalidReading, match=str(kind)):

@@ -824,8 +824,11 @@ THERAPY_CASES = [
     # id, context (draw at T0), expected value, expected source
     (
         "extubated to a nasal cannula: the ventilator FiO2 is over",
-        [fio2(0.5, T0 - hours(2), from_ventilator=True),
-         device("nasal_cannula", T0 - hours(1)), flow(2.0, T0 - hours(1))],
+        [
+            fio2(0.5, T0 - hours(2), from_ventilator=True),
+            device("nasal_cannula", T0 - hours(1)),
+            flow(2.0, T0 - hours(1)),
+        ],
         0.28,  # 2 L/min nasal cannula, 0.20 + 0.04 x 2 (sheet s.8 [C])
         FiO2Source.DEVICE_ESTIMATE,
     ),
@@ -849,43 +852,57 @@ THERAPY_CASES = [
     ),
     (
         "a new ventilator setting replaces the old one",
-        [fio2(0.5, T0 - hours(2), from_ventilator=True),
-         fio2(0.35, T0 - hours(1), from_ventilator=True)],
+        [
+            fio2(0.5, T0 - hours(2), from_ventilator=True),
+            fio2(0.35, T0 - hours(1), from_ventilator=True),
+        ],
         0.35,
         FiO2Source.CHARTED,
     ),
     (
         "the ventilator re-documented keeps its setting",
-        [fio2(0.5, T0 - hours(2), from_ventilator=True),
-         device("invasive_ventilation", T0 - hours(1))],
+        [
+            fio2(0.5, T0 - hours(2), from_ventilator=True),
+            device("invasive_ventilation", T0 - hours(1)),
+        ],
         0.5,
         FiO2Source.CHARTED,
     ),
     (
         "device charted with the FiO2 (within 2 min) is one charting",
-        [fio2(0.5, T0 - hours(1), from_ventilator=True),
-         device("nasal_cannula", T0 - hours(1) + minutes(2))],
+        [
+            fio2(0.5, T0 - hours(1), from_ventilator=True),
+            device("nasal_cannula", T0 - hours(1) + minutes(2)),
+        ],
         0.5,
         FiO2Source.CHARTED,
     ),
     (
         "device charted 2 min 1 s after the FiO2 is a new charting",
-        [fio2(0.5, T0 - hours(1), from_ventilator=True),
-         device("nasal_cannula", T0 - hours(1) + minutes(2) + timedelta(seconds=1))],
+        [
+            fio2(0.5, T0 - hours(1), from_ventilator=True),
+            device("nasal_cannula", T0 - hours(1) + minutes(2) + timedelta(seconds=1)),
+        ],
         None,
         FiO2Source.UNKNOWN,
     ),
     (
         "a flow change on a nasal cannula ends a nurse-charted FiO2",
-        [device("nasal_cannula", T0 - hours(1)), fio2(0.28, T0 - minutes(50)),
-         flow(4.0, T0 - minutes(30))],
+        [
+            device("nasal_cannula", T0 - hours(1)),
+            fio2(0.28, T0 - minutes(50)),
+            flow(4.0, T0 - minutes(30)),
+        ],
         0.36,  # 0.20 + 0.04 x 4 (sheet s.8 [C])
         FiO2Source.DEVICE_ESTIMATE,
     ),
     (
         "a high-flow flow change keeps the charted FiO2",
-        [device("high_flow_nasal", T0 - hours(1)), fio2(0.6, T0 - minutes(50)),
-         flow(50.0, T0 - minutes(30))],
+        [
+            device("high_flow_nasal", T0 - hours(1)),
+            fio2(0.6, T0 - minutes(50)),
+            flow(50.0, T0 - minutes(30)),
+        ],
         0.6,
         FiO2Source.CHARTED,
     ),
@@ -918,8 +935,11 @@ def test_a_later_oxygen_therapy_charting_ends_the_fio2_before(
 
 
 def test_the_ended_fio2_is_named_with_what_ended_it() -> None:
-    context = [fio2(0.5, T0 - hours(2), from_ventilator=True),
-               device("nasal_cannula", T0 - hours(1)), flow(2.0, T0 - hours(1))]
+    context = [
+        fio2(0.5, T0 - hours(2), from_ventilator=True),
+        device("nasal_cannula", T0 - hours(1)),
+        flow(2.0, T0 - hours(1)),
+    ]
     reasons = " | ".join(i.reason for i in pair(pao2(), context, SETTINGS).inputs)
     assert "no longer in effect: ended by the device charted 06:00 UTC" in reasons
 
@@ -951,8 +971,11 @@ def test_a_change_shortly_before_the_draw_keeps_the_fio2_the_blood_reflects(
 
 def test_a_change_onto_a_device_estimate_is_a_change_too() -> None:
     # Extubated onto 2 L/min 5 min before the draw: the blood still reflects 0.5.
-    context = [fio2(0.5, T0 - hours(2), from_ventilator=True),
-               device("nasal_cannula", T0 - minutes(5)), flow(2.0, T0 - minutes(4))]
+    context = [
+        fio2(0.5, T0 - hours(2), from_ventilator=True),
+        device("nasal_cannula", T0 - minutes(5)),
+        flow(2.0, T0 - minutes(4)),
+    ]
     snap = pair(pao2(), context, SETTINGS)
     assert snap.fio2 == pytest.approx(0.5)
     assert FLAG.FIO2_NOT_STEADY in snap.flags
@@ -960,8 +983,11 @@ def test_a_change_onto_a_device_estimate_is_a_change_too() -> None:
 
 
 def test_with_the_gas_after_a_change_keeps_the_value_before_and_shows_the_gas_value() -> None:
-    context = [fio2(0.4, T0 - minutes(60)), fio2(0.6, T0 - minutes(5)),
-               fio2(0.6, T0, panel_id="ABG-1")]
+    context = [
+        fio2(0.4, T0 - minutes(60)),
+        fio2(0.6, T0 - minutes(5)),
+        fio2(0.6, T0, panel_id="ABG-1"),
+    ]
     snap = pair(pao2(), context, SETTINGS)
     assert snap.fio2 == pytest.approx(0.4) and snap.fio2_source is FiO2Source.CHARTED
     assert [i.value for i in snap.inputs if i.role == "fio2_set"] == [pytest.approx(0.6)]

@@ -16,7 +16,9 @@ rqs = st.floats(0.6, 1.3)
 
 
 @given(f1=fio2s, f2=fio2s, paco2=paco2s, pb=pressures, rq=rqs)
-def test_alveolar_po2_rises_with_fio2(f1: float, f2: float, paco2: float, pb: float, rq: float) -> None:
+def test_alveolar_po2_rises_with_fio2(
+    f1: float, f2: float, paco2: float, pb: float, rq: float
+) -> None:
     low, high = sorted((f1, f2))
     assume(high - low > 1e-6)
     for eq in phys.Equation:
@@ -26,14 +28,20 @@ def test_alveolar_po2_rises_with_fio2(f1: float, f2: float, paco2: float, pb: fl
 
 
 @given(fio2=fio2s, paco2=paco2s, p1=pressures, p2=pressures, rq=rqs)
-def test_alveolar_po2_rises_with_pressure(fio2: float, paco2: float, p1: float, p2: float, rq: float) -> None:
+def test_alveolar_po2_rises_with_pressure(
+    fio2: float, paco2: float, p1: float, p2: float, rq: float
+) -> None:
     low, high = sorted((p1, p2))
     assume(high - low > 1e-6)
-    assert phys.alveolar_po2(fio2, paco2, high, 47, rq) > phys.alveolar_po2(fio2, paco2, low, 47, rq)
+    assert phys.alveolar_po2(fio2, paco2, high, 47, rq) > phys.alveolar_po2(
+        fio2, paco2, low, 47, rq
+    )
 
 
 @given(fio2=fio2s, c1=paco2s, c2=paco2s, pb=pressures, rq=rqs)
-def test_alveolar_po2_falls_with_paco2(fio2: float, c1: float, c2: float, pb: float, rq: float) -> None:
+def test_alveolar_po2_falls_with_paco2(
+    fio2: float, c1: float, c2: float, pb: float, rq: float
+) -> None:
     low, high = sorted((c1, c2))
     assume(high - low > 1e-6)
     assume(fio2 < 1.0 - 1e-9)  # at FiO2 1 the equation still falls: PIO2 - PaCO2
@@ -55,7 +63,9 @@ def test_full_form_at_pure_oxygen_is_pio2_minus_paco2(paco2: float, pb: float, r
 
 
 @given(fio2=fio2s, paco2=paco2s, pb=pressures, rq=st.floats(0.6, 0.999))
-def test_simplified_under_reads_by_the_correction_term(fio2: float, paco2: float, pb: float, rq: float) -> None:
+def test_simplified_under_reads_by_the_correction_term(
+    fio2: float, paco2: float, pb: float, rq: float
+) -> None:
     # Sheet s.1: F = PaCO2 FiO2 (1 - R) / R.
     full = phys.alveolar_po2(fio2, paco2, pb, 47, rq, "full")
     simplified = phys.alveolar_po2(fio2, paco2, pb, 47, rq, "simplified")

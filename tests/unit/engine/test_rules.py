@@ -110,8 +110,11 @@ def test_band_rule_follows_berlin_thresholds_without_peep(pf, priority, label):
 
 @pytest.mark.parametrize(
     ("pf", "band", "label"),
-    [(250.0, "mild", "Berlin mild"), (150.0, "moderate", "Berlin moderate"),
-     (80.0, "severe", "Berlin severe")],
+    [
+        (250.0, "mild", "Berlin mild"),
+        (150.0, "moderate", "Berlin moderate"),
+        (80.0, "severe", "Berlin severe"),
+    ],
 )
 def test_band_rule_uses_berlin_words_when_peep_is_known(pf, band, label):
     outcome = only(BAND, gas(pf_ratio=pf, peep=8.0, berlin_band=band))
@@ -128,8 +131,7 @@ def test_berlin_words_not_used_with_site_specific_thresholds():
 def test_band_rule_uses_altitude_adjusted_pf_at_1600_m():
     # Reference sheet section 5: P/F 150 at PB 626.5 -> 182.0 (ratio x 760/PB).
     assert physiology.pf_ratio_altitude_adjusted(150.0, 626.5) == pytest.approx(182.0, abs=0.05)
-    d = gas(pao2=75.0, fio2=0.5, pf_ratio=150.0, pf_ratio_adjusted=182.0,
-            barometric_pressure=626.5)
+    d = gas(pao2=75.0, fio2=0.5, pf_ratio=150.0, pf_ratio_adjusted=182.0, barometric_pressure=626.5)
     outcome = only(BAND, d)
     assert outcome.priority is Priority.MEDIUM  # not HIGH: 182 > 100, and <= 200
     assert outcome.label == "P/F <= 200"
@@ -192,8 +194,15 @@ def test_disabled_rules_give_no_outcome():
 
 def test_default_rules_are_the_six_of_the_issue_and_hypoxaemia():
     ids = [r.rule_id for r in default_rules().rules]
-    assert ids == ["oxygenation-band", "pf-fall", "aa-room-air", "aa-rise",
-                   "oxygen-escalation", "sf-low", "hypoxaemia"]
+    assert ids == [
+        "oxygenation-band",
+        "pf-fall",
+        "aa-room-air",
+        "aa-rise",
+        "oxygen-escalation",
+        "sf-low",
+        "hypoxaemia",
+    ]
 
 
 def test_now_must_be_timezone_aware():
@@ -204,8 +213,12 @@ def test_now_must_be_timezone_aware():
 def test_history_after_now_is_not_used():
     later = gas(T0 + timedelta(hours=1), pf_ratio=400.0)
     d = gas(T0 + timedelta(hours=2), pf_ratio=200.0)
-    outcome = only(PfFallRule(), d, PatientHistory(derivations=[later, gas(pf_ratio=350.0)]),
-                   now=T0 + timedelta(minutes=30))
+    outcome = only(
+        PfFallRule(),
+        d,
+        PatientHistory(derivations=[later, gas(pf_ratio=350.0)]),
+        now=T0 + timedelta(minutes=30),
+    )
     assert outcome.numbers["best_pf"] == 350.0
 
 
@@ -267,8 +280,10 @@ def test_pf_fall_at_altitude_gives_the_measured_value_too():
 
 def test_pf_fall_ignores_gases_older_than_24_h():
     history = PatientHistory(
-        derivations=[gas(T0 - timedelta(hours=24, minutes=1), pf_ratio=500.0),
-                     gas(T0 - timedelta(hours=23), pf_ratio=320.0)]
+        derivations=[
+            gas(T0 - timedelta(hours=24, minutes=1), pf_ratio=500.0),
+            gas(T0 - timedelta(hours=23), pf_ratio=320.0),
+        ]
     )
     outcome = only(FALL, gas(pf_ratio=250.0), history)
     assert outcome.numbers["best_pf"] == 320.0
@@ -284,8 +299,11 @@ def test_pf_fall_ignores_unreliable_and_venous_history():
     history = PatientHistory(
         derivations=[
             gas(T0 - timedelta(hours=2), pf_ratio=500.0, specimen=Specimen.VENOUS),
-            gas(T0 - timedelta(hours=3), pf_ratio=500.0,
-                flags=frozenset({QualityFlag.PAO2_ABOVE_ALVEOLAR})),
+            gas(
+                T0 - timedelta(hours=3),
+                pf_ratio=500.0,
+                flags=frozenset({QualityFlag.PAO2_ABOVE_ALVEOLAR}),
+            ),
             gas(T0 - timedelta(hours=4), pf_ratio=300.0),
         ]
     )
@@ -302,8 +320,9 @@ def test_pf_fall_clears_below_hysteresis():
 
 
 def test_pf_fall_on_a_preliminary_best_is_preliminary():
-    history = PatientHistory(derivations=[gas(T0 - timedelta(hours=1), pf_ratio=400.0,
-                                              preliminary=True)])
+    history = PatientHistory(
+        derivations=[gas(T0 - timedelta(hours=1), pf_ratio=400.0, preliminary=True)]
+    )
     assert only(FALL, gas(pf_ratio=200.0), history).preliminary is True
 
 
@@ -314,9 +333,13 @@ ROOM = AaRoomAirRule()
 
 def room_air(aa: float, expected: float = 17.5, **kw: object) -> Derivation:
     # expected 17.5 = (60 + 10) / 4 at age 60, StatPearls (reference sheet section 4).
-    values: dict[str, object] = dict(fio2=0.21, fio2_source=FiO2Source.ROOM_AIR,
-                                     aa_gradient=aa, aa_gradient_expected=expected,
-                                     age_years=60.0)
+    values: dict[str, object] = dict(
+        fio2=0.21,
+        fio2_source=FiO2Source.ROOM_AIR,
+        aa_gradient=aa,
+        aa_gradient_expected=expected,
+        age_years=60.0,
+    )
     values.update(kw)
     return gas(**values)
 
@@ -357,8 +380,15 @@ PAO2_AT = {0.35: 203.05, 0.45: 275.35, 0.5: 311.50, 0.55: 347.65, 0.8: 528.40}
 def aa_gas(aa: float, fio2: float = 0.5, at: datetime = T0, **kw: object) -> Derivation:
     """A gas whose A-a and a/A agree with its alveolar PO2 (a/A = (PAO2 - A-a)/PAO2)."""
     alveolar = PAO2_AT[fio2]
-    return gas(at, fio2=fio2, alveolar_po2=alveolar, aa_gradient=aa, pao2=alveolar - aa,
-               arterial_alveolar_ratio=(alveolar - aa) / alveolar, **kw)
+    return gas(
+        at,
+        fio2=fio2,
+        alveolar_po2=alveolar,
+        aa_gradient=aa,
+        pao2=alveolar - aa,
+        arterial_alveolar_ratio=(alveolar - aa) / alveolar,
+        **kw,
+    )
 
 
 def rise_history(aa: float = 100.0, fio2: float = 0.5, hours: float = 4) -> PatientHistory:
@@ -376,14 +406,14 @@ def test_aa_rise_at_a_steady_high_fio2_is_not_fired_by_noise():
 @pytest.mark.parametrize(
     ("fio2", "before", "after", "fired"),
     [
-        (0.8, 408.0, 451.0, True),    # a/A falls 43/528.4 = 0.081
-        (0.8, 408.0, 450.0, False),   # 42/528.4 = 0.0795
-        (0.35, 100.0, 120.0, True),   # a real fall at 0.35: 20/203.05 = 0.098
+        (0.8, 408.0, 451.0, True),  # a/A falls 43/528.4 = 0.081
+        (0.8, 408.0, 450.0, False),  # 42/528.4 = 0.0795
+        (0.35, 100.0, 120.0, True),  # a real fall at 0.35: 20/203.05 = 0.098
         (0.35, 100.0, 119.9, False),  # under 20 mmHg
-        (0.35, 60.0, 76.0, False),    # a/A down 0.079 but only 16 mmHg
-        (0.5, 100.0, 125.0, True),    # 25/311.5 = 0.080
-        (0.5, 100.0, 124.0, False),   # 24/311.5 = 0.077
-        (0.5, 100.0, 120.0, False),   # 20 mmHg at 0.50 is 0.064 of a/A: not enough
+        (0.35, 60.0, 76.0, False),  # a/A down 0.079 but only 16 mmHg
+        (0.5, 100.0, 125.0, True),  # 25/311.5 = 0.080
+        (0.5, 100.0, 124.0, False),  # 24/311.5 = 0.077
+        (0.5, 100.0, 120.0, False),  # 20 mmHg at 0.50 is 0.064 of a/A: not enough
     ],
 )
 def test_aa_rise_needs_20_mmhg_and_an_aa_ratio_fall_of_008(fio2, before, after, fired):
@@ -414,20 +444,24 @@ def test_aa_rise_looks_back_12_h(hours, judged):
 
 
 def test_aa_rise_compares_with_the_latest_previous_gas():
-    history = PatientHistory(derivations=[
-        aa_gas(80.0, at=T0 - timedelta(hours=6)),
-        aa_gas(115.0, at=T0 - timedelta(hours=2)),
-    ])
+    history = PatientHistory(
+        derivations=[
+            aa_gas(80.0, at=T0 - timedelta(hours=6)),
+            aa_gas(115.0, at=T0 - timedelta(hours=2)),
+        ]
+    )
     outcome = only(RISE, aa_gas(130.0), history)
     assert outcome.numbers["previous_aa"] == 115.0
     assert not outcome.fired
 
 
 def test_aa_rise_skips_a_gas_at_another_fio2_for_the_latest_comparable_one():
-    history = PatientHistory(derivations=[
-        aa_gas(90.0, 0.5, T0 - timedelta(hours=6)),
-        aa_gas(200.0, 0.8, T0 - timedelta(hours=2)),
-    ])
+    history = PatientHistory(
+        derivations=[
+            aa_gas(90.0, 0.5, T0 - timedelta(hours=6)),
+            aa_gas(200.0, 0.8, T0 - timedelta(hours=2)),
+        ]
+    )
     outcome = only(RISE, aa_gas(120.0, 0.5), history)
     assert outcome.numbers["previous_aa"] == 90.0
     assert outcome.fired  # +30 mmHg, a/A -0.096 at the same FiO2
@@ -443,9 +477,11 @@ def test_aa_rise_clears_below_either_threshold_less_hysteresis():
 def test_trend_rules_do_not_compare_gases_on_an_estimated_fio2():
     # Device-and-flow FiO2 scatters by 0.04-0.15 (reference sheet section 8, Wettstein 2005).
     estimated = frozenset({QualityFlag.ESTIMATED_FIO2})
-    history = PatientHistory(derivations=[
-        gas(T0 - timedelta(hours=3), pf_ratio=450.0, aa_gradient=40.0, flags=estimated),
-    ])
+    history = PatientHistory(
+        derivations=[
+            gas(T0 - timedelta(hours=3), pf_ratio=450.0, aa_gradient=40.0, flags=estimated),
+        ]
+    )
     assert not only(FALL, gas(pf_ratio=200.0, aa_gradient=100.0), history).fired
     assert not only(RISE, gas(pf_ratio=200.0, aa_gradient=100.0), history).fired
     assert not only(FALL, gas(pf_ratio=200.0, flags=estimated), fall_history()).fired
@@ -466,15 +502,23 @@ def test_oxygen_escalation_fires_at_a_rise_of_020(fio2, fired):
 
 
 def test_oxygen_escalation_counts_the_fio2_in_effect_at_the_window_start():
-    history = PatientHistory(fio2_points=[FiO2Point(T0 - timedelta(hours=8), 0.21),
-                                          FiO2Point(T0 - timedelta(hours=1), 0.35)])
+    history = PatientHistory(
+        fio2_points=[
+            FiO2Point(T0 - timedelta(hours=8), 0.21),
+            FiO2Point(T0 - timedelta(hours=1), 0.35),
+        ]
+    )
     outcome = only(ESC, gas(fio2=0.45), history)
     assert outcome.fired  # 0.21 was still in effect 6 h ago
 
 
 def test_oxygen_escalation_ignores_changes_before_the_window():
-    history = PatientHistory(fio2_points=[FiO2Point(T0 - timedelta(hours=9), 0.21),
-                                          FiO2Point(T0 - timedelta(hours=7), 0.40)])
+    history = PatientHistory(
+        fio2_points=[
+            FiO2Point(T0 - timedelta(hours=9), 0.21),
+            FiO2Point(T0 - timedelta(hours=7), 0.40),
+        ]
+    )
     outcome = only(ESC, gas(fio2=0.45), history)
     assert not outcome.fired and outcome.cleared
 
@@ -486,8 +530,11 @@ def test_oxygen_escalation_is_marked_estimated_only_when_the_fio2_was():
     charted = replace(spo2_estimate(T0, 200.0), fio2=0.75)
     assert only(ESC, charted, history).fired
     assert only(ESC, charted, history).estimated is False
-    from_device = replace(charted, fio2_source=FiO2Source.DEVICE_ESTIMATE,
-                          flags=charted.flags | {QualityFlag.ESTIMATED_FIO2})
+    from_device = replace(
+        charted,
+        fio2_source=FiO2Source.DEVICE_ESTIMATE,
+        flags=charted.flags | {QualityFlag.ESTIMATED_FIO2},
+    )
     assert only(ESC, from_device, history).estimated is True
 
 
@@ -580,8 +627,9 @@ def test_a_lower_pf_never_gives_a_lower_band_priority(a, b):
 @given(pf_values, st.floats(min_value=0.0, max_value=0.99), st.floats(min_value=5, max_value=800))
 def test_an_outcome_is_never_both_fired_and_cleared(pf, hysteresis, aa):
     rules = RuleSet(rules=default_rules().rules, hysteresis=hysteresis)
-    history = PatientHistory(derivations=[gas(T0 - timedelta(hours=3), pf_ratio=400.0,
-                                              aa_gradient=60.0)])
+    history = PatientHistory(
+        derivations=[gas(T0 - timedelta(hours=3), pf_ratio=400.0, aa_gradient=60.0)]
+    )
     for outcome in evaluate(rules, gas(pf_ratio=pf, aa_gradient=aa), history, NOW):
         assert not (outcome.fired and outcome.cleared)
         assert (outcome.priority is not None) is outcome.fired
@@ -608,9 +656,15 @@ def test_nothing_fires_on_unreliable_data_whatever_the_numbers(pf, flag):
     ],
 )
 def test_band_rule_adjusts_for_altitude_only_above_1000_m(pb, priority, label, adjusted):
-    d = gas(pao2=95.0, fio2=0.5, pf_ratio=190.0, peep=8.0, barometric_pressure=pb,
-            berlin_band="moderate" if not adjusted else "mild",
-            pf_ratio_adjusted=190.0 * 760 / pb)  # even if a stored row says "adjusted"
+    d = gas(
+        pao2=95.0,
+        fio2=0.5,
+        pf_ratio=190.0,
+        peep=8.0,
+        barometric_pressure=pb,
+        berlin_band="moderate" if not adjusted else "mild",
+        pf_ratio_adjusted=190.0 * 760 / pb,
+    )  # even if a stored row says "adjusted"
     outcome = only(BAND, d)
     assert outcome.priority is priority and outcome.label == label
     assert outcome.numbers["adjusted"] is adjusted
@@ -619,8 +673,9 @@ def test_band_rule_adjusts_for_altitude_only_above_1000_m(pb, priority, label, a
 
 # --- issue 12, point 2: an estimated FiO2 ---------------------------------------------------
 
-ESTIMATE = dict(fio2_source=FiO2Source.DEVICE_ESTIMATE,
-                flags=frozenset({QualityFlag.ESTIMATED_FIO2}))
+ESTIMATE = dict(
+    fio2_source=FiO2Source.DEVICE_ESTIMATE, flags=frozenset({QualityFlag.ESTIMATED_FIO2})
+)
 
 
 def test_band_on_an_estimated_fio2_is_marked_and_held_at_low():
@@ -652,9 +707,14 @@ def test_a_good_pf_on_an_estimated_fio2_clears_only_at_estimate_plus_015(pao2, c
 
 
 def test_band_on_a_fio2_charted_after_the_draw_is_held_too():
-    d = gas(pao2=70.0, fio2=0.8, pf_ratio=87.5, barometric_pressure=760.0,
-            fio2_source=FiO2Source.CHARTED_AFTER,
-            flags=frozenset({QualityFlag.FIO2_CHARTED_AFTER_DRAW}))
+    d = gas(
+        pao2=70.0,
+        fio2=0.8,
+        pf_ratio=87.5,
+        barometric_pressure=760.0,
+        fio2_source=FiO2Source.CHARTED_AFTER,
+        flags=frozenset({QualityFlag.FIO2_CHARTED_AFTER_DRAW}),
+    )
     outcome = only(BAND, d)
     assert outcome.priority is Priority.LOW and outcome.uncertain
     assert outcome.numbers["fio2_basis"] == "charted after the draw"
@@ -672,10 +732,15 @@ def test_a_measured_fio2_gives_the_full_priority_and_is_not_uncertain():
 def changed_gas(**kw: object) -> Derivation:
     """FiO2 0.40 raised to 0.80 five minutes before a PaO2 of 70 (the issue's case):
     pairing hands over 0.40 and the new 0.80 as input ``fio2_set``."""
-    return gas(pao2=70.0, fio2=0.4, pf_ratio=175.0, barometric_pressure=760.0,
-               flags=frozenset({QualityFlag.FIO2_NOT_STEADY}),
-               inputs=(InputUsed("fio2_set", 0.8, "set 5 min before", None,
-                                 T0 - timedelta(minutes=5)),), **kw)
+    return gas(
+        pao2=70.0,
+        fio2=0.4,
+        pf_ratio=175.0,
+        barometric_pressure=760.0,
+        flags=frozenset({QualityFlag.FIO2_NOT_STEADY}),
+        inputs=(InputUsed("fio2_set", 0.8, "set 5 min before", None, T0 - timedelta(minutes=5)),),
+        **kw,
+    )
 
 
 def test_band_judges_on_the_fio2_the_blood_reflects_and_shows_both():
@@ -695,8 +760,12 @@ def test_oxygen_escalation_sees_the_fio2_set_not_the_one_reflected():
 # --- issue 12, point 8: hypoxaemia with FiO2 unknown -----------------------------------------
 
 HYPOX = HypoxaemiaRule()
-UNKNOWN = dict(fio2=None, fio2_source=FiO2Source.UNKNOWN, pf_ratio=None,
-               flags=frozenset({QualityFlag.FIO2_UNKNOWN}))
+UNKNOWN = dict(
+    fio2=None,
+    fio2_source=FiO2Source.UNKNOWN,
+    pf_ratio=None,
+    flags=frozenset({QualityFlag.FIO2_UNKNOWN}),
+)
 
 
 @pytest.mark.parametrize(
@@ -734,18 +803,17 @@ def test_hypoxaemia_leaves_a_known_fio2_to_the_band_rule_and_clears_on_a_good_pa
 
 def test_the_46_low_gases_of_a_third_party_feed_each_raise_a_flag():
     # Issue 12 point 8: third-party feed, FiO2 never sent; every PaO2 under 60 flags.
-    lows = [gas(T0 + timedelta(minutes=10 * i), pao2=58.0 - i * 0.2, **UNKNOWN)
-            for i in range(46)]
-    assert all(any(o.fired for o in evaluate(default_rules(), d, NO_HISTORY, NOW))
-               for d in lows)
+    lows = [gas(T0 + timedelta(minutes=10 * i), pao2=58.0 - i * 0.2, **UNKNOWN) for i in range(46)]
+    assert all(any(o.fired for o in evaluate(default_rules(), d, NO_HISTORY, NOW)) for d in lows)
 
 
 # --- issue 12, point 9: the adult age-normal on a child ------------------------------------
 
 
 def test_aa_room_air_on_a_child_says_it_used_an_adult_formula():
-    d = room_air(20.0, expected=3.75, age_years=5.0,
-                 flags=frozenset({QualityFlag.PAEDIATRIC_AGE_NORMAL}))
+    d = room_air(
+        20.0, expected=3.75, age_years=5.0, flags=frozenset({QualityFlag.PAEDIATRIC_AGE_NORMAL})
+    )
     outcome = only(ROOM, d)
     assert outcome.fired and "adult formula" in outcome.label
     assert outcome.numbers["adult_formula_age"] == 5.0

@@ -41,8 +41,9 @@ def gas(
     return [
         pao2(po2, at, panel_id=panel, birth_date=BIRTH_DATE, received_at=known),
         lab(Kind.PACO2, 40.0, at, panel_id=panel, received_at=known),
-        make_reading(Kind.FIO2, fio2, at, panel_id=panel, logical_id=f"fio2-{panel}",
-                     received_at=known),
+        make_reading(
+            Kind.FIO2, fio2, at, panel_id=panel, logical_id=f"fio2-{panel}", received_at=known
+        ),
     ]
 
 
@@ -74,16 +75,25 @@ def feeds(draw: st.DrawFn) -> list[Reading]:
         out += gas(at, round(po2, 1), fio2, panel=panel, known=at + delay)
         if draw(st.booleans()):  # a correction of the PaO2, known later still
             original = out[-3]
-            out.append(replace(
-                original, value=round(po2 * 0.8, 1), status=Status.CORRECTED,
-                delivery_id=f"{original.logical_id}#2",
-                received_at=original.received_at + hours(1),
-            ))
+            out.append(
+                replace(
+                    original,
+                    value=round(po2 * 0.8, 1),
+                    status=Status.CORRECTED,
+                    delivery_id=f"{original.logical_id}#2",
+                    received_at=original.received_at + hours(1),
+                )
+            )
         if draw(st.booleans()):  # SpO2 charted between gases
-            out.append(make_reading(
-                Kind.SPO2, draw(st.sampled_from([88.0, 91.0, 94.0])), at + minutes(70),
-                logical_id=f"spo2-{i}", received_at=at + minutes(71),
-            ))
+            out.append(
+                make_reading(
+                    Kind.SPO2,
+                    draw(st.sampled_from([88.0, 91.0, 94.0])),
+                    at + minutes(70),
+                    logical_id=f"spo2-{i}",
+                    received_at=at + minutes(71),
+                )
+            )
     repeats = draw(st.lists(st.sampled_from(out), max_size=3))
     return out + repeats  # a delivery received twice changes nothing
 
@@ -168,8 +178,9 @@ def test_a_late_result_that_clears_never_resolves_a_newer_flag() -> None:
     t1100 = T0.replace(hour=11)
     timeline = PatientTimeline(PATIENT, SETTINGS)
     timeline.advance(gas(t1100, 60.0, 0.40, panel="B"), seen_at=None)
-    result = timeline.advance(gas(t1000, 64.0, 0.40, panel="A", known=t1100 + hours(3)),
-                              seen_at=None)
+    result = timeline.advance(
+        gas(t1000, 64.0, 0.40, panel="A", known=t1100 + hours(3)), seen_at=None
+    )
     assert {e[2] for e in events(result)} <= {"raised", "worsened"}
     assert "oxygenation-band" in timeline.open
 
@@ -179,8 +190,13 @@ def test_a_withdrawn_gas_takes_its_flag_down() -> None:
     timeline = PatientTimeline(PATIENT, SETTINGS)
     timeline.advance(readings, seen_at=None)
     assert timeline.open["oxygenation-band"].priority.value == "medium"
-    wrong = replace(readings[0], status=Status.RETRACTED, value=None,
-                    delivery_id="pao2-W#wrong", received_at=T0 + hours(2))
+    wrong = replace(
+        readings[0],
+        status=Status.RETRACTED,
+        value=None,
+        delivery_id="pao2-W#wrong",
+        received_at=T0 + hours(2),
+    )
     result = timeline.advance([wrong], seen_at=None)
     assert ("oxygenation-band", "retracted") in {(e[1], e[2]) for e in events(result)}
     assert "pao2-W" not in timeline.derivations
@@ -205,25 +221,36 @@ def test_historical_flags_are_marked_when_computed_long_after_the_draw() -> None
 
 def test_a_draw_time_in_the_future_is_refused_with_the_field_named() -> None:
     typo = make_reading(Kind.PAO2, 70.0, T0 + timedelta(days=730), received_at=T0)
-    problem = time_problem(typo, tolerance=minutes(10), max_age=timedelta(days=3650),
-                           birth_date=None)
+    problem = time_problem(
+        typo, tolerance=minutes(10), max_age=timedelta(days=3650), birth_date=None
+    )
     assert problem is not None and "drawn time" in problem and "in the future" in problem
     # within the clock tolerance (an analyser 5 min ahead) it is taken
     ahead = make_reading(Kind.PAO2, 70.0, T0 + minutes(5), received_at=T0)
-    assert time_problem(ahead, tolerance=minutes(10), max_age=timedelta(days=3650),
-                        birth_date=None) is None
+    assert (
+        time_problem(ahead, tolerance=minutes(10), max_age=timedelta(days=3650), birth_date=None)
+        is None
+    )
 
 
 def test_a_draw_before_birth_or_absurdly_old_is_refused() -> None:
     before_birth = make_reading(Kind.PAO2, 70.0, datetime(1960, 1, 1, tzinfo=T0.tzinfo))
-    assert "birth" in (time_problem(before_birth, tolerance=minutes(10),
-                                    max_age=timedelta(days=365 * 100),
-                                    birth_date=BIRTH_DATE) or "")
-    ancient = make_reading(Kind.PAO2, 70.0, datetime(1901, 1, 1, tzinfo=T0.tzinfo),
-                           received_at=T0)
-    assert "plausible" in (time_problem(ancient, tolerance=minutes(10),
-                                        max_age=timedelta(days=365 * 30),
-                                        birth_date=None) or "")
+    assert "birth" in (
+        time_problem(
+            before_birth,
+            tolerance=minutes(10),
+            max_age=timedelta(days=365 * 100),
+            birth_date=BIRTH_DATE,
+        )
+        or ""
+    )
+    ancient = make_reading(Kind.PAO2, 70.0, datetime(1901, 1, 1, tzinfo=T0.tzinfo), received_at=T0)
+    assert "plausible" in (
+        time_problem(
+            ancient, tolerance=minutes(10), max_age=timedelta(days=365 * 30), birth_date=None
+        )
+        or ""
+    )
 
 
 def test_a_known_time_after_receipt_counts_as_the_receipt() -> None:

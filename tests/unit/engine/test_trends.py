@@ -90,6 +90,7 @@ _series = st.lists(
 @given(raw=_series)
 def test_theil_sen_matches_scipy(raw: list[tuple[int, float]]) -> None:
     from scipy import stats  # installed with fluids, one of the reference libraries
+
     points = [(T0 + minutes(m), v) for m, v in raw]
     expected = stats.theilslopes([v for _, v in raw], [m / 60.0 for m, _ in raw])[0]
     assert theil_sen_slope(points) == pytest.approx(expected, rel=1e-9, abs=1e-9)

@@ -56,28 +56,52 @@ NUMBERS = {
 def sample() -> Derivation:
     drawn = T0 + timedelta(hours=4)
     return Derivation(
-        patient_key=PATIENT, sample_id="lab-778-pao2", drawn_at=drawn,
-        specimen=Specimen.ARTERIAL, equation="full", pao2=91.0, fio2=0.5,
-        fio2_source=FiO2Source.CHARTED, paco2=41.0, barometric_pressure=626.5, peep=8.0,
-        pf_ratio=182.0, location=BED,
-        inputs=(InputUsed("fio2", 0.5, "charted before the draw", "fio2-1",
-                          drawn - timedelta(minutes=12)),),
+        patient_key=PATIENT,
+        sample_id="lab-778-pao2",
+        drawn_at=drawn,
+        specimen=Specimen.ARTERIAL,
+        equation="full",
+        pao2=91.0,
+        fio2=0.5,
+        fio2_source=FiO2Source.CHARTED,
+        paco2=41.0,
+        barometric_pressure=626.5,
+        peep=8.0,
+        pf_ratio=182.0,
+        location=BED,
+        inputs=(
+            InputUsed(
+                "fio2", 0.5, "charted before the draw", "fio2-1", drawn - timedelta(minutes=12)
+            ),
+        ),
         flags=frozenset({QualityFlag.ESTIMATED_PRESSURE}),
     )
 
 
 def fall_outcome(**kw: object) -> RuleOutcome:
     values: dict[str, object] = dict(
-        rule_id="pf-fall", patient_key=PATIENT, sample_id="lab-778-pao2", fired=True,
-        priority=Priority.MEDIUM, cleared=False, label="P/F fall >= 25 %", numbers=NUMBERS,
+        rule_id="pf-fall",
+        patient_key=PATIENT,
+        sample_id="lab-778-pao2",
+        fired=True,
+        priority=Priority.MEDIUM,
+        cleared=False,
+        label="P/F fall >= 25 %",
+        numbers=NUMBERS,
     )
     values.update(kw)
     return RuleOutcome(**values)  # type: ignore[arg-type]
 
 
 def raised_alert(**kw: object):
-    decision = apply_outcome(None, None, fall_outcome(**kw), sample(),
-                             T0 + timedelta(hours=4, minutes=2), AlertSettings())
+    decision = apply_outcome(
+        None,
+        None,
+        fall_outcome(**kw),
+        sample(),
+        T0 + timedelta(hours=4, minutes=2),
+        AlertSettings(),
+    )
     assert decision.alert is not None
     return decision.alert
 
@@ -89,8 +113,15 @@ SAMPLE = sample()
 
 
 def note(event: str = "raised", alert=None, derivation=SAMPLE, tz=UTC):
-    return notification_for(alert or raised_alert(), event, derivation,
-                            display_key="…0042", now=NOW, numbers=NUMBERS, tz=tz)
+    return notification_for(
+        alert or raised_alert(),
+        event,
+        derivation,
+        display_key="…0042",
+        now=NOW,
+        numbers=NUMBERS,
+        tz=tz,
+    )
 
 
 MINUS = "\u2212"
@@ -124,7 +155,8 @@ def test_an_etc_gmt_zone_is_labelled_by_its_offset_not_its_name():
 
 def test_a_time_from_another_year_carries_its_year():
     assert site_time(datetime(2025, 12, 31, 23, 0, tzinfo=UTC), UTC, NOW) == (
-        "31 Dec 2025 23:00 UTC")
+        "31 Dec 2025 23:00 UTC"
+    )
     assert site_time("not a time", UTC, NOW) == "time unknown"
     assert site_time(datetime(2026, 3, 4, 6, 10), UTC, NOW).endswith("(zone not given)")
 
@@ -156,8 +188,12 @@ def test_the_mrn_never_appears_when_the_display_key_hides_it():
 
 
 def test_preliminary_and_estimated_flags_say_so():
-    from_spo2 = replace(sample(), estimated=True, specimen=Specimen.UNKNOWN,
-                        flags=frozenset({QualityFlag.ESTIMATED_FROM_SPO2}))
+    from_spo2 = replace(
+        sample(),
+        estimated=True,
+        specimen=Specimen.UNKNOWN,
+        flags=frozenset({QualityFlag.ESTIMATED_FROM_SPO2}),
+    )
     n = note(alert=raised_alert(preliminary=True, estimated=True), derivation=from_spo2)
     assert "preliminary" in n.detail and "pulse oximetry" in n.detail
     assert n.preliminary and n.estimated
@@ -165,20 +201,31 @@ def test_preliminary_and_estimated_flags_say_so():
 
 def test_an_estimated_fio2_on_a_gas_is_not_called_pulse_oximetry():
     # Issue 12 point 9: oxygen escalation on a device-and-flow FiO2, a gas was drawn.
-    gas = replace(sample(), fio2_source=FiO2Source.DEVICE_ESTIMATE,
-                  flags=frozenset({QualityFlag.ESTIMATED_FIO2}))
-    numbers = {"fio2": 0.9, "fio2_at": NOW.isoformat(), "fio2_lowest": 0.4,
-               "fio2_lowest_at": T0.isoformat(), "fio2_rise": 0.5,
-               "fio2_source": "estimated from device and flow",
-               "fio2_basis": "estimated from device and flow"}
-    outcome = fall_outcome(rule_id="oxygen-escalation", label="FiO2 up >= 0.20 in 6 h",
-                           numbers=numbers, estimated=True)
+    gas = replace(
+        sample(),
+        fio2_source=FiO2Source.DEVICE_ESTIMATE,
+        flags=frozenset({QualityFlag.ESTIMATED_FIO2}),
+    )
+    numbers = {
+        "fio2": 0.9,
+        "fio2_at": NOW.isoformat(),
+        "fio2_lowest": 0.4,
+        "fio2_lowest_at": T0.isoformat(),
+        "fio2_rise": 0.5,
+        "fio2_source": "estimated from device and flow",
+        "fio2_basis": "estimated from device and flow",
+    }
+    outcome = fall_outcome(
+        rule_id="oxygen-escalation", label="FiO2 up >= 0.20 in 6 h", numbers=numbers, estimated=True
+    )
     alert = apply_outcome(None, None, outcome, gas, NOW, AlertSettings()).alert
     n = notification_for(alert, "raised", gas, display_key="…0042", now=NOW, numbers=numbers)
     assert "pulse oximetry" not in n.detail
     assert "estimated from the oxygen device and flow" in n.detail
-    assert alert.summary == ("FiO2 up >= 0.20 in 6 h: FiO2 0.40 \u2192 0.90 (+0.50); "
-                             "FiO2 estimated from device and flow (estimated)")
+    assert alert.summary == (
+        "FiO2 up >= 0.20 in 6 h: FiO2 0.40 \u2192 0.90 (+0.50); "
+        "FiO2 estimated from device and flow (estimated)"
+    )
 
 
 def test_idempotency_key_is_stable_per_change_and_differs_between_changes():
@@ -186,8 +233,10 @@ def test_idempotency_key_is_stable_per_change_and_differs_between_changes():
     assert note(alert=alert).idempotency_key == note(alert=alert).idempotency_key
     [escalation] = escalate_due([alert], NOW + timedelta(minutes=30), AlertSettings())
     assert escalation.alert is not None
-    assert note("escalated", alert=escalation.alert).idempotency_key != note(
-        alert=alert).idempotency_key
+    assert (
+        note("escalated", alert=escalation.alert).idempotency_key
+        != note(alert=alert).idempotency_key
+    )
     later_version = replace(alert, updated_at=NOW + timedelta(minutes=1))
     assert note(alert=later_version).idempotency_key != note(alert=alert).idempotency_key
 
@@ -235,10 +284,16 @@ def test_a_withdrawn_result_retraction_names_the_flag_its_numbers_and_why():
 
 def test_a_corrected_result_retraction_says_what_the_result_now_is():
     corrected = replace(sample(), pao2=135.0, pf_ratio=270.0)
-    now_numbers = {"pf": 270.0, "pf_at": corrected.drawn_at.isoformat(), "best_pf": 290.0,
-                   "best_pf_at": T0.isoformat(), "change_percent": -6.9}
-    n = notification_for(raised_alert(), "retracted", corrected, display_key="…0042",
-                         now=NOW, numbers=now_numbers)
+    now_numbers = {
+        "pf": 270.0,
+        "pf_at": corrected.drawn_at.isoformat(),
+        "best_pf": 290.0,
+        "best_pf_at": T0.isoformat(),
+        "change_percent": -6.9,
+    }
+    n = notification_for(
+        raised_alert(), "retracted", corrected, display_key="…0042", now=NOW, numbers=now_numbers
+    )
     assert "corrected and no longer meets the rule" in n.detail
     assert f"P/F 290 \u2192 270 mmHg ({MINUS}7 %)" in n.detail  # the corrected result
     assert f"P/F 290 \u2192 182 mmHg ({MINUS}37 %)" in n.detail  # the flag it withdraws
@@ -246,8 +301,12 @@ def test_a_corrected_result_retraction_says_what_the_result_now_is():
 
 @pytest.mark.parametrize(
     ("mode", "location", "shown"),
-    [("mrn", BED, "HGH-000042"), ("mrn-last4", BED, "…0042"), ("bed", BED, "ICU-North N3 B2"),
-     ("bed", None, "…0042")],
+    [
+        ("mrn", BED, "HGH-000042"),
+        ("mrn-last4", BED, "…0042"),
+        ("bed", BED, "ICU-North N3 B2"),
+        ("bed", None, "…0042"),
+    ],
 )
 def test_patient_display_modes(mode, location, shown):
     assert patient_display(PATIENT, location, mode) == shown
@@ -268,7 +327,8 @@ def test_a_fall_on_adjusted_values_says_so_in_the_short_text():
     numbers = {**NUMBERS, "adjusted": True, "pf_measured": 150.0}
     assert outcome_summary(fall_outcome(numbers=numbers)) == (
         f"P/F fall >= 25 %: P/F 290 \u2192 182 mmHg ({MINUS}37 %), adjusted for altitude "
-        "(measured 150)")
+        "(measured 150)"
+    )
 
 
 def test_plain_text_body_holds_summary_and_advisory():
@@ -284,18 +344,31 @@ def test_html_body_escapes_everything(user_text):
 
 
 def test_other_rules_read_well():
-    assert what_changed({"aa_gradient": 62.0, "aa_expected": 17.5, "aa_excess": 44.5,
-                         "aa_at": T0.isoformat()}, NOW) == (
+    assert what_changed(
+        {"aa_gradient": 62.0, "aa_expected": 17.5, "aa_excess": 44.5, "aa_at": T0.isoformat()}, NOW
+    ) == (
         "A–a gradient 62 mmHg on room air at 4 Mar 06:10 UTC, age-expected up to 18 mmHg "
-        "(44 mmHg above)")
-    assert what_changed({"fio2": 0.6, "fio2_at": T0.isoformat(), "fio2_lowest": 0.3,
-                         "fio2_lowest_at": (T0 - timedelta(hours=3)).isoformat(),
-                         "fio2_rise": 0.3}, NOW) == (
-        "FiO2 0.30 \u2192 0.60 (+0.30): 0.30 at 4 Mar 03:10 UTC, 0.60 at 4 Mar 06:10 UTC")
-    assert what_changed({"sf": 180.0, "sf_at": T0.isoformat(), "earlier_sf": 205.0,
-                         "earlier_sf_at": (T0 - timedelta(hours=1)).isoformat()}, NOW) == (
-        "S/F 205 \u2192 180, estimated from SpO2: 205 at 4 Mar 05:10 UTC, 180 at "
-        "4 Mar 06:10 UTC")
+        "(44 mmHg above)"
+    )
+    assert what_changed(
+        {
+            "fio2": 0.6,
+            "fio2_at": T0.isoformat(),
+            "fio2_lowest": 0.3,
+            "fio2_lowest_at": (T0 - timedelta(hours=3)).isoformat(),
+            "fio2_rise": 0.3,
+        },
+        NOW,
+    ) == ("FiO2 0.30 \u2192 0.60 (+0.30): 0.30 at 4 Mar 03:10 UTC, 0.60 at 4 Mar 06:10 UTC")
+    assert what_changed(
+        {
+            "sf": 180.0,
+            "sf_at": T0.isoformat(),
+            "earlier_sf": 205.0,
+            "earlier_sf_at": (T0 - timedelta(hours=1)).isoformat(),
+        },
+        NOW,
+    ) == ("S/F 205 \u2192 180, estimated from SpO2: 205 at 4 Mar 05:10 UTC, 180 at 4 Mar 06:10 UTC")
     assert what_changed({}, NOW) == ""
 
 
@@ -303,10 +376,19 @@ def test_other_rules_read_well():
 
 
 def band(**numbers: object) -> RuleOutcome:
-    return fall_outcome(rule_id="oxygenation-band", label="P/F <= 200",
-                        numbers={"pf": 175.0, "pf_at": T0.isoformat(), "adjusted": False,
-                                 "fio2": 0.4, "fio2_source": "charted before the draw",
-                                 "fio2_basis": "charted", **numbers})
+    return fall_outcome(
+        rule_id="oxygenation-band",
+        label="P/F <= 200",
+        numbers={
+            "pf": 175.0,
+            "pf_at": T0.isoformat(),
+            "adjusted": False,
+            "fio2": 0.4,
+            "fio2_source": "charted before the draw",
+            "fio2_basis": "charted",
+            **numbers,
+        },
+    )
 
 
 def test_band_short_text_with_a_charted_fio2():
@@ -323,44 +405,83 @@ def test_band_short_text_says_adjusted_for_altitude_with_the_measured_value():
 
 def test_band_short_text_shows_both_fio2_when_it_changed_just_before_the_draw():
     # Issue 12 point 3: 0.40 -> 0.80 five minutes before a PaO2 of 70.
-    text = outcome_summary(band(fio2_set=0.8, fio2_set_minutes=5, pf_on_fio2_set=87.5,
-                                fio2_set_at=(T0 - timedelta(minutes=5)).isoformat()))
-    assert text == ("P/F <= 200: P/F 175 mmHg; FiO2 0.40 charted, 0.80 set 5 min before "
-                    "the draw (P/F 88 on it)")
+    text = outcome_summary(
+        band(
+            fio2_set=0.8,
+            fio2_set_minutes=5,
+            pf_on_fio2_set=87.5,
+            fio2_set_at=(T0 - timedelta(minutes=5)).isoformat(),
+        )
+    )
+    assert text == (
+        "P/F <= 200: P/F 175 mmHg; FiO2 0.40 charted, 0.80 set 5 min before the draw (P/F 88 on it)"
+    )
 
 
 def test_band_short_text_on_an_estimated_fio2_says_estimated_and_held():
     # Issue 12 point 2: the estimate is in the short text, not only in a detail line.
-    text = outcome_summary(band(pf=78.0, fio2=0.9, fio2_basis="estimated from device and flow",
-                                fio2_source="estimated from device and flow",
-                                priority_held=True, pf_at_room_air=334.3))
+    text = outcome_summary(
+        band(
+            pf=78.0,
+            fio2=0.9,
+            fio2_basis="estimated from device and flow",
+            fio2_source="estimated from device and flow",
+            priority_held=True,
+            pf_at_room_air=334.3,
+        )
+    )
     assert text.startswith("P/F <= 200: P/F 78 mmHg; FiO2 0.90 estimated from device and flow")
     assert "priority held" in text
 
 
 def test_hypoxaemia_short_text_says_fio2_unknown():
-    outcome = fall_outcome(rule_id="hypoxaemia", label="PaO2 < 60 mmHg with FiO2 unknown",
-                           numbers={"pao2": 52.0, "pao2_at": T0.isoformat(), "fio2": None,
-                                    "fio2_source": "unknown", "fio2_basis": "unknown"})
+    outcome = fall_outcome(
+        rule_id="hypoxaemia",
+        label="PaO2 < 60 mmHg with FiO2 unknown",
+        numbers={
+            "pao2": 52.0,
+            "pao2_at": T0.isoformat(),
+            "fio2": None,
+            "fio2_source": "unknown",
+            "fio2_basis": "unknown",
+        },
+    )
     assert outcome_summary(outcome) == (
-        "PaO2 < 60 mmHg with FiO2 unknown: PaO2 52 mmHg; FiO2 unknown")
+        "PaO2 < 60 mmHg with FiO2 unknown: PaO2 52 mmHg; FiO2 unknown"
+    )
     assert what_changed(outcome.numbers, NOW).endswith("FiO2 unknown, so no P/F")
 
 
 def test_a_rise_short_text_gives_before_and_after_with_units():
-    outcome = fall_outcome(rule_id="aa-rise", label="A-a rise >= 20 mmHg and a/A fall >= 0.08",
-                           numbers={"aa_gradient": 451.0, "previous_aa": 408.0, "aa_rise": 43.0,
-                                    "aa_ratio": 0.147, "previous_aa_ratio": 0.228,
-                                    "fio2": 0.8, "fio2_basis": "charted"})
+    outcome = fall_outcome(
+        rule_id="aa-rise",
+        label="A-a rise >= 20 mmHg and a/A fall >= 0.08",
+        numbers={
+            "aa_gradient": 451.0,
+            "previous_aa": 408.0,
+            "aa_rise": 43.0,
+            "aa_ratio": 0.147,
+            "previous_aa_ratio": 0.228,
+            "fio2": 0.8,
+            "fio2_basis": "charted",
+        },
+    )
     assert outcome_summary(outcome) == (
         "A-a rise >= 20 mmHg and a/A fall >= 0.08: A–a 408 \u2192 451 mmHg (+43); "
-        "a/A 0.23 \u2192 0.15; FiO2 0.80 charted")
+        "a/A 0.23 \u2192 0.15; FiO2 0.80 charted"
+    )
 
 
 def test_the_patient_stays_in_a_truncated_card_summary():
     long = fall_outcome(label="P/F fall >= 25 % " + "x" * 200)
-    n = notification_for(raised_alert(label=long.label), "raised", sample(),
-                         display_key="…0042", now=NOW, numbers=NUMBERS)
+    n = notification_for(
+        raised_alert(label=long.label),
+        "raised",
+        sample(),
+        display_key="…0042",
+        now=NOW,
+        numbers=NUMBERS,
+    )
     assert len(n.summary) == SUMMARY_MAX and "…0042" in n.summary
 
 
@@ -369,23 +490,50 @@ def test_a_lowered_flag_can_be_worded():
     assert "priority lowered" in n.summary and plain_text_body(n).count(ADVISORY) == 1
 
 
-
 # --- properties: no raw key where a person reads; what the short text must always say -----
 
 RULE_KEYS = {  # every key the rules write (monitor/engine/rules.py), invented values
-    "pf": 150.0, "pf_at": T0.isoformat(), "adjusted": True, "pf_measured": 130.0,
-    "pf_on_fio2_set": 90.0, "pf_at_highest_fio2": 120.0, "pf_at_room_air": 300.0,
-    "priority_held": True, "threshold": 200.0, "best_pf": 290.0,
-    "best_pf_at": T0.isoformat(), "change_percent": -48.0, "aa_gradient": 60.0,
-    "aa_expected": 18.0, "aa_excess": 42.0, "aa_at": T0.isoformat(), "adult_formula_age": 5,
-    "previous_aa": 30.0, "previous_aa_at": T0.isoformat(), "aa_rise": 30.0,
-    "aa_ratio": 0.3, "previous_aa_ratio": 0.5, "aa_ratio_fall": 0.2, "previous_fio2": 0.4,
-    "fio2": 0.4, "fio2_at": T0.isoformat(), "fio2_lowest": 0.21,
-    "fio2_lowest_at": T0.isoformat(), "fio2_rise": 0.19,
-    "fio2_source": "charted before the draw", "fio2_basis": "charted", "fio2_set": 0.8,
-    "fio2_set_at": T0.isoformat(), "fio2_set_minutes": 5, "sf": 180.0,
-    "sf_at": T0.isoformat(), "earlier_sf": 190.0, "earlier_sf_at": T0.isoformat(),
-    "pao2": 52.0, "pao2_at": T0.isoformat(), "sao2": 86.0,
+    "pf": 150.0,
+    "pf_at": T0.isoformat(),
+    "adjusted": True,
+    "pf_measured": 130.0,
+    "pf_on_fio2_set": 90.0,
+    "pf_at_highest_fio2": 120.0,
+    "pf_at_room_air": 300.0,
+    "priority_held": True,
+    "threshold": 200.0,
+    "best_pf": 290.0,
+    "best_pf_at": T0.isoformat(),
+    "change_percent": -48.0,
+    "aa_gradient": 60.0,
+    "aa_expected": 18.0,
+    "aa_excess": 42.0,
+    "aa_at": T0.isoformat(),
+    "adult_formula_age": 5,
+    "previous_aa": 30.0,
+    "previous_aa_at": T0.isoformat(),
+    "aa_rise": 30.0,
+    "aa_ratio": 0.3,
+    "previous_aa_ratio": 0.5,
+    "aa_ratio_fall": 0.2,
+    "previous_fio2": 0.4,
+    "fio2": 0.4,
+    "fio2_at": T0.isoformat(),
+    "fio2_lowest": 0.21,
+    "fio2_lowest_at": T0.isoformat(),
+    "fio2_rise": 0.19,
+    "fio2_source": "charted before the draw",
+    "fio2_basis": "charted",
+    "fio2_set": 0.8,
+    "fio2_set_at": T0.isoformat(),
+    "fio2_set_minutes": 5,
+    "sf": 180.0,
+    "sf_at": T0.isoformat(),
+    "earlier_sf": 190.0,
+    "earlier_sf_at": T0.isoformat(),
+    "pao2": 52.0,
+    "pao2_at": T0.isoformat(),
+    "sao2": 86.0,
 }
 RAW_KEY = r"\b[a-z0-9]+_[a-z0-9_]+\b"
 
@@ -396,25 +544,37 @@ def test_no_raw_key_anywhere_a_person_reads(keys):
 
     numbers = {k: RULE_KEYS[k] for k in keys}
     outcome = fall_outcome(numbers=numbers)
-    n = notification_for(raised_alert(), "raised", sample(), display_key="…0042", now=NOW,
-                         numbers=numbers)
+    n = notification_for(
+        raised_alert(), "raised", sample(), display_key="…0042", now=NOW, numbers=numbers
+    )
     for text in (what_changed(numbers, NOW), outcome_summary(outcome), n.detail, n.summary):
         assert not re.search(RAW_KEY, text), text
         assert "no numbers recorded" not in text
 
 
-@given(adjusted=st.booleans(), just_changed=st.booleans(),
-       basis=st.sampled_from(["charted", "measured with the gas",
-                              "estimated from device and flow", "charted after the draw"]))
+@given(
+    adjusted=st.booleans(),
+    just_changed=st.booleans(),
+    basis=st.sampled_from(
+        [
+            "charted",
+            "measured with the gas",
+            "estimated from device and flow",
+            "charted after the draw",
+        ]
+    ),
+)
 def test_the_short_text_always_says_estimated_fio2_a_late_change_and_altitude(
-        adjusted, just_changed, basis):
+    adjusted, just_changed, basis
+):
     # Issue 12 points 2, 3, 5: said in the short text, not only in a detail line.
     numbers: dict[str, object] = {"fio2_basis": basis}
     if adjusted:
         numbers.update(adjusted=True, pf=182.0, pf_measured=150.0)
     if just_changed:
-        numbers.update(fio2_set=0.8, fio2_set_minutes=5, pf_on_fio2_set=88.0,
-                       fio2_set_at=T0.isoformat())
+        numbers.update(
+            fio2_set=0.8, fio2_set_minutes=5, pf_on_fio2_set=88.0, fio2_set_at=T0.isoformat()
+        )
     text = outcome_summary(band(**numbers))
     assert f"FiO2 0.40 {basis}" in text
     assert ("adjusted for altitude (measured 150)" in text) is adjusted
