@@ -1,9 +1,11 @@
 """Replay: a generated ICU feed (``fixtures.generate icu``) played through
-``monitor.replay.replay`` (one unit per ``Pipeline.accept``, simulated clock), each
-run in its own process so its peak memory (``ru_maxrss``) is its own.
+``monitor.replay.replay`` (the historical path: files stored first, then each
+patient's timeline stepped once), each run in its own process so its peak memory
+(``ru_maxrss``) is its own.
 
 Two lengths of the same ICU: the base and ten times as long. The memory question is
-about duration: a replay streams its input, so a feed ten times longer should need
+about duration: a replay streams its input and holds one patient at a time, so a
+feed ten times longer should need
 under 1.5 times the peak memory (goal). The replay database is a SQLite file here (an
 in-memory database holds every stored reading in RAM by design; ``--replay-db memory``
 measures that instead).
