@@ -807,9 +807,20 @@ class FhirReadingBuilder:
         if item.text is not None:
             try:
                 number, unit = parse_number(item.text)
-                return kind, to_canonical(kind, number, unit), None, item.text, unit or ""
+            except InvalidReading:
+                raise Rejected(
+                    f"{where} valueString {item.text!r} is the wrong value type: a {kind} "
+                    f"is sent as valueQuantity (a number with its unit)"
+                ) from None
+            if not unit:
+                raise Rejected(
+                    f"{where} valueString {item.text!r} is the wrong value type: a {kind} "
+                    f"is sent as valueQuantity, and this text names no unit"
+                )
+            try:
+                return kind, to_canonical(kind, number, unit), None, item.text, unit
             except InvalidReading as exc:
-                raise Rejected(f"{where} valueString {item.text!r}: {exc}") from None
+                raise Rejected(f"{where} valueString {item.text!r}: {exc.rule}") from None
         if item.concept is not None and status is not Status.RETRACTED:
             raise Rejected(f"{where} valueCodeableConcept is not a number, but {kind} needs one")
         if status is Status.RETRACTED:

@@ -57,7 +57,15 @@ from adapters.hl7v2.ack import Hl7Error
 from monitor.engine import identity
 from monitor.engine.errors import InvalidReading
 from monitor.engine.identity import PatientFacts, PatientLink, RegisterSettings
-from monitor.engine.model import Kind, Location, Reading, Specimen, Status
+from monitor.engine.model import (
+    CANONICAL_UNIT,
+    PLAUSIBLE_RANGE,
+    Kind,
+    Location,
+    Reading,
+    Specimen,
+    Status,
+)
 
 SUPPORTED_VERSIONS = frozenset({"2.3", "2.3.1", "2.4", "2.5", "2.5.1"})
 
@@ -543,7 +551,7 @@ def _read_order(
         except _Bad as exc:
             out.rejected.append(Rejection(exc.where, exc.reason))
         except InvalidReading as exc:  # Reading's own checks: range, empty ids, ...
-            out.rejected.append(Rejection(f"{where}-5", str(exc)))
+            out.rejected.append(Rejection(_field_of(exc, where), str(exc)))
         else:
             if reading is not None:
                 taken.append((where, reading))
@@ -807,4 +815,30 @@ def _value(
         canonical = to_canonical(kind, number, unit)
     except InvalidReading as exc:
         raise _Bad(f"{where}-6", str(exc)) from exc
+    low, high = PLAUSIBLE_RANGE[kind]
+    if not low <= canonical <= high:
+        # say the value as it was sent (a unitless 1.4 is not "0.014")
+        sent = f"{original} {unit}".strip() if unit else f"{original} (no unit)"
+        scale = CANONICAL_UNIT[kind]
+        scale = "as a fraction" if scale == "1" else scale
+        raise _Bad(
+            f"{where}-5",
+            f"{kind} value as sent, {sent}, must be in [{low:g}, {high:g}] {scale} once converted",
+        )
     return canonical, None, original, unit
+
+
+#: Which HL7 field a Reading's own check is about, when it is not the OBX value.
+_FIELD_OF = {
+    "patient_key": "PID-3",
+    "encounter_id": "PV1-19",
+    "location": "PV1-3",
+    "logical_id": "OBR-3",
+    "effective_at": "OBR-7",
+}
+
+
+def _field_of(exc: InvalidReading, where: str) -> str:
+    """The field a refused reading's problem is in: PID-3 for the patient identifier,
+    else the OBX value."""
+    return _FIELD_OF.get(exc.name, f"{where}-5")

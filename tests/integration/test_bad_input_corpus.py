@@ -214,11 +214,6 @@ def test_re_ingesting_the_corpus_stores_nothing_new(corpus: Path, tmp_path: Path
 
 
 # --- reasons that name what was actually wrong -------------------------------------------
-# These need changes in adapters/hl7v2/parse.py and adapters/fhir/observations.py (owned
-# elsewhere; described in the hardening report). strict xfail: they turn red as soon as
-# the fix lands, so the marker is removed with it.
-
-_PENDING = pytest.mark.xfail(strict=True, reason="reason wording fixed in the adapters")
 
 
 def _parse(raw: bytes) -> list[str]:
@@ -238,14 +233,12 @@ def _parse(raw: bytes) -> list[str]:
     return [str(r) for r in parsed.rejected]
 
 
-@_PENDING
 def test_a_nul_in_pid3_is_reported_at_pid3() -> None:
     pid = "PID|1||HGH-20\x0001^^^HGH&2.999.1.1.1&ISO^MR||Corpus^Nul||19700101|F"
     reasons = _parse(hl7("N1", GOOD_OBX, pid=pid).encode())
     assert reasons and all("PID-3" in r for r in reasons), reasons
 
 
-@_PENDING
 def test_fio2_above_one_without_a_unit_is_reported_as_sent() -> None:
     # FiO2 is a fraction 0.21-1 or a percent 21-100 (shared/reference section 1);
     # 1.4 is neither, and the reason must say 1.4, not the value divided by 100.
@@ -253,7 +246,6 @@ def test_fio2_above_one_without_a_unit_is_reported_as_sent() -> None:
     assert reasons and "1.4" in reasons[0] and "0.0139" not in reasons[0], reasons
 
 
-@_PENDING
 def test_a_value_string_is_reported_as_the_wrong_value_type() -> None:
     from datetime import UTC, datetime
 
