@@ -68,6 +68,8 @@ class LoadOptions:
     until: datetime | None = None
     batch_size: int = 500
     progress: bool = False
+    #: Patients that took rows of another key while stored: derived again in full.
+    joined: frozenset[str] = frozenset()
 
 
 @dataclass(slots=True)
@@ -81,6 +83,8 @@ class LoadResult:
     last_record: datetime | None = None
     #: (patient, site date) of every reading stored (canonical patient keys).
     patient_days: set[tuple[str, date]] = field(default_factory=set)
+    #: Patients that took rows of another key (a link learnt during the load).
+    joined: set[str] = field(default_factory=set)
 
 
 def load_files(
@@ -107,7 +111,7 @@ def load_files(
     if on_stored is not None:
         on_stored(result)
     until = options.until or result.last_record
-    stepped = step_pending(pipeline, replace(options, until=until))
+    stepped = step_pending(pipeline, replace(options, until=until, joined=frozenset(result.joined)))
     result.report.merge(stepped.report)
     result.patients = stepped.patients
     return result
@@ -158,8 +162,9 @@ def store_units(
     def flush() -> None:
         nonlocal pending, size
         if pending:
-            report, _ = pipeline.stage(pending)
+            report, joined = pipeline.stage(pending)
             result.report.merge(report)
+            result.joined |= joined
             pending, size = [], 0
 
     for unit in units:
@@ -196,7 +201,7 @@ def step_pending(pipeline: Pipeline, options: LoadOptions) -> StepOutcome:
     """Step every patient with readings stored but not yet stepped; see the module
     docstring. Results are written in patient order whatever computes them."""
     with pipeline.db.begin(read_only=True) as conn:
-        patients = timelines_store.unprocessed_patients(conn)
+        patients = sorted(set(timelines_store.unprocessed_patients(conn)) | options.joined)
     outcome = StepOutcome()
     if not patients:
         return outcome
@@ -230,6 +235,7 @@ def _write(
                 seen_at=options.seen_at,
                 simulate_escalation=options.simulate_escalation,
                 until=options.until,
+                refresh=key in options.joined,
             )
         pipeline.finish_pending(
             conn, key, step, deliveries, seen_at=options.seen_at, report=outcome.report
@@ -265,6 +271,7 @@ def _compute_here(pipeline: Pipeline, key: str, options: LoadOptions) -> _Comput
             seen_at=options.seen_at,
             simulate_escalation=options.simulate_escalation,
             until=options.until,
+            refresh=key in options.joined,
         )
     return key, step, deliveries, revision
 

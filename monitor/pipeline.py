@@ -233,6 +233,8 @@ class Pipeline:
             self._quarantine(conn, rejected, now, report)
         good = self._screen_times(conn, inbound.readings, now, report)
         if not good:
+            # a Patient or Encounter alone can still name a person: join what it links
+            self._join(conn, inbound, now, report)
             return report
         self.note_patients(conn, good)
         by_patient = _by_patient(good)
@@ -249,14 +251,18 @@ class Pipeline:
             self.write_step(conn, patient_key, step, now, report)
             revision = timelines_store.bump_revision(conn, patient_key)
             self._remember(patient_key, revision, timeline)
+        self._join(conn, inbound, now, report)
+        return report
+
+    def _join(self, conn: Connection, inbound: Inbound, now: datetime, report: BatchReport) -> None:
+        """Keep what the register learnt; when rows of another key moved onto a patient,
+        pair and derive that patient's timeline again."""
         for joined in sorted(self._identity(conn, inbound, now)):
-            # rows of another key moved onto this patient: pair and derive them again
             patient_lock(conn, joined)
             self._cache.pop(joined, None)
             timeline = self.restore(conn, joined, [])
             self.write_step(conn, joined, timeline.refresh(seen_at=now), now, report)
             self._remember(joined, timelines_store.bump_revision(conn, joined), timeline)
-        return report
 
     def _identity(self, conn: Connection, inbound: Inbound, now: datetime) -> set[str]:
         """Keep what the register learnt; move rows of provisional keys onto the
