@@ -141,6 +141,8 @@ def _named_variables(options: Mapping[str, object]) -> Iterator[str]:
     for key, value in options.items():
         if key.endswith("_env") and isinstance(value, str) and value:
             yield value
+        elif isinstance(value, Mapping):  # a nested section, e.g. a channel's [smart]
+            yield from _named_variables(value)
 
 
 def channel_secrets(options: Mapping[str, object], secrets: Secrets) -> dict[str, str]:

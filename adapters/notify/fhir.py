@@ -15,7 +15,8 @@ import hashlib
 import html
 import logging
 import os
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
 from datetime import datetime
 from typing import Any, Literal
 
@@ -24,6 +25,7 @@ import pydantic
 from fhir.resources.R4B.communication import Communication
 from fhir.resources.R4B.flag import Flag
 
+from adapters.fhir.smart import SmartAuth, SmartAuthError, SmartSettings
 from adapters.notify import render
 from adapters.notify.base import (
     DeliveryFailed,
@@ -59,6 +61,9 @@ class FhirOptions(pydantic.BaseModel):
     base_url: str
     timeout_s: float = pydantic.Field(default=10.0, gt=0, le=120)
     token_env: str | None = None
+    #: SMART Backend Services (``[channels.<alias>.smart]``) instead of a static token;
+    #: its scopes must include write scopes (``system/Flag.cu``, ``system/Communication.cu``).
+    smart: SmartSettings | None = None
     patient_identifier_system: str = "urn:oid:2.999.1.1.1"
     alert_identifier_system: str = "urn:oid:2.999.1.1.2"
     notification_identifier_system: str = "urn:oid:2.999.1.1.3"
@@ -147,6 +152,16 @@ def build_communication(n: Notification, options: FhirOptions, flag: Flag) -> Co
         return Communication.model_validate(data)
 
 
+@contextmanager
+def _smart_errors(what: str) -> Iterator[None]:
+    """A token that could not be had: a refusal (invalid_client, invalid_scope) is dead
+    until the site fixes its registration; a transport failure or 5xx retries."""
+    try:
+        yield
+    except SmartAuthError as exc:
+        raise DeliveryFailed(f"{what}: {exc}", retryable=exc.retryable) from exc
+
+
 class FhirChannel:
     """Write each notification to a FHIR server as a Flag and a Communication.
 
@@ -164,19 +179,30 @@ class FhirChannel:
         env = os.environ if environ is None else environ
         self.alias = alias
         self.options = parse_options(alias, FhirOptions, options)
-        token = read_secret(alias, self.options.token_env, env)
         headers = {"Accept": "application/fhir+json"}
-        if token:
-            headers["Authorization"] = f"Bearer {token}"
+        auth: httpx.Auth | None = None
+        if self.options.smart is not None:
+            # the token endpoint and the signed assertion; the key's variable is resolved
+            # like every other secret of this channel
+            auth = SmartAuth(
+                self.options.smart,
+                self.options.base_url,
+                lookup=lambda name: read_secret(alias, name, env) or "",
+            )
+        else:
+            token = read_secret(alias, self.options.token_env, env)
+            if token:
+                headers["Authorization"] = f"Bearer {token}"
+        self._auth = auth
         self._client = client or httpx.Client(
-            timeout=self.options.timeout_s, headers=headers, follow_redirects=False
+            timeout=self.options.timeout_s, headers=headers, follow_redirects=False, auth=auth
         )
         self._log = logging.getLogger(f"gasgap.notify.{alias}")
 
     def _put(self, resource: Flag | Communication) -> DeliveryResult:
         kind = resource.get_resource_type()
         url = f"{self.options.base_url}/{kind}/{resource.id}"
-        with map_http_errors(f"fhir PUT {kind}"):
+        with map_http_errors(f"fhir PUT {kind}"), _smart_errors(f"fhir PUT {kind}"):
             response = self._client.put(
                 url,
                 content=resource.model_dump_json(exclude_none=True).encode("utf-8"),
@@ -198,3 +224,5 @@ class FhirChannel:
 
     def close(self) -> None:
         self._client.close()
+        if isinstance(self._auth, SmartAuth):
+            self._auth.close()  # its own connection to the token endpoint

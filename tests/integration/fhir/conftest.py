@@ -95,6 +95,12 @@ def smart_fhir_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Smar
                 },
                 {"client_id": "gasgap-rsa", "jwks": rsa_jwks, "scopes": READ_SCOPES},
                 {"client_id": "gasgap-narrow", "jwks": ec_jwks, "scopes": "system/Patient.rs"},
+                {
+                    # FHIR write-back: the notify channel's Flag and Communication
+                    "client_id": "gasgap-writer",
+                    "jwks": ec_jwks,
+                    "scopes": "system/Flag.cru system/Communication.cru",
+                },
             ],
         },
     }

@@ -193,3 +193,62 @@ def test_a_polled_source_behind_smart_reads_its_gas(
         r.delivery_id for r in mine
     ]
     assert auth.tokens_fetched == 2
+
+
+def test_fhir_write_back_signs_in_with_smart_and_writes_its_flag(
+    smart_fhir_server: SmartServer,
+) -> None:
+    # The write-back channel takes [channels.<alias>.smart] like a source: a token from
+    # the server's endpoint (client gasgap-writer, granted Flag and Communication
+    # create/update only), then the PUTs of FHIR R4 Flag and Communication.
+    from adapters.notify.fhir import FhirChannel, resource_id
+    from tests.integration.notify.conftest import make_notification
+
+    options = {
+        "type": "fhir",
+        "base_url": smart_fhir_server.base_url,
+        "smart": {
+            "client_id": "gasgap-writer",
+            "private_key_env": KEY_ENV,
+            "key_id": "hg-ec-1",
+            "algorithm": "ES384",
+            "scopes": ["system/Flag.cu", "system/Communication.cu"],
+        },
+    }
+    channel = FhirChannel("ehr-writeback", options, environ={KEY_ENV: smart_fhir_server.ec_key_pem})
+    try:
+        note = make_notification()
+        result = channel.send(note)
+    finally:
+        channel.close()
+    assert result.ok, result
+    with loader(smart_fhir_server) as client:
+        flag = client.get(f"/Flag/{resource_id('gasgap-flag', note.alert_id)}")
+    assert flag.status_code == 200, flag.text
+    assert flag.json()["resourceType"] == "Flag"
+
+
+def test_fhir_write_back_without_the_write_scope_is_refused_and_not_retried(
+    smart_fhir_server: SmartServer,
+) -> None:
+    from adapters.notify.fhir import FhirChannel
+    from tests.integration.notify.conftest import make_notification
+
+    options = {
+        "type": "fhir",
+        "base_url": smart_fhir_server.base_url,
+        "smart": {
+            "client_id": "gasgap-narrow",  # granted system/Patient.rs only
+            "private_key_env": KEY_ENV,
+            "key_id": "hg-ec-1",
+            "algorithm": "ES384",
+            "scopes": ["system/Flag.cu"],
+        },
+    }
+    channel = FhirChannel("ehr-writeback", options, environ={KEY_ENV: smart_fhir_server.ec_key_pem})
+    try:
+        result = channel.send(make_notification())
+    finally:
+        channel.close()
+    assert not result.ok and not result.retryable, result
+    assert "invalid_scope" in (result.detail or "")
