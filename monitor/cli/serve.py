@@ -106,7 +106,38 @@ def _run_config_check(args: argparse.Namespace) -> int:
             print(f"{args.file}: {problem}", file=sys.stderr)
         return EXIT_CONFIG
     print(f"{args.file}: configuration is valid")
+    for name in _unset_secrets(args.file):
+        # valid as a file; but the service or `outbox send` will stop on this one
+        print(
+            f"{args.file}: note: secret {name} is not set in this environment "
+            "(nor in a --secrets-file); set it where gasgap runs",
+            file=sys.stderr,
+        )
     return 0
+
+
+def _unset_secrets(path: Path) -> list[str]:
+    """The variables the site file names for channels' secrets that are not set here."""
+    from monitor.bootstrap import Secrets, channel_secrets, load_site
+
+    config = load_site(path)
+    missing: list[str] = []
+    for alias in sorted(config.channels):
+        options = config.channel_options(alias)
+        found = channel_secrets(options, Secrets())
+        missing += [n for n in _env_names(options) if n not in found and n not in missing]
+    return missing
+
+
+def _env_names(options: object) -> list[str]:
+    names: list[str] = []
+    if isinstance(options, dict):
+        for key, value in options.items():
+            if key.endswith("_env") and isinstance(value, str) and value:
+                names.append(value)
+            else:
+                names += _env_names(value)
+    return names
 
 
 def _run_alerts(args: argparse.Namespace) -> int:
