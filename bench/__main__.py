@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any
 
 from bench import ingest, latency, postgres, replay
-from bench.common import machine
+from bench.common import feed, machine
 
 BENCHMARKS = ("ingest", "replay", "latency", "postgres")
 
@@ -51,6 +51,12 @@ def _parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--gases", type=int, help="gases for latency (default 1000; quick 100)")
     p.add_argument("--pace", type=float, default=20.0, help="gases per second sent (default 20)")
+    p.add_argument(
+        "--history-days",
+        type=float,
+        default=0,
+        help="also measure latency while `gasgap ingest` loads this many days of a 30-bed ICU",
+    )
     p.add_argument("--pg-beds", type=int, help="ICU beds for PostgreSQL (default 30; quick 3)")
     p.add_argument("--pg-days", type=float, help="days for PostgreSQL (default 7; quick 3)")
     p.add_argument("--json", type=Path, help="also write every figure to this JSON file")
@@ -80,6 +86,12 @@ def main(argv: list[str] | None = None) -> int:
         results["latency"] = latency.run(
             gases=args.gases or (100 if quick else 1000), pace_per_s=args.pace
         )
+        if args.history_days:
+            results["latency_with_history"] = latency.run(
+                gases=args.gases or (100 if quick else 1000),
+                pace_per_s=args.pace,
+                history=feed(30, args.history_days),
+            )
     if "postgres" in chosen:
         results["postgres"] = postgres.run(
             beds=args.pg_beds or (3 if quick else 30), days=args.pg_days or (3 if quick else 7)
