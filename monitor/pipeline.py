@@ -389,6 +389,10 @@ class Pipeline:
             ):
                 self._cache.move_to_end(patient_key)
                 return held
+        if revision == 0:
+            # never stepped by any process (every step bumps the revision): nothing to
+            # restore, the common case of a patient's first result
+            return revision, PatientTimeline(patient_key, self._timeline_settings)
         timeline = self.restore(conn, patient_key, new)
         return revision, timeline
 

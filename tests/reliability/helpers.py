@@ -443,6 +443,19 @@ def outbox_rows(url: str, channel: str | None = None) -> list[dict[str, Any]]:
         engine.dispose()
 
 
+def historical_alert_ids(url: str) -> set[str]:
+    """Ids of the flags recorded as historical (never sent)."""
+    from storage.tables import alerts
+
+    engine = _engine(url)
+    try:
+        with engine.connect() as conn:
+            query = sa.select(alerts.c.alert_id).where(alerts.c.historical)
+            return set(conn.execute(query).scalars())
+    finally:
+        engine.dispose()
+
+
 def notifying_events(url: str) -> list[dict[str, Any]]:
     """Alert audit events whose kind sends a notification (the alert state machine's
     NOTIFYING set), in order."""
