@@ -246,10 +246,10 @@ class Pipeline:
         report.stored += result.stored
         report.duplicates += result.duplicates
         for patient_key, new in sorted(_by_patient(result.new).items()):
-            _, timeline = timelines[patient_key]
+            was, timeline = timelines[patient_key]
             step = timeline.advance(new, seen_at=now)
             self.write_step(conn, patient_key, step, now, report)
-            revision = timelines_store.bump_revision(conn, patient_key)
+            revision = timelines_store.bump_revision(conn, patient_key, was=was)
             self._remember(patient_key, revision, timeline)
         self._join(conn, inbound, now, report)
         return report

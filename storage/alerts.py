@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 from datetime import datetime
+from typing import Any
 
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection
@@ -45,23 +46,35 @@ def save_alert(conn: Connection, alert: Alert) -> None:
     """Insert or update the alert (by ``alert_id``) with every field as given."""
     if alert.state.is_open:
         other = conn.execute(
-            sa.select(alerts.c.alert_id).where(
-                alerts.c.patient_key == alert.patient_key,
-                alerts.c.rule == alert.rule,
-                alerts.c.alert_id != alert.alert_id,
-                _is_open(),
-            )
+            _OTHER_OPEN,
+            {"key": alert.patient_key, "rule": alert.rule, "id": alert.alert_id},
         ).first()
         if other is not None:
             raise DuplicateOpenAlert(alert, other.alert_id)
-    row = alert_to_row(alert)
-    statement = insert_for(conn, alerts).values(row)
-    conn.execute(
-        statement.on_conflict_do_update(
+    conn.execute(_upsert(conn), alert_to_row(alert))
+
+
+#: Built once (the pipeline saves a flag for every change): the other open flag of the
+#: same patient and rule, and the upsert by alert id.
+_OTHER_OPEN = sa.select(alerts.c.alert_id).where(
+    alerts.c.patient_key == sa.bindparam("key"),
+    alerts.c.rule == sa.bindparam("rule"),
+    alerts.c.alert_id != sa.bindparam("id"),
+    _is_open(),
+)
+_UPSERTS: dict[str, Any] = {}
+
+
+def _upsert(conn: Connection) -> Any:
+    statement = _UPSERTS.get(conn.dialect.name)
+    if statement is None:
+        insert = insert_for(conn, alerts)
+        statement = insert.on_conflict_do_update(
             index_elements=["alert_id"],
-            set_={k: statement.excluded[k] for k in row if k != "alert_id"},
+            set_={c.name: insert.excluded[c.name] for c in alerts.c if c.name != "alert_id"},
         )
-    )
+        _UPSERTS[conn.dialect.name] = statement
+    return statement
 
 
 def get_alert(conn: Connection, alert_id: str) -> Alert | None:

@@ -75,13 +75,20 @@ def revision(conn: Connection, patient_key: str) -> int | None:
     return None if row is None else int(row.revision)
 
 
-def bump_revision(conn: Connection, patient_key: str) -> int:
-    """Count one more change of the patient's timeline; returns the new revision."""
-    conn.execute(
-        sa.update(patients)
-        .where(patients.c.patient_key == patient_key)
-        .values(revision=patients.c.revision + 1)
-    )
+_BUMP = (
+    sa.update(patients)
+    .where(patients.c.patient_key == sa.bindparam("key"))
+    .values(revision=patients.c.revision + 1)
+)
+
+
+def bump_revision(conn: Connection, patient_key: str, *, was: int | None = None) -> int:
+    """Count one more change of the patient's timeline; returns the new revision
+    (``was``: the revision read under the patient's lock in this transaction, which
+    spares reading it again)."""
+    conn.execute(_BUMP, {"key": patient_key})
+    if was is not None:
+        return was + 1
     return revision(conn, patient_key) or 0
 
 
