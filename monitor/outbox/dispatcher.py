@@ -22,7 +22,7 @@ from datetime import datetime
 
 from adapters.notify.base import Channel, DeliveryResult, log_ref
 from monitor.metrics import Metrics
-from monitor.outbox.retry import DispatchPolicy, Outcome, deliver_once, plan
+from monitor.outbox.retry import DispatchPolicy, Outcome, Plan, deliver_once, plan
 from storage import outbox
 from storage.db import Database
 
@@ -67,8 +67,28 @@ class OutboxDispatcher:
         with self.db.begin() as conn:
             items = outbox.claim_due(conn, self.clock(), self.batch_size, self.lease_seconds)
         report.claimed = len(items)
-        for item in items:
-            self._deliver(item, report)
+        done = [self._deliver(item) for item in items]
+        # One short transaction records the whole round: while a historical load keeps
+        # the database busy, a mark per item would make each next delivery wait behind
+        # it. (A crash before this commit sends the round again when its lease runs
+        # out: at least once, as documented.)
+        if done:
+            with self.db.begin() as conn:
+                for item, step, now in done:
+                    if step.outcome is Outcome.SENT:
+                        outbox.mark_sent(conn, item.id, now)
+                    else:
+                        outbox.mark_failed(
+                            conn,
+                            item.id,
+                            now,
+                            step.detail,
+                            step.retry_at or now,
+                            dead=step.outcome is Outcome.DEAD,
+                        )
+        for item, step, _ in done:
+            self._count(item, step.outcome, report)
+            self._log(item, step)
         return report
 
     def drain(self, max_rounds: int = 20) -> RoundReport:
@@ -89,27 +109,17 @@ class OutboxDispatcher:
                 break
         return total
 
-    def _deliver(self, item: outbox.OutboxItem, report: RoundReport) -> None:
+    def _deliver(self, item: outbox.OutboxItem) -> tuple[outbox.OutboxItem, Plan, datetime]:
+        """Try ``item`` once; returns what to record (the item, the plan, when)."""
         channel = self.channels.get(item.channel)
         if channel is None:
             result = DeliveryResult.dead(f"channel alias {item.channel!r} is not configured")
         else:
             result = deliver_once(item.notification, channel)
         now = self.clock()
-        step = plan(result, item.attempts, now, self.policy, rng=self._rng)
-        with self.db.begin() as conn:
-            if step.outcome is Outcome.SENT:
-                outbox.mark_sent(conn, item.id, now)
-            else:
-                outbox.mark_failed(
-                    conn,
-                    item.id,
-                    now,
-                    step.detail,
-                    step.retry_at or now,
-                    dead=step.outcome is Outcome.DEAD,
-                )
-        self._count(item, step.outcome, report)
+        return item, plan(result, item.attempts, now, self.policy, rng=self._rng), now
+
+    def _log(self, item: outbox.OutboxItem, step: Plan) -> None:
         ref = log_ref(item.notification)
         if step.outcome is Outcome.SENT:
             log.info("notification %s sent via %s", ref, item.channel)
