@@ -87,6 +87,18 @@ def fhir_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     if given:
         yield given.rstrip("/")
         return
+    yield from _serve(tmp_path_factory)
+
+
+@pytest.fixture(scope="module")
+def fresh_fhir_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
+    """A server of its own for one module, for tests whose expectations (subscription
+    event numbers, delivery timing) must not depend on what other tests left on the
+    session's server."""
+    yield from _serve(tmp_path_factory)
+
+
+def _serve(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     if not SERVER_COMMAND.exists():
         service_missing(
             "FHIR test server",

@@ -21,7 +21,7 @@ import pytest
 
 from adapters.fhir.subscription import EventGapTracker, HookKind, parse_notification
 from tests import fhir_samples as s
-from tests.fhir_server import free_port
+from tests.fhir_server import free_port, fresh_fhir_server  # noqa: F401 (fixture)
 
 pytestmark = pytest.mark.fhirserver
 
@@ -112,7 +112,12 @@ def put(client: httpx.Client, resource: dict[str, Any]) -> None:
     assert response.status_code in (200, 201), response.text
 
 
-def test_a_lost_notification_is_noticed_by_its_number(fhir_server: str, receiver: Receiver) -> None:
+def test_a_lost_notification_is_noticed_by_its_number(
+    fresh_fhir_server: str, receiver: Receiver
+) -> None:
+    # a server of its own: the session's server carries other tests' subscriptions and
+    # exports, which slowed its deliveries past the wait below in full runs
+    fhir_server = fresh_fhir_server
     tag = uuid.uuid4().hex[:8]
     pid = f"hg-sub-{tag}"
     topic_url = f"http://hollowmere.example/fhir/SubscriptionTopic/gas-{tag}"
