@@ -1,8 +1,8 @@
 """The real FHIR test server as a pytest fixture.
 
 The server is sekmet-fhir 0.1.1 (a general FHIR R4 test server from PyPI), installed
-in its own virtualenv, /work/main/.fhir-venv (``.fhir-venv`` at the repository root,
-git-ignored), so its dependencies never mix with ours::
+in its own virtualenv, ``.fhir-venv`` at the repository root (git-ignored), so its
+dependencies never mix with ours::
 
     python3 -m venv .fhir-venv && .fhir-venv/bin/pip install sekmet-fhir==0.1.1
 

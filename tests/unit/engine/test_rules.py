@@ -1,6 +1,6 @@
 """The six flag rules, each at, just inside and just outside its thresholds.
 
-Provenance of the thresholds (reference sheet /work/shared/reference/clinical-reference.md):
+Provenance of the thresholds (the project's reference page, docs/reference.md):
 - P/F bands 300/200/100 mmHg: Berlin definition, ARDS Definition Task Force, JAMA
   2012;307:2526-2533 (section 5).
 - Altitude check value: measured P/F 150 at PB 626.5 mmHg (ISA, 1600 m) is 182.0
