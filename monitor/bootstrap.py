@@ -137,12 +137,13 @@ def source_context(config: SiteConfig, codes: CodeTable | None = None) -> Source
 # --- channels ----------------------------------------------------------------------------
 
 
-def _named_variables(options: Mapping[str, object]) -> Iterator[str]:
+def named_variables(options: Mapping[str, object]) -> Iterator[str]:
+    """Every secret variable an options table names (``*_env`` keys, nested tables too)."""
     for key, value in options.items():
         if key.endswith("_env") and isinstance(value, str) and value:
             yield value
         elif isinstance(value, Mapping):  # a nested section, e.g. a channel's [smart]
-            yield from _named_variables(value)
+            yield from named_variables(value)
 
 
 def channel_secrets(options: Mapping[str, object], secrets: Secrets) -> dict[str, str]:
@@ -150,7 +151,7 @@ def channel_secrets(options: Mapping[str, object], secrets: Secrets) -> dict[str
     resolved: ``{variable name: value}``. A variable that is not set is left out, so the
     channel reports it by its alias and option (``ChannelConfigError``) as before."""
     resolved: dict[str, str] = {}
-    for name in _named_variables(options):
+    for name in named_variables(options):
         try:
             resolved[name] = secrets.get(name)
         except ConfigError:

@@ -35,6 +35,8 @@ from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Any
 
+from sqlalchemy.engine import Connection
+
 from adapters.fhir.limits import too_deep
 from adapters.fhir.observations import FhirBatch, FhirReadingBuilder
 from monitor.engine.timeline import StepResult
@@ -229,14 +231,7 @@ def _write(
         patient_lock(conn, key)
         if timelines_store.revision(conn, key) != revision:
             # another process stepped this patient meanwhile: compute again, locked
-            step, deliveries = pipeline.step_pending(
-                conn,
-                key,
-                seen_at=options.seen_at,
-                simulate_escalation=options.simulate_escalation,
-                until=options.until,
-                refresh=key in options.joined,
-            )
+            step, deliveries = _step(pipeline, conn, key, options)
         pipeline.finish_pending(
             conn, key, step, deliveries, seen_at=options.seen_at, report=outcome.report
         )
@@ -265,15 +260,21 @@ def _computed(pipeline: Pipeline, patients: list[str], options: LoadOptions) -> 
 def _compute_here(pipeline: Pipeline, key: str, options: LoadOptions) -> _Computed:
     with pipeline.db.begin(read_only=True) as conn:
         revision = timelines_store.revision(conn, key) or 0
-        step, deliveries = pipeline.step_pending(
-            conn,
-            key,
-            seen_at=options.seen_at,
-            simulate_escalation=options.simulate_escalation,
-            until=options.until,
-            refresh=key in options.joined,
-        )
+        step, deliveries = _step(pipeline, conn, key, options)
     return key, step, deliveries, revision
+
+
+def _step(
+    pipeline: Pipeline, conn: Connection, key: str, options: LoadOptions
+) -> tuple[StepResult, list[str]]:
+    return pipeline.step_pending(
+        conn,
+        key,
+        seen_at=options.seen_at,
+        simulate_escalation=options.simulate_escalation,
+        until=options.until,
+        refresh=key in options.joined,
+    )
 
 
 @dataclass(frozen=True, slots=True)

@@ -25,7 +25,7 @@ from __future__ import annotations
 import logging
 from collections import Counter, OrderedDict
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta, tzinfo
 
 from sqlalchemy.engine import Connection
@@ -129,12 +129,6 @@ class BatchReport:
         self.alert_events.extend(other.alert_events)
         self.notifications += other.notifications
         self.historical_events += other.historical_events
-
-
-def _reason_key(reason: str) -> str:
-    """What went wrong, without where: the one grouping of quarantine reasons (the same
-    as the quarantine's own ``reason_key``), so "top reasons" count alike failures."""
-    return quarantine_store.reason_key(reason)
 
 
 @dataclass(frozen=True, slots=True)
@@ -338,20 +332,7 @@ class Pipeline:
         changed and the deliveries stepped."""
         new = timelines_store.unprocessed_readings(conn, patient_key)
         settings = self.settings.timeline(simulate_escalation=simulate_escalation)
-        probe = PatientTimeline(patient_key, settings)
-        since = probe.needs_from(new) - timedelta(days=1) if new else _NEVER
-        state = timelines_store.timeline_state(conn, patient_key, since)
-        timeline = PatientTimeline.restore(
-            patient_key,
-            settings,
-            readings=state.readings,
-            derivations=state.derivations,
-            open_alerts=state.open_alerts,
-            last_closed=state.last_closed,
-            birth_date=state.birth_date,
-            instant=state.instant,
-            covers_from=since,
-        )
+        timeline = self.restore(conn, patient_key, new, settings)
         step = timeline.refresh(seen_at=seen_at) if refresh else StepResult()
         step.extend(timeline.advance(new, seen_at=seen_at))
         if simulate_escalation and until is not None:
@@ -397,16 +378,21 @@ class Pipeline:
         return revision, timeline
 
     def restore(
-        self, conn: Connection, patient_key: str, new: Sequence[Reading]
+        self,
+        conn: Connection,
+        patient_key: str,
+        new: Sequence[Reading],
+        settings: TimelineSettings | None = None,
     ) -> PatientTimeline:
         """The patient's timeline as storage holds it, from far enough back for ``new``
         (and a day more, so the next units need no restore)."""
-        probe = PatientTimeline(patient_key, self._timeline_settings)
+        settings = settings or self._timeline_settings
+        probe = PatientTimeline(patient_key, settings)
         since = probe.needs_from(new) - timedelta(days=1) if new else _NEVER
         state = timelines_store.timeline_state(conn, patient_key, since)
         return PatientTimeline.restore(
             patient_key,
-            self._timeline_settings,
+            settings,
             readings=state.readings,
             derivations=state.derivations,
             open_alerts=state.open_alerts,
@@ -601,8 +587,7 @@ class Pipeline:
         when each could first be seen); historical flags never escalate."""
         report = BatchReport()
         with self.db.begin() as conn:
-            live = [a for a in alerts_store.open_alerts(conn) if not a.historical]
-            due = alerts.escalate_due([_seen(a) for a in live], now, self.settings.alerts)
+            due = alerts.escalate_due(alerts_store.open_alerts(conn), now, self.settings.alerts)
             for decision in due:
                 assert decision.alert is not None
                 self._apply(conn, FlagChange(decision, None, {}, now), now, report)
@@ -632,16 +617,15 @@ class Pipeline:
             received_at=now,
         )
         report.quarantined += 1
-        report.quarantine_reasons[_reason_key(rejected.reason)] += 1
-        log.info("quarantined input from %s: %s", rejected.source, _reason_key(rejected.reason))
+        report.quarantine_reasons[quarantine_store.reason_key(rejected.reason)] += 1
+        log.info(
+            "quarantined input from %s: %s",
+            rejected.source,
+            quarantine_store.reason_key(rejected.reason),
+        )
 
 
 _NEVER = datetime(1900, 1, 1, tzinfo=UTC)
-
-
-def _seen(alert: Alert) -> Alert:
-    """The flag as escalation sees it: its clock starts when it could first be seen."""
-    return alert if alert.seen_at is None else replace(alert, updated_at=alert.seen_at)
 
 
 def _reading_text(r: Reading) -> str:

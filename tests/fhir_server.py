@@ -24,6 +24,7 @@ import socket
 import subprocess
 import time
 from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 import httpx
@@ -108,8 +109,16 @@ def _serve(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     directory = tmp_path_factory.mktemp("fhir-server")
     port = free_port()
     settings = write_settings(directory, port)
-    log = directory / "server.log"
     base_url = f"http://127.0.0.1:{port}/fhir"
+    with running_server(directory, settings, base_url, "FHIR test server"):
+        yield base_url
+
+
+@contextmanager
+def running_server(directory: Path, settings: Path, base_url: str, what: str) -> Iterator[None]:
+    """The server with ``settings`` running from ``directory`` until the block ends
+    (its output in ``server.log``); skipped, or failed in CI, when it will not start."""
+    log = directory / "server.log"
     with open(log, "wb") as out:
         process = subprocess.Popen(
             [str(SERVER_COMMAND), "serve", "-c", str(settings)],
@@ -121,8 +130,8 @@ def _serve(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     try:
         problem = wait_for_metadata(base_url, process, log)
         if problem:
-            service_missing("FHIR test server", problem)
-        yield base_url
+            service_missing(what, problem)
+        yield
     finally:
         process.terminate()
         try:

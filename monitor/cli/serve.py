@@ -118,26 +118,15 @@ def _run_config_check(args: argparse.Namespace) -> int:
 
 def _unset_secrets(path: Path) -> list[str]:
     """The variables the site file names for channels' secrets that are not set here."""
-    from monitor.bootstrap import Secrets, channel_secrets, load_site
+    from monitor.bootstrap import Secrets, channel_secrets, load_site, named_variables
 
     config = load_site(path)
     missing: list[str] = []
     for alias in sorted(config.channels):
         options = config.channel_options(alias)
         found = channel_secrets(options, Secrets())
-        missing += [n for n in _env_names(options) if n not in found and n not in missing]
+        missing += [n for n in named_variables(options) if n not in found and n not in missing]
     return missing
-
-
-def _env_names(options: object) -> list[str]:
-    names: list[str] = []
-    if isinstance(options, dict):
-        for key, value in options.items():
-            if key.endswith("_env") and isinstance(value, str) and value:
-                names.append(value)
-            else:
-                names += _env_names(value)
-    return names
 
 
 def _run_alerts(args: argparse.Namespace) -> int:

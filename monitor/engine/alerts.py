@@ -305,17 +305,23 @@ def acknowledge(alert: Alert, by: str, now: datetime) -> Decision:
     return _move(alert, _T.ACKNOWLEDGED, now, acked, sample_id=alert.sample_id, by=by.strip())
 
 
+def escalation_due_at(alert: Alert, settings: AlertSettings) -> datetime | None:
+    """When ``alert`` falls due for escalation, or None if it never does: a raised
+    medium or high flag, not historical, ``escalate_after`` after it could first be seen
+    (``seen_at``, else its last change). The one timer about people, not blood."""
+    if (
+        alert.state is not _S.RAISED
+        or alert.priority not in (Priority.MEDIUM, Priority.HIGH)
+        or alert.historical
+    ):
+        return None
+    return (alert.seen_at or alert.updated_at) + settings.escalate_after
+
+
 def escalate_due(alerts: Sequence[Alert], now: datetime, settings: AlertSettings) -> list[Decision]:
-    """Escalate each raised medium or high flag not acknowledged within
-    ``settings.escalate_after`` of its last change (raise or worsening)."""
+    """Escalate each flag whose ``escalation_due_at`` has come by ``now``."""
     _require_aware(now)
-    due = [
-        a
-        for a in alerts
-        if a.state is _S.RAISED
-        and a.priority in (Priority.MEDIUM, Priority.HIGH)
-        and now - a.updated_at >= settings.escalate_after
-    ]
+    due = [a for a in alerts if (at := escalation_due_at(a, settings)) is not None and at <= now]
     return [_move(a, _T.ESCALATED, now, a, sample_id=a.sample_id) for a in due]
 
 

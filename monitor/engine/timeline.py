@@ -55,7 +55,6 @@ from monitor.engine.model import (
     Derivation,
     FiO2Source,
     Kind,
-    Priority,
     Reading,
     Status,
 )
@@ -287,20 +286,12 @@ class PatientTimeline:
         not acknowledged ``escalate_after`` after they could first be seen, up to
         ``until`` (replay; historical flags never escalate)."""
         result = StepResult()
-        after = self.settings.alerts.escalate_after
         for rule in sorted(self.open):
             alert = self.open[rule]
-            if (
-                alert.state is not AlertState.RAISED
-                or alert.priority not in (Priority.MEDIUM, Priority.HIGH)
-                or _is_historical(alert)
-            ):
+            due = alerts.escalation_due_at(alert, self.settings.alerts)
+            if due is None or due > until:
                 continue
-            due = (alert.seen_at or alert.updated_at) + after
-            if due > until:
-                continue
-            clocked = replace(alert, updated_at=alert.seen_at or alert.updated_at)
-            for decision in alerts.escalate_due([clocked], due, self.settings.alerts):
+            for decision in alerts.escalate_due([alert], due, self.settings.alerts):
                 self._keep(decision)
                 result.flags.append(FlagChange(decision, None, {}, due))
         return result

@@ -15,8 +15,6 @@ A static bearer token (``LOADER_TOKEN``) lets the tests load the invented popula
 from __future__ import annotations
 
 import json
-import os
-import subprocess
 from collections.abc import Iterator
 from dataclasses import dataclass
 
@@ -26,7 +24,7 @@ from cryptography.hazmat.primitives.asymmetric import ec, rsa
 
 from adapters.fhir.smart import public_jwk
 from tests.conftest import service_missing
-from tests.fhir_server import SERVER_COMMAND, fhir_server, free_port, wait_for_metadata
+from tests.fhir_server import SERVER_COMMAND, fhir_server, free_port, running_server
 
 __all__ = ["fhir_server", "smart_fhir_server"]
 
@@ -106,19 +104,7 @@ def smart_fhir_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Smar
     }
     path = directory / "settings.yaml"
     path.write_text(json.dumps(settings, indent=1))  # JSON is YAML
-    log = directory / "server.log"
-    with open(log, "wb") as out:
-        process = subprocess.Popen(
-            [str(SERVER_COMMAND), "serve", "-c", str(path)],
-            cwd=directory,
-            stdout=out,
-            stderr=subprocess.STDOUT,
-            env={**os.environ, "SEKMET_CONFIG": str(path)},
-        )
-    try:
-        problem = wait_for_metadata(base_url, process, log)
-        if problem:
-            service_missing("FHIR test server (SMART)", problem)
+    with running_server(directory, path, base_url, "FHIR test server (SMART)"):
         yield SmartServer(
             base_url,
             f"http://127.0.0.1:{port}/auth/token",
@@ -126,10 +112,3 @@ def smart_fhir_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Smar
             _pem(rsa_key),
             _pem(stranger),
         )
-    finally:
-        process.terminate()
-        try:
-            process.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait(timeout=10)
