@@ -1,23 +1,43 @@
 """One blood gas by hand: the indices of ``gasgap calc``.
 
-This module only composes the formulas of ``monitor.engine.physiology`` for one set
-of inputs typed at the command line and says, for each line, which formula it used.
-It holds no formula of its own.
+The typed values become a ``Snapshot`` (this module plays pairing's part for input a
+person typed: which barometric pressure, what is missing) and ``derive`` computes the
+indices, strictly (an impossible input is refused, naming it), so ``calc`` decides
+nothing the service decides differently: which indices apply, the altitude-adjusted
+P/F that counts, the PaO2-above-PAO2 margin and the quality marks are the engine's.
+The PaO2 imputed from SpO2 is the engine's estimate (``derive.estimate_from_spo2``),
+always labelled as one. This module adds only the formula text shown beside each value
+and warnings about what was typed.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from datetime import UTC, datetime
 
 from monitor.engine import physiology as phys
+from monitor.engine.derive import DerivationSettings, derive, estimate_from_spo2
 from monitor.engine.errors import InvalidInput
-from monitor.engine.model import ADVISORY
+from monitor.engine.model import (
+    ADVISORY,
+    Derivation,
+    FiO2Source,
+    PressureSource,
+    QualityFlag,
+    Snapshot,
+    Specimen,
+    TemperatureSource,
+)
 
 #: Below these (mmHg) a PaO2 or PaCO2 is not seen in a living patient but is a typical
 #: kPa value (PaO2 12 kPa, PaCO2 5.3 kPa): warn that kPa may have been typed as mmHg.
 #: Common practice, no source.
 IMPLAUSIBLE_PAO2_MMHG = 20.0
 IMPLAUSIBLE_PACO2_MMHG = 10.0
+
+#: The quality marks that say no more than the command line does (no --age typed);
+#: every other mark of the derivation is printed as a note.
+_SAID_BY_THE_TABLE = frozenset({QualityFlag.AGE_UNKNOWN})
 
 
 def read_fio2(typed: float) -> tuple[float, str | None]:
@@ -63,6 +83,8 @@ class GasResult:
     flags: list[str] = field(default_factory=list)
 
 
+#: The values ``gasgap calc`` prints, in order: the derivation's own fields (same names
+#: as in the service's records), and the PaO2 imputed from SpO2 (an estimate).
 KEYS = (
     "barometric_pressure",
     "water_vapour_pressure",
@@ -72,7 +94,7 @@ KEYS = (
     "aa_gradient_expected",
     "arterial_alveolar_ratio",
     "pf_ratio",
-    "pf_ratio_altitude_adjusted",
+    "pf_ratio_adjusted",
     "berlin_band",
     "sf_ratio",
     "oxygenation_index",
@@ -81,131 +103,138 @@ KEYS = (
     "arterial_o2_content",
 )
 
+#: The time stamped on the snapshot of a gas typed by hand. No rule, window or age is
+#: computed from it (one gas has no history); it exists because every snapshot has one.
+_TYPED_AT = datetime(2000, 1, 1, tzinfo=UTC)
 
-def calculate(gas: GasInput) -> GasResult:
-    """Every index the inputs allow; None where an input is missing or the index is not
-    valid. Raises InvalidInput for an impossible input (naming it)."""
-    v: dict[str, float | str | None] = dict.fromkeys(KEYS)
-    f: dict[str, str] = {}
-    flags: list[str] = _plausibility(gas)
+
+def _pressure(gas: GasInput) -> tuple[float, PressureSource, str, QualityFlag | None]:
+    """The barometric pressure (mmHg) for the typed gas, where it came from, the formula
+    text and the quality mark it carries (as pairing marks the service's)."""
+    if gas.barometric_pressure is not None:
+        return gas.barometric_pressure, PressureSource.MEASURED, "given", None
+    if gas.elevation_m is None:
+        return (
+            phys.STANDARD_PRESSURE_MMHG,
+            PressureSource.DEFAULT,
+            "default, sea level",
+            QualityFlag.DEFAULT_PRESSURE,
+        )
+    pb = phys.barometric_pressure_at_elevation(gas.elevation_m)
+    if pb < 250.0:
+        # The formulas stop at 250 mmHg; say so about the elevation the user typed.
+        raise InvalidInput(
+            "elevation",
+            gas.elevation_m,
+            f"gives a standard-atmosphere pressure of {pb:.0f} mmHg, below the 250 mmHg "
+            "the formulas accept (about 8,500 m is the highest)",
+        )
+    return (
+        pb,
+        PressureSource.STANDARD_ATMOSPHERE,
+        f"standard atmosphere at {gas.elevation_m:g} m (US 1976 / ISA)",
+        QualityFlag.ESTIMATED_PRESSURE,
+    )
+
+
+def snapshot_of(gas: GasInput) -> tuple[Snapshot, str]:
+    """The typed gas as the engine's ``Snapshot`` (an arterial sample with a charted
+    FiO2), and the formula text of its barometric pressure."""
     if gas.peep is not None and not 0.0 <= gas.peep <= 40.0:
         raise InvalidInput("peep", gas.peep, "must be in [0, 40] cmH2O")
+    pb, pb_source, pb_formula, pb_flag = _pressure(gas)
+    flags = set() if pb_flag is None else {pb_flag}
+    if gas.fio2 is None:
+        flags.add(QualityFlag.FIO2_UNKNOWN)
+    snapshot = Snapshot(
+        patient_key="typed",
+        sample_id="typed",
+        drawn_at=_TYPED_AT,
+        specimen=Specimen.ARTERIAL,
+        pao2=gas.pao2,
+        fio2=gas.fio2,
+        fio2_source=FiO2Source.UNKNOWN if gas.fio2 is None else FiO2Source.WITH_GAS,
+        barometric_pressure=pb,
+        pressure_source=pb_source,
+        temperature_c=gas.temperature_c,
+        temperature_source=TemperatureSource.WITH_SAMPLE,
+        paco2=gas.paco2,
+        sao2=gas.sao2,
+        haemoglobin=gas.haemoglobin,
+        peep=gas.peep,
+        mean_airway_pressure=gas.mean_airway_pressure,
+        spo2=gas.spo2,
+        age_years=gas.age_years,
+        flags=frozenset(flags),
+    )
+    return snapshot, pb_formula
 
-    if gas.barometric_pressure is not None:
-        pb = gas.barometric_pressure
-        f["barometric_pressure"] = "given"
-    elif gas.elevation_m is not None:
-        pb = phys.barometric_pressure_at_elevation(gas.elevation_m)
-        if pb < 250.0:
-            # The formulas stop at 250 mmHg; say so about the elevation the user typed.
-            raise InvalidInput(
-                "elevation",
-                gas.elevation_m,
-                f"gives a standard-atmosphere pressure of {pb:.0f} mmHg, below the 250 mmHg "
-                "the formulas accept (about 8,500 m is the highest)",
-            )
-        f["barometric_pressure"] = f"standard atmosphere at {gas.elevation_m:g} m (US 1976 / ISA)"
-        flags.append("barometric pressure estimated from elevation")
-    else:
-        pb = phys.STANDARD_PRESSURE_MMHG
-        f["barometric_pressure"] = "default, sea level"
-        flags.append("default barometric pressure 760 mmHg")
-    v["barometric_pressure"] = pb
 
-    ph2o = phys.water_vapour_pressure(gas.temperature_c)
-    v["water_vapour_pressure"] = ph2o
-    f["water_vapour_pressure"] = f"saturated at {gas.temperature_c:g} C (IAPWS-IF97)"
+def calculate(gas: GasInput) -> GasResult:
+    """Every index the inputs allow, as the service derives it; None where an input is
+    missing or the index is not valid. Raises InvalidInput for an impossible input
+    (naming it)."""
+    snapshot, pb_formula = snapshot_of(gas)
+    settings = DerivationSettings(equation=gas.equation, rq=gas.rq, age_normal=gas.age_normal)
+    d = derive(snapshot, settings, strict=True)
+    estimate = None if gas.spo2 is None else estimate_from_spo2(gas.spo2, gas.fio2, strict=True)
+    values: dict[str, float | str | None] = {
+        key: getattr(d, key) for key in KEYS if key != "pao2_imputed_from_spo2"
+    }
+    values["pao2_imputed_from_spo2"] = None if estimate is None else estimate.pao2
+    values = {key: values[key] for key in KEYS}
+    notes = _plausibility(gas) + _quality_notes(d, gas)
+    return GasResult(values=values, formulas=_formulas(d, gas, pb_formula), flags=notes)
 
-    if gas.fio2 is not None:
-        v["inspired_po2"] = phys.inspired_po2(gas.fio2, pb, ph2o)
-        f["inspired_po2"] = "FiO2 x (PB - PH2O)"
-        if gas.paco2 is not None:
-            alveolar = phys.alveolar_po2(gas.fio2, gas.paco2, pb, ph2o, gas.rq, gas.equation)
-            if alveolar <= 0.0:
-                # Name the input the user typed, with its own value, not the computed PAO2.
-                raise InvalidInput(
-                    "paco2",
-                    gas.paco2,
-                    f"at FiO2 {gas.fio2:g} and PB {pb:.0f} mmHg leaves no alveolar oxygen "
-                    f"(PAO2 would be {alveolar:.1f} mmHg): check --paco2 and --fio2",
-                )
-            v["alveolar_po2"] = alveolar
-            f["alveolar_po2"] = (
-                "PIO2 - PaCO2 x [FiO2 + (1 - FiO2)/R]"
-                if gas.equation is phys.Equation.FULL
-                else "PIO2 - PaCO2/R"
-            )
-            if gas.pao2 is not None:
-                v["aa_gradient"] = phys.aa_gradient(alveolar, gas.pao2)
-                f["aa_gradient"] = "PAO2 - PaO2"
-                v["arterial_alveolar_ratio"] = phys.arterial_alveolar_ratio(gas.pao2, alveolar)
-                f["arterial_alveolar_ratio"] = "PaO2 / PAO2"
-                if gas.pao2 > alveolar + 10.0:
-                    flags.append(
-                        "PaO2 above alveolar PO2 by > 10 mmHg: FiO2 wrong or air in sample"
-                    )
-        else:
-            flags.append("PaCO2 missing: no alveolar PO2")
-    else:
-        flags.append("FiO2 missing: no alveolar PO2, no P/F")
 
-    if gas.age_years is not None:
-        if phys.is_room_air(gas.fio2):
-            v["aa_gradient_expected"] = phys.expected_aa_gradient(gas.age_years, gas.age_normal)
-            f["aa_gradient_expected"] = _AGE_FORMULA[gas.age_normal]
-            if gas.age_years < phys.ADULT_AGE_YEARS:
-                flags.append(
-                    f"age-expected A-a is an adult formula; the patient is {gas.age_years:g} "
-                    "years old"
-                )
-        else:
-            flags.append("age-expected A-a applies to room air only")
+def _quality_notes(d: Derivation, gas: GasInput) -> list[str]:
+    """The derivation's quality marks and the engine's notes, as the service records
+    them (the room-air mark only where an age was typed: it is about the age-expected
+    A-a)."""
+    unsaid = set(_SAID_BY_THE_TABLE)
+    if gas.age_years is None:
+        unsaid.add(QualityFlag.NOT_ON_ROOM_AIR)
+    notes = [str(f) for f in sorted(d.flags - unsaid)]
+    notes.extend(str(i.reason) for i in d.inputs if i.role == "note")
+    return notes
 
-    if gas.pao2 is not None and gas.fio2 is not None:
-        pf = phys.pf_ratio(gas.pao2, gas.fio2)
-        v["pf_ratio"] = pf
-        f["pf_ratio"] = "PaO2 / FiO2"
-        counted, adjusted = phys.pf_for_bands(pf, pb)  # the one decision, as the service
-        v["pf_ratio_altitude_adjusted"] = counted if adjusted else None
-        f["pf_ratio_altitude_adjusted"] = (
-            "P/F x 760 / PB (ARDS Network practice), PB below 674 mmHg"
-            if adjusted
-            else "not adjusted: PB at or above 674 mmHg (Berlin adjusts above 1000 m)"
+
+def _formulas(d: Derivation, gas: GasInput, pb_formula: str) -> dict[str, str]:
+    """The text shown beside each value the derivation gave."""
+    texts = {
+        "barometric_pressure": pb_formula,
+        "water_vapour_pressure": f"saturated at {gas.temperature_c:g} C (IAPWS-IF97)",
+        "inspired_po2": "FiO2 x (PB - PH2O)",
+        "alveolar_po2": (
+            "PIO2 - PaCO2 x [FiO2 + (1 - FiO2)/R]"
+            if gas.equation is phys.Equation.FULL
+            else "PIO2 - PaCO2/R"
+        ),
+        "aa_gradient": "PAO2 - PaO2",
+        "aa_gradient_expected": _AGE_FORMULA[gas.age_normal],
+        "arterial_alveolar_ratio": "PaO2 / PAO2",
+        "pf_ratio": "PaO2 / FiO2",
+        "pf_ratio_adjusted": "P/F x 760 / PB (ARDS Network practice), PB below 674 mmHg",
+        "berlin_band": "Berlin 2012, needs PEEP/CPAP >= 5 cmH2O"
+        + ("; altitude-adjusted ratio" if d.pf_ratio_adjusted is not None else ""),
+        "sf_ratio": "SpO2 / FiO2 (only SpO2 <= 97 %)",
+        "oxygenation_index": "FiO2 x MAP x 100 / PaO2",
+        "oxygen_saturation_index": "FiO2 x MAP x 100 / SpO2 (only SpO2 <= 97 %)",
+        "pao2_imputed_from_spo2": "estimate: exact inverse of Severinghaus 1979 (SpO2 <= 96 %)",
+        "arterial_o2_content": "1.34 x Hb x SaO2 + 0.003 x PaO2 (mL/dL), measured SaO2 only",
+    }
+    shown = {key: text for key, text in texts.items() if _given(d, key, gas)}
+    if d.pf_ratio is not None and d.pf_ratio_adjusted is None:
+        shown["pf_ratio_adjusted"] = (
+            "not adjusted: PB at or above 674 mmHg (Berlin adjusts above 1000 m)"
         )
-        band = phys.berlin_band(pf, gas.peep, pb)
-        v["berlin_band"] = None if band is None else band.value
-        f["berlin_band"] = "Berlin 2012, needs PEEP/CPAP >= 5 cmH2O" + (
-            "; altitude-adjusted ratio" if adjusted else ""
-        )
-        if gas.mean_airway_pressure is not None:
-            v["oxygenation_index"] = phys.oxygenation_index(
-                gas.fio2, gas.mean_airway_pressure, gas.pao2
-            )
-            f["oxygenation_index"] = "FiO2 x MAP x 100 / PaO2"
+    return shown
 
-    if gas.spo2 is not None:
-        if gas.fio2 is not None:
-            v["sf_ratio"] = phys.sf_ratio(gas.spo2, gas.fio2)
-            f["sf_ratio"] = "SpO2 / FiO2 (only SpO2 <= 97 %)"
-            if gas.mean_airway_pressure is not None:
-                v["oxygen_saturation_index"] = phys.oxygen_saturation_index(
-                    gas.fio2, gas.mean_airway_pressure, gas.spo2
-                )
-                f["oxygen_saturation_index"] = "FiO2 x MAP x 100 / SpO2 (only SpO2 <= 97 %)"
-        v["pao2_imputed_from_spo2"] = phys.pao2_imputed_from_spo2(gas.spo2)
-        f["pao2_imputed_from_spo2"] = "exact inverse of Severinghaus 1979 (only SpO2 <= 96 %)"
-        if gas.spo2 > phys.SPO2_RATIO_LIMIT:
-            flags.append("SpO2 above 97 %: S/F and OSI not computed")
 
-    if gas.haemoglobin is not None and gas.pao2 is not None:
-        sat = gas.sao2
-        if sat is None and gas.spo2 is not None:
-            sat = gas.spo2
-            flags.append("O2 content uses SpO2 in place of a measured SaO2")
-        if sat is not None:
-            v["arterial_o2_content"] = phys.arterial_o2_content(gas.haemoglobin, sat, gas.pao2)
-            f["arterial_o2_content"] = "1.34 x Hb x SaO2 + 0.003 x PaO2 (mL/dL)"
-    return GasResult(values=v, formulas=f, flags=flags)
+def _given(d: Derivation, key: str, gas: GasInput) -> bool:
+    if key == "pao2_imputed_from_spo2":
+        return gas.spo2 is not None
+    return key in ("barometric_pressure", "water_vapour_pressure") or getattr(d, key) is not None
 
 
 def _plausibility(gas: GasInput) -> list[str]:
@@ -243,7 +272,7 @@ PRESSURE_KEYS = frozenset(
     }
 )
 #: P/F is a pressure per fraction: in kPa where the user works in kPa (300 mmHg = 40 kPa).
-PRESSURE_RATIO_KEYS = frozenset({"pf_ratio", "pf_ratio_altitude_adjusted"})
+PRESSURE_RATIO_KEYS = frozenset({"pf_ratio", "pf_ratio_adjusted"})
 
 
 def in_units(result: GasResult, units: str) -> dict[str, float | str | None]:
@@ -261,4 +290,13 @@ def in_units(result: GasResult, units: str) -> dict[str, float | str | None]:
     return out
 
 
-__all__ = ["ADVISORY", "GasInput", "GasResult", "KEYS", "calculate", "in_units", "read_fio2"]
+__all__ = [
+    "ADVISORY",
+    "GasInput",
+    "GasResult",
+    "KEYS",
+    "calculate",
+    "in_units",
+    "read_fio2",
+    "snapshot_of",
+]

@@ -150,7 +150,7 @@ _LABELS = {
     "aa_gradient_expected": ("A-a expected for age", "p"),
     "arterial_alveolar_ratio": ("a/A ratio", "r2"),
     "pf_ratio": ("P/F ratio", "pf"),
-    "pf_ratio_altitude_adjusted": ("P/F at sea level", "pf"),
+    "pf_ratio_adjusted": ("P/F adjusted to sea level", "pf"),
     "berlin_band": ("Berlin band", "s"),
     "sf_ratio": ("S/F ratio", "r0"),
     "oxygenation_index": ("Oxygenation index", "r1"),

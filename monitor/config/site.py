@@ -99,7 +99,6 @@ class SiteConfig(_Section):
         )
 
     def to_alert_settings(self) -> AlertSettings:
-        # The hysteresis is the rules' (to_rule_set); the state machine does not use it.
         return AlertSettings(
             cooldown=timedelta(minutes=self.flags.cooldown_min),
             escalate_after=timedelta(minutes=self.flags.escalate_after_min),

@@ -118,23 +118,19 @@ class AlertSettings:
     ``cooldown``: quiet time after a resolution before the same rule raises again for
     the patient at the same or a lower priority (default 60 min, on the clinical clock:
     draw to draw). ``escalate_after``: a medium or high flag not
-    acknowledged within this is escalated (default 30 min). ``hysteresis``: the fraction
-    by which a condition must have cleared to resolve (default 0.10); the rules apply
-    it (``RuleSet.hysteresis``), it is kept here so one settings object describes the
-    whole lifecycle.
+    acknowledged within this is escalated (default 30 min). The hysteresis by which a
+    condition must have cleared to resolve is the rules' (``RuleSet.hysteresis``): a
+    rule decides whether its condition still holds, the state machine only moves.
     """
 
     cooldown: timedelta = timedelta(minutes=60)
     escalate_after: timedelta = timedelta(minutes=30)
-    hysteresis: float = 0.10
 
     def __post_init__(self) -> None:
         if self.cooldown < timedelta(0):
             raise InvalidInput("cooldown", self.cooldown, "must not be negative")
         if self.escalate_after <= timedelta(0):
             raise InvalidInput("escalate_after", self.escalate_after, "must be positive")
-        if not 0.0 <= self.hysteresis < 1.0:
-            raise InvalidInput("hysteresis", self.hysteresis, "must be a fraction in [0, 1)")
 
 
 @dataclass(frozen=True, slots=True)

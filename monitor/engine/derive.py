@@ -25,10 +25,14 @@ the site's ``DerivationSettings`` and returns a ``Derivation``. Every number com
 - S/F and OSI are not given above SpO2 97 % (SPO2_ABOVE_97; Rice 2007).
 
 A formula that refuses its input (``InvalidInput``, e.g. PaCO2 >= PB - PH2O) leaves
-that value None and adds a note (an ``InputUsed`` with role "note"); it never escapes.
+that value None and adds a note (an ``InputUsed`` with role "note"); it never escapes,
+except with ``strict=True`` (one gas typed by a person, ``gasgap calc``), where the
+refusal is raised, as is a PaCO2 that leaves no alveolar oxygen, so the person can
+correct what they typed.
 
 ``derive_spo2_series`` gives the estimated S/F (and, at SpO2 <= 96 %, an imputed PaO2
-and P/F) for SpO2 readings between gases, always marked estimated.
+and P/F) for SpO2 readings between gases, always marked estimated; ``estimate_from_spo2``
+is that estimate for one SpO2 value.
 """
 
 from collections.abc import Callable, Iterable, Sequence
@@ -49,7 +53,15 @@ from monitor.engine.model import (
 )
 from monitor.engine.pairing import PairingSettings, current_readings, fio2_in_effect
 
-__all__ = ["CountedPf", "DerivationSettings", "counted_pf", "derive", "derive_spo2_series"]
+__all__ = [
+    "CountedPf",
+    "DerivationSettings",
+    "Spo2Estimate",
+    "counted_pf",
+    "derive",
+    "derive_spo2_series",
+    "estimate_from_spo2",
+]
 
 _T = TypeVar("_T")
 
@@ -91,17 +103,24 @@ class DerivationSettings:
 
 
 class _Notes:
-    """Collects the reasons a formula refused its input, instead of raising."""
+    """Collects the reasons a formula refused its input, instead of raising (or, when
+    ``strict``, raises the first)."""
 
-    def __init__(self) -> None:
+    def __init__(self, *, strict: bool = False) -> None:
         self.items: list[InputUsed] = []
+        self.strict = strict
 
     def attempt(self, what: str, compute: Callable[[], _T]) -> _T | None:
         try:
             return compute()
         except InvalidInput as exc:
-            self.items.append(InputUsed("note", None, f"{what} not computed: {exc}"))
+            self.refuse(what, exc)
             return None
+
+    def refuse(self, what: str, exc: InvalidInput) -> None:
+        if self.strict:
+            raise exc
+        self.items.append(InputUsed("note", None, f"{what} not computed: {exc}"))
 
 
 def _constants(settings: DerivationSettings, ph2o: float | None) -> dict[str, float | str]:
@@ -173,14 +192,24 @@ class _Alveolar:
 def _alveolar(
     s: Snapshot, settings: DerivationSettings, ph2o: float | None, notes: _Notes
 ) -> _Alveolar:
-    """PAO2 and what is built on it, for an arterial sample."""
-    fio2, paco2, pb = s.fio2, s.paco2, s.barometric_pressure
+    """PAO2 and what is built on it, for an arterial sample. A PAO2 at or below zero
+    means the PaCO2 (or FiO2) cannot be right: from a feed it is kept (PaO2 is then above
+    it: PAO2_ABOVE_ALVEOLAR makes the derivation unreliable, never acted on); typed by a
+    person (``strict``) it is refused, naming the PaCO2."""
+    fio2, paco2, pb, pao2 = s.fio2, s.paco2, s.barometric_pressure, s.pao2
     if fio2 is None or paco2 is None or ph2o is None:
         return _Alveolar()
     alveolar = notes.attempt(
         "alveolar PO2",
         lambda: physiology.alveolar_po2(fio2, paco2, pb, ph2o, settings.rq, settings.equation),
     )
+    if alveolar is not None and alveolar <= 0.0 and notes.strict:
+        raise InvalidInput(
+            "paco2",
+            paco2,
+            f"at FiO2 {fio2:g} and PB {pb:.0f} mmHg leaves no alveolar oxygen "
+            f"(PAO2 would be {alveolar:.1f} mmHg): check PaCO2 and FiO2",
+        )
     if alveolar is None:
         return _Alveolar()
     age = s.age_years
@@ -198,12 +227,14 @@ def _alveolar(
                     f"patient is {age:g} years old",
                 )
             )
+    if pao2 is None:
+        return _Alveolar(alveolar_po2=alveolar, aa_gradient_expected=expected)
     return _Alveolar(
         alveolar_po2=alveolar,
-        aa_gradient=notes.attempt("A-a gradient", lambda: physiology.aa_gradient(alveolar, s.pao2)),
+        aa_gradient=notes.attempt("A-a gradient", lambda: physiology.aa_gradient(alveolar, pao2)),
         aa_gradient_expected=expected,
         arterial_alveolar_ratio=notes.attempt(
-            "a/A ratio", lambda: physiology.arterial_alveolar_ratio(s.pao2, alveolar)
+            "a/A ratio", lambda: physiology.arterial_alveolar_ratio(pao2, alveolar)
         ),
     )
 
@@ -218,15 +249,15 @@ class _Ratios:
 
 def _ratios(s: Snapshot, flags: set[QualityFlag], notes: _Notes) -> _Ratios:
     """P/F, its altitude adjustment, the Berlin band and OI, for an arterial sample."""
-    fio2, pb, mean_airway = s.fio2, s.barometric_pressure, s.mean_airway_pressure
-    if fio2 is None:
+    fio2, pb, mean_airway, pao2 = s.fio2, s.barometric_pressure, s.mean_airway_pressure, s.pao2
+    if fio2 is None or pao2 is None:
         return _Ratios()
     oi = None
     if mean_airway is not None:
         oi = notes.attempt(
-            "oxygenation index", lambda: physiology.oxygenation_index(fio2, mean_airway, s.pao2)
+            "oxygenation index", lambda: physiology.oxygenation_index(fio2, mean_airway, pao2)
         )
-    pf = notes.attempt("P/F", lambda: physiology.pf_ratio(s.pao2, fio2))
+    pf = notes.attempt("P/F", lambda: physiology.pf_ratio(pao2, fio2))
     if pf is None:
         return _Ratios(oxygenation_index=oi)
     band = None
@@ -264,22 +295,24 @@ def _saturation(
 
 def _content(s: Snapshot, settings: DerivationSettings, notes: _Notes) -> float | None:
     """CaO2 (mL O2/dL), for an arterial sample with Hb and SaO2."""
-    hb, sao2 = s.haemoglobin, s.sao2
-    if hb is None or sao2 is None:
+    hb, sao2, pao2 = s.haemoglobin, s.sao2, s.pao2
+    if hb is None or sao2 is None or pao2 is None:
         return None
     return notes.attempt(
         "arterial O2 content",
         lambda: physiology.arterial_o2_content(
-            hb, sao2, s.pao2, settings.hb_bound_per_g, settings.dissolved
+            hb, sao2, pao2, settings.hb_bound_per_g, settings.dissolved
         ),
     )
 
 
-def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
+def derive(snapshot: Snapshot, settings: DerivationSettings, *, strict: bool = False) -> Derivation:
     """The indices of one paired sample (pressures mmHg, FiO2 fraction, SpO2 %, MAP and
-    PEEP cmH2O, Hb g/dL, CaO2 mL/dL). See the module docstring for which apply when."""
+    PEEP cmH2O, Hb g/dL, CaO2 mL/dL). See the module docstring for which apply when.
+    ``strict``: raise the first ``InvalidInput`` a formula refuses instead of noting it
+    (for one gas typed by a person)."""
     s = snapshot
-    notes = _Notes()
+    notes = _Notes(strict=strict)
     flags = set(s.flags)
     arterial = s.specimen is Specimen.ARTERIAL and QualityFlag.NOT_ARTERIAL not in flags
     if not arterial:
@@ -297,7 +330,7 @@ def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
         pio2 = notes.attempt("inspired PO2", lambda: physiology.inspired_po2(fio2, pb, ph2o))
     alv = _alveolar(s, settings, ph2o, notes) if arterial else _Alveolar()
     margin = settings.unreliable_margin_mmhg
-    if alv.alveolar_po2 is not None and s.pao2 > alv.alveolar_po2 + margin:
+    if alv.alveolar_po2 is not None and s.pao2 is not None and s.pao2 > alv.alveolar_po2 + margin:
         flags.add(QualityFlag.PAO2_ABOVE_ALVEOLAR)
     if alv.aa_gradient_expected is not None and (s.age_years or 0.0) < (physiology.ADULT_AGE_YEARS):
         flags.add(QualityFlag.PAEDIATRIC_AGE_NORMAL)
@@ -341,6 +374,35 @@ def derive(snapshot: Snapshot, settings: DerivationSettings) -> Derivation:
     )
 
 
+@dataclass(frozen=True, slots=True)
+class Spo2Estimate:
+    """What one SpO2 (%) says between gases, never a measurement: S/F (Rice 2007, only
+    SpO2 <= 97 %), the PaO2 imputed by the exact inverse of Severinghaus 1979 Eq. 1
+    (only SpO2 <= 96 %) and its P/F (Brown 2016). None where not valid or no FiO2."""
+
+    sf_ratio: float | None = None
+    pao2: float | None = None
+    pf_ratio: float | None = None
+
+
+def _estimate(value: float, fio2: float | None, notes: _Notes) -> Spo2Estimate:
+    imputed = notes.attempt("imputed PaO2", lambda: physiology.pao2_imputed_from_spo2(value))
+    if fio2 is None:
+        return Spo2Estimate(pao2=imputed)
+    sf = notes.attempt("S/F", lambda: physiology.sf_ratio(value, fio2))
+    pf = None
+    if imputed is not None:
+        pao2 = imputed
+        pf = notes.attempt("imputed P/F", lambda: physiology.pf_ratio(pao2, fio2))
+    return Spo2Estimate(sf_ratio=sf, pao2=imputed, pf_ratio=pf)
+
+
+def estimate_from_spo2(spo2: float, fio2: float | None, *, strict: bool = False) -> Spo2Estimate:
+    """The estimate (see ``Spo2Estimate``) from one SpO2 (%) and the FiO2 (fraction) in
+    effect, as ``derive_spo2_series`` makes it; ``strict`` raises a refused input."""
+    return _estimate(spo2, fio2, _Notes(strict=strict))
+
+
 def _spo2_derivation(
     spo2: Reading, context: Sequence[Reading], pairing_settings: PairingSettings
 ) -> Derivation | None:
@@ -354,12 +416,8 @@ def _spo2_derivation(
         return None
     notes = _Notes()
     fio2_value = fio2.value
-    sf = notes.attempt("S/F", lambda: physiology.sf_ratio(value, fio2_value))
-    imputed = notes.attempt("imputed PaO2", lambda: physiology.pao2_imputed_from_spo2(value))
-    pf = None
-    if imputed is not None:
-        pao2 = imputed
-        pf = notes.attempt("imputed P/F", lambda: physiology.pf_ratio(pao2, fio2_value))
+    estimate = _estimate(value, fio2_value, notes)
+    sf, imputed, pf = estimate.sf_ratio, estimate.pao2, estimate.pf_ratio
     inputs = (
         InputUsed("spo2", value, "SpO2 recorded between gases", spo2.logical_id, spo2.effective_at),
         *fio2.inputs,

@@ -339,14 +339,16 @@ ADVISORY = (
 class Snapshot:
     """One arterial (or refused non-arterial) sample and everything in effect at its draw.
 
-    Built by ``monitor.engine.pairing``; every choice is recorded in ``inputs``.
+    Built by ``monitor.engine.pairing`` (every choice recorded in ``inputs``), or by
+    ``monitor.calc`` for one gas typed at the command line, where ``pao2`` may be
+    missing (then nothing built on the PaO2 is derived).
     """
 
     patient_key: str
     sample_id: str
     drawn_at: datetime
     specimen: Specimen
-    pao2: float
+    pao2: float | None
     fio2: float | None
     fio2_source: FiO2Source
     barometric_pressure: float

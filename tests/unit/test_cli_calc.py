@@ -17,7 +17,7 @@ KEYS = {
     "aa_gradient_expected",
     "arterial_alveolar_ratio",
     "pf_ratio",
-    "pf_ratio_altitude_adjusted",
+    "pf_ratio_adjusted",
     "berlin_band",
     "sf_ratio",
     "oxygenation_index",
@@ -80,7 +80,7 @@ def test_altitude_case_gives_adjusted_ratio_and_band() -> None:
     )
     assert out["barometric_pressure"] == pytest.approx(626.51, abs=0.01)
     assert out["pf_ratio"] == pytest.approx(150.0)
-    assert out["pf_ratio_altitude_adjusted"] == pytest.approx(182.0, abs=0.05)
+    assert out["pf_ratio_adjusted"] == pytest.approx(182.0, abs=0.05)
     assert out["berlin_band"] == "moderate"
 
 
@@ -242,5 +242,5 @@ def test_calc_adjusts_pf_as_the_service_does(elevation: str, adjusted: bool) -> 
     out = calc_json(
         "--pao2", "95", "--paco2", "40", "--fio2", "0.5", "--peep", "8", "--elevation-m", elevation
     )
-    assert (out["pf_ratio_altitude_adjusted"] is not None) is adjusted
+    assert (out["pf_ratio_adjusted"] is not None) is adjusted
     assert out["berlin_band"] == ("mild" if adjusted else "moderate")  # 190 -> 230.5 at 1600
