@@ -165,7 +165,7 @@ def build_channels(config: SiteConfig, secrets: Secrets) -> dict[str, Channel]:
     channels: dict[str, Channel] = {}
     for alias in config.channels:
         options = config.channel_options(alias)
-        channels[alias] = build_channel(alias, options, environ=channel_secrets(options, secrets))
+        channels[alias] = build_channel(alias, options, secrets=channel_secrets(options, secrets))
     return channels
 
 

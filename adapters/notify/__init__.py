@@ -41,17 +41,19 @@ CHANNEL_TYPES: dict[str, type[Channel]] = {
 
 
 def build_channel(
-    alias: str, options: Mapping[str, object], *, environ: Mapping[str, str] | None = None
+    alias: str, options: Mapping[str, object], *, secrets: Mapping[str, str] | None = None
 ) -> Channel:
     """Make the channel configured as ``alias``. ``options["type"]`` picks the class;
-    the rest are that class's options. Secrets are read from the environment variables
-    the options name (``environ``, default ``os.environ``), once, here."""
+    the rest are that class's options. ``secrets`` holds the values of the secrets the
+    options name, by name, resolved by the caller (``monitor.bootstrap``: the
+    environment, else the site's secrets file); a channel never reads the process
+    environment itself, and a named secret missing from ``secrets`` is refused."""
     kind = options.get("type")
     if not isinstance(kind, str) or kind not in CHANNEL_TYPES:
         known = ", ".join(sorted(CHANNEL_TYPES))
         raise ChannelConfigError(alias, f"no channel type {kind!r}; known types: {known}")
     factory: Callable[..., Channel] = CHANNEL_TYPES[kind]
-    return factory(alias, options, environ=environ)
+    return factory(alias, options, secrets=secrets)
 
 
 __all__ = [

@@ -98,17 +98,21 @@ class ChannelConfigError(MonitorError, ValueError):
         super().__init__(f'notification channel "{alias}": {problem}')
 
 
-def read_secret(alias: str, env_name: str | None, environ: Mapping[str, str]) -> str | None:
-    """The secret held in the environment variable *named* by an option, or None.
+def read_secret(alias: str, env_name: str | None, secrets: Mapping[str, str]) -> str | None:
+    """The secret *named* by an option (an environment variable's name), from the
+    resolved ``secrets``, or None when the option names none.
 
-    Options carry only the variable's name, so secrets never sit in configuration files.
-    A named but unset or empty variable is a configuration error, reported by name.
+    Options carry only the name, so secrets never sit in configuration files. A named
+    secret that is missing or empty is a configuration error, reported by name.
     """
     if env_name is None:
         return None
-    value = environ.get(env_name, "")
+    value = secrets.get(env_name, "")
     if not value:
-        raise ChannelConfigError(alias, f"environment variable {env_name} is not set or empty")
+        raise ChannelConfigError(
+            alias,
+            f"secret {env_name} is not set (in the environment or the secrets file) or is empty",
+        )
     return value
 
 

@@ -2,7 +2,6 @@
 
 import hashlib
 import logging
-import os
 import smtplib
 import ssl
 from collections.abc import Mapping
@@ -95,9 +94,9 @@ class EmailChannel:
         alias: str,
         options: Mapping[str, object],
         *,
-        environ: Mapping[str, str] | None = None,
+        secrets: Mapping[str, str] | None = None,
     ) -> None:
-        env = os.environ if environ is None else environ
+        env = secrets or {}
         self.alias = alias
         self.options = parse_options(alias, EmailOptions, options)
         self._password = read_secret(alias, self.options.password_env, env)

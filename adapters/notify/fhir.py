@@ -14,7 +14,6 @@ Flag.status follows the alert: retracted -> ``entered-in-error``, resolved ->
 import hashlib
 import html
 import logging
-import os
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from datetime import datetime
@@ -173,10 +172,10 @@ class FhirChannel:
         alias: str,
         options: Mapping[str, object],
         *,
-        environ: Mapping[str, str] | None = None,
+        secrets: Mapping[str, str] | None = None,
         client: httpx.Client | None = None,
     ) -> None:
-        env = os.environ if environ is None else environ
+        env = secrets or {}
         self.alias = alias
         self.options = parse_options(alias, FhirOptions, options)
         headers = {"Accept": "application/fhir+json"}

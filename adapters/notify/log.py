@@ -66,7 +66,7 @@ class LogChannel:
         alias: str,
         options: Mapping[str, object],
         *,
-        environ: Mapping[str, str] | None = None,
+        secrets: Mapping[str, str] | None = None,
     ) -> None:
         self.alias = alias
         self.options = parse_options(alias, LogOptions, options)

@@ -3,7 +3,6 @@
 import hashlib
 import hmac
 import logging
-import os
 from collections.abc import Mapping
 from typing import Literal
 
@@ -76,10 +75,10 @@ class WebhookChannel:
         alias: str,
         options: Mapping[str, object],
         *,
-        environ: Mapping[str, str] | None = None,
+        secrets: Mapping[str, str] | None = None,
         client: httpx.Client | None = None,
     ) -> None:
-        env = os.environ if environ is None else environ
+        env = secrets or {}
         self.alias = alias
         self.options = parse_options(alias, WebhookOptions, options)
         self._token = read_secret(alias, self.options.token_env, env)

@@ -215,7 +215,7 @@ def test_fhir_write_back_signs_in_with_smart_and_writes_its_flag(
             "scopes": ["system/Flag.cu", "system/Communication.cu"],
         },
     }
-    channel = FhirChannel("ehr-writeback", options, environ={KEY_ENV: smart_fhir_server.ec_key_pem})
+    channel = FhirChannel("ehr-writeback", options, secrets={KEY_ENV: smart_fhir_server.ec_key_pem})
     try:
         note = make_notification()
         result = channel.send(note)
@@ -245,7 +245,7 @@ def test_fhir_write_back_without_the_write_scope_is_refused_and_not_retried(
             "scopes": ["system/Flag.cu"],
         },
     }
-    channel = FhirChannel("ehr-writeback", options, environ={KEY_ENV: smart_fhir_server.ec_key_pem})
+    channel = FhirChannel("ehr-writeback", options, secrets={KEY_ENV: smart_fhir_server.ec_key_pem})
     try:
         result = channel.send(make_notification())
     finally:

@@ -24,7 +24,7 @@ HOSTILE_DISPLAY = "<script>alert(1)</script>"
 
 
 def mail(port: int, **extra: object) -> EmailChannel:
-    channel = build_channel("icu-north-mail", email_options(port, **extra), environ=ENV)
+    channel = build_channel("icu-north-mail", email_options(port, **extra), secrets=ENV)
     assert isinstance(channel, EmailChannel)
     return channel
 
@@ -118,7 +118,7 @@ def test_email_wrong_password_is_dead_not_retried(smtp_auth_server: SmtpPeer) ->
     channel = build_channel(
         "icu-north-mail",
         email_options(smtp_auth_server.port, user=SMTP_USER, password_env="HGH_SMTP_PASSWORD"),
-        environ={"HGH_SMTP_PASSWORD": "not-the-password"},
+        secrets={"HGH_SMTP_PASSWORD": "not-the-password"},
     )
     result = channel.send(make_notification())
     assert not result.ok and not result.retryable and "535" in result.detail

@@ -80,3 +80,18 @@ def test_log_channel_writes_one_json_line_without_the_patient_key(
     assert "hgh-pt-0001" not in text
     assert n.idempotency_key not in text  # it may embed the patient key
     assert record.args  # lazy %s formatting, not a pre-built string
+
+
+def test_a_channel_takes_its_secrets_from_the_caller_never_the_process_environment(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # Issue 14 point 5: the composition root resolves secrets (environment, else the
+    # secrets file) and hands them over; a channel that read os.environ itself would
+    # bypass the secrets file and the `config check` list of unset names.
+    monkeypatch.setenv("HGH_TEST_HOOK_TOKEN", "in-the-environment-only")
+    options = {"type": "webhook", "url": "https://hooks.example.invalid/x"}
+    options["token_env"] = "HGH_TEST_HOOK_TOKEN"
+    with pytest.raises(ChannelConfigError, match="HGH_TEST_HOOK_TOKEN is not set"):
+        build_channel("icu-north-hook", options)
+    given = build_channel("icu-north-hook", options, secrets={"HGH_TEST_HOOK_TOKEN": "t0ken"})
+    given.close()

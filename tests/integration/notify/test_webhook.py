@@ -18,7 +18,7 @@ ENV = {"HGH_HOOK_TOKEN": "invented-token-7f3a", "HGH_HOOK_SECRET": "invented-sec
 def webhook(receiver: HttpReceiver, **extra: object) -> WebhookChannel:
     options: dict[str, object] = {"type": "webhook", "url": receiver.url, "timeout_s": 2}
     options.update(extra)
-    channel = build_channel("icu-north-hook", options, environ=ENV)
+    channel = build_channel("icu-north-hook", options, secrets=ENV)
     assert isinstance(channel, WebhookChannel)
     return channel
 
