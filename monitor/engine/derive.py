@@ -137,10 +137,6 @@ def _constants(settings: DerivationSettings, ph2o: float | None) -> dict[str, fl
     return constants
 
 
-def _is_room_air(fio2: float | None) -> bool:
-    return physiology.is_room_air(fio2)
-
-
 @dataclass(frozen=True, slots=True)
 class CountedPf:
     """The P/F that counts for a derivation (mmHg), as every rule, the stored band and
@@ -214,7 +210,7 @@ def _alveolar(
         return _Alveolar()
     age = s.age_years
     expected = None
-    if _is_room_air(fio2) and age is not None:
+    if physiology.is_room_air(fio2) and age is not None:
         expected = notes.attempt(
             "age-expected A-a", lambda: physiology.expected_aa_gradient(age, settings.age_normal)
         )
@@ -319,7 +315,7 @@ def derive(snapshot: Snapshot, settings: DerivationSettings, *, strict: bool = F
         flags.add(QualityFlag.NOT_ARTERIAL)
     if s.paco2 is None:
         flags.add(QualityFlag.PACO2_MISSING)
-    if s.fio2 is not None and not _is_room_air(s.fio2):
+    if s.fio2 is not None and not physiology.is_room_air(s.fio2):
         flags.add(QualityFlag.NOT_ON_ROOM_AIR)
     pb, fio2 = s.barometric_pressure, s.fio2
     ph2o = notes.attempt(

@@ -98,7 +98,7 @@ PLAUSIBLE_RANGE: dict[Kind, tuple[float, float]] = {
     Kind.PH: (6.3, 8.0),
     Kind.SAO2: (5.0, 100.0),
     Kind.SPO2: (5.0, 100.0),
-    Kind.FIO2: (0.209, 1.0),  # 20.9 % is room air as often written as 21 %
+    Kind.FIO2: (0.209, 1.0),  # physiology.FIO2_MIN: 20.9 % is room air, often written 21 %
     Kind.O2_FLOW: (0.0, 80.0),
     Kind.PEEP: (0.0, 40.0),
     Kind.MEAN_AIRWAY_PRESSURE: (0.0, 60.0),
