@@ -331,17 +331,7 @@ def _in_effect(
     flow = next((f for f in reversed(flows) if _fresh(f, at, settings)), None)
     notes: list[InputUsed] = []
     if fio2 is not None and _fresh(fio2, at, settings):
-        ended_by: Reading | None = None
-        if device is not None and _later(device, fio2, settings) and _device_ends(fio2, device):
-            ended_by = device
-        for f in flows:
-            if ended_by is not None or not (f.effective_at <= at and _later(f, fio2, settings)):
-                continue
-            owner = next((d for d in reversed(devices) if d.effective_at <= f.effective_at), None)
-            if owner is not None and not _fresh(owner, at, settings):
-                owner = None
-            if _flow_ends(fio2, owner):
-                ended_by = f
+        ended_by = _ended_by(fio2, at, device, devices, flows, settings)
         if ended_by is None:
             setting = " (ventilator setting)" if fio2.from_ventilator else ""
             why = _when("charted", fio2, at) + setting + ", no later change before the draw"
@@ -367,25 +357,53 @@ def _in_effect(
             (device,),
         )
     if device is not None:
-        try:
-            value = physiology.estimated_fio2(
-                str(device.code_value), flow.value if flow is not None else None
-            )
-        except (InvalidInput, ValueError) as exc:
-            notes.append(_used("fio2", device, f"not estimated from the device: {exc}"))
-        else:
-            used = (device,) if flow is None else (device, flow)
-            inputs = [_used("o2_device", device, _when("device charted", device, at))]
-            if flow is not None:
-                inputs.append(_used("o2_flow", flow, _when("flow charted", flow, at)))
-            given = f" at {flow.value:g} L/min" if flow is not None else ""
-            why = (
-                f"estimated from {device.code_value}{given}: a rule of thumb, "
-                "uncertain by 0.1 or more"
-            )
-            inputs.append(InputUsed("fio2", value, why, None, at))
-            return _Therapy(value, FiO2Source.DEVICE_ESTIMATE, tuple(inputs), used, tuple(notes))
+        return _device_estimate(device, flow, at, notes)
     return _Therapy(None, FiO2Source.UNKNOWN, (), (), tuple(notes))
+
+
+def _ended_by(
+    fio2: Reading,
+    at: datetime,
+    device: Reading | None,
+    devices: Sequence[Reading],
+    flows: Sequence[Reading],
+    settings: PairingSettings,
+) -> Reading | None:
+    """The later charting (device, else O2 flow) at or before ``at`` that ends a charted
+    FiO2 (``_device_ends``, ``_flow_ends``), or None while it still holds."""
+    if device is not None and _later(device, fio2, settings) and _device_ends(fio2, device):
+        return device
+    for f in flows:
+        if not (f.effective_at <= at and _later(f, fio2, settings)):
+            continue
+        owner = next((d for d in reversed(devices) if d.effective_at <= f.effective_at), None)
+        if owner is not None and not _fresh(owner, at, settings):
+            owner = None
+        if _flow_ends(fio2, owner):
+            return f
+    return None
+
+
+def _device_estimate(
+    device: Reading, flow: Reading | None, at: datetime, notes: list[InputUsed]
+) -> _Therapy:
+    """The FiO2 estimated from a low-flow device and its latest flow (a rule of thumb,
+    ``physiology.estimated_fio2``), or unknown with a note saying why not."""
+    try:
+        value = physiology.estimated_fio2(
+            str(device.code_value), flow.value if flow is not None else None
+        )
+    except (InvalidInput, ValueError) as exc:
+        notes.append(_used("fio2", device, f"not estimated from the device: {exc}"))
+        return _Therapy(None, FiO2Source.UNKNOWN, (), (), tuple(notes))
+    used = (device,) if flow is None else (device, flow)
+    inputs = [_used("o2_device", device, _when("device charted", device, at))]
+    if flow is not None:
+        inputs.append(_used("o2_flow", flow, _when("flow charted", flow, at)))
+    given = f" at {flow.value:g} L/min" if flow is not None else ""
+    why = f"estimated from {device.code_value}{given}: a rule of thumb, uncertain by 0.1 or more"
+    inputs.append(InputUsed("fio2", value, why, None, at))
+    return _Therapy(value, FiO2Source.DEVICE_ESTIMATE, tuple(inputs), used, tuple(notes))
 
 
 def _recent_change(
@@ -421,6 +439,41 @@ def _recent_change(
     return None
 
 
+def _reflected(
+    change: tuple[datetime, _Therapy, _Therapy],
+    with_gas: Reading | None,
+    at: datetime,
+    settings: PairingSettings,
+) -> FiO2InEffect:
+    """After a change less than the steady-state time before the draw, the lung had no
+    time to settle: the blood reflects the FiO2 in effect before the change. Judge on
+    that one and show the new one (the gas's own, if it carries one) beside it."""
+    moment, before, after = change
+    new_value = after.value if with_gas is None else with_gas.value
+    flags = {QualityFlag.FIO2_NOT_STEADY}
+    if before.source is FiO2Source.DEVICE_ESTIMATE:
+        flags.add(QualityFlag.ESTIMATED_FIO2)
+    why_set = (
+        f"set {_clock(moment)}, {_relative(moment, at)}: not used for the indices, "
+        f"the blood reflects the FiO2 before the change (less than "
+        f"{_span(settings.steady_state)} to settle)"
+    )
+    until = f"; in effect until {_clock(moment)}, the value the blood reflects"
+    inputs = (
+        *(replace(i, reason=i.reason + until) if i.role == "fio2" else i for i in before.inputs),
+        InputUsed("fio2_set", new_value, why_set, None, moment),
+    )
+    return FiO2InEffect(
+        before.value,
+        before.source,
+        frozenset(flags),
+        inputs,
+        before.used + after.used,
+        changed_to=new_value,
+        changed_at=moment,
+    )
+
+
 def _choose_fio2(
     at: datetime, readings: Sequence[Reading], settings: PairingSettings, panel_id: str | None
 ) -> FiO2InEffect:
@@ -430,45 +483,13 @@ def _choose_fio2(
     devices = _of(readings, Kind.O2_DEVICE)
     flows = _of(readings, Kind.O2_FLOW)
     change = _recent_change(at, charted, devices, flows, settings)
+    nearest_with_gas = (
+        min(with_gas, key=lambda x: (abs(x.effective_at - at), _order(x))) if with_gas else None
+    )
     if change is not None:
-        # The lung had no time to settle: the blood reflects the FiO2 in effect before
-        # the change. Judge on that one and show the new one beside it.
-        moment, before, after = change
-        new_value = after.value
-        if with_gas:
-            new_value = min(with_gas, key=lambda x: (abs(x.effective_at - at), _order(x))).value
-        flags = {QualityFlag.FIO2_NOT_STEADY}
-        if before.source is FiO2Source.DEVICE_ESTIMATE:
-            flags.add(QualityFlag.ESTIMATED_FIO2)
-        why_set = (
-            f"set {_clock(moment)}, {_relative(moment, at)}: not used for the indices, "
-            f"the blood reflects the FiO2 before the change (less than "
-            f"{_span(settings.steady_state)} to settle)"
-        )
-        inputs = (
-            *(
-                replace(
-                    i,
-                    reason=f"{i.reason}; in effect until {_clock(moment)}, the value "
-                    "the blood reflects",
-                )
-                if i.role == "fio2"
-                else i
-                for i in before.inputs
-            ),
-            InputUsed("fio2_set", new_value, why_set, None, moment),
-        )
-        return FiO2InEffect(
-            before.value,
-            before.source,
-            frozenset(flags),
-            inputs,
-            before.used + after.used,
-            changed_to=new_value,
-            changed_at=moment,
-        )
-    if with_gas:
-        r = min(with_gas, key=lambda x: (abs(x.effective_at - at), _order(x)))
+        return _reflected(change, nearest_with_gas, at, settings)
+    if nearest_with_gas is not None:
+        r = nearest_with_gas
         why = "reported with the gas (same panel)"
         used = (_used("fio2", r, why),)
         return FiO2InEffect(r.value, FiO2Source.WITH_GAS, frozenset(), used, (r,))
@@ -634,6 +655,80 @@ _LAB_ROLES: tuple[tuple[str, Kind], ...] = (
 )
 
 
+@dataclass(slots=True)
+class _Provenance:
+    """What pairing used for one sample, as it goes: the readings, why each was chosen,
+    and the quality marks."""
+
+    used: list[Reading]
+    inputs: list[InputUsed]
+    flags: set[QualityFlag] = field(default_factory=set)
+
+    def take(self, reading: Reading, why: InputUsed) -> float | None:
+        self.used.append(reading)
+        self.inputs.append(why)
+        return reading.value
+
+
+def _sample_provenance(sample: Reading) -> _Provenance:
+    t = sample.effective_at
+    arterial = sample.specimen is Specimen.ARTERIAL
+    note = "" if arterial else ": not arterial, no A-a or P/F"
+    why = _used("pao2", sample, f"the sample, {sample.specimen} blood drawn {_clock(t)}{note}")
+    prov = _Provenance(used=[sample], inputs=[why])
+    if not arterial:
+        prov.flags.add(QualityFlag.NOT_ARTERIAL)
+    return prov
+
+
+def _lab_values(
+    sample: Reading, readings: Sequence[Reading], settings: PairingSettings, prov: _Provenance
+) -> dict[str, float | None]:
+    """PaCO2, pH, SaO2 and Hb of the same sample (``_LAB_ROLES``)."""
+    lab: dict[str, float | None] = {}
+    for role, kind in _LAB_ROLES:
+        found = _same_sample(sample, readings, kind, settings, match_specimen=True)
+        lab[role] = None if found is None else prov.take(found[0], _used(role, *found))
+    return lab
+
+
+def _nearby_values(
+    readings: Sequence[Reading], t: datetime, settings: PairingSettings, prov: _Provenance
+) -> dict[str, float | None]:
+    """PEEP and mean airway pressure (latest in the ventilator window) and SpO2 (nearest)."""
+    window = settings.ventilator_window
+    nearby: dict[str, float | None] = {}
+    for role, found in (
+        ("peep", _latest_before("peep", Kind.PEEP, readings, t, window)),
+        (
+            "mean_airway_pressure",
+            _latest_before("mean_airway_pressure", Kind.MEAN_AIRWAY_PRESSURE, readings, t, window),
+        ),
+        ("spo2", _nearest_spo2(readings, t, settings)),
+    ):
+        nearby[role] = None if found is None else prov.take(*found)
+    return nearby
+
+
+def _conditions(
+    sample: Reading, readings: Sequence[Reading], settings: PairingSettings, prov: _Provenance
+) -> tuple[float, PressureSource, float, TemperatureSource]:
+    """The barometric pressure and the body temperature of the sample, with sources."""
+    pb, pb_source, pb_input, pb_flag, pb_reading = _pressure(sample, readings, settings)
+    prov.inputs.append(pb_input)
+    if pb_flag is not None:
+        prov.flags.add(pb_flag)
+    if pb_reading is not None:
+        prov.used.append(pb_reading)
+    temp, temp_source, temp_input, temp_reading = _temperature(sample, readings, settings)
+    prov.inputs.append(temp_input)
+    if temp_reading is None:
+        prov.flags.add(QualityFlag.DEFAULT_TEMPERATURE)
+    else:
+        prov.used.append(temp_reading)
+    return pb, pb_source, temp, temp_source
+
+
 def pair(sample: Reading, context: Sequence[Reading], settings: PairingSettings) -> Snapshot:
     """Pair one PaO2 reading with everything in effect at its draw.
 
@@ -652,73 +747,25 @@ def pair(sample: Reading, context: Sequence[Reading], settings: PairingSettings)
         for r in current_readings(context, sample.patient_key)
         if r.logical_id != sample.logical_id
     ]
-    flags: set[QualityFlag] = set()
-    used: list[Reading] = [sample]
-    specimen_note = "" if sample.specimen is Specimen.ARTERIAL else ": not arterial, no A-a or P/F"
-    inputs: list[InputUsed] = [
-        _used(
-            "pao2", sample, f"the sample, {sample.specimen} blood drawn {_clock(t)}{specimen_note}"
-        )
-    ]
-    if sample.specimen is not Specimen.ARTERIAL:
-        flags.add(QualityFlag.NOT_ARTERIAL)
-
-    lab: dict[str, float | None] = {}
-    for role, kind in _LAB_ROLES:
-        found = _same_sample(sample, readings, kind, settings, match_specimen=True)
-        lab[role] = None if found is None else found[0].value
-        if found is not None:
-            used.append(found[0])
-            inputs.append(_used(role, found[0], found[1]))
+    prov = _sample_provenance(sample)
+    lab = _lab_values(sample, readings, settings, prov)
 
     fio2 = _choose_fio2(t, readings, settings, sample.panel_id)
-    flags |= fio2.flags
-    used.extend(fio2.used)
-    inputs.extend(fio2.inputs)
+    prov.flags |= fio2.flags
+    prov.used.extend(fio2.used)
+    prov.inputs.extend(fio2.inputs)
 
-    pb, pb_source, pb_input, pb_flag, pb_reading = _pressure(sample, readings, settings)
-    inputs.append(pb_input)
-    if pb_flag is not None:
-        flags.add(pb_flag)
-    if pb_reading is not None:
-        used.append(pb_reading)
-
-    temp, temp_source, temp_input, temp_reading = _temperature(sample, readings, settings)
-    inputs.append(temp_input)
-    if temp_reading is None:
-        flags.add(QualityFlag.DEFAULT_TEMPERATURE)
-    else:
-        used.append(temp_reading)
-
-    nearby: dict[str, float | None] = {}
-    for role, found_near in (
-        ("peep", _latest_before("peep", Kind.PEEP, readings, t, settings.ventilator_window)),
-        (
-            "mean_airway_pressure",
-            _latest_before(
-                "mean_airway_pressure",
-                Kind.MEAN_AIRWAY_PRESSURE,
-                readings,
-                t,
-                settings.ventilator_window,
-            ),
-        ),
-        ("spo2", _nearest_spo2(readings, t, settings)),
-    ):
-        nearby[role] = None if found_near is None else found_near[0].value
-        if found_near is not None:
-            used.append(found_near[0])
-            inputs.append(found_near[1])
-
+    pb, pb_source, temp, temp_source = _conditions(sample, readings, settings, prov)
+    nearby = _nearby_values(readings, t, settings, prov)
     age, age_input = _age(sample, readings)
     if age_input is not None:
-        inputs.append(age_input)
+        prov.inputs.append(age_input)
     if age is None:
-        flags.add(QualityFlag.AGE_UNKNOWN)
+        prov.flags.add(QualityFlag.AGE_UNKNOWN)
 
-    preliminary = any(r.status is Status.PRELIMINARY for r in used)
+    preliminary = any(r.status is Status.PRELIMINARY for r in prov.used)
     if preliminary:
-        flags.add(QualityFlag.PRELIMINARY_INPUTS)
+        prov.flags.add(QualityFlag.PRELIMINARY_INPUTS)
 
     return Snapshot(
         patient_key=sample.patient_key,
@@ -742,8 +789,8 @@ def pair(sample: Reading, context: Sequence[Reading], settings: PairingSettings)
         age_years=age,
         location=sample.location,
         preliminary=preliminary,
-        inputs=tuple(inputs),
-        flags=frozenset(flags),
+        inputs=tuple(prov.inputs),
+        flags=frozenset(prov.flags),
     )
 
 

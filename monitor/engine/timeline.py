@@ -474,6 +474,21 @@ class PatientTimeline:
     ) -> list[tuple[Derivation, str, bool]]:
         """Derive again every sample the changed readings can affect; returns the new
         versions (derivation, reason, retracted)."""
+        gases, spo2s = self._affected(windows, panels, direct)
+        out = self._rederive_gases(gases)
+        out += self._rederive_estimates(spo2s)
+        # Samples whose own result was withdrawn (they are no longer in the timeline).
+        for lid in sorted(withdrawn):
+            gone = self._drop(lid)
+            if gone is not None:
+                out.append((gone, "result withdrawn", True))
+        return out
+
+    def _affected(
+        self, windows: list[tuple[datetime, datetime]], panels: set[str], direct: set[str]
+    ) -> tuple[dict[str, Reading], dict[str, Reading]]:
+        """The current gases (PaO2) and SpO2 readings, by logical id, that fall in one of
+        ``windows``, belong to one of ``panels`` or are named in ``direct``."""
 
         def inside(r: Reading) -> bool:
             return (
@@ -482,36 +497,37 @@ class PatientTimeline:
                 or r.logical_id in direct
             )
 
+        def current(lids: Iterable[str]) -> list[Reading]:
+            return [
+                self._current[lid]
+                for lid in lids
+                if lid in self._current and _usable(self._current[lid])
+            ]
+
         candidates: list[Reading] = []
         if windows:
             candidates = self._between(min(w[0] for w in windows), max(w[1] for w in windows))
-        candidates += [
-            self._current[lid]
-            for lid in sorted(direct)
-            if lid in self._current and _usable(self._current[lid])
-        ]
+        candidates += current(sorted(direct))
         for panel in panels:
-            candidates += [
-                self._current[lid]
-                for lid in self._panels.get(panel, ())
-                if lid in self._current and _usable(self._current[lid])
-            ]
+            candidates += current(self._panels.get(panel, ()))
         gases = {r.logical_id: r for r in candidates if r.kind is Kind.PAO2 and inside(r)}
         spo2s = {r.logical_id: r for r in candidates if r.kind is Kind.SPO2 and inside(r)}
+        return gases, spo2s
+
+    def _rederive_gases(self, gases: dict[str, Reading]) -> list[tuple[Derivation, str, bool]]:
         out: list[tuple[Derivation, str, bool]] = []
         for lid in sorted(gases, key=lambda k: _by_time(gases[k])):
             sample = gases[lid]
+            context = self._context(sample.effective_at, sample.panel_id)
             derivation = derive(
-                pair(
-                    sample,
-                    self._context(sample.effective_at, sample.panel_id),
-                    self.settings.pairing,
-                ),
-                self.settings.derivation,
+                pair(sample, context, self.settings.pairing), self.settings.derivation
             )
             if self.derivations.get(lid) != derivation:
                 self._put(derivation)
                 out.append((derivation, "new or changed readings", False))
+        return out
+
+    def _rederive_estimates(self, spo2s: dict[str, Reading]) -> list[tuple[Derivation, str, bool]]:
         estimated: dict[str, Derivation] = {}
         for r in sorted(spo2s.values(), key=_by_time):
             for d in derive_spo2_series(
@@ -521,6 +537,7 @@ class PatientTimeline:
                 self.settings.pairing,
             ):
                 estimated[d.sample_id] = d
+        out: list[tuple[Derivation, str, bool]] = []
         for lid in sorted(spo2s, key=lambda k: _by_time(spo2s[k])):
             new = estimated.get(lid)
             held = self.derivations.get(lid)
@@ -532,11 +549,6 @@ class PatientTimeline:
                 # estimate that can no longer be made must not stay current
                 self._drop(lid)
                 out.append((held, "no longer estimable from what is charted", True))
-        # Samples whose own result was withdrawn (they are no longer in the timeline).
-        for lid in sorted(withdrawn):
-            gone = self._drop(lid)
-            if gone is not None:
-                out.append((gone, "result withdrawn", True))
         return out
 
     def _withdraw_flags(self, stood: set[str], instant: datetime, result: StepResult) -> None:
@@ -605,58 +617,16 @@ class PatientTimeline:
         )
         outcomes = rules.evaluate(self.settings.rules, d, self._history(d), d.drawn_at)
         for outcome in outcomes:
-            open_alert = self.open.get(outcome.rule_id)
-            if (
-                judged.own_change
-                and open_alert is not None
-                and open_alert.sample_id == d.sample_id
-                and not outcome.fired
-            ):
-                # The sample this flag stands on was derived anew (a correction, a late
-                # input) and no longer supports any flag of this rule: take it back.
-                # (Still firing at another priority, the flag worsens or is lowered.)
-                decision = alerts.retract(
-                    open_alert, instant, "the result behind this flag changed", d.sample_id
-                )
-                self._keep(decision)
-                result.flags.append(
-                    FlagChange(decision, d, outcome.numbers, instant, _is_historical(open_alert))
-                )
-                open_alert = None
-            if not outcome.fired and not (outcome.cleared and judged.own_change):
-                # a late result never resolves a newer flag: only a new sample can
+            open_alert = self._take_back_unsupported(judged, outcome, instant, result)
+            if not _is_news(judged.own_change, outcome, open_alert):
                 continue
-            if outcome.cleared and open_alert is None:
-                continue
-            if (
-                not judged.own_change
-                and open_alert is not None
-                and outcome.priority is not None
-                and outcome.priority.rank <= open_alert.priority.rank
-            ):
-                continue  # nor does it lower one: only a worse state is news
             last_closed = self.last_closed.get(outcome.rule_id) if open_alert is None else None
             decision = alerts.apply_outcome(
                 open_alert, last_closed, outcome, d, instant, self.settings.alerts
             )
             if decision.alert is None:
                 continue
-            if not judged.own_change:
-                note = (
-                    f"judged again when a late result arrived (sample drawn "
-                    f"{d.drawn_at.isoformat()})"
-                )
-                decision = replace(
-                    decision, events=[replace(e, note=e.note or note) for e in decision.events]
-                )
-            changed = decision.alert
-            assert changed is not None
-            if changed.state is AlertState.RAISED and decision.notify:
-                # raised or worsened: escalation counts from when it could be seen
-                changed = replace(changed, seen_at=seen_at)
-            if historical and changed.state.is_open:
-                changed = replace(changed, historical=True)
-            decision = replace(decision, alert=changed)
+            decision = _stamped(decision, judged, seen_at, historical)
             self._keep(decision)
             result.flags.append(
                 FlagChange(
@@ -668,6 +638,31 @@ class PatientTimeline:
                 )
             )
 
+    def _take_back_unsupported(
+        self, judged: _Judged, outcome: rules.RuleOutcome, instant: datetime, result: StepResult
+    ) -> Alert | None:
+        """The rule's open flag, or None when there is none or it was just taken back:
+        the sample it stands on was derived anew (a correction, a late input) and no
+        longer supports any flag of this rule. (Still firing at another priority, the
+        flag worsens or is lowered instead.)"""
+        d = judged.derivation
+        open_alert = self.open.get(outcome.rule_id)
+        if (
+            not judged.own_change
+            or open_alert is None
+            or open_alert.sample_id != d.sample_id
+            or outcome.fired
+        ):
+            return open_alert
+        decision = alerts.retract(
+            open_alert, instant, "the result behind this flag changed", d.sample_id
+        )
+        self._keep(decision)
+        result.flags.append(
+            FlagChange(decision, d, outcome.numbers, instant, _is_historical(open_alert))
+        )
+        return None
+
     def _keep(self, decision: alerts.Decision) -> None:
         alert = decision.alert
         if alert is None:
@@ -677,6 +672,44 @@ class PatientTimeline:
         else:
             self.open.pop(alert.rule, None)
             self.last_closed[alert.rule] = alert
+
+
+def _is_news(own_change: bool, outcome: rules.RuleOutcome, open_alert: Alert | None) -> bool:
+    """Whether an outcome may change the rule's flag. A judgement of a newer sample again
+    (a late result, ``own_change`` False) never resolves a flag (only a new sample can)
+    nor lowers one: only a worse state is news."""
+    if not outcome.fired and not (outcome.cleared and own_change):
+        return False
+    if outcome.cleared and open_alert is None:
+        return False
+    return not (
+        not own_change
+        and open_alert is not None
+        and outcome.priority is not None
+        and outcome.priority.rank <= open_alert.priority.rank
+    )
+
+
+def _stamped(
+    decision: alerts.Decision, judged: _Judged, seen_at: datetime, historical: bool
+) -> alerts.Decision:
+    """The decision with what the timeline knows and the state machine does not: a note
+    on its events when a late result made the judgement, when the flag could first be
+    seen (escalation counts from then), and whether it is historical."""
+    d = judged.derivation
+    if not judged.own_change:
+        note = f"judged again when a late result arrived (sample drawn {d.drawn_at.isoformat()})"
+        decision = replace(
+            decision, events=[replace(e, note=e.note or note) for e in decision.events]
+        )
+    changed = decision.alert
+    assert changed is not None
+    if changed.state is AlertState.RAISED and decision.notify:
+        # raised or worsened: escalation counts from when it could be seen
+        changed = replace(changed, seen_at=seen_at)
+    if historical and changed.state.is_open:
+        changed = replace(changed, historical=True)
+    return replace(decision, alert=changed)
 
 
 def _is_historical(alert: Alert | None) -> bool:
