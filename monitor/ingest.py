@@ -32,6 +32,7 @@ from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, fhir_insta
 from adapters.hl7v2 import Hl7Error, parse_oru
 from adapters.hl7v2.files import iter_hl7_file
 from adapters.hl7v2.parse import parse_dtm
+from monitor.engine.errors import MonitorError
 from monitor.engine.identity import PatientRegister, RegisterSettings, Rekey
 from monitor.engine.model import Reading
 from monitor.pipeline import BatchReport, Inbound, Pipeline, RejectedInput
@@ -80,7 +81,7 @@ class Unit:
     origin: str
 
 
-class FileKindError(ValueError):
+class FileKindError(MonitorError, ValueError):
     """A path whose kind (HL7 or FHIR) cannot be told from its name or content."""
 
 

@@ -57,7 +57,7 @@ from adapters.codes import (
 )
 from adapters.fhir import resources as r
 from monitor.engine import identity
-from monitor.engine.errors import InvalidReading
+from monitor.engine.errors import InvalidReading, MonitorError
 from monitor.engine.identity import (
     Dispute,
     PatientFacts,
@@ -163,7 +163,7 @@ class EncounterContext:
     location: Location | None = None
 
 
-class ObservationRefused(ValueError):
+class ObservationRefused(MonitorError, ValueError):
     """Raised inside the FHIR adapter when a resource cannot be read; the message is
     the reason, which the builder turns into a ``FhirRejection``."""
 

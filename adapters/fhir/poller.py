@@ -40,6 +40,7 @@ from adapters.fhir.observations import (
     reference_key,
 )
 from adapters.fhir.smart import SmartAuth, SmartAuthError
+from monitor.engine.errors import MonitorError
 from monitor.engine.model import Kind, Reading
 
 log = logging.getLogger("gasgap.fhir.poller")
@@ -48,7 +49,7 @@ _RETRY_STATUS = {429, 500, 502, 503, 504}
 _MAX_BACKOFF_S = 60.0
 
 
-class FhirSourceError(RuntimeError):
+class FhirSourceError(MonitorError, RuntimeError):
     """The FHIR server could not be read (after retries, or with a non-retryable answer)."""
 
 
