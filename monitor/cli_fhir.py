@@ -18,6 +18,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+from monitor.engine.errors import MonitorError
 from monitor.engine.model import ADVISORY
 
 EXIT_USAGE = 2
@@ -90,7 +91,7 @@ def _instant(text: str) -> datetime:
     return when
 
 
-class CommandError(Exception):
+class CommandError(MonitorError):
     """One line for stderr."""
 
 

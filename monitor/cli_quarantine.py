@@ -166,14 +166,14 @@ def reprocess(item: Any, *, pipeline: Any, context: Any, now: datetime) -> Any:
     from adapters.fhir.limits import too_deep
     from adapters.hl7v2.ack import Hl7Error
     from monitor.ingest import fhir_builder, inbound_from_hl7
-    from monitor.pipeline import Inbound, Rejected
+    from monitor.pipeline import Inbound, RejectedInput
 
     source, _, name = item.source.partition(":")
     raw = item.raw
     if item.truncated or raw is None:
         inbound = Inbound(
             rejected=[
-                Rejected(
+                RejectedInput(
                     item.source,
                     raw or "",
                     "kept only in part (over the size limit): "
@@ -186,30 +186,32 @@ def reprocess(item: Any, *, pipeline: Any, context: Any, now: datetime) -> Any:
         try:
             inbound = inbound_from_hl7(data, received_at=now, context=context, source=name or None)
         except Hl7Error as exc:
-            inbound = Inbound(rejected=[Rejected(item.source, data, str(exc))])
+            inbound = Inbound(rejected=[RejectedInput(item.source, data, str(exc))])
     elif source == "fhir":
         text = raw.decode("utf-8", "replace") if isinstance(raw, bytes) else raw
         try:
             resource = json.loads(text)
         except ValueError as exc:
-            inbound = Inbound(rejected=[Rejected(item.source, raw, f"not JSON: {exc}")])
+            inbound = Inbound(rejected=[RejectedInput(item.source, raw, f"not JSON: {exc}")])
         else:
             deep = too_deep(resource)
             if deep or not isinstance(resource, dict):
                 reason = deep or "not a FHIR resource (a JSON object)"
-                inbound = Inbound(rejected=[Rejected(item.source, raw, reason)])
+                inbound = Inbound(rejected=[RejectedInput(item.source, raw, reason)])
             else:
                 batch = fhir_builder(context, lambda: now).read_all([resource])
                 inbound = Inbound(
                     readings=list(batch.readings),
-                    rejected=[Rejected(item.source, r.raw, r.reason) for r in batch.rejections],
+                    rejected=[
+                        RejectedInput(item.source, r.raw, r.reason) for r in batch.rejections
+                    ],
                     skipped_codes=batch.skipped_codes,
                     ignored=sum(batch.skipped.values()),
                 )
     else:
         inbound = Inbound(
             rejected=[
-                Rejected(
+                RejectedInput(
                     item.source,
                     raw,
                     f"source {item.source!r}: gasgap does not know how to read it again",

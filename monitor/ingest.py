@@ -32,9 +32,10 @@ from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, fhir_insta
 from adapters.hl7v2 import Hl7Error, parse_oru
 from adapters.hl7v2.files import iter_hl7_file
 from adapters.hl7v2.parse import parse_dtm
+from monitor.engine.errors import MonitorError
 from monitor.engine.identity import PatientRegister, RegisterSettings, Rekey
 from monitor.engine.model import Reading
-from monitor.pipeline import BatchReport, Inbound, Pipeline, Rejected
+from monitor.pipeline import BatchReport, Inbound, Pipeline, RejectedInput
 
 log = logging.getLogger("gasgap.ingest")
 
@@ -80,7 +81,7 @@ class Unit:
     origin: str
 
 
-class FileKindError(ValueError):
+class FileKindError(MonitorError, ValueError):
     """A path whose kind (HL7 or FHIR) cannot be told from its name or content."""
 
 
@@ -119,7 +120,8 @@ def inbound_from_hl7(
         register_settings=context.register_settings(),
     )
     rejected = [
-        Rejected(f"hl7:{name}", raw, f"message {parsed.control_id} {r}") for r in parsed.rejected
+        RejectedInput(f"hl7:{name}", raw, f"message {parsed.control_id} {r}")
+        for r in parsed.rejected
     ]
     readings = list(parsed.readings)
     rekeys: list[Rekey] = []
@@ -151,21 +153,21 @@ def hl7_units(
         while oversized:
             at, head = oversized.pop(0)
             reason = f"{path.name} byte {at}: message over the size limit, not read"
-            yield Unit(Inbound(rejected=[Rejected(source, head, reason)]), None, path.name)
+            yield Unit(Inbound(rejected=[RejectedInput(source, head, reason)]), None, path.name)
         record_time = hl7_record_time(raw, context.site_tz)
         try:
             inbound = inbound_from_hl7(
                 raw, received_at=record_time or received_at(), context=context
             )
             inbound.rejected = [
-                Rejected(r.source, r.raw, f"{path.name}: {r.reason}") for r in inbound.rejected
+                RejectedInput(r.source, r.raw, f"{path.name}: {r.reason}") for r in inbound.rejected
             ]
         except Hl7Error as exc:
-            inbound = Inbound(rejected=[Rejected(source, raw, f"{path.name}: {exc}")])
+            inbound = Inbound(rejected=[RejectedInput(source, raw, f"{path.name}: {exc}")])
         yield Unit(inbound, record_time, f"{path.name}")
     for at, head in oversized:
         reason = f"{path.name} byte {at}: message over the size limit, not read"
-        yield Unit(Inbound(rejected=[Rejected(source, head, reason)]), None, path.name)
+        yield Unit(Inbound(rejected=[RejectedInput(source, head, reason)]), None, path.name)
 
 
 # --- FHIR ----------------------------------------------------------------------------------
@@ -175,7 +177,7 @@ def inbound_from_fhir(batch: FhirBatch, source: str) -> Inbound:
     """What a FHIR reader made of some resources, as one Inbound unit."""
     return Inbound(
         readings=list(batch.readings),
-        rejected=[Rejected(f"fhir:{source}", r.raw, r.reason) for r in batch.rejections],
+        rejected=[RejectedInput(f"fhir:{source}", r.raw, r.reason) for r in batch.rejections],
         skipped_codes=batch.skipped_codes,
         ignored=sum(batch.skipped.values()),
         links=list(batch.links),
@@ -217,7 +219,7 @@ def ndjson_units(
         if isinstance(item, bytes):
             reason = f"{path.name} {ndjson_line_reason(number, item)}"
             yield Unit(
-                Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", item, reason)]),
+                Inbound(rejected=[RejectedInput(f"fhir:{context.fhir_source}", item, reason)]),
                 None,
                 path.name,
             )
@@ -227,7 +229,9 @@ def ndjson_units(
             reason = f"{path.name} line {number}: {deep}"
             yield Unit(
                 Inbound(
-                    rejected=[Rejected(f"fhir:{context.fhir_source}", bounded_head(item), reason)]
+                    rejected=[
+                        RejectedInput(f"fhir:{context.fhir_source}", bounded_head(item), reason)
+                    ]
                 ),
                 None,
                 path.name,
@@ -255,7 +259,7 @@ def json_units(
     except orjson.JSONDecodeError as exc:
         reason = f"{path.name}: invalid JSON: {exc}"
         yield Unit(
-            Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw, reason)]),
+            Inbound(rejected=[RejectedInput(f"fhir:{context.fhir_source}", raw, reason)]),
             None,
             path.name,
         )
@@ -269,7 +273,9 @@ def json_units(
     if deep is not None:
         reason = f"{path.name}: {deep}"
         yield Unit(
-            Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", bounded_head(data), reason)]),
+            Inbound(
+                rejected=[RejectedInput(f"fhir:{context.fhir_source}", bounded_head(data), reason)]
+            ),
             None,
             path.name,
         )
@@ -277,12 +283,12 @@ def json_units(
     if isinstance(data, dict) and data.get("resourceType") == "Bundle":
         batch = FhirBatch()
         entries = list(bundle_entries(data, batch.skipped))
-        refused: list[Rejected] = []
+        refused: list[RejectedInput] = []
         for entry, _ in entries:
             why = too_deep(entry)
             if why is not None:
                 refused.append(
-                    Rejected(
+                    RejectedInput(
                         f"fhir:{context.fhir_source}", bounded_head(entry), f"{path.name}: {why}"
                     )
                 )
@@ -305,7 +311,7 @@ def json_units(
     else:
         reason = f"{path.name}: not a FHIR resource or Bundle (a JSON object)"
         yield Unit(
-            Inbound(rejected=[Rejected(f"fhir:{context.fhir_source}", raw, reason)]),
+            Inbound(rejected=[RejectedInput(f"fhir:{context.fhir_source}", raw, reason)]),
             None,
             path.name,
         )

@@ -65,8 +65,10 @@ log = logging.getLogger("gasgap.pipeline")
 
 
 @dataclass(frozen=True, slots=True)
-class Rejected:
-    """Input an adapter could not read: kept in quarantine with the reason."""
+class RejectedInput:
+    """The shell's record of raw input refused: the source, the raw bytes (or text)
+    and the reason, kept in quarantine. Built from an adapter's rejection
+    (``FhirRejection``, ``Hl7Rejection``) or from input no adapter could read."""
 
     source: str
     raw: bytes | str
@@ -78,7 +80,7 @@ class Inbound:
     """What an adapter made of one unit of input (a message, a file chunk, a poll page)."""
 
     readings: list[Reading] = field(default_factory=list)
-    rejected: list[Rejected] = field(default_factory=list)
+    rejected: list[RejectedInput] = field(default_factory=list)
     skipped_codes: Counter[str] = field(default_factory=Counter)
     ignored: int = 0
     #: What the patient register learnt from this input: names of one person, the
@@ -447,7 +449,7 @@ class Pipeline:
                 continue
             self._quarantine(
                 conn,
-                Rejected(f"reading:{r.source_system}", _reading_text(r), problem),
+                RejectedInput(f"reading:{r.source_system}", _reading_text(r), problem),
                 now,
                 report,
             )
@@ -563,7 +565,7 @@ class Pipeline:
 
     # --- people and housekeeping ------------------------------------------------------
 
-    def quarantine(self, rejected: Rejected, *, now: datetime) -> None:
+    def quarantine(self, rejected: RejectedInput, *, now: datetime) -> None:
         """Keep input that could not be read (a whole message the adapter refused)."""
         with self.db.begin() as conn:
             self._quarantine(conn, rejected, now, BatchReport())
@@ -607,7 +609,7 @@ class Pipeline:
         return removed
 
     def _quarantine(
-        self, conn: Connection, rejected: Rejected, now: datetime, report: BatchReport
+        self, conn: Connection, rejected: RejectedInput, now: datetime, report: BatchReport
     ) -> None:
         quarantine_store.quarantine(
             conn,

@@ -44,7 +44,7 @@ from monitor.ingest import SourceContext, inbound_from_fhir, inbound_from_hl7
 from monitor.logs import IdentifierGuard, setup_logging
 from monitor.metrics import Metrics
 from monitor.outbox import OutboxDispatcher
-from monitor.pipeline import BatchReport, Inbound, Pipeline, Rejected
+from monitor.pipeline import BatchReport, Inbound, Pipeline, RejectedInput
 from monitor.scheduling import (
     DISPATCH_EVERY,
     ESCALATION_EVERY,
@@ -165,7 +165,9 @@ class Service:
         try:
             inbound = inbound_from_hl7(raw, received_at=self.clock(), context=self.context)
         except Hl7Error as exc:
-            self.pipeline.quarantine(Rejected(f"hl7:{source}", raw, str(exc)), now=self.clock())
+            self.pipeline.quarantine(
+                RejectedInput(f"hl7:{source}", raw, str(exc)), now=self.clock()
+            )
             self.metrics.quarantined.labels(source=source).inc()
             raise
         inbound.rejected = collapse_alike(inbound.rejected)  # 5,000 alike OBX: one row
@@ -173,7 +175,7 @@ class Service:
             inbound.skipped_codes, len(inbound.readings), len(inbound.rejected)
         )
         if unreadable:  # nothing read, nothing refused: keep it whole rather than drop it
-            inbound.rejected.append(Rejected(f"hl7:{source}", raw, unreadable))
+            inbound.rejected.append(RejectedInput(f"hl7:{source}", raw, unreadable))
         report = self.accept(source, inbound)
         return AckDecision(
             *ack_for_batch(
@@ -185,7 +187,7 @@ class Service:
         """The MLLP listener's ``on_refused``: keep a message it could not hand on (over
         the size limit: its head) in quarantine."""
         source = self.context.hl7_source
-        self.pipeline.quarantine(Rejected(f"hl7:{source}", raw, reason), now=self.clock())
+        self.pipeline.quarantine(RejectedInput(f"hl7:{source}", raw, reason), now=self.clock())
         self.metrics.quarantined.labels(source=source).inc()
 
     def hook_reader(self, source: str) -> Callable[[HookDelivery], BatchReport]:
@@ -263,7 +265,7 @@ def _fhir_inbound(source: str, batch: FhirBatch | PollBatch) -> Inbound:
         return inbound_from_fhir(batch, source)
     return Inbound(
         readings=list(batch.readings),
-        rejected=[Rejected(f"fhir:{source}", r.raw, r.reason) for r in batch.rejections],
+        rejected=[RejectedInput(f"fhir:{source}", r.raw, r.reason) for r in batch.rejections],
         skipped_codes=batch.skipped_codes,
         ignored=sum(batch.skipped.values()),
     )

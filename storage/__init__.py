@@ -9,6 +9,8 @@ rolls back whole. Rows are mapped to ``monitor.engine.model`` types explicitly
 Modules, one idea each:
 
 - ``db``: ``open_database``, ``Database``, ``upgrade`` (migrations to head);
+- ``errors``: ``StorageError``, ``StorageUnavailable`` (a database that cannot be used
+  now, translated from the driver's error by every engine ``db`` builds);
 - ``tables``: the schema as Core metadata;
 - ``readings``: raw readings (idempotent by delivery, corrections supersede) and patients;
 - ``quarantine``: input refused by an adapter, with its reason;

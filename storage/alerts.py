@@ -18,6 +18,7 @@ from sqlalchemy.engine import Connection
 
 from monitor.engine.model import Alert, AlertEvent, AlertState
 from storage.db import insert_for
+from storage.errors import StorageError
 from storage.serialize import alert_to_row, event_to_row, row_to_alert, row_to_event
 from storage.tables import OPEN_ALERT_STATES, alerts
 from storage.tables import alert_events as events_table
@@ -26,7 +27,7 @@ _CLOSED_STATES = tuple(s.value for s in AlertState if not s.is_open)
 _PRIORITY_ORDER = sa.case({"high": 3, "medium": 2, "low": 1}, value=alerts.c.priority, else_=0)
 
 
-class DuplicateOpenAlert(ValueError):
+class DuplicateOpenAlert(StorageError, ValueError):
     """A second open alert for a patient and rule was about to be saved."""
 
     def __init__(self, alert: Alert, open_alert_id: str) -> None:

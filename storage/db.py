@@ -18,6 +18,10 @@ two processes do not both read, then both try to upgrade to a write lock and dea
 
 ``sqlite://`` (no path) is an in-memory database for replay: one connection shared by
 everything (``StaticPool``), gone when the process ends.
+
+Every engine built here translates a database that cannot be used now (unreachable,
+locked, timed out, gone) into ``storage.errors.StorageUnavailable``, naming the database
+with any password masked, whether it failed on connecting or inside a transaction.
 """
 
 from __future__ import annotations
@@ -34,6 +38,7 @@ from alembic.config import Config
 from sqlalchemy.engine import Connection, Engine
 from sqlalchemy.pool import StaticPool
 
+from storage.errors import translate
 from storage.locks import advisory_lock
 
 DEFAULT_URL = "sqlite:///gasgap.db"
@@ -82,11 +87,15 @@ def is_memory_sqlite(url: str | sa.URL) -> bool:
 
 
 def create_engine(url: str) -> Engine:
-    """An engine with gasgap's connection settings for the URL's dialect."""
+    """An engine with gasgap's connection settings for the URL's dialect, whose
+    errors of a database that cannot be used now are ``StorageUnavailable``."""
     parsed = sa.make_url(url)
     if parsed.get_backend_name() == "sqlite":
-        return _sqlite_engine(parsed)
-    return sa.create_engine(parsed, pool_pre_ping=True)
+        engine = _sqlite_engine(parsed)
+    else:
+        engine = sa.create_engine(parsed, pool_pre_ping=True)
+    sa.event.listen(engine, "handle_error", translate, retval=True)
+    return engine
 
 
 def _sqlite_engine(url: sa.URL) -> Engine:

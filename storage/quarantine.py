@@ -258,7 +258,7 @@ def collapse_alike(items: Sequence[Any]) -> list[Any]:
     """Alike rejections (same source, payload and reason key) as one each, before they
     reach a transaction: the first of each group, its reason cut to ``MAX_REASON_CHARS``
     and saying how many more there were. ``items`` are dataclasses with ``source``,
-    ``raw`` and ``reason`` (the pipeline's ``Rejected``); order is kept. Linear in the
+    ``raw`` and ``reason`` (the pipeline's ``RejectedInput``); order is kept. Linear in the
     number of items (each reason is read only up to its first few hundred characters)."""
     groups: dict[tuple[str, str, str], list[Any]] = {}
     for item in items:

@@ -8,6 +8,6 @@ notifications -> canonical ``Reading`` values.
 - ``strict``: full validation with fhir.resources (strict mode, tests)
 """
 
-from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, Rejection
+from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, FhirRejection
 
-__all__ = ["FhirBatch", "FhirReadingBuilder", "Rejection"]
+__all__ = ["FhirBatch", "FhirReadingBuilder", "FhirRejection"]

@@ -45,6 +45,7 @@ import orjson
 from adapters.codes import LOINC, CodeTable
 from adapters.fhir.poller import BasicAuth, BearerAuth
 from adapters.fhir.smart import SmartAuth, SmartAuthError
+from monitor.engine.errors import MonitorError
 from monitor.engine.model import Kind
 
 log = logging.getLogger("gasgap.fhir.bulk")
@@ -63,7 +64,7 @@ class ExportLevel(StrEnum):
     GROUP = "group"
 
 
-class BulkExportError(RuntimeError):
+class BulkExportError(MonitorError, RuntimeError):
     """The export cannot go on; the message says which step failed and what to do."""
 
 

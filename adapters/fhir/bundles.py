@@ -17,7 +17,7 @@ from typing import Any
 
 import orjson
 
-from adapters.fhir.observations import CONTEXT_TYPES, FhirBatch, FhirReadingBuilder, Rejection
+from adapters.fhir.observations import CONTEXT_TYPES, FhirBatch, FhirReadingBuilder, FhirRejection
 
 
 def bundle_entries(
@@ -70,11 +70,11 @@ def read_bundle_bytes(
         data = orjson.loads(body)
     except orjson.JSONDecodeError as exc:
         batch = FhirBatch()
-        batch.rejections.append(Rejection(source, f"{source}: invalid JSON: {exc}", body))
+        batch.rejections.append(FhirRejection(source, f"{source}: invalid JSON: {exc}", body))
         return batch
     if not isinstance(data, dict):
         batch = FhirBatch()
-        batch.rejections.append(Rejection(source, f"{source}: not a JSON object", body))
+        batch.rejections.append(FhirRejection(source, f"{source}: not a JSON object", body))
         return batch
     return read_bundle(builder, data)
 
@@ -121,7 +121,7 @@ def read_ndjson(builder: FhirReadingBuilder, path: str | Path) -> FhirBatch:
     for number, item in iter_ndjson(path):
         if isinstance(item, bytes):
             batch.rejections.append(
-                Rejection(f"{name}:{number}", ndjson_line_reason(number, item), item)
+                FhirRejection(f"{name}:{number}", ndjson_line_reason(number, item), item)
             )
             continue
         before = len(batch.rejections)
@@ -129,5 +129,5 @@ def read_ndjson(builder: FhirReadingBuilder, path: str | Path) -> FhirBatch:
         builder.read(item, into=batch)
         for i in range(before, len(batch.rejections)):
             rej = batch.rejections[i]
-            batch.rejections[i] = Rejection(rej.source, f"line {number}: {rej.reason}", rej.raw)
+            batch.rejections[i] = FhirRejection(rej.source, f"line {number}: {rej.reason}", rej.raw)
     return batch

@@ -8,7 +8,7 @@ can refuse such a resource with a reason before reading it:
 
 - the subscription hook (``monitor/web/hooks.py``) does so for each delivered resource;
 - ``gasgap ingest`` / replay: call ``too_deep(item)`` on each parsed NDJSON line or
-  Bundle entry in ``monitor/ingest.py`` and turn a reason into a ``Rejected``;
+  Bundle entry in ``monitor/ingest.py`` and turn a reason into a ``RejectedInput``;
 - the poller: ``split_too_deep(resources)`` on each search page before
   ``builder.read_all``, quarantining what it refuses, so the watermark moves on.
 

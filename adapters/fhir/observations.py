@@ -57,7 +57,7 @@ from adapters.codes import (
 )
 from adapters.fhir import resources as r
 from monitor.engine import identity
-from monitor.engine.errors import InvalidReading
+from monitor.engine.errors import InvalidReading, MonitorError
 from monitor.engine.identity import (
     Dispute,
     PatientFacts,
@@ -84,8 +84,9 @@ STATUS_MAP: dict[str, Status] = {
 
 
 @dataclass(frozen=True, slots=True)
-class Rejection:
-    """One resource (or NDJSON line) refused, why, and its raw bytes for quarantine."""
+class FhirRejection:
+    """The FHIR adapter's answer for one resource (or NDJSON line) it refused: where,
+    why, and its raw bytes for the caller to quarantine."""
 
     source: str
     reason: str
@@ -124,7 +125,7 @@ class FhirBatch:
     """
 
     readings: list[Reading] = field(default_factory=list)
-    rejections: list[Rejection] = field(default_factory=list)
+    rejections: list[FhirRejection] = field(default_factory=list)
     skipped_codes: Counter[str] = field(default_factory=Counter)
     skipped: Counter[str] = field(default_factory=Counter)
     links: list[PatientLink] = field(default_factory=list)
@@ -162,8 +163,9 @@ class EncounterContext:
     location: Location | None = None
 
 
-class Rejected(ValueError):
-    """Internal: a resource cannot be read; the message is the rejection reason."""
+class ObservationRefused(MonitorError, ValueError):
+    """Raised inside the FHIR adapter when a resource cannot be read; the message is
+    the reason, which the builder turns into a ``FhirRejection``."""
 
 
 def fhir_instant(text: str, where: str) -> datetime:
@@ -173,13 +175,15 @@ def fhir_instant(text: str, where: str) -> datetime:
     minutes and will not guess a zone.
     """
     if "T" not in text:
-        raise Rejected(f"{where} {text!r} has no time of day (a date alone is not enough)")
+        raise ObservationRefused(
+            f"{where} {text!r} has no time of day (a date alone is not enough)"
+        )
     try:
         parsed = datetime.fromisoformat(text.replace("Z", "+00:00"))
     except ValueError as exc:
-        raise Rejected(f"{where} {text!r} is not a FHIR dateTime: {exc}") from exc
+        raise ObservationRefused(f"{where} {text!r} is not a FHIR dateTime: {exc}") from exc
     if parsed.tzinfo is None or parsed.utcoffset() is None:
-        raise Rejected(f"{where} {text!r} has no UTC offset")
+        raise ObservationRefused(f"{where} {text!r} has no UTC offset")
     return parsed.astimezone(UTC)
 
 
@@ -443,7 +447,7 @@ class FhirReadingBuilder:
 
                 problem = validation_problem(resource)
                 if problem:
-                    raise Rejected(f"{label} is not valid FHIR R4: {problem}")
+                    raise ObservationRefused(f"{label} is not valid FHIR R4: {problem}")
             if rtype == "Patient":
                 self._read_patient(resource, full_url, batch)
             elif rtype == "Encounter":
@@ -455,11 +459,11 @@ class FhirReadingBuilder:
                 self._panel_members(resource, batch)
             else:
                 self._read_observation(resource, full_url, batch, received_at)
-        except Rejected as exc:
-            batch.rejections.append(Rejection(label, str(exc), canonical_json(resource)))
+        except ObservationRefused as exc:
+            batch.rejections.append(FhirRejection(label, str(exc), canonical_json(resource)))
         except ValidationError as exc:
             batch.rejections.append(
-                Rejection(label, f"{label} {_pydantic_reason(exc)}", canonical_json(resource))
+                FhirRejection(label, f"{label} {_pydantic_reason(exc)}", canonical_json(resource))
             )
         return batch
 
@@ -492,13 +496,15 @@ class FhirReadingBuilder:
         keys = [k for k in (self._ref_key(label) if pat.id else None, self._ref_key(full_url)) if k]
         keys.extend(self._identifier_keys(pat.identifier))
         if not keys:
-            raise Rejected(f"{label} has no id, fullUrl nor identifier: it names nobody")
+            raise ObservationRefused(f"{label} has no id, fullUrl nor identifier: it names nobody")
         birth: date | None = None
         if pat.birthDate and len(pat.birthDate) == 10:
             try:
                 birth = date.fromisoformat(pat.birthDate)
             except ValueError as exc:
-                raise Rejected(f"{label} birthDate {pat.birthDate!r} is not a date") from exc
+                raise ObservationRefused(
+                    f"{label} birthDate {pat.birthDate!r} is not a date"
+                ) from exc
         at = _meta_time(pat.meta)
         self._link(batch, keys, at)
         if birth is not None:
@@ -561,7 +567,9 @@ class FhirReadingBuilder:
         obs = r.Observation.model_validate(resource)
         obs_id = obs.id or (full_url.rsplit(":", 1)[-1].rsplit("/", 1)[-1] if full_url else None)
         if not obs_id:
-            raise Rejected("Observation without id (and no fullUrl) cannot be given a stable id")
+            raise ObservationRefused(
+                "Observation without id (and no fullUrl) cannot be given a stable id"
+            )
         label = f"Observation/{obs_id}"
         status = STATUS_MAP.get(obs.status)
         if status is None:
@@ -652,11 +660,11 @@ class FhirReadingBuilder:
                         known_at=known_at,
                     )
                 )
-            except Rejected as exc:
-                batch.rejections.append(Rejection(where, str(exc), canonical_json(resource)))
+            except ObservationRefused as exc:
+                batch.rejections.append(FhirRejection(where, str(exc), canonical_json(resource)))
             except InvalidReading as exc:
                 batch.rejections.append(
-                    Rejection(where, f"{where} {exc}", canonical_json(resource))
+                    FhirRejection(where, f"{where} {exc}", canonical_json(resource))
                 )
 
     # --- pieces ------------------------------------------------------------------
@@ -706,15 +714,19 @@ class FhirReadingBuilder:
             return fhir_instant(obs.effectivePeriod.start, f"{label} effectivePeriod.start")
         if obs.effectiveInstant:
             return fhir_instant(obs.effectiveInstant, f"{label} effectiveInstant")
-        raise Rejected(f"{label} effective[x] is missing: gasgap needs the time of the sample")
+        raise ObservationRefused(
+            f"{label} effective[x] is missing: gasgap needs the time of the sample"
+        )
 
     def _patient(self, obs: r.Observation, label: str, batch: FhirBatch) -> PatientContext:
         subject = obs.subject
         if subject is None:
-            raise Rejected(f"{label} subject is missing: gasgap needs the patient")
+            raise ObservationRefused(f"{label} subject is missing: gasgap needs the patient")
         keys = self._subject_keys(subject)
         if not keys:
-            raise Rejected(f"{label} subject names no patient (no reference or identifier)")
+            raise ObservationRefused(
+                f"{label} subject names no patient (no reference or identifier)"
+            )
         self._link(batch, keys, _meta_time(obs.meta))
         person = self.register.person(keys[0])
         return PatientContext(person.key, person.birth_date, person.location)
@@ -754,7 +766,7 @@ class FhirReadingBuilder:
     ) -> None:
         comparator = (q.comparator or "").strip()
         if comparator not in COMPARATORS:
-            raise Rejected(
+            raise ObservationRefused(
                 f"{where} valueQuantity.comparator {comparator!r} is not a FHIR "
                 "comparator (<, <=, >=, >)"
             )
@@ -799,7 +811,7 @@ class FhirReadingBuilder:
                         return kind, value, None, _num(number), q.unit
                     except InvalidReading:
                         pass
-                raise Rejected(
+                raise ObservationRefused(
                     f"{where} valueQuantity.{field_name} {unit_text!r} "
                     f"is not a unit gasgap knows for {kind}"
                 ) from None
@@ -808,24 +820,28 @@ class FhirReadingBuilder:
             try:
                 number, unit = parse_number(item.text)
             except InvalidReading:
-                raise Rejected(
+                raise ObservationRefused(
                     f"{where} valueString {item.text!r} is the wrong value type: a {kind} "
                     f"is sent as valueQuantity (a number with its unit)"
                 ) from None
             if not unit:
-                raise Rejected(
+                raise ObservationRefused(
                     f"{where} valueString {item.text!r} is the wrong value type: a {kind} "
                     f"is sent as valueQuantity, and this text names no unit"
                 )
             try:
                 return kind, to_canonical(kind, number, unit), None, item.text, unit
             except InvalidReading as exc:
-                raise Rejected(f"{where} valueString {item.text!r}: {exc.rule}") from None
+                raise ObservationRefused(f"{where} valueString {item.text!r}: {exc.rule}") from None
         if item.concept is not None and status is not Status.RETRACTED:
-            raise Rejected(f"{where} valueCodeableConcept is not a number, but {kind} needs one")
+            raise ObservationRefused(
+                f"{where} valueCodeableConcept is not a number, but {kind} needs one"
+            )
         if status is Status.RETRACTED:
             return kind, None, None, "", ""
-        raise Rejected(f"{where} value[x] is missing (a {obs.status} {kind} needs a value)")
+        raise ObservationRefused(
+            f"{where} value[x] is missing (a {obs.status} {kind} needs a value)"
+        )
 
     def _device(
         self, item: _Item, status: Status, where: str
@@ -848,10 +864,12 @@ class FhirReadingBuilder:
             device = self.codes.device(None, None, text)
             if device:
                 return Kind.O2_DEVICE, None, device.value, text, ""
-            raise Rejected(f"{where} value {text!r} names no O2 device gasgap knows")
+            raise ObservationRefused(f"{where} value {text!r} names no O2 device gasgap knows")
         if status is Status.RETRACTED:
             return Kind.O2_DEVICE, None, None, "", ""
-        raise Rejected(f"{where} valueCodeableConcept is missing: an O2 device reading needs one")
+        raise ObservationRefused(
+            f"{where} valueCodeableConcept is missing: an O2 device reading needs one"
+        )
 
 
 def _meta_time(meta: r.Meta | None) -> datetime | None:
@@ -861,7 +879,7 @@ def _meta_time(meta: r.Meta | None) -> datetime | None:
 def _instant_or_none(text: str) -> datetime | None:
     try:
         return fhir_instant(text, "time")
-    except Rejected:
+    except ObservationRefused:
         return None
 
 

@@ -33,13 +33,14 @@ from adapters.fhir.limits import split_too_deep
 from adapters.fhir.observations import (
     FhirBatch,
     FhirReadingBuilder,
-    Rejected,
-    Rejection,
+    FhirRejection,
+    ObservationRefused,
     content_hash,
     fhir_instant,
     reference_key,
 )
 from adapters.fhir.smart import SmartAuth, SmartAuthError
+from monitor.engine.errors import MonitorError
 from monitor.engine.model import Kind, Reading
 
 log = logging.getLogger("gasgap.fhir.poller")
@@ -48,7 +49,7 @@ _RETRY_STATUS = {429, 500, 502, 503, 504}
 _MAX_BACKOFF_S = 60.0
 
 
-class FhirSourceError(RuntimeError):
+class FhirSourceError(MonitorError, RuntimeError):
     """The FHIR server could not be read (after retries, or with a non-retryable answer)."""
 
 
@@ -81,7 +82,7 @@ class PollBatch:
     """
 
     readings: list[Reading] = field(default_factory=list)
-    rejections: list[Rejection] = field(default_factory=list)
+    rejections: list[FhirRejection] = field(default_factory=list)
     skipped_codes: Counter[str] = field(default_factory=Counter)
     skipped: Counter[str] = field(default_factory=Counter)
     watermark: datetime | None = None
@@ -181,7 +182,7 @@ class FhirPoller:
         # watermark moves past it, so the good results behind it still arrive.
         kept, deep = split_too_deep([res for res, _ in found])
         result.rejections += [
-            Rejection(f"{self.base_url}/Observation", reason, head.encode())
+            FhirRejection(f"{self.base_url}/Observation", reason, head.encode())
             for _, reason, head in deep
         ]
         found = [found[i] for i in kept]
@@ -324,7 +325,7 @@ def _later(
         return current
     try:
         seen = fhir_instant(str(stamp), "meta.lastUpdated")
-    except Rejected:
+    except ObservationRefused:
         skipped["meta.lastUpdated unreadable (watermark not moved by it)"] += 1
         return current
     return seen if current is None or seen > current else current

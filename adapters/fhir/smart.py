@@ -49,6 +49,8 @@ from cryptography.hazmat.primitives.asymmetric import ec, rsa
 from jwt.algorithms import ECAlgorithm, RSAAlgorithm
 from pydantic import BaseModel, ConfigDict, Field
 
+from monitor.engine.errors import MonitorError
+
 log = logging.getLogger("gasgap.fhir.smart")
 
 ASSERTION_TYPE = "urn:ietf:params:oauth:client-assertion-type:jwt-bearer"
@@ -120,7 +122,7 @@ class SmartSettings(BaseModel):
         return self
 
 
-class SmartAuthError(RuntimeError):
+class SmartAuthError(MonitorError, RuntimeError):
     """A token could not be had. ``error`` is the OAuth error code when the server gave
     one (``invalid_client``, ``invalid_scope`` ...); ``retryable`` says whether asking
     again later may help (a transport failure or a 5xx, not a refusal)."""
@@ -131,7 +133,7 @@ class SmartAuthError(RuntimeError):
         self.retryable = retryable
 
 
-class SmartKeyError(ValueError):
+class SmartKeyError(MonitorError, ValueError):
     """The private key cannot be used; the message names the file or variable and why."""
 
 

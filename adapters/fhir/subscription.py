@@ -30,6 +30,7 @@ import orjson
 
 from adapters.fhir.bundles import bundle_entries
 from adapters.fhir.observations import FhirBatch, FhirReadingBuilder
+from monitor.engine.errors import MonitorError
 
 _JSON_TYPES = ("application/fhir+json", "application/json", "application/json+fhir", "text/json")
 _STATUS_TYPES = ("SubscriptionStatus", "Parameters")
@@ -44,7 +45,7 @@ class HookKind(StrEnum):
     """A handshake or heartbeat: the subscription is alive, nothing changed."""
 
 
-class HookPayloadError(ValueError):
+class HookPayloadError(MonitorError, ValueError):
     """The delivery cannot be read; the message says why (answer 400 with it)."""
 
 

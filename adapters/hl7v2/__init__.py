@@ -11,7 +11,7 @@ from adapters.hl7v2.ack import Hl7Error, build_ack
 from adapters.hl7v2.files import iter_hl7_file
 from adapters.hl7v2.framing import MessageTooLarge, MllpFramer, frame
 from adapters.hl7v2.mllp import AckDecision, MllpListener
-from adapters.hl7v2.parse import ParsedMessage, Rejection, parse_oru
+from adapters.hl7v2.parse import Hl7Rejection, ParsedMessage, parse_oru
 
 __all__ = [
     "AckDecision",
@@ -20,7 +20,7 @@ __all__ = [
     "MllpFramer",
     "MllpListener",
     "ParsedMessage",
-    "Rejection",
+    "Hl7Rejection",
     "build_ack",
     "frame",
     "iter_hl7_file",

@@ -65,8 +65,12 @@ NOT_NOW = "not stored: gasgap cannot store messages at the moment; resend later"
 #: Answer for a message that broke the reader in a way it did not foresee, once kept.
 KEPT_FOR_REVIEW = "could not be processed; kept in quarantine for review"
 
+#: By class name, anywhere in the exception's classes or its chain: storage's own
+#: ``StorageUnavailable`` (what every gasgap engine raises for a database it cannot use
+#: now), and the drivers' errors for code that reaches a database some other way.
 _TRANSIENT_NAMES = frozenset(
     {
+        "StorageUnavailable",
         "OperationalError",
         "InterfaceError",
         "DisconnectionError",
@@ -86,9 +90,9 @@ _TRANSIENT_NAMES = frozenset(
 
 def is_transient(exc: BaseException) -> bool:
     """True for a failure of storage that a later attempt may not meet: the database
-    down, locked, restarting or timing out (SQLAlchemy, sqlite3 and psycopg errors are
-    recognised by class name, so this module needs none of them), or an OS-level
-    connection failure."""
+    down, locked, restarting or timing out (``storage.errors.StorageUnavailable``, and
+    SQLAlchemy, sqlite3 and psycopg errors, are recognised by class name: an adapter
+    imports no storage and no driver), or an OS-level connection failure."""
     if isinstance(exc, (OSError, TimeoutError)):
         return True
     seen: set[int] = set()

@@ -108,8 +108,10 @@ _DTM = re.compile(r"^(\d{4,14})(\.\d{1,4})?(?:([+-])(\d{2})(\d{2}))?$")
 
 
 @dataclass(frozen=True, slots=True)
-class Rejection:
-    """One part of a message that was not taken, and why."""
+class Hl7Rejection:
+    """The HL7 v2 parser's answer for one part of a message it did not take (an OBX,
+    a PID field): where, and why. The caller quarantines the whole message with it;
+    ``ParsedMessage.warnings`` uses the same shape for parts taken with a caveat."""
 
     where: str
     reason: str
@@ -125,9 +127,9 @@ class ParsedMessage:
     version: str
     readings: list[Reading] = field(default_factory=list)
     skipped_codes: Counter[str] = field(default_factory=Counter)
-    rejected: list[Rejection] = field(default_factory=list)
+    rejected: list[Hl7Rejection] = field(default_factory=list)
     ignored: Counter[str] = field(default_factory=Counter)
-    warnings: list[Rejection] = field(default_factory=list)
+    warnings: list[Hl7Rejection] = field(default_factory=list)
     #: One link per PID: every PID-3 identifier names the same person (for the register).
     links: list[PatientLink] = field(default_factory=list)
     #: Birth date (PID-7) and location (PV1-3) as of the message time.
@@ -499,7 +501,7 @@ def _drop_ambiguous(taken: list[tuple[str, Reading]], out: ParsedMessage) -> Non
         else:
             others = ", ".join(p for p in places if p != where)
             out.rejected.append(
-                Rejection(
+                Hl7Rejection(
                     f"{where}-3", f"same OBR-3, OBX-3 and OBX-4 as {others}: ambiguous result"
                 )
             )
@@ -542,16 +544,16 @@ def _read_order(
         facts = _order_facts(ctx, order, out)
     except ValueError as exc:
         for index, _obx in order.obxs:
-            out.rejected.append(Rejection(f"OBX[{index}]", str(exc)))
+            out.rejected.append(Hl7Rejection(f"OBX[{index}]", str(exc)))
         return
     for index, obx in order.obxs:
         where = f"OBX[{index}]"
         try:
             reading = _read_obx(ctx, facts, obx, where, out)
         except _Bad as exc:
-            out.rejected.append(Rejection(exc.where, exc.reason))
+            out.rejected.append(Hl7Rejection(exc.where, exc.reason))
         except InvalidReading as exc:  # Reading's own checks: range, empty ids, ...
-            out.rejected.append(Rejection(_field_of(exc, where), str(exc)))
+            out.rejected.append(Hl7Rejection(_field_of(exc, where), str(exc)))
         else:
             if reading is not None:
                 taken.append((where, reading))
@@ -586,7 +588,7 @@ def _order_facts(ctx: _Context, order: _Order, out: ParsedMessage) -> _OrderFact
     birth_raw = seg.get(order.pid, 7)
     birth = _parse_date(birth_raw) if birth_raw else None
     if birth_raw and birth is None:
-        out.warnings.append(Rejection("PID-7", "birth date is not a full date; age unknown"))
+        out.warnings.append(Hl7Rejection("PID-7", "birth date is not a full date; age unknown"))
     location = _location(seg, order.pv1)
     link = PatientLink(tuple(keys), f"hl7:{ctx.source_system}", ctx.message_time)
     if link not in out.links:
@@ -644,7 +646,7 @@ def _read_obx(
         out.ignored[status_code] += 1
         if status_code == "U":
             out.warnings.append(
-                Rejection(
+                Hl7Rejection(
                     f"{where}-11",
                     "U without a value: earlier preliminary result not promoted; resend it as F",
                 )

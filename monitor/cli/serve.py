@@ -166,7 +166,7 @@ def _run_alerts(args: argparse.Namespace) -> int:
 
 def _run_alerts_ack(args: argparse.Namespace) -> int:
     from monitor.cli.common import open_site
-    from monitor.engine.errors import MonitorError
+    from monitor.engine.errors import IllegalTransition
 
     by = " ".join(args.by.split())
     if not by:
@@ -176,7 +176,7 @@ def _run_alerts_ack(args: argparse.Namespace) -> int:
         alert = shell.pipeline.acknowledge(args.alert_id, by, now=datetime.now(UTC))
     except LookupError as exc:
         return fail(str(exc))
-    except MonitorError as exc:
+    except IllegalTransition as exc:
         return fail(f"flag {args.alert_id} cannot be acknowledged: {exc}")
     finally:
         shell.close()

@@ -15,7 +15,7 @@ from fastapi import APIRouter, Depends, HTTPException, Query, Request
 from fastapi.responses import HTMLResponse
 from pydantic import BaseModel, Field, field_validator
 
-from monitor.engine.errors import MonitorError
+from monitor.engine.errors import IllegalTransition
 from monitor.engine.model import ADVISORY, Alert, AlertEvent
 from monitor.records import derivation_json
 from monitor.web.board import display_for
@@ -162,7 +162,7 @@ def acknowledge(request: Request, alert_id: str, body: AcknowledgeBody) -> dict[
         alert = ctx.pipeline.acknowledge(alert_id, body.by, now=ctx.clock())
     except LookupError as exc:
         raise HTTPException(404, str(exc)) from None
-    except MonitorError as exc:
+    except IllegalTransition as exc:
         raise HTTPException(409, f"flag {alert_id!r} cannot be acknowledged: {exc}") from None
     log.info("flag acknowledged through the API")
     return {"flag": alert_json(alert), "advisory": ADVISORY}

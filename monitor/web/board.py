@@ -29,7 +29,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from fastapi.templating import Jinja2Templates
 from jinja2 import Environment, FileSystemLoader, select_autoescape
 
-from monitor.engine.errors import MonitorError
+from monitor.engine.errors import IllegalTransition, MonitorError
 from monitor.engine.model import ADVISORY, Alert, Derivation, Location
 from monitor.engine.wording import patient_display
 from monitor.web.board_view import (
@@ -498,7 +498,7 @@ async def acknowledge_patient(request: Request) -> Response:
             done += 1
         except LookupError:
             continue
-        except MonitorError:  # closed or already acknowledged meanwhile: nothing to do
+        except IllegalTransition:  # closed or already acknowledged meanwhile: nothing to do
             continue
     log.info("%d flag(s) acknowledged on the board", done)
     note = "acknowledged" if done else "not-open"
@@ -523,7 +523,7 @@ async def acknowledge(request: Request, alert_id: str) -> Response:
         ctx.pipeline.acknowledge(alert_id, by, now=ctx.clock())
     except LookupError:
         return RedirectResponse(_with_note(back, "unknown-flag"), 303)
-    except MonitorError:
+    except IllegalTransition:
         return RedirectResponse(_with_note(back, "not-open"), 303)
     log.info("flag acknowledged on the board")
     response = RedirectResponse(_with_note(back, "acknowledged", n=1), 303)

@@ -157,11 +157,11 @@ def screen(delivery: HookDelivery) -> tuple[HookDelivery, list[tuple[str, str]]]
 
 
 def _keep(ctx: Any, source: str, refused: list[tuple[str, str]]) -> None:
-    from monitor.pipeline import Rejected  # the pipeline's own type for refused input
+    from monitor.pipeline import RejectedInput  # the pipeline's own type for refused input
 
     now = ctx.clock()
     for raw, reason in refused:
-        ctx.pipeline.quarantine(Rejected(f"fhir:{source}", raw, reason), now=now)
+        ctx.pipeline.quarantine(RejectedInput(f"fhir:{source}", raw, reason), now=now)
         log.info("subscription delivery for %s: refused, kept in quarantine", source)
     ctx.metrics.quarantined.labels(source=source).inc(len(refused))
 

@@ -17,7 +17,7 @@ import pytest
 
 from monitor.engine.model import FiO2Source, Kind, QualityFlag, Specimen, Status
 from monitor.engine.pairing import PairingSettings
-from monitor.pipeline import Inbound, Pipeline, PipelineSettings, Rejected, Routing
+from monitor.pipeline import Inbound, Pipeline, PipelineSettings, RejectedInput, Routing
 from storage import alerts as alerts_store
 from storage import derivations as derivations_store
 from storage import outbox
@@ -233,7 +233,7 @@ def test_rejected_input_is_kept_with_its_reason_and_the_rest_is_stored(
 
     inbound = Inbound(
         gas(T0, 90, panel="G1", fio2_value=0.21),
-        rejected=[Rejected("hl7:lab", b"MSH|broken", "OBX[2]-5: value 'x' is not a number")],
+        rejected=[RejectedInput("hl7:lab", b"MSH|broken", "OBX[2]-5: value 'x' is not a number")],
     )
     report = pipeline.accept(inbound, now=T0 + minutes(20))
     assert report.quarantined == 1 and report.stored == 3
