@@ -29,7 +29,6 @@ import base64
 import hashlib
 import json
 import logging
-import os
 import re
 import secrets
 import stat
@@ -147,8 +146,8 @@ def load_private_key(
 ) -> PrivateKey:
     """The private key named by the settings, checked against the algorithm.
 
-    ``lookup`` reads a named secret (default: the environment); the service passes one
-    that also reads its secrets file. A PEM in a variable may have its newlines written
+    ``lookup`` reads a named secret; the composition root passes one that reads the
+    environment, else the site's secrets file. A PEM in a variable may have its newlines written
     as ``\\n``.
     """
     if settings.private_key_file is not None:
@@ -163,9 +162,12 @@ def load_private_key(
     else:
         name = str(settings.private_key_env)
         where = f"environment variable {name}"
-        get = lookup or (lambda n: os.environ.get(n, ""))
+        if lookup is None:
+            # secrets are resolved by the composition root (environment, else the
+            # secrets file); an adapter never reads the process environment itself
+            raise SmartKeyError(f"{where}: no secret lookup was given to read it with")
         try:
-            text = get(name)
+            text = lookup(name)
         except Exception as exc:  # the service's secret lookup names what is missing
             raise SmartKeyError(f"{where}: {exc}") from None
         if not text:
