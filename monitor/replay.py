@@ -531,7 +531,7 @@ def deliver_captured(
     (``monitor.outbox.OutboxDispatcher``), as the service would; returns how many were
     sent. The clock is the end of the simulated feed, so every item is due."""
     from monitor.bootstrap import Secrets, build_channels
-    from monitor.delivery import OutboxDispatcher
+    from monitor.outbox.dispatcher import OutboxDispatcher
 
     channels = build_channels(config, Secrets(secrets_file))
     end = result.counts.last_record or datetime.now(UTC)

@@ -32,8 +32,8 @@ def _command_modules() -> list[Callable[[Subparsers], None]]:
     from monitor.cli.replay import add_replay_command
     from monitor.cli.serve import add_serve_commands
     from monitor.cli.fhir import add_fhir_commands
-    from monitor.cli_quarantine import add_quarantine_commands
-    from monitor.cli_records import add_record_commands
+    from monitor.cli.quarantine import add_quarantine_commands
+    from monitor.cli.records import add_record_commands
 
     return [
         add_calc_command,
