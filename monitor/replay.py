@@ -40,7 +40,7 @@ if TYPE_CHECKING:
 from monitor.engine.model import ADVISORY, AlertEvent, AlertState, Priority
 from monitor.ingest import SourceContext, Unit, file_kind, merged_units
 from monitor.pipeline import Pipeline, PipelineSettings
-from monitor.records import iso_utc
+from monitor.shapes import iso_utc
 from storage import derivations as derivations_store
 from storage import outbox as outbox_store
 from storage import readings as readings_store

@@ -21,10 +21,11 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-from collections.abc import Sequence
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
+
+from monitor.shapes import iso_utc, payload_text, quarantine_item_json
 
 EXIT_FAILED = 1
 EXIT_CONFIG = 3
@@ -90,33 +91,6 @@ def _open(args: argparse.Namespace) -> tuple[Any, Any]:
     return config, open_db(config, Secrets(args.secrets_file))
 
 
-def _iso(value: datetime | None) -> str | None:
-    return None if value is None else value.astimezone(UTC).isoformat(timespec="seconds")
-
-
-def item_summary(item: Any) -> dict[str, Any]:
-    """One item as JSON (no payload): what the list, ``show`` and the API print."""
-    return {
-        "id": item.id,
-        "source": item.source,
-        "received_at": _iso(item.received_at),
-        "reason": item.reason,
-        "occurrences": item.occurrences,
-        "payload_bytes": item.payload_size,
-        "truncated": item.truncated,
-        "reprocessed_at": _iso(item.resolved_at),
-        "reprocess_outcome": item.resolution,
-    }
-
-
-def payload_text(raw: bytes | str | None) -> str:
-    """The payload as text for a person (HL7 segments on their own lines)."""
-    if raw is None:
-        return ""
-    text = raw.decode("utf-8", "replace") if isinstance(raw, bytes) else raw
-    return text.replace("\r\n", "\n").replace("\r", "\n")
-
-
 def _run_list(args: argparse.Namespace) -> int:
     from storage.quarantine import list_quarantine
 
@@ -130,12 +104,12 @@ def _run_list(args: argparse.Namespace) -> int:
         db.dispose()
     for item in items:
         if args.json:
-            print(json.dumps(item_summary(item)))
+            print(json.dumps(quarantine_item_json(item)))
             continue
         times = f" x{item.occurrences}" if item.occurrences > 1 else ""
         done = " [re-processed]" if item.resolved_at else ""
         print(
-            f"{item.id:>7}  {_iso(item.received_at)}  {item.source:<14} "
+            f"{item.id:>7}  {iso_utc(item.received_at, timespec='seconds')}  {item.source:<14} "
             f"{item.payload_size:>8} B{times}{done}  {item.reason[:100]}"
         )
     if not items:
@@ -154,7 +128,7 @@ def _run_show(args: argparse.Namespace) -> int:
         db.dispose()
     if item is None:
         return _fail(f"no quarantined item {args.id}", EXIT_FAILED)
-    print(json.dumps(item_summary(item), indent=2))
+    print(json.dumps(quarantine_item_json(item), indent=2))
     if args.raw:
         print("--- payload" + (" (cut at the storage limit)" if item.truncated else "") + " ---")
         print(payload_text(item.raw))
@@ -283,14 +257,3 @@ def _run_purge(args: argparse.Namespace) -> int:
         db.dispose()
     print(f"{removed} quarantined item(s) deleted")
     return 0
-
-
-def main(argv: Sequence[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="gasgap")
-    add_quarantine_commands(parser.add_subparsers(dest="command", required=True))
-    args = parser.parse_args(argv)
-    return int(args.run(args))
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

@@ -179,7 +179,7 @@ def _send(shell: Shell) -> RoundReport:
 
 def series_row(derivation: Derivation, version: int) -> dict[str, Any]:
     """One row of ``gasgap patient --json``: the API's shape plus the stored version."""
-    from monitor.records import derivation_json
+    from monitor.shapes import derivation_json
 
     return derivation_json(derivation) | {"version": version}
 

@@ -182,4 +182,3 @@ def _run_alerts_ack(args: argparse.Namespace) -> int:
         shell.close()
     print(f"flag {alert.alert_id} acknowledged by {alert.acknowledged_by}")
     return 0
-

@@ -8,7 +8,7 @@ the advisory sentence. Patient keys travel in paths percent-encoded (they may ho
 from __future__ import annotations
 
 import logging
-from datetime import UTC, datetime
+from datetime import datetime
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, HTTPException, Query, Request
@@ -17,7 +17,7 @@ from pydantic import BaseModel, Field, field_validator
 
 from monitor.engine.errors import MonitorError
 from monitor.engine.model import ADVISORY, Alert, AlertEvent
-from monitor.records import derivation_json
+from monitor.shapes import derivation_json, iso_utc
 from monitor.web.board import display_for
 from monitor.web.security import require_api_token
 from storage import alerts as alerts_store
@@ -45,10 +45,6 @@ class AcknowledgeBody(BaseModel):
         return cleaned
 
 
-def _iso(value: datetime | None) -> str | None:
-    return None if value is None else value.astimezone(UTC).isoformat()
-
-
 def alert_json(alert: Alert) -> dict[str, Any]:
     return {
         "id": alert.alert_id,
@@ -57,15 +53,15 @@ def alert_json(alert: Alert) -> dict[str, Any]:
         "priority": alert.priority.value,
         "state": alert.state.value,
         "open": alert.state.is_open,
-        "raised_at": _iso(alert.raised_at),
-        "updated_at": _iso(alert.updated_at),
+        "raised_at": iso_utc(alert.raised_at),
+        "updated_at": iso_utc(alert.updated_at),
         "sample_id": alert.sample_id,
         "summary": alert.summary,
         "unit": alert.location.unit if alert.location else None,
         "location": alert.location.label() if alert.location else None,
         "acknowledged_by": alert.acknowledged_by,
-        "acknowledged_at": _iso(alert.acknowledged_at),
-        "closed_at": _iso(alert.closed_at),
+        "acknowledged_at": iso_utc(alert.acknowledged_at),
+        "closed_at": iso_utc(alert.closed_at),
         "preliminary": alert.preliminary,
         "estimated": alert.estimated,
     }
@@ -74,7 +70,7 @@ def alert_json(alert: Alert) -> dict[str, Any]:
 def event_json(event: AlertEvent) -> dict[str, Any]:
     return {
         "event": event.event,
-        "at": _iso(event.at),
+        "at": iso_utc(event.at),
         "priority": event.priority.value,
         "state": event.state.value,
         "sample_id": event.sample_id,

@@ -23,6 +23,7 @@ from fastapi.staticfiles import StaticFiles
 from monitor.engine.model import ADVISORY
 from monitor.logs import IdentifierGuard
 from monitor.metrics import Metrics
+from monitor.shapes import iso_utc
 from monitor.web import api, board, hooks, quarantine_api
 from monitor.web.security import (
     BodyLimit,
@@ -141,8 +142,8 @@ def health(request: Request) -> JSONResponse:
     ctx.metrics.outbox_backlog.set(backlog)
     sources = {
         c.source: {
-            "last_success_at": _iso(c.last_success_at),
-            "last_error_at": _iso(c.last_error_at),
+            "last_success_at": iso_utc(c.last_success_at),
+            "last_error_at": iso_utc(c.last_error_at),
             "failing": c.failing,
             "watermark": c.watermark,
         }
@@ -154,7 +155,7 @@ def health(request: Request) -> JSONResponse:
             "database": "reachable",
             "sources": sources,
             "outbox_backlog": backlog,
-            "checked_at": _iso(ctx.clock()),
+            "checked_at": iso_utc(ctx.clock()),
         }
     )
 
@@ -183,7 +184,3 @@ async def log_requests(
         (time.perf_counter() - started) * 1000,
     )
     return response
-
-
-def _iso(value: datetime | None) -> str | None:
-    return None if value is None else value.astimezone(UTC).isoformat()

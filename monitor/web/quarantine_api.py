@@ -12,8 +12,8 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, HTTPException, Query, Request
 
-from monitor.cli_quarantine import item_summary, payload_text
 from monitor.engine.model import ADVISORY
+from monitor.shapes import payload_text, quarantine_item_json
 from monitor.web.security import require_signed_in
 from storage.quarantine import get_quarantined, list_quarantine
 
@@ -40,7 +40,7 @@ def list_items(
             unresolved_only=open_only,
             before_id=before_id,
         )
-    return {"items": [item_summary(i) for i in items], "advisory": ADVISORY}
+    return {"items": [quarantine_item_json(i) for i in items], "advisory": ADVISORY}
 
 
 @router.get("/{item_id}", summary="One refused input with its payload")
@@ -50,4 +50,4 @@ def show_item(request: Request, item_id: int) -> dict[str, Any]:
         item = get_quarantined(conn, item_id)
     if item is None:
         raise HTTPException(404, f"no quarantined item {item_id}")
-    return {**item_summary(item), "payload": payload_text(item.raw), "advisory": ADVISORY}
+    return {**quarantine_item_json(item), "payload": payload_text(item.raw), "advisory": ADVISORY}

@@ -14,8 +14,8 @@ import pytest
 
 from adapters.notify import Channel, build_channel
 from adapters.notify.base import log_ref
-from monitor.outbox.retry import DispatchPolicy, Outcome, deliver_once, plan
 from monitor.engine.model import Notification
+from monitor.outbox.retry import DispatchPolicy, Outcome, deliver_once, plan
 from tests.integration.notify.conftest import (
     HttpReceiver,
     SmtpPeer,

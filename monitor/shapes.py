@@ -1,21 +1,26 @@
-"""One derivation as plain JSON-ready data: the shape the API and ``gasgap patient
---json`` both give, defined once."""
+"""What the API and the command line both show, defined once: a derivation as plain
+JSON-ready data (the API and ``gasgap patient --json``), a quarantined item and its
+payload (the API and ``gasgap quarantine``), and times in UTC."""
 
 from __future__ import annotations
 
 from dataclasses import fields
 from datetime import UTC, datetime
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from monitor.engine.model import Derivation
 
+if TYPE_CHECKING:
+    from storage.quarantine import QuarantinedInput
 
-def iso_utc(value: datetime | None, *, z: bool = False) -> str | None:
+
+def iso_utc(value: datetime | None, *, z: bool = False, timespec: str = "auto") -> str | None:
     """``value`` in UTC as ISO 8601 (None stays None): ``+00:00`` by default, ``Z``
-    with ``z=True`` (the replay's JSON). The one time formatter of the shell."""
+    with ``z=True`` (the replay's JSON); ``timespec`` as ``datetime.isoformat`` takes it.
+    The one time formatter of the shell."""
     if value is None:
         return None
-    text = value.astimezone(UTC).isoformat()
+    text = value.astimezone(UTC).isoformat(timespec=timespec)
     return text.replace("+00:00", "Z") if z else text
 
 
@@ -69,3 +74,27 @@ def derivation_json(d: Derivation) -> dict[str, Any]:
     }
     out.update({name: getattr(d, name) for name in DERIVED_VALUES})
     return out
+
+
+def quarantine_item_json(item: QuarantinedInput) -> dict[str, object]:
+    """One quarantined item as JSON (no payload): what ``gasgap quarantine list``,
+    ``show`` and ``GET /api/quarantine`` print."""
+    return {
+        "id": item.id,
+        "source": item.source,
+        "received_at": iso_utc(item.received_at, timespec="seconds"),
+        "reason": item.reason,
+        "occurrences": item.occurrences,
+        "payload_bytes": item.payload_size,
+        "truncated": item.truncated,
+        "reprocessed_at": iso_utc(item.resolved_at, timespec="seconds"),
+        "reprocess_outcome": item.resolution,
+    }
+
+
+def payload_text(raw: bytes | str | None) -> str:
+    """A kept payload as text for a person (HL7 segments on their own lines)."""
+    if raw is None:
+        return ""
+    text = raw.decode("utf-8", "replace") if isinstance(raw, bytes) else raw
+    return text.replace("\r\n", "\n").replace("\r", "\n")
