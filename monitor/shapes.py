@@ -6,9 +6,9 @@ from __future__ import annotations
 
 from dataclasses import fields
 from datetime import UTC, datetime
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
-from monitor.engine.model import Derivation
+from monitor.engine.model import Alert, Derivation
 
 if TYPE_CHECKING:
     from storage.quarantine import QuarantinedInput
@@ -49,8 +49,8 @@ DERIVED_VALUES: tuple[str, ...] = tuple(
 )
 
 
-def derivation_json(d: Derivation) -> dict[str, Any]:
-    out: dict[str, Any] = {
+def derivation_json(d: Derivation) -> dict[str, object]:
+    out: dict[str, object] = {
         "sample_id": d.sample_id,
         "drawn_at": iso_utc(d.drawn_at),
         "specimen": d.specimen.value,
@@ -74,6 +74,29 @@ def derivation_json(d: Derivation) -> dict[str, Any]:
     }
     out.update({name: getattr(d, name) for name in DERIVED_VALUES})
     return out
+
+
+def alert_json(alert: Alert) -> dict[str, object]:
+    """One flag as JSON: what the API and ``gasgap flags --json`` give."""
+    return {
+        "id": alert.alert_id,
+        "patient_key": alert.patient_key,
+        "rule": alert.rule,
+        "priority": alert.priority.value,
+        "state": alert.state.value,
+        "open": alert.state.is_open,
+        "raised_at": iso_utc(alert.raised_at),
+        "updated_at": iso_utc(alert.updated_at),
+        "sample_id": alert.sample_id,
+        "summary": alert.summary,
+        "unit": alert.location.unit if alert.location else None,
+        "location": alert.location.label() if alert.location else None,
+        "acknowledged_by": alert.acknowledged_by,
+        "acknowledged_at": iso_utc(alert.acknowledged_at),
+        "closed_at": iso_utc(alert.closed_at),
+        "preliminary": alert.preliminary,
+        "estimated": alert.estimated,
+    }
 
 
 def quarantine_item_json(item: QuarantinedInput) -> dict[str, object]:

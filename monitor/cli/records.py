@@ -178,7 +178,7 @@ def _send(shell: Shell) -> RoundReport:
 # --- patient -------------------------------------------------------------------------------
 
 
-def series_row(derivation: Derivation, version: int) -> dict[str, Any]:
+def series_row(derivation: Derivation, version: int) -> dict[str, object]:
     """One row of ``gasgap patient --json``: the API's shape plus the stored version."""
     from monitor.shapes import derivation_json
 

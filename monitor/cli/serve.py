@@ -133,7 +133,7 @@ def _run_alerts(args: argparse.Namespace) -> int:
     from monitor.bootstrap import load_site
     from monitor.cli.common import open_site
     from monitor.cli.records import alerts_table, database_problem, unit_problem
-    from monitor.web.api import alert_json
+    from monitor.shapes import alert_json
     from storage import board as board_store
     from storage.alerts import open_alerts
 
