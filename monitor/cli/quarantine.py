@@ -23,15 +23,23 @@ import json
 import sys
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
 
+from monitor.cli.common import Subparsers
 from monitor.shapes import iso_utc, payload_text, quarantine_item_json
+
+if TYPE_CHECKING:
+    from monitor.config import SiteConfig
+    from monitor.ingest import SourceContext
+    from monitor.pipeline import BatchReport, Pipeline
+    from storage.db import Database
+    from storage.quarantine import QuarantinedInput
 
 EXIT_FAILED = 1
 EXIT_CONFIG = 3
 
 
-def add_quarantine_commands(sub: Any) -> None:
+def add_quarantine_commands(sub: Subparsers) -> None:
     """Register ``gasgap quarantine ...`` on the main command's subparsers."""
     top = sub.add_parser(
         "quarantine",
@@ -84,7 +92,7 @@ def _fail(message: str, code: int = EXIT_CONFIG) -> int:
     return code
 
 
-def _open(args: argparse.Namespace) -> tuple[Any, Any]:
+def _open(args: argparse.Namespace) -> tuple[SiteConfig, Database]:
     from monitor.bootstrap import Secrets, load_site, open_db
 
     config = load_site(args.config)
@@ -135,7 +143,9 @@ def _run_show(args: argparse.Namespace) -> int:
     return 0
 
 
-def reprocess(item: Any, *, pipeline: Any, context: Any, now: datetime) -> Any:
+def reprocess(
+    item: QuarantinedInput, *, pipeline: Pipeline, context: SourceContext, now: datetime
+) -> BatchReport:
     """Give a kept payload to the pipeline again; returns the BatchReport."""
     from adapters.fhir.limits import too_deep
     from adapters.hl7v2.ack import Hl7Error
