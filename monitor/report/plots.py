@@ -47,7 +47,7 @@ def _agg() -> None:
 Points = Sequence[tuple[Derivation, bool]]  # (derivation, retracted)
 
 
-def _line(ax: PlotAxes, items: Points, attr: str, tz: tzinfo, **kw: Any) -> None:
+def _line(ax: PlotAxes, items: Points, attr: str, tz: tzinfo, **kw: object) -> None:
     pts = [
         (d.drawn_at.astimezone(tz), getattr(d, attr))
         for d, retracted in items
