@@ -28,9 +28,13 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
 
 from adapters.hl7v2.mllp import is_transient
+
+if TYPE_CHECKING:
+    from monitor.ingest import SourceContext
+    from monitor.pipeline import BatchReport, Pipeline
 
 log = logging.getLogger("gasgap.dropfolder")
 
@@ -39,7 +43,7 @@ FAILED = "failed"
 _SKIPPED_SUFFIXES = (".part", ".tmp", ".reason.txt")
 
 #: ``ingest(paths)``: load the files through the pipeline; raises if nothing could be.
-Ingest = Callable[[list[Path]], Any]
+Ingest = Callable[[list[Path]], "BatchReport"]
 
 
 @dataclass
@@ -47,7 +51,7 @@ class ScanResult:
     loaded: list[Path] = field(default_factory=list)
     failed: list[Path] = field(default_factory=list)
     waiting: list[Path] = field(default_factory=list)
-    report: Any = None
+    report: BatchReport | None = None
 
 
 class DropFolder:
@@ -160,11 +164,13 @@ class DropFolder:
         return target
 
 
-def ingest_from(pipeline: Any, context: Any, clock: Callable[[], datetime]) -> Ingest:
+def ingest_from(
+    pipeline: Pipeline, context: SourceContext, clock: Callable[[], datetime]
+) -> Ingest:
     """The ``ingest`` a drop folder uses in the service: ``gasgap ingest``'s loader."""
     from monitor.ingest import ingest_files
 
-    def ingest(paths: Iterable[Path]) -> Any:
+    def ingest(paths: Iterable[Path]) -> BatchReport:
         return ingest_files(list(paths), pipeline, context, now=clock)
 
     return ingest

@@ -24,7 +24,7 @@ import sys
 import threading
 from collections import OrderedDict
 from datetime import UTC, datetime
-from typing import Any, TextIO
+from typing import TextIO
 
 #: ``LogRecord`` attributes that are the record's own, not "extra" fields.
 _RECORD_FIELDS = frozenset(
@@ -101,7 +101,7 @@ class JsonFormatter(logging.Formatter):
     """One JSON object a line: time (UTC, ISO 8601), level, logger, message, extras."""
 
     def format(self, record: logging.LogRecord) -> str:
-        out: dict[str, Any] = {
+        out: dict[str, object] = {
             "time": datetime.fromtimestamp(record.created, UTC).isoformat(timespec="milliseconds"),
             "level": record.levelname.lower(),
             "logger": record.name,

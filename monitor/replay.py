@@ -30,7 +30,7 @@ import time
 from collections import Counter
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
-from datetime import UTC, date, datetime, timedelta
+from datetime import UTC, date, datetime, timedelta, tzinfo
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -40,7 +40,7 @@ if TYPE_CHECKING:
 from monitor.engine.model import ADVISORY, AlertEvent, AlertState, Priority
 from monitor.ingest import SourceContext, Unit, file_kind, merged_units
 from monitor.pipeline import Pipeline, PipelineSettings
-from monitor.records import iso_utc
+from monitor.shapes import iso_utc
 from storage import derivations as derivations_store
 from storage import outbox as outbox_store
 from storage import readings as readings_store
@@ -65,7 +65,7 @@ class ReplayEvent:
     alert_id: str
     sample_id: str | None
 
-    def as_json(self) -> dict[str, Any]:
+    def as_json(self) -> dict[str, object]:
         return {
             "patient": self.patient,
             "rule": self.rule,
@@ -103,7 +103,7 @@ class ReplayCounts:
             out.setdefault(rule, {})[priority] = n
         return out
 
-    def as_json(self) -> dict[str, Any]:
+    def as_json(self) -> dict[str, object]:
         return {
             "units": self.units,
             "readings": self.readings,
@@ -137,7 +137,7 @@ class ReplayResult:
     #: The temporary folder of a replay database gasgap chose itself.
     scratch: tempfile.TemporaryDirectory[str] | None = None
 
-    def as_json(self) -> dict[str, Any]:
+    def as_json(self) -> dict[str, object]:
         return {
             "counts": self.counts.as_json(),
             "alerts": [e.as_json() for e in self.events],
@@ -394,7 +394,7 @@ def _accept(
     counts: ReplayCounts,
     recorder: _Recorder,
     patient_days: set[tuple[str, date]],
-    tz: Any,
+    tz: tzinfo,
 ) -> None:
     inbound = unit.inbound
     for r in inbound.readings:
@@ -531,7 +531,7 @@ def deliver_captured(
     (``monitor.outbox.OutboxDispatcher``), as the service would; returns how many were
     sent. The clock is the end of the simulated feed, so every item is due."""
     from monitor.bootstrap import Secrets, build_channels
-    from monitor.delivery import OutboxDispatcher
+    from monitor.outbox.dispatcher import OutboxDispatcher
 
     channels = build_channels(config, Secrets(secrets_file))
     end = result.counts.last_record or datetime.now(UTC)

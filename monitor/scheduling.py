@@ -21,7 +21,7 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
-from typing import Any
+from typing import TYPE_CHECKING, Protocol
 
 from apscheduler.schedulers.background import BackgroundScheduler
 
@@ -29,6 +29,10 @@ from monitor.metrics import Metrics
 from storage.cursors import get_cursor, record_source_error, set_cursor
 from storage.db import Database
 from storage.locks import try_advisory_lock
+
+if TYPE_CHECKING:
+    from adapters.fhir.poller import PollBatch
+    from monitor.pipeline import Inbound
 
 log = logging.getLogger("gasgap.scheduling")
 
@@ -56,7 +60,7 @@ class Job:
 
     name: str
     every: timedelta
-    run: Callable[[], Any]
+    run: Callable[[], object]
     lock: str | None = None
     run_at_start: bool = False
 
@@ -148,6 +152,12 @@ class Scheduler:
 # --- the FHIR poll ---------------------------------------------------------------------------
 
 
+class Poller(Protocol):
+    """A FHIR source's poller (``adapters.fhir.poller.FhirPoller``, or a test's)."""
+
+    def poll(self, since: datetime | None) -> PollBatch: ...
+
+
 class PollJob:
     """One FHIR source's poll: cursor -> poll -> pipeline -> cursor.
 
@@ -158,12 +168,12 @@ class PollJob:
     def __init__(
         self,
         source: str,
-        poller: Any,
+        poller: Poller,
         *,
         db: Database,
         every: timedelta,
-        accept: Callable[[Any], Any],
-        to_inbound: Callable[[Any], Any],
+        accept: Callable[[Inbound], object],
+        to_inbound: Callable[[PollBatch], Inbound],
         clock: Callable[[], datetime],
         metrics: Metrics | None = None,
     ) -> None:

@@ -452,9 +452,7 @@ def build_service(
         guard=guard,
         poll_now={name: _poll_trigger(scheduler, name) for name in pollers},
     )
-    app = create_app(
-        config, db, pipeline, clock=clock, security=web_security(config, secrets), context=ctx
-    )
+    app = create_app(db, pipeline, clock=clock, security=web_security(config, secrets), context=ctx)
     service = Service(
         config, db, pipeline, clock, metrics, guard, context, dispatcher, scheduler, app, pollers
     )

@@ -1,10 +1,18 @@
-"""The ``gasgap`` command. It parses arguments and calls the shell's functions; the work
-is done elsewhere, wired by ``monitor.bootstrap``.
+"""The ``gasgap`` command (``python -m monitor.cli`` runs it too). It parses arguments
+and calls the shell's functions; the work is done elsewhere, wired by
+``monitor.bootstrap``.
 
-One module a group of commands: ``calc`` (``monitor.cli.calc``), the service's commands
-(``monitor.cli.serve``: serve, db, config, flags), the commands on recorded data
-(``monitor.cli_records``: ingest, patient, outbox) and ``replay``
-(``monitor.cli.replay``). Each registers its sub-parsers explicitly here.
+One module a group of commands, each registering its sub-parsers explicitly here:
+
+- ``monitor.cli.calc``: ``calc`` (one gas by hand);
+- ``monitor.cli.records``: the commands on recorded data (``ingest``, ``patient``,
+  ``outbox``);
+- ``monitor.cli.serve``: the service's commands (``serve``, ``db``, ``config``, ``flags``);
+- ``monitor.cli.replay``: ``replay``;
+- ``monitor.cli.fhir``: ``fhir jwks``, ``fhir backfill``;
+- ``monitor.cli.quarantine``: ``quarantine list|show|reprocess|purge``;
+- ``monitor.cli.common``: what they share (the one-line failure, the options that name a
+  site, opening that site through the composition root).
 
 Bad input gets one line on stderr naming the option and what was wrong, and exit code 2;
 any other refusal of the service (``MonitorError``: a database that cannot be reached,
@@ -29,11 +37,11 @@ __all__ = ["EXIT_USAGE", "UsageError", "build_parser", "main"]
 def _command_modules() -> list[Callable[[Subparsers], None]]:
     """Every group of commands, each registered by the module that runs it."""
     from monitor.cli.calc import add_calc_command
+    from monitor.cli.fhir import add_fhir_commands
+    from monitor.cli.quarantine import add_quarantine_commands
+    from monitor.cli.records import add_record_commands
     from monitor.cli.replay import add_replay_command
     from monitor.cli.serve import add_serve_commands
-    from monitor.cli_fhir import add_fhir_commands
-    from monitor.cli_quarantine import add_quarantine_commands
-    from monitor.cli_records import add_record_commands
 
     return [
         add_calc_command,

@@ -13,8 +13,9 @@ import argparse
 import json
 import sys
 from collections.abc import Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 from monitor.cli.common import Subparsers, fail
 from monitor.engine.model import ADVISORY
@@ -22,6 +23,7 @@ from monitor.engine.model import ADVISORY
 if TYPE_CHECKING:
     from monitor.config import SiteConfig
     from monitor.replay import ReplayEvent, ReplayResult
+    from monitor.report import Comparison
 
 
 def _speed(text: str) -> float | None:
@@ -108,11 +110,11 @@ def add_replay_command(sub: Subparsers) -> None:
 
 
 def run_replay(args: argparse.Namespace) -> int:
-    from monitor.bootstrap import load_site, pipeline_settings, source_context
+    from monitor.bootstrap import load_site
     from monitor.config import ConfigError
     from monitor.ingest import FileKindError
-    from monitor.replay import deliver_captured, replay
-    from monitor.report import compare, comparison_table, write_report
+    from monitor.replay import deliver_captured
+    from monitor.report import compare, write_report
 
     for path in args.paths:
         if not path.is_file():
@@ -122,23 +124,8 @@ def run_replay(args: argparse.Namespace) -> int:
         other = load_site(args.compare) if args.compare else None
     except (ConfigError, OSError, ValueError) as exc:
         return fail(f"--config/--compare: {exc}")
-    progress = not args.json
-
-    def one(cfg: SiteConfig, url: str | None, label: str) -> ReplayResult:
-        return replay(
-            args.paths,
-            pipeline_settings(cfg),
-            source_context(cfg),
-            db_url=url,
-            speed=args.speed,
-            progress=progress,
-            label=label,
-            workers=args.workers,
-            dask=args.dask,
-        )
-
     try:
-        first = one(config, args.db_url, str(args.config or "built-in defaults"))
+        first = _replay_once(args, config, args.db_url, str(args.config or "built-in defaults"))
     except (FileKindError, FileNotFoundError, ValueError) as exc:
         return fail(f"PATH: {exc}")
     second = None
@@ -146,35 +133,75 @@ def run_replay(args: argparse.Namespace) -> int:
         if args.deliver:
             first.delivered = deliver_captured(first, config, secrets_file=args.secrets_file)
         if other is not None:  # the second replay runs in its own temporary database
-            second = one(other, None, str(args.compare))
+            second = _replay_once(args, other, None, str(args.compare))
         comparison = compare(first, second) if second is not None else None
         page = write_report(first, args.report, comparison=comparison) if args.report else None
         if args.json:
-            out = first.as_json()
-            if comparison is not None:
-                out["comparison"] = comparison.as_json()
-                out["comparison_counts"] = second.counts.as_json() if second else None
-            if page is not None:
-                out["report"] = str(page)
-            if first.delivered is not None:
-                out["delivered"] = first.delivered
-            sys.stdout.write(json.dumps(out, sort_keys=True) + "\n")
-            return 0
-        print(summary_text(first))
-        if comparison is not None:
-            print()
-            print(comparison_table(comparison))
-        if first.delivered is not None:
-            print(f"\n{first.delivered} captured notifications delivered.")
-        if page is not None:
-            print(f"\nreport: {page}")
-        print()
-        print(ADVISORY)
+            _print_json(first, second, comparison, page)
+        else:
+            _print_text(first, comparison, page)
         return 0
     finally:
         first.close()
         if second is not None:
             second.close()
+
+
+def _replay_once(
+    args: argparse.Namespace, config: SiteConfig, db_url: str | None, label: str
+) -> ReplayResult:
+    """The files of ``args`` replayed under ``config`` into ``db_url`` (None: a temporary
+    database of its own)."""
+    from monitor.bootstrap import pipeline_settings, source_context
+    from monitor.replay import replay
+
+    return replay(
+        args.paths,
+        pipeline_settings(config),
+        source_context(config),
+        db_url=db_url,
+        speed=args.speed,
+        progress=not args.json,
+        label=label,
+        workers=args.workers,
+        dask=args.dask,
+    )
+
+
+def _print_json(
+    first: ReplayResult,
+    second: ReplayResult | None,
+    comparison: Comparison | None,
+    page: Path | None,
+) -> None:
+    """``--json``: the replay, and the comparison, report page and deliveries if any,
+    as one JSON object on one line."""
+    out = first.as_json()
+    if comparison is not None:
+        out["comparison"] = comparison.as_json()
+        out["comparison_counts"] = second.counts.as_json() if second else None
+    if page is not None:
+        out["report"] = str(page)
+    if first.delivered is not None:
+        out["delivered"] = first.delivered
+    sys.stdout.write(json.dumps(out, sort_keys=True) + "\n")
+
+
+def _print_text(first: ReplayResult, comparison: Comparison | None, page: Path | None) -> None:
+    """The summary and flag table, the comparison, deliveries and report page if any,
+    then the advisory sentence."""
+    from monitor.report import comparison_table
+
+    print(summary_text(first))
+    if comparison is not None:
+        print()
+        print(comparison_table(comparison))
+    if first.delivered is not None:
+        print(f"\n{first.delivered} captured notifications delivered.")
+    if page is not None:
+        print(f"\nreport: {page}")
+    print()
+    print(ADVISORY)
 
 
 def summary_text(result: ReplayResult) -> str:
@@ -190,22 +217,28 @@ def summary_text(result: ReplayResult) -> str:
     return "\n".join(lines)
 
 
+@dataclass
+class _FlagRow:
+    """One flag of the table: its patient, rule, highest priority and events so far."""
+
+    patient: str
+    rule: str
+    priority: str
+    events: list[str] = field(default_factory=list)
+
+
 def flag_table(events: Sequence[ReplayEvent]) -> str:
     """One row per flag: patient, rule, highest priority reached, its events in order."""
     ranks = {"low": 1, "medium": 2, "high": 3}
-    flags: dict[str, dict[str, Any]] = {}
+    flags: dict[str, _FlagRow] = {}
     for e in events:
-        f = flags.setdefault(
-            e.alert_id, {"patient": e.patient, "rule": e.rule, "priority": e.priority, "events": []}
-        )
-        if ranks.get(e.priority, 0) > ranks.get(f["priority"], 0):
-            f["priority"] = e.priority
-        f["events"].append(e.event)
+        f = flags.setdefault(e.alert_id, _FlagRow(e.patient, e.rule, e.priority))
+        if ranks.get(e.priority, 0) > ranks.get(f.priority, 0):
+            f.priority = e.priority
+        f.events.append(e.event)
     if not flags:
         return "no flags"
-    rows = sorted(flags.values(), key=lambda f: (f["patient"], f["rule"]))
+    rows = sorted(flags.values(), key=lambda f: (f.patient, f.rule))
     lines = [f"{'patient':12} {'rule':18} {'priority':8} events"]
-    lines += [
-        f"{f['patient']:12} {f['rule']:18} {f['priority']:8} {', '.join(f['events'])}" for f in rows
-    ]
+    lines += [f"{f.patient:12} {f.rule:18} {f.priority:8} {', '.join(f.events)}" for f in rows]
     return "\n".join(lines)

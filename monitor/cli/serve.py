@@ -132,8 +132,8 @@ def _unset_secrets(path: Path) -> list[str]:
 def _run_alerts(args: argparse.Namespace) -> int:
     from monitor.bootstrap import load_site
     from monitor.cli.common import open_site
-    from monitor.cli_records import alerts_table, database_problem, unit_problem
-    from monitor.web.api import alert_json
+    from monitor.cli.records import alerts_table, database_problem, unit_problem
+    from monitor.shapes import alert_json
     from storage import board as board_store
     from storage.alerts import open_alerts
 
@@ -182,11 +182,3 @@ def _run_alerts_ack(args: argparse.Namespace) -> int:
         shell.close()
     print(f"flag {alert.alert_id} acknowledged by {alert.acknowledged_by}")
     return 0
-
-
-def main(argv: list[str] | None = None) -> int:
-    """``python -m monitor.cli_serve ...``: the same as ``gasgap``, kept for scripts
-    that call the service's commands by this module."""
-    from monitor.cli import main as gasgap
-
-    return gasgap(argv)

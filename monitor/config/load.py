@@ -5,7 +5,6 @@ import logging
 import tomllib
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
 from urllib.parse import urlsplit
 
 import pydantic
@@ -60,7 +59,7 @@ RENAMED_KEYS = {"alerts": "flags"}
 log = logging.getLogger("gasgap.config")
 
 
-def config_notes(raw: Mapping[str, Any]) -> list[str]:
+def config_notes(raw: Mapping[str, object]) -> list[str]:
     """Deprecation notes for a parsed file: old key names that still load."""
     return [
         f"{old}: renamed to [{new}]; the old name still loads but will stop working"
@@ -69,7 +68,7 @@ def config_notes(raw: Mapping[str, Any]) -> list[str]:
     ]
 
 
-def _renamed(raw: Mapping[str, Any]) -> tuple[dict[str, Any], dict[str, str]]:
+def _renamed(raw: Mapping[str, object]) -> tuple[dict[str, object], dict[str, str]]:
     """``raw`` with old section names moved to the new ones (a file naming both is
     left as it is, so the unknown old key is reported), and the renames made."""
     out = dict(raw)
@@ -81,7 +80,7 @@ def _renamed(raw: Mapping[str, Any]) -> tuple[dict[str, Any], dict[str, str]]:
     return out, done
 
 
-def validate_config(raw: Mapping[str, Any], source: str = "<mapping>") -> SiteConfig:
+def validate_config(raw: Mapping[str, object], source: str = "<mapping>") -> SiteConfig:
     """Check a parsed configuration; raise ``ConfigError`` listing every problem."""
     problems = _secrets_in_clear(raw)
     if problems:

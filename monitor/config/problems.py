@@ -2,7 +2,8 @@
 file spells it and what was wrong, e.g. ``rules[2].threshold: must be > 0, got -5``."""
 
 from collections.abc import Mapping
-from typing import Any
+
+from pydantic_core import ErrorDetails
 
 
 def _key_path(loc: tuple[int | str, ...], raw: object) -> str:
@@ -31,7 +32,7 @@ def _bound(value: object) -> str:
     return f"{value:g}" if isinstance(value, int | float) else str(value)
 
 
-def _problem(error: Mapping[str, Any]) -> str:
+def _problem(error: ErrorDetails) -> str:
     kind = error["type"]
     ctx = error.get("ctx") or {}
     got = _shown(error.get("input"))

@@ -2,7 +2,7 @@
 the engine's own rule (``monitor.engine.rules``) by ``to_spec``."""
 
 from datetime import timedelta
-from typing import Annotated, Any, Literal, Self
+from typing import Annotated, Literal, Self
 
 import pydantic
 from pydantic import Field
@@ -171,7 +171,7 @@ RuleEntry = Annotated[
 ]
 
 
-def _default_rule_entries() -> list[Any]:
+def _default_rule_entries() -> list[RuleEntry]:
     return [
         OxygenationBandEntry(type="oxygenation_band"),
         PfFallEntry(type="pf_fall"),

@@ -4,7 +4,7 @@ engine's settings."""
 from __future__ import annotations
 
 from datetime import timedelta
-from typing import TYPE_CHECKING, Any, Self
+from typing import TYPE_CHECKING, Self
 from zoneinfo import ZoneInfo
 
 import pydantic
@@ -36,7 +36,7 @@ from monitor.engine.rules import (
 # --- the whole file ----------------------------------------------------------------------
 
 
-def _default_channels() -> dict[str, Any]:
+def _default_channels() -> dict[str, ChannelEntry]:
     return {"log": LogOptions()}
 
 

@@ -428,29 +428,8 @@ def notification_for(
         raise InvalidInput("event", event, f"must be one of {', '.join(EVENT_WORDS)}")
     location = alert.location or (derivation.location if derivation else None)
     where = location.label() if location else "location unknown"
-    opening = EVENT_WORDS[event]
-    if event == "acknowledged" and alert.acknowledged_by:
-        opening += f" by {alert.acknowledged_by}"
-    priority = alert.priority.value
-    closing = event in CLOSING_EVENTS
-    # Patient and place first, so a long short text never pushes them out of the card.
-    head = f"{opening}, was {priority.upper()}" if closing else f"{priority.upper()} {opening}"
-    summary = f"{head} ({display_key}, {where}): {alert.summary}"
-    if len(summary) > SUMMARY_MAX:
-        summary = summary[: SUMMARY_MAX - 1] + "…"
-    said = "Priority when closed" if closing else "Priority"
-    lines = [f"{opening} for {display_key} in {where}. {said}: {priority}."]
-    if event == "retracted":
-        lines.extend(_retraction_lines(alert, derivation, numbers, now, tz))
-    else:
-        changed = what_changed(numbers, now, tz)
-        if changed:
-            lines.append(f"What changed: {changed}.")
-    if derivation is not None:
-        lines.append("Inputs: " + "; ".join(inputs_text(derivation, now, tz)) + ".")
-        flags = sorted(f.value for f in derivation.flags)
-        lines.append("Data quality: " + ("; ".join(flags) if flags else "no warnings") + ".")
-    lines.extend(_certainty_lines(alert, derivation, numbers, now, tz))
+    summary, heading = _headline(alert, event, display_key, where)
+    lines = [heading, *_body_lines(alert, event, derivation, numbers, now, tz)]
     return Notification(
         idempotency_key=idempotency_key(alert, event),
         alert_id=alert.alert_id,
@@ -469,6 +448,48 @@ def notification_for(
         estimated=alert.estimated,
         site_zone=zone_name(tz),
     )
+
+
+def _headline(alert: Alert, event: str, display_key: str, where: str) -> tuple[str, str]:
+    """The short summary (patient and place first, cut at ``SUMMARY_MAX``) and the
+    detail's first line: what happened, to whom, where, at which priority."""
+    opening = EVENT_WORDS[event]
+    if event == "acknowledged" and alert.acknowledged_by:
+        opening += f" by {alert.acknowledged_by}"
+    priority = alert.priority.value
+    closing = event in CLOSING_EVENTS
+    # Patient and place first, so a long short text never pushes them out of the card.
+    head = f"{opening}, was {priority.upper()}" if closing else f"{priority.upper()} {opening}"
+    summary = f"{head} ({display_key}, {where}): {alert.summary}"
+    if len(summary) > SUMMARY_MAX:
+        summary = summary[: SUMMARY_MAX - 1] + "…"
+    said = "Priority when closed" if closing else "Priority"
+    return summary, f"{opening} for {display_key} in {where}. {said}: {priority}."
+
+
+def _body_lines(
+    alert: Alert,
+    event: str,
+    derivation: Derivation | None,
+    numbers: Mapping[str, object],
+    now: datetime,
+    tz: tzinfo,
+) -> list[str]:
+    """The detail after its first line: what changed (or why a flag is withdrawn), the
+    inputs and data quality of the sample behind it, and how certain it is."""
+    lines: list[str] = []
+    if event == "retracted":
+        lines.extend(_retraction_lines(alert, derivation, numbers, now, tz))
+    else:
+        changed = what_changed(numbers, now, tz)
+        if changed:
+            lines.append(f"What changed: {changed}.")
+    if derivation is not None:
+        lines.append("Inputs: " + "; ".join(inputs_text(derivation, now, tz)) + ".")
+        flags = sorted(f.value for f in derivation.flags)
+        lines.append("Data quality: " + ("; ".join(flags) if flags else "no warnings") + ".")
+    lines.extend(_certainty_lines(alert, derivation, numbers, now, tz))
+    return lines
 
 
 def plain_text_body(notification: Notification) -> str:

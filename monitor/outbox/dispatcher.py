@@ -3,10 +3,10 @@
 One round: ``claim_due`` in its own short transaction (the claim is a lease, committed
 before any network call, so other senders see it), then each item through its channel
 (``monitor.outbox.retry.deliver_once``, which never raises), then ``mark_sent`` or
-``mark_failed`` with the backoff ``monitor.outbox.retry.plan`` chose, one short
-transaction per item. Order per patient and channel is kept by storage's claim: an
-item is not handed out while an earlier one for the same patient and channel is still
-pending.
+``mark_failed`` with the backoff ``monitor.outbox.retry.plan`` chose, for the whole
+round in one short transaction after its deliveries. Order per patient and channel is
+kept by storage's claim: an item is not handed out while an earlier one for the same
+patient and channel is still pending.
 
 An item whose channel alias is no longer configured is marked dead with the reason
 (the configuration changed under a queued message; a person must look).

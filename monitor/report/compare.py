@@ -10,7 +10,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import TYPE_CHECKING
 
-from monitor.records import iso_utc
+from monitor.shapes import iso_utc
 
 if TYPE_CHECKING:
     from monitor.replay import ReplayEvent, ReplayResult

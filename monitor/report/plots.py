@@ -8,7 +8,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from datetime import tzinfo
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeAlias
 
 from monitor.engine.model import Derivation
 from monitor.report.data import PatientSeries
@@ -32,19 +32,22 @@ EVENT_MARKER = {
 # --- plots ---------------------------------------------------------------------------------
 
 
-def _pyplot() -> Any:
+#: A matplotlib ``Axes``. Left untyped on purpose: matplotlib's stubs accept only numbers
+#: for the data, while its date converter plots the ``datetime`` values given here.
+PlotAxes: TypeAlias = Any
+
+
+def _agg() -> None:
+    """Draw to files (no display): the Agg backend, chosen before pyplot is imported."""
     import matplotlib
 
     matplotlib.use("Agg", force=True)
-    import matplotlib.pyplot as plt
-
-    return plt
 
 
 Points = Sequence[tuple[Derivation, bool]]  # (derivation, retracted)
 
 
-def _line(ax: Any, items: Points, attr: str, tz: tzinfo, **kw: Any) -> None:
+def _line(ax: PlotAxes, items: Points, attr: str, tz: tzinfo, **kw: object) -> None:
     pts = [
         (d.drawn_at.astimezone(tz), getattr(d, attr))
         for d, retracted in items
@@ -54,7 +57,7 @@ def _line(ax: Any, items: Points, attr: str, tz: tzinfo, **kw: Any) -> None:
         ax.plot([t for t, _ in pts], [v for _, v in pts], **kw)
 
 
-def _crossed(ax: Any, gases: Points, attr: str, tz: tzinfo) -> None:
+def _crossed(ax: PlotAxes, gases: Points, attr: str, tz: tzinfo) -> None:
     """Withdrawn results stay visible, crossed out."""
     pts = [
         (d.drawn_at.astimezone(tz), getattr(d, attr))
@@ -73,7 +76,7 @@ def _crossed(ax: Any, gases: Points, attr: str, tz: tzinfo) -> None:
         )
 
 
-def _pf_panel(ax: Any, gases: Points, estimates: Points, tz: tzinfo) -> None:
+def _pf_panel(ax: PlotAxes, gases: Points, estimates: Points, tz: tzinfo) -> None:
     _line(ax, gases, "pf_ratio", tz, marker="o", color="#555555", label="P/F measured")
     _line(
         ax,
@@ -99,7 +102,7 @@ def _pf_panel(ax: Any, gases: Points, estimates: Points, tz: tzinfo) -> None:
     ax.set_ylabel("ratio (mmHg)")
 
 
-def _aa_panel(ax: Any, gases: Points, tz: tzinfo) -> None:
+def _aa_panel(ax: PlotAxes, gases: Points, tz: tzinfo) -> None:
     _line(ax, gases, "aa_gradient", tz, marker="o", color="#7b4f9d", label="A–a gradient")
     _line(
         ax,
@@ -116,7 +119,7 @@ def _aa_panel(ax: Any, gases: Points, tz: tzinfo) -> None:
     ax.set_ylabel("A–a (mmHg)")
 
 
-def _fio2_panel(ax: Any, gases: Points, estimates: Points, tz: tzinfo) -> None:
+def _fio2_panel(ax: PlotAxes, gases: Points, estimates: Points, tz: tzinfo) -> None:
     _line(ax, gases, "fio2", tz, marker="o", color="#3c8d5a", label="FiO2 at gas")
     _line(
         ax,
@@ -133,7 +136,7 @@ def _fio2_panel(ax: Any, gases: Points, estimates: Points, tz: tzinfo) -> None:
     ax.set_ylim(0.15, 1.05)
 
 
-def _mark_events(axes: Sequence[Any], series: PatientSeries, tz: tzinfo) -> None:
+def _mark_events(axes: Sequence[PlotAxes], series: PatientSeries, tz: tzinfo) -> None:
     """Flag events as markers on the top panel and thin lines across all three."""
     ax_pf = axes[0]
     top = ax_pf.get_ylim()[1] if ax_pf.has_data() else 500.0
@@ -163,8 +166,9 @@ def _mark_events(axes: Sequence[Any], series: PatientSeries, tz: tzinfo) -> None
 def plot_patient(series: PatientSeries, path: Path, tz: tzinfo) -> None:
     """Three panels over time: P/F (measured, adjusted), A–a (and expected), FiO2;
     flag events as markers on the P/F panel and as thin lines across all three."""
-    plt = _pyplot()
+    _agg()
     import matplotlib.dates as mdates
+    import matplotlib.pyplot as plt
 
     gases = [(d, r) for d, r in series.derivations if not d.estimated]
     estimates = [(d, r) for d, r in series.derivations if d.estimated]
@@ -198,7 +202,9 @@ def plot_flag_rates(
 ) -> None:
     """Flags per patient-day by rule, stacked by priority (two bars per rule when
     comparing)."""
-    plt = _pyplot()
+    _agg()
+    import matplotlib.pyplot as plt
+
     rule_ids = sorted({r for r, _ in rates} | {r for r, _ in (second or {})}) or ["(none)"]
     fig, ax = plt.subplots(figsize=(9, 4.2))
     sets = [(rates, labels[0] or "this rule set", 0.0)]
@@ -234,13 +240,15 @@ def plot_flag_rates(
 
 def plot_time_to_flag(items: Sequence[TimeToFlag], path: Path) -> None:
     """Hours from the first worsening gas to the flag, one dot per flag, by rule."""
-    plt = _pyplot()
-    known = [t for t in items if t.hours is not None]
-    rule_ids = sorted({t.rule for t in known}) or ["(none)"]
+    _agg()
+    import matplotlib.pyplot as plt
+
+    known = [(t, t.hours) for t in items if t.hours is not None]
+    rule_ids = sorted({t.rule for t, _ in known}) or ["(none)"]
     fig, ax = plt.subplots(figsize=(9, 3.8))
-    for t in known:
+    for t, hours in known:
         ax.scatter(
-            [t.hours],
+            [hours],
             [rule_ids.index(t.rule)],
             color=PRIORITY_COLOUR.get(t.priority),
             edgecolors="black",
@@ -258,7 +266,9 @@ def plot_time_to_flag(items: Sequence[TimeToFlag], path: Path) -> None:
 
 def plot_retracted(share: dict[str, tuple[int, int]], path: Path) -> None:
     """Share of flags later retracted, by rule."""
-    plt = _pyplot()
+    _agg()
+    import matplotlib.pyplot as plt
+
     rule_ids = list(share) or ["(none)"]
     values = [share[r][0] / share[r][1] if r in share and share[r][1] else 0.0 for r in rule_ids]
     fig, ax = plt.subplots(figsize=(9, 3.2))

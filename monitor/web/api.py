@@ -8,21 +8,24 @@ the advisory sentence. Patient keys travel in paths percent-encoded (they may ho
 from __future__ import annotations
 
 import logging
-from datetime import UTC, datetime
-from typing import Annotated, Any
+from datetime import datetime
+from typing import TYPE_CHECKING, Annotated
 
 from fastapi import APIRouter, Depends, HTTPException, Query, Request
 from fastapi.responses import HTMLResponse
 from pydantic import BaseModel, Field, field_validator
 
 from monitor.engine.errors import IllegalTransition
-from monitor.engine.model import ADVISORY, Alert, AlertEvent
-from monitor.records import derivation_json
+from monitor.engine.model import ADVISORY, AlertEvent
+from monitor.shapes import alert_json, derivation_json, iso_utc
 from monitor.web.board import display_for
 from monitor.web.security import require_api_token
 from storage import alerts as alerts_store
 from storage import board as board_store
 from storage.derivations import current_derivations
+
+if TYPE_CHECKING:
+    from monitor.web.app import WebContext
 
 log = logging.getLogger("gasgap.api")
 router = APIRouter(prefix="/api", tags=["api"], dependencies=[Depends(require_api_token)])
@@ -45,36 +48,10 @@ class AcknowledgeBody(BaseModel):
         return cleaned
 
 
-def _iso(value: datetime | None) -> str | None:
-    return None if value is None else value.astimezone(UTC).isoformat()
-
-
-def alert_json(alert: Alert) -> dict[str, Any]:
-    return {
-        "id": alert.alert_id,
-        "patient_key": alert.patient_key,
-        "rule": alert.rule,
-        "priority": alert.priority.value,
-        "state": alert.state.value,
-        "open": alert.state.is_open,
-        "raised_at": _iso(alert.raised_at),
-        "updated_at": _iso(alert.updated_at),
-        "sample_id": alert.sample_id,
-        "summary": alert.summary,
-        "unit": alert.location.unit if alert.location else None,
-        "location": alert.location.label() if alert.location else None,
-        "acknowledged_by": alert.acknowledged_by,
-        "acknowledged_at": _iso(alert.acknowledged_at),
-        "closed_at": _iso(alert.closed_at),
-        "preliminary": alert.preliminary,
-        "estimated": alert.estimated,
-    }
-
-
-def event_json(event: AlertEvent) -> dict[str, Any]:
+def event_json(event: AlertEvent) -> dict[str, object]:
     return {
         "event": event.event,
-        "at": _iso(event.at),
+        "at": iso_utc(event.at),
         "priority": event.priority.value,
         "state": event.state.value,
         "sample_id": event.sample_id,
@@ -84,8 +61,8 @@ def event_json(event: AlertEvent) -> dict[str, Any]:
 
 
 @router.get("/patients", summary="Patients, optionally of one unit")
-def list_patients(request: Request, unit: str | None = None) -> dict[str, Any]:
-    ctx = request.app.state.ctx
+def list_patients(request: Request, unit: str | None = None) -> dict[str, object]:
+    ctx: WebContext = request.app.state.ctx
     with ctx.db.begin(read_only=True) as conn:
         cards = board_store.patients_in_unit(conn, unit)
     return {
@@ -108,8 +85,8 @@ def patient_derivations(
     patient_key: str,
     since: datetime | None = None,
     include_estimated: bool = True,
-) -> dict[str, Any]:
-    ctx = request.app.state.ctx
+) -> dict[str, object]:
+    ctx: WebContext = request.app.state.ctx
     if since is not None and since.tzinfo is None:
         raise HTTPException(422, "since must carry a time zone (e.g. 2026-03-15T08:00:00Z)")
     with ctx.db.begin(read_only=True) as conn:
@@ -128,8 +105,8 @@ def list_flags(
     request: Request,
     unit: str | None = None,
     since: Annotated[datetime | None, Query(description="flags changed at or after")] = None,
-) -> dict[str, Any]:
-    ctx = request.app.state.ctx
+) -> dict[str, object]:
+    ctx: WebContext = request.app.state.ctx
     if since is not None and since.tzinfo is None:
         raise HTTPException(422, "since must carry a time zone (e.g. 2026-03-15T08:00:00Z)")
     with ctx.db.begin(read_only=True) as conn:
@@ -141,8 +118,8 @@ def list_flags(
 
 
 @router.get("/flags/{alert_id}", summary="One flag and its audit trail")
-def get_flag(request: Request, alert_id: str) -> dict[str, Any]:
-    ctx = request.app.state.ctx
+def get_flag(request: Request, alert_id: str) -> dict[str, object]:
+    ctx: WebContext = request.app.state.ctx
     with ctx.db.begin(read_only=True) as conn:
         alert = alerts_store.get_alert(conn, alert_id)
         if alert is None:
@@ -156,8 +133,8 @@ def get_flag(request: Request, alert_id: str) -> dict[str, Any]:
 
 
 @router.post("/flags/{alert_id}/acknowledge", summary="Record who has seen a flag")
-def acknowledge(request: Request, alert_id: str, body: AcknowledgeBody) -> dict[str, Any]:
-    ctx = request.app.state.ctx
+def acknowledge(request: Request, alert_id: str, body: AcknowledgeBody) -> dict[str, object]:
+    ctx: WebContext = request.app.state.ctx
     try:
         alert = ctx.pipeline.acknowledge(alert_id, body.by, now=ctx.clock())
     except LookupError as exc:

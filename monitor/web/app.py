@@ -14,7 +14,7 @@ from collections.abc import Awaitable, Callable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta, tzinfo
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
 
 from fastapi import Depends, FastAPI, Request, Response
 from fastapi.responses import JSONResponse, RedirectResponse
@@ -23,6 +23,7 @@ from fastapi.staticfiles import StaticFiles
 from monitor.engine.model import ADVISORY
 from monitor.logs import IdentifierGuard
 from monitor.metrics import Metrics
+from monitor.shapes import iso_utc
 from monitor.web import api, board, hooks, quarantine_api
 from monitor.web.security import (
     BodyLimit,
@@ -39,6 +40,10 @@ from storage.db import Database
 log = logging.getLogger("gasgap.http")
 STATIC_DIR = Path(__file__).resolve().parent / "static"
 
+if TYPE_CHECKING:
+    from adapters.fhir.subscription import HookDelivery
+    from monitor.pipeline import BatchReport, Pipeline
+
 Clock = Callable[[], datetime]
 
 
@@ -47,7 +52,7 @@ class WebContext:
     """What the routes need, built once by the service (or a test)."""
 
     db: Database
-    pipeline: Any
+    pipeline: Pipeline
     clock: Clock = field(default=lambda: datetime.now(UTC))
     site_name: str = "gasgap"
     display_mode: str = "mrn-last4"
@@ -60,22 +65,19 @@ class WebContext:
     #: Source name -> function that polls it now (the hook's ping), returning at once.
     poll_now: dict[str, Callable[[], None]] = field(default_factory=dict)
     #: Source name -> function turning a hook delivery into a pipeline Inbound.
-    hook_sources: dict[str, Callable[[Any], Any]] = field(default_factory=dict)
-    #: Called with (source, inbound, report) after the hook's batch is committed.
-    on_batch: Callable[[str, Any, Any], None] | None = None
+    hook_sources: dict[str, Callable[[HookDelivery], BatchReport]] = field(default_factory=dict)
 
 
 def create_app(
-    config: Any,
     db: Database,
-    pipeline: Any,
+    pipeline: Pipeline,
     *,
     clock: Clock | None = None,
     security: WebSecurity | None = None,
     context: WebContext | None = None,
 ) -> FastAPI:
     """The FastAPI application. ``context`` carries the service's parts; without one a
-    minimal context is made from ``config`` (tests of single routes)."""
+    minimal context is made from ``db`` and ``pipeline`` (tests of single routes)."""
     ctx = context or WebContext(db=db, pipeline=pipeline)
     if clock is not None:
         ctx.clock = clock
@@ -89,7 +91,6 @@ def create_app(
         redoc_url=None,
     )
     app.state.ctx = ctx
-    app.state.config = config
     app.state.security = security
     app.include_router(api.router)
     app.include_router(board.router)
@@ -141,8 +142,8 @@ def health(request: Request) -> JSONResponse:
     ctx.metrics.outbox_backlog.set(backlog)
     sources = {
         c.source: {
-            "last_success_at": _iso(c.last_success_at),
-            "last_error_at": _iso(c.last_error_at),
+            "last_success_at": iso_utc(c.last_success_at),
+            "last_error_at": iso_utc(c.last_error_at),
             "failing": c.failing,
             "watermark": c.watermark,
         }
@@ -154,7 +155,7 @@ def health(request: Request) -> JSONResponse:
             "database": "reachable",
             "sources": sources,
             "outbox_backlog": backlog,
-            "checked_at": _iso(ctx.clock()),
+            "checked_at": iso_utc(ctx.clock()),
         }
     )
 
@@ -183,7 +184,3 @@ async def log_requests(
         (time.perf_counter() - started) * 1000,
     )
     return response
-
-
-def _iso(value: datetime | None) -> str | None:
-    return None if value is None else value.astimezone(UTC).isoformat()

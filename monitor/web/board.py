@@ -17,11 +17,11 @@ without JavaScript and with no internet.
 from __future__ import annotations
 
 import logging
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta, tzinfo
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
 from urllib.parse import parse_qs, quote, unquote
 
 from fastapi import APIRouter, Request
@@ -42,10 +42,22 @@ from monitor.web.board_view import (
     urgency,
     zone_words,
 )
-from monitor.web.security import BOARD_COOKIE, board_user, same, same_origin, uses_basic
+from monitor.web.security import (
+    BOARD_COOKIE,
+    WebSecurity,
+    board_user,
+    same,
+    same_origin,
+    uses_basic,
+)
 from storage import alerts as alerts_store
 from storage import board as board_store
 from storage.derivations import current_derivations
+
+if TYPE_CHECKING:
+    from sqlalchemy import Connection
+
+    from monitor.web.app import WebContext
 
 log = logging.getLogger("gasgap.board")
 TEMPLATES_DIR = Path(__file__).resolve().parent / "templates"
@@ -75,7 +87,7 @@ def display_for(patient_key: str, stored: str | None, location: Location | None,
         return patient_display(patient_key, location, "mrn-last4")
 
 
-def unit_rows(conn: Any, unit: str, ctx: Any, now: datetime) -> list[RowView]:
+def unit_rows(conn: Connection, unit: str, ctx: WebContext, now: datetime) -> list[RowView]:
     """One row a patient of ``unit``: with an open flag, a flag closed within
     ``recent_window``, or a gas drawn in the last 24 h; the most urgent first."""
     open_flags = alerts_store.open_alerts(conn, unit=unit)
@@ -137,7 +149,25 @@ class Plot:
     axis: str
 
 
-def _scale(lo: float, hi: float, height: int, pad: int) -> Any:
+#: A value to its SVG y (the top is 0), and a time to its SVG x.
+YScale = Callable[[float], float]
+XScale = Callable[[datetime], float]
+
+#: The plots' width and their left and right margins, in SVG units.
+PLOT_WIDTH, PLOT_LEFT, PLOT_RIGHT = 760, 46, 12
+
+
+@dataclass(frozen=True)
+class _Frame:
+    """What every panel of one patient's chart shares: the time axis and its ticks."""
+
+    x: XScale
+    ticks: list[tuple[float, str]]
+    axis: str
+    end: datetime
+
+
+def _scale(lo: float, hi: float, height: int, pad: int) -> YScale:
     def y(value: float) -> float:
         clipped = min(max(value, lo), hi)
         return round(pad + (1 - (clipped - lo) / (hi - lo)) * (height - 2 * pad), 1)
@@ -145,7 +175,7 @@ def _scale(lo: float, hi: float, height: int, pad: int) -> Any:
     return y
 
 
-def _x_axis(start: datetime, end: datetime, width: int, left: int, right: int) -> Any:
+def _x_axis(start: datetime, end: datetime, width: int, left: int, right: int) -> XScale:
     span = max((end - start).total_seconds(), 1.0)
 
     def x(at: datetime) -> float:
@@ -154,7 +184,7 @@ def _x_axis(start: datetime, end: datetime, width: int, left: int, right: int) -
     return x
 
 
-def _ticks(start: datetime, end: datetime, x: Any, tz: tzinfo) -> list[tuple[float, str]]:
+def _ticks(start: datetime, end: datetime, x: XScale, tz: tzinfo) -> list[tuple[float, str]]:
     """Five ticks across the span, in site time with the date."""
     step = (end - start) / 4
     return [(x(start + step * i), clock_words(start + step * i, tz)) for i in range(5)]
@@ -164,80 +194,87 @@ def patient_plots(series: list[Derivation], now: datetime, tz: tzinfo) -> list[P
     """Three panels over one time axis: the P/F the rules compare (measured P/F beside
     it when an altitude adjustment applies), FiO2 as steps, and S/F estimated from SpO2
     in its own panel with its own scale (S/F is not P/F)."""
-    gases = [d for d in series if not d.estimated]
-    estimates = [d for d in series if d.estimated and d.sf_ratio is not None]
     times = [d.drawn_at for d in series]
     if not times:
         return []
     start = min(min(times), now - timedelta(hours=24))
     end = max(max(times), now)
-    width, left, right = 760, 46, 12
-    x = _x_axis(start, end, width, left, right)
-    ticks = _ticks(start, end, x, tz)
-    axis = "Time: " + zone_words(tz, now)
-    plots = []
+    x = _x_axis(start, end, PLOT_WIDTH, PLOT_LEFT, PLOT_RIGHT)
+    frame = _Frame(x, _ticks(start, end, x, tz), "Time: " + zone_words(tz, now), end)
+    gases = [d for d in series if not d.estimated]
+    estimates = [d for d in series if d.estimated and d.sf_ratio is not None]
+    panels = (_pf_plot(gases, frame), _fio2_plot(series, frame), _sf_plot(estimates, frame))
+    return [p for p in panels if p is not None]
+
+
+def _pf_plot(gases: list[Derivation], frame: _Frame) -> Plot | None:
+    """The P/F the rules compare, with the measured P/F beside it when adjusted for
+    altitude, and the rule table's P/F lines."""
     pf_points = [(d.drawn_at, *compared_pf(d)) for d in gases if compared_pf(d)[0] is not None]
-    if pf_points:
-        y = _scale(0.0, 500.0, 200, 14)
-        adjusted = any(a for _, _, a in pf_points)
-        name = "P/F adjusted for altitude (rules compare this)" if adjusted else "P/F"
-        main = _series(name, "pf", [(t, v) for t, v, _ in pf_points], x, y)
-        shown = [main]
-        if adjusted:
-            measured = [(d.drawn_at, d.pf_ratio) for d in gases if d.pf_ratio is not None]
-            shown.append(_series("P/F as measured", "pf-measured", measured, x, y))
-        plots.append(
-            Plot(
-                "P/F from blood gases, mmHg",
-                width,
-                200,
-                shown,
-                [(y(v), f"{v:.0f}") for v in PF_LINES],
-                ticks,
-                [(y(v), f"{v:.0f}") for v in (0.0, 100.0, 200.0, 300.0, 400.0, 500.0)],
-                axis,
-            )
-        )
+    if not pf_points:
+        return None
+    y = _scale(0.0, 500.0, 200, 14)
+    adjusted = any(a for _, _, a in pf_points)
+    name = "P/F adjusted for altitude (rules compare this)" if adjusted else "P/F"
+    shown = [_series(name, "pf", [(t, v) for t, v, _ in pf_points], frame.x, y)]
+    if adjusted:
+        measured = [(d.drawn_at, d.pf_ratio) for d in gases if d.pf_ratio is not None]
+        shown.append(_series("P/F as measured", "pf-measured", measured, frame.x, y))
+    return Plot(
+        "P/F from blood gases, mmHg",
+        PLOT_WIDTH,
+        200,
+        shown,
+        [(y(v), f"{v:.0f}") for v in PF_LINES],
+        frame.ticks,
+        [(y(v), f"{v:.0f}") for v in (0.0, 100.0, 200.0, 300.0, 400.0, 500.0)],
+        frame.axis,
+    )
+
+
+def _fio2_plot(series: list[Derivation], frame: _Frame) -> Plot | None:
+    """FiO2 in effect as steps, the last one carried to the end of the axis."""
     fio2 = sorted((d.drawn_at, d.fio2) for d in series if d.fio2 is not None)
-    if fio2:
-        y = _scale(0.2, 1.0, 110, 10)
-        points = fio2 + [(end, fio2[-1][1])]
-        plots.append(
-            Plot(
-                "FiO2 in effect (fraction), drawn as steps",
-                width,
-                110,
-                [_series("FiO2", "fio2", points, x, y, step=True, digits=2)],
-                [],
-                ticks,
-                [(y(v), f"{v:.1f}") for v in (0.2, 0.6, 1.0)],
-                axis,
-            )
-        )
-    if estimates:
-        y = _scale(0.0, 500.0, 140, 12)
-        sf_points = [(d.drawn_at, d.sf_ratio) for d in estimates]
-        plots.append(
-            Plot(
-                "S/F estimated from SpO2 (not a blood gas; no unit)",
-                width,
-                140,
-                [_series("S/F estimate", "sf", sf_points, x, y)],
-                [],
-                ticks,
-                [(y(v), f"{v:.0f}") for v in (0.0, 235.0, 500.0)],
-                axis,
-            )
-        )
-    return plots
+    if not fio2:
+        return None
+    y = _scale(0.2, 1.0, 110, 10)
+    points = fio2 + [(frame.end, fio2[-1][1])]
+    return Plot(
+        "FiO2 in effect (fraction), drawn as steps",
+        PLOT_WIDTH,
+        110,
+        [_series("FiO2", "fio2", points, frame.x, y, step=True, digits=2)],
+        [],
+        frame.ticks,
+        [(y(v), f"{v:.1f}") for v in (0.2, 0.6, 1.0)],
+        frame.axis,
+    )
+
+
+def _sf_plot(estimates: list[Derivation], frame: _Frame) -> Plot | None:
+    """S/F estimated from SpO2, on a scale of its own (S/F is not P/F)."""
+    if not estimates:
+        return None
+    y = _scale(0.0, 500.0, 140, 12)
+    sf_points = [(d.drawn_at, d.sf_ratio) for d in estimates]
+    return Plot(
+        "S/F estimated from SpO2 (not a blood gas; no unit)",
+        PLOT_WIDTH,
+        140,
+        [_series("S/F estimate", "sf", sf_points, frame.x, y)],
+        [],
+        frame.ticks,
+        [(y(v), f"{v:.0f}") for v in (0.0, 235.0, 500.0)],
+        frame.axis,
+    )
 
 
 def _series(
     name: str,
     css: str,
     points: Sequence[tuple[datetime, float | None]],
-    x: Any,
-    y: Any,
+    x: XScale,
+    y: YScale,
     *,
     step: bool = False,
     digits: int = 0,
@@ -270,8 +307,10 @@ def _login_redirect(request: Request) -> Response:
     return RedirectResponse("/board/login?next=" + quote(request.url.path, safe=""), 303)
 
 
-def _page(request: Request, template: str, status_code: int = 200, **values: Any) -> HTMLResponse:
-    ctx = request.app.state.ctx
+def _page(
+    request: Request, template: str, status_code: int = 200, **values: object
+) -> HTMLResponse:
+    ctx: WebContext = request.app.state.ctx
     now = ctx.clock()
     return templates.TemplateResponse(
         request,
@@ -306,7 +345,7 @@ def _guarded(request: Request) -> Response | None:
     return None
 
 
-def _set_session(response: Response, security: Any) -> None:
+def _set_session(response: Response, security: WebSecurity) -> None:
     response.set_cookie(
         BOARD_COOKIE,
         security.board_session_value(),
@@ -346,7 +385,7 @@ async def login(request: Request) -> Response:
 def units(request: Request) -> Response:
     if (redirect := _guarded(request)) is not None:
         return redirect
-    ctx = request.app.state.ctx
+    ctx: WebContext = request.app.state.ctx
     with ctx.db.begin(read_only=True) as conn:
         names = board_store.known_units(conn)
         counts = board_store.open_flag_counts(conn)
@@ -359,7 +398,7 @@ def units(request: Request) -> Response:
 def unit_page(request: Request, unit: str) -> Response:
     if (redirect := _guarded(request)) is not None:
         return redirect
-    ctx = request.app.state.ctx
+    ctx: WebContext = request.app.state.ctx
     now = ctx.clock()
     with ctx.db.begin(read_only=True) as conn:
         names = board_store.known_units(conn)
@@ -415,7 +454,7 @@ def _done_note(request: Request, rows: Sequence[RowView]) -> str | None:
 def patient_page(request: Request, patient_key: str) -> Response:
     if (redirect := _guarded(request)) is not None:
         return redirect
-    ctx = request.app.state.ctx
+    ctx: WebContext = request.app.state.ctx
     now = ctx.clock()
     with ctx.db.begin(read_only=True) as conn:
         card = board_store.patient_cards(conn, [patient_key]).get(patient_key)
@@ -490,7 +529,7 @@ async def acknowledge_patient(request: Request) -> Response:
     by = " ".join(_first(form, "by", "").split())[:MAX_NAME_LENGTH]
     if not by:
         return RedirectResponse(_with_note(back, "name-needed", row), 303)
-    ctx = request.app.state.ctx
+    ctx: WebContext = request.app.state.ctx
     done = 0
     for alert_id in form.get("flag", [])[:50]:
         try:
@@ -518,7 +557,7 @@ async def acknowledge(request: Request, alert_id: str) -> Response:
     by = " ".join(form.get("by", "").split())[:MAX_NAME_LENGTH]
     if not by:
         return RedirectResponse(_with_note(back, "name-needed"), 303)
-    ctx = request.app.state.ctx
+    ctx: WebContext = request.app.state.ctx
     try:
         ctx.pipeline.acknowledge(alert_id, by, now=ctx.clock())
     except LookupError:
@@ -535,7 +574,7 @@ def _ack_name(request: Request) -> str:
     return unquote(request.cookies.get(NAME_COOKIE, ""))[:MAX_NAME_LENGTH]
 
 
-def _remember_name(response: Response, by: str, security: Any) -> None:
+def _remember_name(response: Response, by: str, security: WebSecurity) -> None:
     """The acknowledger's name, kept for a shift so the next form is filled in."""
     response.set_cookie(
         NAME_COOKIE,

@@ -8,14 +8,17 @@ where they are run by someone with access to the host.
 
 from __future__ import annotations
 
-from typing import Annotated, Any
+from typing import TYPE_CHECKING, Annotated
 
 from fastapi import APIRouter, Depends, HTTPException, Query, Request
 
-from monitor.cli_quarantine import item_summary, payload_text
 from monitor.engine.model import ADVISORY
+from monitor.shapes import payload_text, quarantine_item_json
 from monitor.web.security import require_signed_in
 from storage.quarantine import get_quarantined, list_quarantine
+
+if TYPE_CHECKING:
+    from monitor.web.app import WebContext
 
 router = APIRouter(
     prefix="/api/quarantine", tags=["quarantine"], dependencies=[Depends(require_signed_in)]
@@ -29,8 +32,8 @@ def list_items(
     limit: Annotated[int, Query(ge=1, le=500)] = 50,
     before_id: Annotated[int | None, Query(ge=1)] = None,
     open_only: Annotated[bool, Query(alias="open")] = False,
-) -> dict[str, Any]:
-    ctx = request.app.state.ctx
+) -> dict[str, object]:
+    ctx: WebContext = request.app.state.ctx
     with ctx.db.begin(read_only=True) as conn:
         items = list_quarantine(
             conn,
@@ -40,14 +43,14 @@ def list_items(
             unresolved_only=open_only,
             before_id=before_id,
         )
-    return {"items": [item_summary(i) for i in items], "advisory": ADVISORY}
+    return {"items": [quarantine_item_json(i) for i in items], "advisory": ADVISORY}
 
 
 @router.get("/{item_id}", summary="One refused input with its payload")
-def show_item(request: Request, item_id: int) -> dict[str, Any]:
-    ctx = request.app.state.ctx
+def show_item(request: Request, item_id: int) -> dict[str, object]:
+    ctx: WebContext = request.app.state.ctx
     with ctx.db.begin(read_only=True) as conn:
         item = get_quarantined(conn, item_id)
     if item is None:
         raise HTTPException(404, f"no quarantined item {item_id}")
-    return {**item_summary(item), "payload": payload_text(item.raw), "advisory": ADVISORY}
+    return {**quarantine_item_json(item), "payload": payload_text(item.raw), "advisory": ADVISORY}

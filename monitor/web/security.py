@@ -35,7 +35,6 @@ import secrets
 import threading
 import time
 from dataclasses import dataclass, field
-from typing import Any
 
 from fastapi import APIRouter, HTTPException, Request, status
 from fastapi.responses import RedirectResponse, Response
@@ -255,7 +254,7 @@ def _content_length(scope: Scope) -> int | None:
 
 async def _too_large(send: Send, limit: int) -> None:
     body = f'{{"detail":"request body over {limit} bytes"}}'.encode()
-    headers: list[Any] = [
+    headers: list[tuple[bytes, bytes]] = [
         (b"content-type", b"application/json"),
         (b"content-length", str(len(body)).encode()),
     ]

@@ -16,7 +16,7 @@ from pathlib import Path
 import pytest
 
 from monitor.cli import _Parser
-from monitor.cli_replay import add_replay_command
+from monitor.cli.replay import add_replay_command
 from monitor.config import load_config
 from monitor.demo import FEED_DIR, FEEDS
 from monitor.engine.model import ADVISORY

@@ -24,7 +24,7 @@ from pathlib import Path
 import pytest
 
 from monitor.config import load_config
-from monitor.dispatch import DispatchPolicy
+from monitor.outbox.retry import DispatchPolicy
 from monitor.service import build_service
 from tests.integration.service.test_serve_process import expected_priority
 from tests.reliability.helpers import (

@@ -1,4 +1,4 @@
-"""Backoff and the decision after each attempt (monitor.dispatch): no I/O, no clock.
+"""Backoff and the decision after each attempt (monitor.outbox.retry): no I/O, no clock.
 
 The schedule is exponential backoff with jitter: a common practice with no single
 standard. The expected waits below are worked by hand from that definition

@@ -1,5 +1,5 @@
 """One contract, every channel: a peer that is down gives retryable failures; when it
-comes back, a retry loop (``monitor.dispatch``) delivers every notification exactly once,
+comes back, a retry loop (``monitor.outbox.retry``) delivers every notification exactly once,
 counted by idempotency key at the real receiver."""
 
 import json
@@ -14,8 +14,8 @@ import pytest
 
 from adapters.notify import Channel, build_channel
 from adapters.notify.base import log_ref
-from monitor.dispatch import DispatchPolicy, Outcome, deliver_once, plan
 from monitor.engine.model import Notification
+from monitor.outbox.retry import DispatchPolicy, Outcome, deliver_once, plan
 from tests.integration.notify.conftest import (
     HttpReceiver,
     SmtpPeer,

@@ -150,7 +150,7 @@ def serve_command(config: Path) -> list[str]:
     try:
         parser.parse_args(["serve", "--config", str(config)])
     except SystemExit:
-        return [sys.executable, "-m", "monitor.cli_serve", "serve", "--config", str(config)]
+        return [sys.executable, "-m", "monitor.cli", "serve", "--config", str(config)]
     return [sys.executable, "-m", "monitor.cli", "serve", "--config", str(config)]
 
 

@@ -278,7 +278,7 @@ def test_config_check_and_db_upgrade_commands(tmp_path: Path) -> None:
     bad = tmp_path / "bad.toml"
     bad.write_text('[http]\napi_token = "in-clear"\n')
     result = subprocess.run(
-        [sys.executable, "-m", "monitor.cli_serve", "config", "check", str(bad)],
+        [sys.executable, "-m", "monitor.cli", "config", "check", str(bad)],
         cwd=REPO,
         capture_output=True,
         text=True,
@@ -289,7 +289,7 @@ def test_config_check_and_db_upgrade_commands(tmp_path: Path) -> None:
         [
             sys.executable,
             "-m",
-            "monitor.cli_serve",
+            "monitor.cli",
             "config",
             "check",
             str(REPO / "fixtures" / "site-example.toml"),
@@ -302,7 +302,7 @@ def test_config_check_and_db_upgrade_commands(tmp_path: Path) -> None:
     assert good.returncode == 0, good.stderr
     url = f"sqlite:///{tmp_path}/fresh.db"
     up = subprocess.run(
-        [sys.executable, "-m", "monitor.cli_serve", "db", "upgrade", "--db", url],
+        [sys.executable, "-m", "monitor.cli", "db", "upgrade", "--db", url],
         cwd=REPO,
         capture_output=True,
         text=True,
@@ -311,7 +311,7 @@ def test_config_check_and_db_upgrade_commands(tmp_path: Path) -> None:
     assert up.returncode == 0, up.stderr
     assert (tmp_path / "fresh.db").exists()
     listed = subprocess.run(
-        [sys.executable, "-m", "monitor.cli_serve", "alerts", "--db", url, "--json"],
+        [sys.executable, "-m", "monitor.cli", "alerts", "--db", url, "--json"],
         cwd=REPO,
         capture_output=True,
         text=True,

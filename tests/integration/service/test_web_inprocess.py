@@ -172,7 +172,7 @@ def test_health_is_503_when_the_database_is_unreachable() -> None:
         create_engine("postgresql+psycopg://postgres@127.0.0.1:9/none?connect_timeout=2"),
         "postgresql+psycopg://postgres@127.0.0.1:9/none",
     )
-    app = create_app(None, gone, None, security=WebSecurity())
+    app = create_app(gone, None, security=WebSecurity())
     response = AppClient(app).get("/health")
     assert response.status_code == 503
     assert response.json()["status"] == "unavailable"

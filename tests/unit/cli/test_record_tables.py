@@ -9,7 +9,7 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
-from monitor.cli_records import (
+from monitor.cli.records import (
     _table,
     alerts_table,
     database_problem,

@@ -21,16 +21,25 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-from collections.abc import Sequence
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
+
+from monitor.cli.common import Subparsers
+from monitor.shapes import iso_utc, payload_text, quarantine_item_json
+
+if TYPE_CHECKING:
+    from monitor.config import SiteConfig
+    from monitor.ingest import SourceContext
+    from monitor.pipeline import BatchReport, Pipeline
+    from storage.db import Database
+    from storage.quarantine import QuarantinedInput
 
 EXIT_FAILED = 1
 EXIT_CONFIG = 3
 
 
-def add_quarantine_commands(sub: Any) -> None:
+def add_quarantine_commands(sub: Subparsers) -> None:
     """Register ``gasgap quarantine ...`` on the main command's subparsers."""
     top = sub.add_parser(
         "quarantine",
@@ -83,38 +92,11 @@ def _fail(message: str, code: int = EXIT_CONFIG) -> int:
     return code
 
 
-def _open(args: argparse.Namespace) -> tuple[Any, Any]:
+def _open(args: argparse.Namespace) -> tuple[SiteConfig, Database]:
     from monitor.bootstrap import Secrets, load_site, open_db
 
     config = load_site(args.config)
     return config, open_db(config, Secrets(args.secrets_file))
-
-
-def _iso(value: datetime | None) -> str | None:
-    return None if value is None else value.astimezone(UTC).isoformat(timespec="seconds")
-
-
-def item_summary(item: Any) -> dict[str, Any]:
-    """One item as JSON (no payload): what the list, ``show`` and the API print."""
-    return {
-        "id": item.id,
-        "source": item.source,
-        "received_at": _iso(item.received_at),
-        "reason": item.reason,
-        "occurrences": item.occurrences,
-        "payload_bytes": item.payload_size,
-        "truncated": item.truncated,
-        "reprocessed_at": _iso(item.resolved_at),
-        "reprocess_outcome": item.resolution,
-    }
-
-
-def payload_text(raw: bytes | str | None) -> str:
-    """The payload as text for a person (HL7 segments on their own lines)."""
-    if raw is None:
-        return ""
-    text = raw.decode("utf-8", "replace") if isinstance(raw, bytes) else raw
-    return text.replace("\r\n", "\n").replace("\r", "\n")
 
 
 def _run_list(args: argparse.Namespace) -> int:
@@ -130,12 +112,12 @@ def _run_list(args: argparse.Namespace) -> int:
         db.dispose()
     for item in items:
         if args.json:
-            print(json.dumps(item_summary(item)))
+            print(json.dumps(quarantine_item_json(item)))
             continue
         times = f" x{item.occurrences}" if item.occurrences > 1 else ""
         done = " [re-processed]" if item.resolved_at else ""
         print(
-            f"{item.id:>7}  {_iso(item.received_at)}  {item.source:<14} "
+            f"{item.id:>7}  {iso_utc(item.received_at, timespec='seconds')}  {item.source:<14} "
             f"{item.payload_size:>8} B{times}{done}  {item.reason[:100]}"
         )
     if not items:
@@ -154,14 +136,16 @@ def _run_show(args: argparse.Namespace) -> int:
         db.dispose()
     if item is None:
         return _fail(f"no quarantined item {args.id}", EXIT_FAILED)
-    print(json.dumps(item_summary(item), indent=2))
+    print(json.dumps(quarantine_item_json(item), indent=2))
     if args.raw:
         print("--- payload" + (" (cut at the storage limit)" if item.truncated else "") + " ---")
         print(payload_text(item.raw))
     return 0
 
 
-def reprocess(item: Any, *, pipeline: Any, context: Any, now: datetime) -> Any:
+def reprocess(
+    item: QuarantinedInput, *, pipeline: Pipeline, context: SourceContext, now: datetime
+) -> BatchReport:
     """Give a kept payload to the pipeline again; returns the BatchReport."""
     from adapters.fhir.limits import too_deep
     from adapters.hl7v2.ack import Hl7Error
@@ -285,14 +269,3 @@ def _run_purge(args: argparse.Namespace) -> int:
         db.dispose()
     print(f"{removed} quarantined item(s) deleted")
     return 0
-
-
-def main(argv: Sequence[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="gasgap")
-    add_quarantine_commands(parser.add_subparsers(dest="command", required=True))
-    args = parser.parse_args(argv)
-    return int(args.run(args))
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

@@ -8,16 +8,17 @@ from __future__ import annotations
 
 import argparse
 import json
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, datetime, timedelta, tzinfo
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from monitor.cli.common import Subparsers, add_site_options, fail, open_site
-from monitor.engine.model import ADVISORY, Derivation
+from monitor.engine.model import ADVISORY, Alert, Derivation
 
 if TYPE_CHECKING:
     from monitor.bootstrap import Shell
     from monitor.outbox import RoundReport
+    from monitor.report.plots import PlotAxes
 
 
 def add_record_commands(sub: Subparsers) -> None:
@@ -177,9 +178,9 @@ def _send(shell: Shell) -> RoundReport:
 # --- patient -------------------------------------------------------------------------------
 
 
-def series_row(derivation: Derivation, version: int) -> dict[str, Any]:
+def series_row(derivation: Derivation, version: int) -> dict[str, object]:
     """One row of ``gasgap patient --json``: the API's shape plus the stored version."""
-    from monitor.records import derivation_json
+    from monitor.shapes import derivation_json
 
     return derivation_json(derivation) | {"version": version}
 
@@ -219,7 +220,7 @@ def _run_patient(args: argparse.Namespace) -> int:
     return 0
 
 
-def _fmt(value: Any, digits: int = 0) -> str:
+def _fmt(value: object, digits: int = 0) -> str:
     if value is None:
         return "-"
     if isinstance(value, float):
@@ -227,7 +228,7 @@ def _fmt(value: Any, digits: int = 0) -> str:
     return str(value)
 
 
-def _zone_label(tz: Any, at: datetime) -> str:
+def _zone_label(tz: tzinfo, at: datetime) -> str:
     """ "site time, UTC-07:00": the offset written so its sign reads the right way
     round (an Etc/GMT-2 zone is UTC+02:00)."""
     delta = at.astimezone(tz).utcoffset() or timedelta(0)
@@ -239,7 +240,7 @@ def _zone_label(tz: Any, at: datetime) -> str:
     return f"site time, UTC{sign}{hours:02d}:{mins:02d}"
 
 
-def _table(rows: list[dict[str, Any]], tz: Any) -> str:
+def _table(rows: list[dict[str, Any]], tz: tzinfo) -> str:
     """Gases first, then SpO2 estimates in a table of their own: an estimate never sits
     in a PaO2 or P/F column. A note on every row is said once above the table."""
     gases = [r for r in rows if not r["estimated"]]
@@ -260,11 +261,11 @@ def _marks(r: dict[str, Any]) -> list[str]:
     return [m for m in marks if m != "estimated from SpO2"]
 
 
-def _drawn(r: dict[str, Any], tz: Any) -> str:
+def _drawn(r: dict[str, Any], tz: tzinfo) -> str:
     return str(datetime.fromisoformat(r["drawn_at"]).astimezone(tz).strftime("%Y-%m-%d %H:%M"))
 
 
-def _gas_table(rows: list[dict[str, Any]], tz: Any) -> list[str]:
+def _gas_table(rows: list[dict[str, Any]], tz: tzinfo) -> list[str]:
     adjusted = any(r["pf_ratio_adjusted"] is not None for r in rows)
     zone = _zone_label(tz, datetime.fromisoformat(rows[-1]["drawn_at"]))
     marks = [_marks(r) for r in rows]
@@ -293,7 +294,7 @@ def _gas_table(rows: list[dict[str, Any]], tz: Any) -> list[str]:
     return lines
 
 
-def _estimate_table(rows: list[dict[str, Any]], tz: Any) -> list[str]:
+def _estimate_table(rows: list[dict[str, Any]], tz: tzinfo) -> list[str]:
     zone = _zone_label(tz, datetime.fromisoformat(rows[-1]["drawn_at"]))
     head = f"{'read':16} {'SpO2 %':>6} {'FiO2':>5} {'FiO2 from':<30} {'S/F est.':>8}  notes"
     lines = [
@@ -309,7 +310,7 @@ def _estimate_table(rows: list[dict[str, Any]], tz: Any) -> list[str]:
     return lines
 
 
-def alerts_table(alerts: list[Any], tz: Any, now: datetime) -> str:
+def alerts_table(alerts: list[Alert], tz: tzinfo, now: datetime) -> str:
     """``gasgap alerts``: one line a flag with its priority in words, the rule in words,
     when it was raised and when its gas was drawn (both with dates, site time), where,
     and the summary; the id last, for ``alerts ack``. ``alerts`` are open flags."""
@@ -354,7 +355,7 @@ def database_problem(url: str | None) -> str | None:
 
 
 def write_trend_plot(
-    derivations: list[Derivation], path: Path, *, title: str, tz: Any = UTC
+    derivations: list[Derivation], path: Path, *, title: str, tz: tzinfo = UTC
 ) -> None:
     """P/F from gases (measured, and adjusted for altitude where that applies), FiO2 as
     steps, and S/F estimated from SpO2 on its own axis, over one time axis in site time
@@ -362,29 +363,43 @@ def write_trend_plot(
     import matplotlib
 
     matplotlib.use("Agg")
-    import matplotlib.dates as mdates
     import matplotlib.pyplot as plt
 
     gases = [d for d in derivations if not d.estimated and d.pf_ratio is not None]
     estimates = [d for d in derivations if d.estimated and d.sf_ratio is not None]
     panels = 3 if estimates else 2
     fig, axes = plt.subplots(panels, 1, figsize=(9, 2.6 * panels), sharex=True)
-    ax_pf, ax_fio2 = axes[0], axes[1]
+    _pf_panel(axes[0], gases, tz)
+    _fio2_panel(axes[1], derivations, tz)
+    if estimates:
+        _sf_panel(axes[2], estimates, tz)
+    _time_axis(axes[-1], derivations, tz)
+    fig.suptitle(f"{title}: oxygenation trend (advisory; clinicians decide)")
+    fig.autofmt_xdate()
+    fig.tight_layout()
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
 
-    def local(ds: list[Derivation]) -> list[datetime]:
-        return [d.drawn_at.astimezone(tz) for d in ds]
 
+def _local(ds: list[Derivation], tz: tzinfo) -> list[datetime]:
+    return [d.drawn_at.astimezone(tz) for d in ds]
+
+
+def _pf_panel(ax: PlotAxes, gases: list[Derivation], tz: tzinfo) -> None:
+    """P/F of the gases: adjusted for altitude (what the rules compare) and as measured
+    where the site adjusts, else as measured; lines at 300, 200 and 100."""
     adjusted = [d for d in gases if d.pf_ratio_adjusted is not None]
     if adjusted:
-        ax_pf.plot(
-            local(adjusted),
+        ax.plot(
+            _local(adjusted, tz),
             [d.pf_ratio_adjusted for d in adjusted],
             "o-",
             color="black",
             label="P/F adjusted for altitude (rules compare this)",
         )
-        ax_pf.plot(
-            local(gases),
+        ax.plot(
+            _local(gases, tz),
             [d.pf_ratio for d in gases],
             "o:",
             color="grey",
@@ -392,35 +407,42 @@ def write_trend_plot(
             label="P/F as measured",
         )
     elif gases:
-        ax_pf.plot(local(gases), [d.pf_ratio for d in gases], "o-", color="black", label="P/F")
+        ax.plot(_local(gases, tz), [d.pf_ratio for d in gases], "o-", color="black", label="P/F")
     for level in (300, 200, 100):
-        ax_pf.axhline(level, color="grey", linewidth=0.6, linestyle="--")
-    ax_pf.set_ylabel("P/F (mmHg)")
-    ax_pf.legend(loc="best", fontsize=8)
+        ax.axhline(level, color="grey", linewidth=0.6, linestyle="--")
+    ax.set_ylabel("P/F (mmHg)")
+    ax.legend(loc="best", fontsize=8)
+
+
+def _fio2_panel(ax: PlotAxes, derivations: list[Derivation], tz: tzinfo) -> None:
+    """FiO2 as steps: it holds until the next known value."""
     with_fio2 = [d for d in derivations if d.fio2 is not None]
-    ax_fio2.step(local(with_fio2), [d.fio2 for d in with_fio2], where="post", color="tab:green")
-    ax_fio2.set_ylabel("FiO2 (fraction)")
-    ax_fio2.set_ylim(0.15, 1.05)
-    if estimates:
-        ax_sf = axes[2]
-        ax_sf.plot(
-            local(estimates),
-            [d.sf_ratio for d in estimates],
-            "s--",
-            color="tab:purple",
-            markerfacecolor="white",
-            label="S/F estimate",
-        )
-        ax_sf.set_ylabel("S/F from SpO2\n(estimate, no unit)")
-        ax_sf.legend(loc="best", fontsize=8)
+    ax.step(_local(with_fio2, tz), [d.fio2 for d in with_fio2], where="post", color="tab:green")
+    ax.set_ylabel("FiO2 (fraction)")
+    ax.set_ylim(0.15, 1.05)
+
+
+def _sf_panel(ax: PlotAxes, estimates: list[Derivation], tz: tzinfo) -> None:
+    """S/F estimated from SpO2, on an axis of its own (it has no unit)."""
+    ax.plot(
+        _local(estimates, tz),
+        [d.sf_ratio for d in estimates],
+        "s--",
+        color="tab:purple",
+        markerfacecolor="white",
+        label="S/F estimate",
+    )
+    ax.set_ylabel("S/F from SpO2\n(estimate, no unit)")
+    ax.legend(loc="best", fontsize=8)
+
+
+def _time_axis(ax: PlotAxes, derivations: list[Derivation], tz: tzinfo) -> None:
+    """The shared time axis: from an hour before the first value, dates and times in
+    site time, the zone written in the label."""
+    import matplotlib.dates as mdates
+
     first = min((d.drawn_at for d in derivations), default=datetime.now(UTC))
-    axes[-1].set_xlim(first.astimezone(tz) - timedelta(hours=1), None)
+    ax.set_xlim(first.astimezone(tz) - timedelta(hours=1), None)
     formatter = mdates.DateFormatter("%d %b %H:%M", tz=tz)  # type: ignore[no-untyped-call]
-    axes[-1].xaxis.set_major_formatter(formatter)
-    axes[-1].set_xlabel("Time: " + _zone_label(tz, first))
-    fig.suptitle(f"{title}: oxygenation trend (advisory; clinicians decide)")
-    fig.autofmt_xdate()
-    fig.tight_layout()
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    ax.xaxis.set_major_formatter(formatter)
+    ax.set_xlabel("Time: " + _zone_label(tz, first))

@@ -14,18 +14,26 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any, TypedDict
 
 from monitor.engine.errors import MonitorError
 from monitor.engine.model import ADVISORY
+
+if TYPE_CHECKING:
+    from adapters.codes import CodeTable
+    from adapters.fhir.bulk import Auth, ExportResult
+    from monitor.cli.common import Subparsers
+    from monitor.config import FhirSource, SiteConfig
+    from monitor.pipeline import BatchReport
 
 EXIT_USAGE = 2
 EXIT_FAILED = 1
 
 
-def add_fhir_commands(sub: Any) -> None:
+def add_fhir_commands(sub: Subparsers) -> None:
     """Register ``gasgap fhir`` on ``sub`` (the parser's sub-parsers)."""
     fhir = sub.add_parser("fhir", help="FHIR sources: SMART keys, bulk backfill")
     fhir_sub = fhir.add_subparsers(dest="fhir_command", required=True)
@@ -100,7 +108,7 @@ def _fail(message: str, code: int = EXIT_USAGE) -> int:
     return code
 
 
-def _source(args: argparse.Namespace) -> tuple[Any, Any]:
+def _source(args: argparse.Namespace) -> tuple[SiteConfig, FhirSource]:
     from monitor.config import ConfigError, load_config
 
     try:
@@ -123,13 +131,13 @@ def _source(args: argparse.Namespace) -> tuple[Any, Any]:
     return config, next(iter(sources.values()))
 
 
-def _lookup(args: argparse.Namespace) -> Any:
+def _lookup(args: argparse.Namespace) -> Callable[[str], str]:
     from monitor.config import secret
 
     return lambda name: secret(name, secrets_file=args.secrets_file)
 
 
-def source_auth(source: Any, secrets_file: Path | None) -> Any:
+def source_auth(source: FhirSource, secrets_file: Path | None) -> Auth:
     """The auth of a ``[[sources.fhir]]``: SMART when ``smart`` is set, else the static
     bearer token or basic auth, else None."""
     from adapters.fhir.poller import BasicAuth, BearerAuth
@@ -291,7 +299,9 @@ def _run_backfill(args: argparse.Namespace) -> int:
     return 0
 
 
-def _load(args: argparse.Namespace, config: Any, source: Any, codes: Any, path: Path) -> Any:
+def _load(
+    args: argparse.Namespace, config: SiteConfig, source: FhirSource, codes: CodeTable, path: Path
+) -> BatchReport:
     from dataclasses import replace
 
     from monitor.bootstrap import Secrets, build_pipeline, open_db, source_context
@@ -312,7 +322,26 @@ def _load(args: argparse.Namespace, config: Any, source: Any, codes: Any, path: 
         db.dispose()
 
 
-def _summary(report: Any, result: Any, lines: int) -> dict[str, Any]:
+class BackfillSummary(TypedDict):
+    """What ``gasgap fhir backfill`` prints (``--json``: as it is)."""
+
+    files: list[str]
+    lines: int
+    server_errors: list[str]
+    transaction_time: str | None
+    read: int
+    stored: int
+    duplicates: int
+    skipped_codes: int
+    quarantined: int
+    top_quarantine_reasons: list[tuple[str, int]]
+    derivations: int
+    flag_events: int
+    historical_flags: int | None
+    notifications_queued: int
+
+
+def _summary(report: BatchReport, result: ExportResult, lines: int) -> BackfillSummary:
     errors = []
     for path in result.error_files:
         for raw in path.read_text(errors="replace").splitlines()[:20]:
@@ -340,7 +369,7 @@ def _summary(report: Any, result: Any, lines: int) -> dict[str, Any]:
     }
 
 
-def _print_summary(summary: dict[str, Any]) -> None:
+def _print_summary(summary: BackfillSummary) -> None:
     print(f"downloaded {len(summary['files'])} files, {summary['lines']} lines")
     for text in summary["server_errors"]:
         print(f"  server reported: {text}")
