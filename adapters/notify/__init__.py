@@ -10,7 +10,7 @@ Configuration shape (one entry per alias)::
     }
 
 ``build_channel(alias, options)`` makes one; ``route`` picks the aliases for a
-notification; ``monitor.dispatch`` sends through them.
+notification; ``monitor.outbox.dispatcher`` sends through them.
 """
 
 from collections.abc import Callable, Mapping

@@ -3,7 +3,7 @@
 A channel is anything with ``send(notification) -> DeliveryResult`` and ``close()``.
 ``send`` never raises for a delivery problem: it answers with a ``DeliveryResult`` that
 says whether the message went out, and if not, whether trying again later can help.
-The outbox (storage) and the dispatcher (``monitor.dispatch``) act on that answer alone.
+The outbox (storage) and the dispatcher (``monitor.outbox.dispatcher``) act on that answer alone.
 
 Library errors (httpx, smtplib, pydantic from fhir.resources) are caught at this edge by
 the ``map_*_errors`` context managers and re-raised as ``DeliveryFailed``, which carries
