@@ -26,8 +26,11 @@ from datetime import timedelta
 from pathlib import Path
 
 from adapters.codes import CodeTable
+from adapters.fhir.poller import BasicAuth, BearerAuth
+from adapters.fhir.smart import SmartAuth
 from adapters.notify import Channel, build_channel
 from monitor.config import ConfigError, SiteConfig, default_config, load_config, secret
+from monitor.config.sections import FhirSource
 from monitor.ingest import SourceContext
 from monitor.pipeline import Pipeline, PipelineSettings, Routing
 from storage.db import DEFAULT_URL, Database, open_database
@@ -39,6 +42,7 @@ __all__ = [
     "build_pipeline",
     "channel_secrets",
     "database_url",
+    "fhir_source_auth",
     "load_site",
     "open_db",
     "open_shell",
@@ -167,6 +171,22 @@ def build_channels(config: SiteConfig, secrets: Secrets) -> dict[str, Channel]:
         options = config.channel_options(alias)
         channels[alias] = build_channel(alias, options, secrets=channel_secrets(options, secrets))
     return channels
+
+
+def fhir_source_auth(
+    source: FhirSource, secrets: Secrets
+) -> BearerAuth | BasicAuth | SmartAuth | None:
+    """The auth of a ``[[sources.fhir]]``, for the poller, the subscription and
+    ``gasgap fhir backfill`` alike: SMART Backend Services when ``smart`` is set, else
+    the static bearer token or basic auth, else None. Secrets are resolved here."""
+    if source.smart is not None:
+        return SmartAuth(source.smart, source.base_url, lookup=secrets.get)
+    auth = source.auth
+    if auth.type == "bearer":
+        return BearerAuth(secrets.get(auth.token_env))
+    if auth.type == "basic":
+        return BasicAuth(auth.user, secrets.get(auth.password_env))
+    return None
 
 
 # --- one command's shell -----------------------------------------------------------------

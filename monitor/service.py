@@ -27,8 +27,7 @@ from fastapi import FastAPI
 
 from adapters.codes import CodeTable
 from adapters.fhir.observations import FhirBatch
-from adapters.fhir.poller import BasicAuth, BearerAuth, FhirPoller, PollBatch
-from adapters.fhir.smart import SmartAuth
+from adapters.fhir.poller import FhirPoller, PollBatch
 from adapters.fhir.subscription import HookDelivery, read_delivery
 from adapters.hl7v2 import Hl7Error
 from adapters.hl7v2.ack import ack_for_batch, unreadable_reason
@@ -36,7 +35,7 @@ from adapters.hl7v2.mllp import AckDecision, MllpListener
 from adapters.notify import Channel
 from monitor import bootstrap
 from monitor.bootstrap import Secrets
-from monitor.config import ConfigError, FhirSource, SiteConfig, load_config
+from monitor.config import ConfigError, SiteConfig, load_config
 from monitor.dropfolder import DropFolder, ingest_from
 from monitor.engine.model import Reading
 from monitor.engine.wording import patient_display
@@ -287,17 +286,6 @@ def _mllp_ssl(config: SiteConfig) -> ssl.SSLContext | None:
     return context
 
 
-def _fhir_auth(source: FhirSource, secrets: Secrets) -> BearerAuth | BasicAuth | SmartAuth | None:
-    if source.smart is not None:
-        return SmartAuth(source.smart, source.base_url, lookup=secrets.get)
-    auth = source.auth
-    if auth.type == "bearer":
-        return BearerAuth(secrets.get(auth.token_env))
-    if auth.type == "basic":
-        return BasicAuth(auth.user, secrets.get(auth.password_env))
-    return None
-
-
 def _poll_trigger(scheduler: Scheduler, source: str) -> Callable[[], None]:
     """What a subscription ping calls: run that source's poll now."""
 
@@ -314,7 +302,7 @@ def _pollers(
         s.name: FhirPoller(
             s.base_url,
             codes=codes,
-            auth=_fhir_auth(s, secrets),
+            auth=bootstrap.fhir_source_auth(s, secrets),
             source_system=s.name,
             patient_id_system=config.site.patient_id_system,
             clock=clock,

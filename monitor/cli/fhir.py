@@ -14,7 +14,6 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TypedDict
@@ -24,7 +23,8 @@ from monitor.engine.model import ADVISORY
 
 if TYPE_CHECKING:
     from adapters.codes import CodeTable
-    from adapters.fhir.bulk import Auth, ExportResult
+    from adapters.fhir.bulk import ExportResult
+    from monitor.bootstrap import Secrets
     from monitor.cli.common import Subparsers
     from monitor.config import FhirSource, SiteConfig
     from monitor.pipeline import BatchReport
@@ -131,32 +131,10 @@ def _source(args: argparse.Namespace) -> tuple[SiteConfig, FhirSource]:
     return config, next(iter(sources.values()))
 
 
-def _lookup(args: argparse.Namespace) -> Callable[[str], str]:
-    from monitor.config import secret
+def _secrets(args: argparse.Namespace) -> Secrets:
+    from monitor.bootstrap import Secrets
 
-    return lambda name: secret(name, secrets_file=args.secrets_file)
-
-
-def source_auth(source: FhirSource, secrets_file: Path | None) -> Auth:
-    """The auth of a ``[[sources.fhir]]``: SMART when ``smart`` is set, else the static
-    bearer token or basic auth, else None."""
-    from adapters.fhir.poller import BasicAuth, BearerAuth
-    from adapters.fhir.smart import SmartAuth
-    from monitor.config import secret
-
-    if source.smart is not None:
-        return SmartAuth(
-            source.smart,
-            source.base_url,
-            lookup=lambda name: secret(name, secrets_file=secrets_file),
-        )
-    if source.auth.type == "bearer":
-        return BearerAuth(secret(source.auth.token_env, secrets_file=secrets_file))
-    if source.auth.type == "basic":
-        return BasicAuth(
-            source.auth.user, secret(source.auth.password_env, secrets_file=secrets_file)
-        )
-    return None
+    return Secrets(args.secrets_file)
 
 
 # --- jwks ------------------------------------------------------------------------------------
@@ -169,7 +147,7 @@ def _run_jwks(args: argparse.Namespace) -> int:
         _, source = _source(args)
         if source.smart is None:
             raise CommandError(f"--source: {source.name} has no [sources.fhir.smart] settings")
-        jwks = public_jwks(source.smart, _lookup(args))
+        jwks = public_jwks(source.smart, _secrets(args).get)
     except CommandError as exc:
         return _fail(str(exc))
     except SmartKeyError as exc:
@@ -254,6 +232,7 @@ def _run_backfill(args: argparse.Namespace) -> int:
         observation_type_filter,
     )
     from adapters.fhir.smart import SmartKeyError
+    from monitor.bootstrap import fhir_source_auth
 
     try:
         config, source = _source(args)
@@ -267,7 +246,7 @@ def _run_backfill(args: argparse.Namespace) -> int:
             type_filters=() if args.all_observations else (observation_type_filter(codes),),
             since=args.since,
         )
-        auth = source_auth(source, args.secrets_file)
+        auth = fhir_source_auth(source, _secrets(args))
     except CommandError as exc:
         return _fail(str(exc))
     except (SmartKeyError, ValueError) as exc:
