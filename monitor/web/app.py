@@ -8,6 +8,7 @@ signed-in user only. Every response passes ``SecurityHeaders`` (outermost).
 
 from __future__ import annotations
 
+import html
 import logging
 import time
 from collections.abc import Awaitable, Callable
@@ -17,7 +18,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from fastapi import Depends, FastAPI, Request, Response
-from fastapi.responses import JSONResponse, RedirectResponse
+from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse
 from fastapi.staticfiles import StaticFiles
 
 from monitor.engine.model import ADVISORY
@@ -36,6 +37,7 @@ from storage import board as board_store
 from storage import outbox as outbox_store
 from storage.cursors import all_cursors
 from storage.db import Database
+from storage.errors import StorageUnavailable
 
 log = logging.getLogger("gasgap.http")
 STATIC_DIR = Path(__file__).resolve().parent / "static"
@@ -92,6 +94,7 @@ def create_app(
     )
     app.state.ctx = ctx
     app.state.security = security
+    app.add_exception_handler(StorageUnavailable, storage_unavailable)
     app.include_router(api.router)
     app.include_router(board.router)
     app.include_router(hooks.router)
@@ -114,6 +117,30 @@ def create_app(
     app.add_middleware(BodyLimit, max_bytes=security.max_body_bytes)
     app.add_middleware(SecurityHeaders)
     return app
+
+
+#: Seconds a client is asked to wait before trying again when the database cannot be
+#: used (common practice, no source: long enough for a restart or a lock to clear).
+RETRY_AFTER_S = 30
+
+
+async def storage_unavailable(request: Request, exc: Exception) -> Response:
+    """Any route that meets a database that cannot be used now answers 503 with
+    Retry-After (a sender resends, a board reloads), never a 500 or a wrong answer. The
+    reason is logged without the request's identifiers; the client is not told the
+    database's address."""
+    log.warning("database unavailable during %s %s", request.method, request.url.path)
+    headers = {"Retry-After": str(RETRY_AFTER_S)}
+    if "text/html" in request.headers.get("accept", ""):
+        page = (
+            "<!doctype html><html lang=en><meta charset=utf-8><title>gasgap: not available"
+            "</title><h1>The flags cannot be shown at the moment</h1><p>gasgap cannot reach "
+            "its database. This page will work again when it is back; until then follow "
+            "your local procedure for downtime. " + html.escape(ADVISORY) + "</p></html>"
+        )
+        return HTMLResponse(page, status_code=503, headers=headers)
+    detail = "the database cannot be used at the moment; retry later"
+    return JSONResponse({"detail": detail}, status_code=503, headers=headers)
 
 
 def openapi_json(request: Request) -> JSONResponse:
