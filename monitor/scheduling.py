@@ -28,6 +28,7 @@ from apscheduler.schedulers.background import BackgroundScheduler
 from monitor.metrics import Metrics
 from storage.cursors import get_cursor, record_source_error, set_cursor
 from storage.db import Database
+from storage.errors import StorageUnavailable
 from storage.locks import try_advisory_lock
 
 if TYPE_CHECKING:
@@ -121,6 +122,9 @@ class Scheduler:
                         job.run()
                     else:
                         outcome = "skipped"
+        except StorageUnavailable as exc:  # expected in an outage: one line, no trace
+            outcome = "failed"
+            log.warning("scheduled job %s: %s; it runs again at its next turn", job.name, exc)
         except Exception:  # one failed run must not stop the schedule
             outcome = "failed"
             log.exception("scheduled job %s failed", job.name)

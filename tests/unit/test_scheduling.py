@@ -4,11 +4,15 @@ a wake-up came while the previous drain was finishing)."""
 
 from __future__ import annotations
 
+import logging
 import threading
 import time
 from datetime import timedelta
 
+import pytest
+
 from monitor.scheduling import Job, Scheduler
+from storage.errors import StorageUnavailable
 
 
 def test_a_trigger_during_a_run_gives_one_more_run_soon() -> None:
@@ -50,3 +54,26 @@ def test_an_idle_job_is_not_run_twice_by_one_trigger() -> None:
     finally:
         scheduler.shutdown()
     assert runs == [1.0]
+
+
+def test_a_database_outage_is_one_log_line_and_the_job_stays_scheduled(
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    # An outage is expected operation, not a bug: one warning naming the job, no
+    # traceback in the log; another kind of failure still gets its traceback.
+    def down() -> None:
+        raise StorageUnavailable("sqlite:///gasgap.db", "BEGIN failed", "database is locked")
+
+    def broken() -> None:
+        raise KeyError("bug")
+
+    scheduler = Scheduler(None, [Job("drain", timedelta(hours=1), down)])  # type: ignore[arg-type]
+    with caplog.at_level(logging.WARNING, logger="gasgap"):
+        scheduler._run_once(scheduler.jobs["drain"])
+        scheduler._run_once(Job("poll:x", timedelta(hours=1), broken))
+    [outage] = [r for r in caplog.records if "drain" in r.getMessage()]
+    assert outage.levelno == logging.WARNING and outage.exc_info is None
+    assert "database is locked" in outage.getMessage()
+    [bug] = [r for r in caplog.records if "poll:x" in r.getMessage()]
+    assert bug.exc_info is not None
+    assert "drain" in scheduler.jobs
