@@ -48,6 +48,23 @@ def patient_cards(conn: Connection, patient_keys: Iterable[str]) -> dict[str, Pa
     return found
 
 
+def draw_times(conn: Connection, flags: Iterable[Alert]) -> dict[str, datetime]:
+    """When the gas (or SpO2) each flag stands on was drawn, by alert id: the current
+    derivation of its sample (a flag whose sample is no longer current is left out)."""
+    wanted = {(a.patient_key, a.sample_id): a.alert_id for a in flags}
+    found: dict[str, datetime] = {}
+    samples = sorted({sample for _, sample in wanted})
+    for start in range(0, len(samples), 500):
+        query = sa.select(
+            derivations.c.patient_key, derivations.c.sample_id, derivations.c.drawn_at
+        ).where(derivations.c.is_current, derivations.c.sample_id.in_(samples[start : start + 500]))
+        for patient_key, sample_id, drawn_at in conn.execute(query):
+            alert_id = wanted.get((patient_key, sample_id))
+            if alert_id is not None:
+                found[alert_id] = drawn_at
+    return found
+
+
 def known_units(conn: Connection) -> list[str]:
     """Units named by any patient, alert or derivation, sorted."""
     query = sa.union(

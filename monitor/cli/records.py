@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
+from collections.abc import Mapping
 from datetime import UTC, datetime, timedelta, tzinfo
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -310,21 +311,28 @@ def _estimate_table(rows: list[dict[str, Any]], tz: tzinfo) -> list[str]:
     return lines
 
 
-def alerts_table(alerts: list[Alert], tz: tzinfo, now: datetime) -> str:
-    """``gasgap alerts``: one line a flag with its priority in words, the rule in words,
-    when it was raised and when its gas was drawn (both with dates, site time), where,
-    and the summary; the id last, for ``alerts ack``. ``alerts`` are open flags."""
+def alerts_table(
+    alerts: list[Alert], tz: tzinfo, now: datetime, drawn: Mapping[str, datetime] | None = None
+) -> str:
+    """``gasgap flags``: one line a flag with its priority in words, the rule in words,
+    when the gas behind its current priority was drawn and when the flag was first
+    raised (both with dates, site time), where, and the summary; the id last, for
+    ``flags ack``. ``alerts`` are open flags; ``drawn`` holds the draw time of each
+    flag's sample by alert id ("-" where unknown)."""
     from adapters.notify.render import rule_words
 
     zone = _zone_label(tz, now)
-    head = f"{'priority':8} {'state':12} {'raised':16} {'rule':40} {'where':18} id"
+    drawn = drawn or {}
+    head = f"{'priority':8} {'state':12} {'drawn':16} {'raised':16} {'rule':40} {'where':18} id"
     lines = [f"Open flags. Times: {zone}.", head, "-" * len(head)]
     for a in alerts:
         where = a.location.label() if a.location else "location unknown"
         raised = a.raised_at.astimezone(tz).strftime("%Y-%m-%d %H:%M")
+        at = drawn.get(a.alert_id)
+        drew = "-" if at is None else at.astimezone(tz).strftime("%Y-%m-%d %H:%M")
         lines.append(
-            f"{a.priority.value:8} {a.state.value:12} {raised:16} {rule_words(a.rule)[:40]:40} "
-            f"{where[:18]:18} {a.alert_id}"
+            f"{a.priority.value:8} {a.state.value:12} {drew:16} {raised:16} "
+            f"{rule_words(a.rule)[:40]:40} {where[:18]:18} {a.alert_id}"
         )
         lines.append(f"{'':8} {a.summary}")
     return "\n".join(lines)

@@ -148,6 +148,7 @@ def _run_alerts(args: argparse.Namespace) -> int:
         with db.begin(read_only=True) as conn:
             problem = unit_problem(board_store.known_units(conn), args.unit)
             found = [] if problem else open_alerts(conn, unit=args.unit)
+            drawn = board_store.draw_times(conn, found)
     finally:
         db.dispose()
     if problem is not None:
@@ -158,7 +159,7 @@ def _run_alerts(args: argparse.Namespace) -> int:
     if not found:
         print("no open flags" + (f" in {args.unit}" if args.unit else ""))
     else:
-        print(alerts_table(found, load_site(args.config).zone(), datetime.now(UTC)))
+        print(alerts_table(found, load_site(args.config).zone(), datetime.now(UTC), drawn))
     print()
     print(ADVISORY)
     return 0

@@ -13,9 +13,11 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import sqlite3
 import subprocess
 import sys
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
 import pytest
@@ -86,6 +88,20 @@ def test_every_command_uses_the_database_named_by_url_env(tmp_path: Path) -> Non
     assert len(json.loads(flags.stdout)["flags"]) > 0
     patient = _gasgap(tmp_path, url, "patient", "HGH-1007", *config, "--json")
     assert patient.returncode == 0, patient.stderr
+    # The table shows, for every flag, when the gas behind its current priority was
+    # drawn (read from the stored derivation); that gas was drawn before the flag last
+    # changed on it. Site time is Etc/GMT-2 (POSIX sign: UTC+2).
+    table = _gasgap(tmp_path, url, "flags", *config)
+    stamp = r"(\d{4}-\d\d-\d\d \d\d:\d\d)"
+    rows = re.findall(
+        rf"^(?:low|medium|high)\s+\w+\s+{stamp}\s+{stamp}\s.*\s(\w+)$", table.stdout, re.M
+    )
+    changed = {f["id"]: f["updated_at"] for f in json.loads(flags.stdout)["flags"]}
+    assert len(rows) == len(changed), table.stdout
+    site = timezone(timedelta(hours=2))
+    for drawn, _raised, alert_id in rows:
+        at = datetime.strptime(drawn, "%Y-%m-%d %H:%M").replace(tzinfo=site)
+        assert at <= datetime.fromisoformat(changed[alert_id].replace("Z", "+00:00")), alert_id
 
 
 def test_an_unset_url_env_is_one_line_naming_it(tmp_path: Path) -> None:

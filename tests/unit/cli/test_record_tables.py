@@ -76,8 +76,14 @@ def test_alerts_table_has_raised_time_with_date_and_rule_in_words() -> None:
             by="Ines Calloway",
         ),
     ]
-    text = alerts_table(alerts, DENVER, NOW)
+    drawn = {alerts[0].alert_id: NOW - timedelta(days=9, minutes=40)}
+    text = alerts_table(alerts, DENVER, NOW, drawn)
     assert "2026-02-24 09:00" in text  # nine days before 16:00 UTC, in MST
+    # The gas behind the first flag was drawn 40 min before it was raised: its draw
+    # time is shown before the raise time; the second flag's is unknown ("-").
+    first = next(line for line in text.splitlines() if "aa-rise" in line or "widening" in line)
+    assert first.index("2026-02-24 08:20") < first.index("2026-02-24 09:00")
+    assert "drawn" in text.splitlines()[1] and "raised" in text.splitlines()[1]
     assert "A\u2013a gradient widening" in text and " aa-rise " not in text
     assert "Times: site time, UTC-07:00" in text
 
