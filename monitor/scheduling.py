@@ -124,7 +124,7 @@ class Scheduler:
                         outcome = "skipped"
         except StorageUnavailable as exc:  # expected in an outage: one line, no trace
             outcome = "failed"
-            log.warning("scheduled job %s: %s; it runs again at its next turn", job.name, exc)
+            log.warning("scheduled job %s failed: %s; it runs again at its turn", job.name, exc)
         except Exception:  # one failed run must not stop the schedule
             outcome = "failed"
             log.exception("scheduled job %s failed", job.name)
