@@ -301,14 +301,45 @@ def outcome_summary(outcome: RuleOutcome) -> str:
     return f"{text} ({', '.join(marks)})" if marks else text
 
 
+def age_text(drawn: datetime, now: datetime) -> str:
+    """How long before ``now`` (the message's time) a sample was drawn, in words:
+    "35 min", "1 h 20 min", "3 days 2 h"; "" when not before ``now``."""
+    minutes = int((now - drawn).total_seconds() // 60)
+    if minutes < 0:
+        return ""
+    if minutes < 1:
+        return "less than a minute"
+    days, rest = divmod(minutes, 24 * 60)
+    hours, mins = divmod(rest, 60)
+    if days:
+        unit = "day" if days == 1 else "days"
+        return f"{days} {unit} {hours} h" if hours else f"{days} {unit}"
+    if hours:
+        return f"{hours} h {mins} min" if mins else f"{hours} h"
+    return f"{mins} min"
+
+
 def inputs_text(derivation: Derivation, now: datetime, tz: tzinfo = UTC) -> list[str]:
-    """The inputs the numbers rest on, one line each, with where they came from."""
+    """The inputs the numbers rest on, one line each, with where they came from, and how
+    old the sample was at ``now`` (the message's time). An estimate from SpO2 says it is
+    one: its PaO2 is never written as if a gas had measured it."""
     lines = []
-    if derivation.pao2 is not None:
-        drawn = site_time(derivation.drawn_at, tz, now)
-        lines.append(f"PaO2 {_num(derivation.pao2)} mmHg, drawn {drawn}")
-    if derivation.spo2 is not None:
-        lines.append(f"SpO2 {_num(derivation.spo2)} %")
+    drawn = site_time(derivation.drawn_at, tz, now)
+    age = age_text(derivation.drawn_at, now)
+    before = f", {age} before this message" if age else ""
+    if derivation.estimated:
+        if derivation.spo2 is not None:
+            lines.append(f"SpO2 {_num(derivation.spo2)} %, recorded {drawn}{before}")
+        lines.append("no blood gas: every number is estimated from pulse oximetry")
+        if derivation.pao2 is not None:
+            lines.append(
+                f"PaO2 estimated from SpO2 about {_num(derivation.pao2)} mmHg (not measured)"
+            )
+    else:
+        if derivation.pao2 is not None:
+            lines.append(f"PaO2 {_num(derivation.pao2)} mmHg, drawn {drawn}{before}")
+        if derivation.spo2 is not None:
+            lines.append(f"SpO2 {_num(derivation.spo2)} %")
     fio2 = "unknown" if derivation.fio2 is None else _num(derivation.fio2, 2)
     fio2_at = next((i.at for i in derivation.inputs if i.role.lower() == "fio2"), None)
     when = f", {site_time(fio2_at, tz, now)}" if fio2_at else ""

@@ -30,6 +30,7 @@ from monitor.engine.model import (
 from monitor.engine.rules import RuleOutcome
 from monitor.engine.wording import (
     SUMMARY_MAX,
+    age_text,
     html_body,
     inputs_text,
     notification_for,
@@ -164,7 +165,8 @@ def test_a_time_from_another_year_carries_its_year():
 def test_inputs_are_in_site_time_with_their_date():
     helsinki = ZoneInfo("Europe/Helsinki")  # UTC+2 in March
     lines = inputs_text(sample(), NOW, helsinki)
-    assert lines[0] == "PaO2 91 mmHg, drawn 4 Mar 12:10 UTC+02:00"
+    # drawn 10:10 UTC, the message written 10:12 UTC: its age is said with it
+    assert lines[0] == "PaO2 91 mmHg, drawn 4 Mar 12:10 UTC+02:00, 2 min before this message"
     assert "FiO2 0.50 (charted before the draw, 4 Mar 11:58 UTC+02:00)" in lines
 
 
@@ -185,6 +187,39 @@ def test_notification_names_patient_location_inputs_flags_and_advisory():
 def test_the_mrn_never_appears_when_the_display_key_hides_it():
     n = note()
     assert "HGH-000042" not in n.summary and "HGH-000042" not in n.detail
+
+
+@pytest.mark.parametrize(
+    ("minutes", "said"),
+    [
+        (-5, ""),  # drawn "after" the message: no age is made up
+        (0, "less than a minute"),
+        (35, "35 min"),
+        (60, "1 h"),
+        (80, "1 h 20 min"),
+        (24 * 60, "1 day"),
+        (3 * 24 * 60 + 125, "3 days 2 h"),
+    ],
+)
+def test_the_age_of_a_sample_in_words(minutes: int, said: str) -> None:
+    assert age_text(NOW - timedelta(minutes=minutes), NOW) == said
+
+
+def test_an_estimate_never_reads_as_a_measured_pao2_in_a_message():
+    # SpO2 93 % gives an imputed PaO2 (Severinghaus inverse, tested in test_derive.py);
+    # the message says it is estimated, never "PaO2 67 mmHg, drawn ...".
+    from_spo2 = replace(
+        sample(),
+        estimated=True,
+        pao2=67.0,
+        spo2=93.0,
+        specimen=Specimen.UNKNOWN,
+        flags=frozenset({QualityFlag.ESTIMATED_FROM_SPO2}),
+    )
+    lines = inputs_text(from_spo2, NOW, UTC)
+    assert not any(line.startswith("PaO2 67") for line in lines), lines
+    assert "SpO2 93 %, recorded 4 Mar 10:10 UTC, 2 min before this message" in lines
+    assert any("estimated" in line and "67" in line and "not measured" in line for line in lines)
 
 
 def test_preliminary_and_estimated_flags_say_so():
