@@ -129,6 +129,12 @@ def inbound_from_hl7(
         for link in parsed.links:
             rekeys += context.register.learn(link).rekeys
         readings = [_canonical(r, context.register) for r in readings]
+        censored = [
+            replace(c, patient_key=context.register.canonical(c.patient_key))
+            for c in parsed.censored
+        ]
+    else:
+        censored = list(parsed.censored)
     return Inbound(
         readings=readings,
         rejected=rejected,
@@ -136,6 +142,7 @@ def inbound_from_hl7(
         ignored=sum(parsed.ignored.values()),
         links=list(parsed.links),
         rekeys=rekeys,
+        censored=censored,
     )
 
 
@@ -183,6 +190,7 @@ def inbound_from_fhir(batch: FhirBatch, source: str) -> Inbound:
         links=list(batch.links),
         rekeys=list(batch.rekeys),
         panel_members=list(batch.panel_members),
+        censored=list(batch.censored),
     )
 
 

@@ -35,7 +35,7 @@ from monitor.engine import alerts
 from monitor.engine.alerts import AlertSettings
 from monitor.engine.derive import DerivationSettings
 from monitor.engine.identity import PatientLink, Rekey
-from monitor.engine.model import Alert, AlertEvent, Derivation, Reading
+from monitor.engine.model import Alert, AlertEvent, CensoredValue, Derivation, Reading
 from monitor.engine.pairing import PairingSettings
 from monitor.engine.rules import RuleSet, default_rules
 from monitor.engine.timeline import (
@@ -52,6 +52,7 @@ from storage import outbox
 from storage import quarantine as quarantine_store
 from storage import register as register_store
 from storage import timelines as timelines_store
+from storage.censored import save_censored
 from storage.db import Database
 from storage.locks import patient_lock
 from storage.readings import (
@@ -89,10 +90,13 @@ class Inbound:
     links: list[PatientLink] = field(default_factory=list)
     rekeys: list[Rekey] = field(default_factory=list)
     panel_members: list[tuple[str, str]] = field(default_factory=list)
+    #: Results sent as beyond a limit (">500"): kept and shown, never readings.
+    censored: list[CensoredValue] = field(default_factory=list)
 
     def extend(self, other: Inbound) -> None:
         self.readings.extend(other.readings)
         self.rejected.extend(other.rejected)
+        self.censored.extend(other.censored)
         self.skipped_codes.update(other.skipped_codes)
         self.ignored += other.ignored
         self.links.extend(other.links)
@@ -117,8 +121,11 @@ class BatchReport:
     notifications: int = 0
     #: Flag events recorded as historical (never sent).
     historical_events: int = 0
+    #: Results sent as beyond a limit, kept (shown in the patient's series, never used).
+    censored: int = 0
 
     def merge(self, other: BatchReport) -> None:
+        self.censored += other.censored
         self.read += other.read
         self.stored += other.stored
         self.duplicates += other.duplicates
@@ -221,12 +228,13 @@ class Pipeline:
 
     def _accept_in(self, conn: Connection, inbound: Inbound, now: datetime) -> BatchReport:
         report = BatchReport(
-            read=len(inbound.readings) + len(inbound.rejected),
+            read=len(inbound.readings) + len(inbound.rejected) + len(inbound.censored),
             ignored=inbound.ignored,
             skipped_codes=Counter(inbound.skipped_codes),
         )
         for rejected in quarantine_store.collapse_alike(inbound.rejected):
             self._quarantine(conn, rejected, now, report)
+        report.censored += save_censored(conn, inbound.censored, received_at=now)
         good = self._screen_times(conn, inbound.readings, now, report)
         if not good:
             # a Patient or Encounter alone can still name a person: join what it links
@@ -305,10 +313,12 @@ class Pipeline:
             good: list[Reading] = []
             for inbound, now in units:
                 report.read += len(inbound.readings) + len(inbound.rejected)
+                report.read += len(inbound.censored)
                 report.ignored += inbound.ignored
                 report.skipped_codes.update(inbound.skipped_codes)
                 for rejected in quarantine_store.collapse_alike(inbound.rejected):
                     self._quarantine(conn, rejected, now, report)
+                report.censored += save_censored(conn, inbound.censored, received_at=now)
                 good += self._screen_times(conn, inbound.readings, now, report)
             if good:
                 self.note_patients(conn, good)

@@ -267,6 +267,7 @@ def _fhir_inbound(source: str, batch: FhirBatch | PollBatch) -> Inbound:
         rejected=[RejectedInput(f"fhir:{source}", r.raw, r.reason) for r in batch.rejections],
         skipped_codes=batch.skipped_codes,
         ignored=sum(batch.skipped.values()),
+        censored=list(batch.censored),
     )
 
 

@@ -25,6 +25,7 @@ from monitor.engine.identity import PatientLink, PatientRegister, RegisterSettin
 from storage.tables import (
     alert_events,
     alerts,
+    censored_results,
     derivations,
     outbox,
     patient_links,
@@ -123,6 +124,11 @@ def rekey_patient(conn: Connection, old: str, new: str, *, at: datetime) -> Reke
     ).rowcount
     moved["outbox"] = conn.execute(
         sa.update(outbox).where(outbox.c.patient_key == old).values(patient_key=new)
+    ).rowcount
+    moved["censored_results"] = conn.execute(
+        sa.update(censored_results)
+        .where(censored_results.c.patient_key == old)
+        .values(patient_key=new)
     ).rowcount
     moved["patients"] = _merge_patient_rows(conn, old, new)
     return RekeyResult(old, new, moved, retracted)

@@ -347,3 +347,26 @@ patient_links = sa.Table(
     sa.Column("source", sa.String, nullable=False),
     sa.Column("learnt_at", UTCDateTime, nullable=False),
 )
+
+#: Results sent as beyond a limit (">500 mmHg", "<70 %"): kept and shown in the patient's
+#: series, never a reading (no derivation or rule uses them). One row per result
+#: (source and logical id): a later delivery of the same result replaces it, and a
+#: result later sent as an exact number is shown as that reading instead.
+censored_results = sa.Table(
+    "censored_results",
+    metadata,
+    sa.Column("id", Id, primary_key=True, autoincrement=True),
+    sa.Column("patient_key", sa.String, nullable=False),
+    sa.Column("kind", sa.String, nullable=False),
+    sa.Column("comparator", sa.String, nullable=False),
+    sa.Column("limit_value", sa.Float, nullable=True),
+    sa.Column("original_value", sa.String, nullable=False),
+    sa.Column("original_unit", sa.String, nullable=False),
+    sa.Column("code", sa.String, nullable=False),
+    sa.Column("effective_at", UTCDateTime, nullable=False),
+    sa.Column("source_system", sa.String, nullable=False),
+    sa.Column("logical_id", sa.String, nullable=False),
+    sa.Column("received_at", UTCDateTime, nullable=False),
+    sa.UniqueConstraint("source_system", "logical_id"),
+    sa.Index(None, "patient_key", "effective_at"),
+)

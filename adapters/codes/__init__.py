@@ -12,14 +12,11 @@ import tomllib
 from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 from monitor.engine import physiology
 from monitor.engine.errors import InvalidReading
+from monitor.engine.model import CensoredValue as CensoredValue  # the readers' import
 from monitor.engine.model import Kind, O2Device, Specimen
-
-if TYPE_CHECKING:
-    from datetime import datetime
 
 LOINC = "http://loinc.org"
 SNOMED = "http://snomed.info/sct"
@@ -39,35 +36,6 @@ class CodeEntry:
 #: Comparators of a censored value: FHIR Quantity.comparator (R4: <, <=, >=, >) and the
 #: HL7 v2 SN comparator (>, <, >=, <=, <>).
 COMPARATORS = frozenset({"<", "<=", ">=", ">", "<>"})
-
-
-@dataclass(frozen=True, slots=True)
-class CensoredValue:
-    """A result sent as beyond a limit (">500", "<5"): never an exact number.
-
-    Kept so the patient's series can say a value was sent and why nothing was derived
-    from it; never a ``Reading`` (pairing and rules see only exact values). ``limit``
-    is in canonical units when the unit was understood, else None.
-    """
-
-    patient_key: str
-    kind: Kind
-    comparator: str
-    limit: float | None
-    original_value: str
-    original_unit: str
-    effective_at: datetime
-    source_system: str
-    logical_id: str
-    code: str = ""
-
-    @property
-    def text(self) -> str:
-        return (
-            f"{self.kind} sent as {self.comparator}{self.original_value} "
-            f"{self.original_unit}".rstrip()
-            + ": a censored value, not an exact number; nothing derived from it"
-        )
 
 
 def _words(text: str) -> str:

@@ -41,7 +41,7 @@ from adapters.fhir.observations import (
 )
 from adapters.fhir.smart import SmartAuth, SmartAuthError
 from monitor.engine.errors import MonitorError
-from monitor.engine.model import Kind, Reading
+from monitor.engine.model import CensoredValue, Kind, Reading
 
 log = logging.getLogger("gasgap.fhir.poller")
 
@@ -85,6 +85,8 @@ class PollBatch:
     rejections: list[FhirRejection] = field(default_factory=list)
     skipped_codes: Counter[str] = field(default_factory=Counter)
     skipped: Counter[str] = field(default_factory=Counter)
+    #: Results sent as beyond a limit: kept and shown, never readings.
+    censored: list[CensoredValue] = field(default_factory=list)
     watermark: datetime | None = None
     pages: int = 0
 
@@ -192,6 +194,7 @@ class FhirPoller:
         for resource, full_url in found:
             self.builder.read(resource, full_url=full_url, into=batch)
         result.readings, result.rejections = batch.readings, result.rejections + batch.rejections
+        result.censored = batch.censored
         result.skipped_codes.update(batch.skipped_codes)
         result.skipped.update(batch.skipped)
         log.info(

@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from monitor.cli.common import Subparsers, add_site_options, fail, open_site
-from monitor.engine.model import ADVISORY, Alert, Derivation
+from monitor.engine.model import ADVISORY, CANONICAL_UNIT, Alert, CensoredValue, Derivation
 
 if TYPE_CHECKING:
     from monitor.bootstrap import Shell
@@ -102,6 +102,7 @@ def _run_ingest(args: argparse.Namespace) -> int:
         "ignored": report.ignored,
         "quarantined": report.quarantined,
         "top_quarantine_reasons": report.quarantine_reasons.most_common(5),
+        "beyond_limits": report.censored,
         "derivations": report.derivations,
         "flag_events": len(report.alert_events),
         "historical_flag_events": report.historical_events,
@@ -118,6 +119,11 @@ def _run_ingest(args: argparse.Namespace) -> int:
         print(f"  quarantined {count} x {reason}")
     for code, count in report.skipped_codes.most_common(5):
         print(f"  skipped code {code} x {count}")
+    if report.censored:
+        print(
+            f"kept {report.censored} results sent as beyond a limit (e.g. '>500'): shown in "
+            "the patient's series, not used for any index or flag"
+        )
     print(
         f"derivations {report.derivations}, flag events {len(report.alert_events)} "
         f"({report.historical_events} recorded as historical, never sent), "
@@ -187,6 +193,7 @@ def series_row(derivation: Derivation, version: int) -> dict[str, object]:
 
 
 def _run_patient(args: argparse.Namespace) -> int:
+    from storage.censored import censored_for_patient
     from storage.derivations import current_derivations
 
     shell = open_site(args)
@@ -197,23 +204,30 @@ def _run_patient(args: argparse.Namespace) -> int:
             for s in current_derivations(conn, args.patient_key)
             if not s.retracted and (args.estimated or not s.derivation.estimated)
         ]
+        censored = censored_for_patient(conn, args.patient_key)
     db.dispose()
-    if not stored:
+    if not stored and not censored:
         return fail(f"PATIENT: no derivations for {args.patient_key!r} in this database")
     rows = [series_row(s.derivation, s.version) for s in stored]
-    if args.plot:
+    beyond = [censored_row(c) for c in censored]
+    if args.plot and stored:
         write_trend_plot(
             [s.derivation for s in stored], args.plot, title=args.patient_key, tz=config.zone()
         )
     if args.json:
-        print(
-            json.dumps(
-                {"patient": args.patient_key, "series": rows, "advisory": ADVISORY}, indent=2
-            )
-        )
+        out = {
+            "patient": args.patient_key,
+            "series": rows,
+            "beyond_limits": beyond,
+            "advisory": ADVISORY,
+        }
+        print(json.dumps(out, indent=2))
         return 0
     tz = config.zone()
     print(_table(rows, tz))
+    if beyond:
+        print()
+        print("\n".join(_censored_table(beyond, tz)))
     if args.plot:
         print(f"plot written to {args.plot}")
     print()
@@ -292,6 +306,36 @@ def _gas_table(rows: list[dict[str, Any]], tz: tzinfo) -> list[str]:
             f"{_fmt(r['aa_gradient']):>5} {_fmt(r['arterial_alveolar_ratio'], 2):>5} "
             f"{_fmt(r['pf_ratio']):>5}{alt}  {'; '.join(x for x in m if x not in common)}"
         )
+    return lines
+
+
+def censored_row(c: CensoredValue) -> dict[str, object]:
+    """A result sent as beyond a limit, as ``gasgap patient --json`` gives it: what was
+    sent, as sent, and the limit in canonical units where the unit was understood."""
+    return {
+        "kind": c.kind.value,
+        "drawn_at": c.effective_at.isoformat(),
+        "sent_as": f"{c.comparator}{c.original_value} {c.original_unit}".strip(),
+        "comparator": c.comparator,
+        "limit": c.limit,
+        "unit": CANONICAL_UNIT[c.kind],
+        "source": c.source_system,
+        "result_id": c.logical_id,
+        "used": False,
+    }
+
+
+def _censored_table(rows: list[dict[str, Any]], tz: tzinfo) -> list[str]:
+    zone = _zone_label(tz, datetime.fromisoformat(rows[-1]["drawn_at"]))
+    head = f"{'drawn':16} {'result':18} {'sent as':24}"
+    lines = [
+        "Results sent as beyond a limit (not exact numbers: nothing was derived from them, "
+        f"no rule used them). Times: {zone}.",
+        head,
+        "-" * len(head),
+    ]
+    for r in rows:
+        lines.append(f"{_drawn(r, tz):16} {r['kind'][:18]:18} {r['sent_as'][:24]:24}")
     return lines
 
 

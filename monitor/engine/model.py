@@ -279,6 +279,35 @@ UNRELIABLE_FLAGS: frozenset[QualityFlag] = frozenset(
 
 
 @dataclass(frozen=True, slots=True)
+class CensoredValue:
+    """A result sent as beyond a limit (">500", "<5"): never an exact number.
+
+    Kept and shown in the patient's series, saying a value was sent and why nothing was
+    derived from it; never a ``Reading`` (pairing and rules see only exact values).
+    ``limit`` is in canonical units when the unit was understood, else None.
+    """
+
+    patient_key: str
+    kind: Kind
+    comparator: str
+    limit: float | None
+    original_value: str
+    original_unit: str
+    effective_at: datetime
+    source_system: str
+    logical_id: str
+    code: str = ""
+
+    @property
+    def text(self) -> str:
+        return (
+            f"{self.kind} sent as {self.comparator}{self.original_value} "
+            f"{self.original_unit}".rstrip()
+            + ": a censored value, not an exact number; nothing derived from it"
+        )
+
+
+@dataclass(frozen=True, slots=True)
 class InputUsed:
     """Provenance of one input to a derivation: which reading, and why it was chosen."""
 

@@ -26,6 +26,7 @@ EXPECTED_TABLES = {
     "outbox",
     "patient_links",
     "quarantine_payloads",
+    "censored_results",
 }
 
 

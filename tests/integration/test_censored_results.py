@@ -1,0 +1,93 @@
+"""Results sent as beyond a limit (">500 mmHg") are kept and shown, never used.
+
+Messages built with hl7apy (HL7 v2.5.1, strict validation), ingested by ``gasgap
+ingest`` as a user runs it. HL7 v2 SN (structured numeric) is comparator^number
+(HL7 v2.5 chapter 2A, from memory); a comparator makes the value censored: not an exact
+number, so nothing may be derived from it, but a person must be able to see it was sent.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+import subprocess
+import sys
+from pathlib import Path
+
+from hl7apy.consts import VALIDATION_LEVEL
+from hl7apy.core import Message
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def _message(control: str, pao2: tuple[str, str], status: str) -> str:
+    """An invented arterial gas of one patient of the invented hospital, PaO2 as
+    (value type, value), PaCO2 38 mmHg and FiO2 100 %."""
+    m = Message("ORU_R01", version="2.5.1", validation_level=VALIDATION_LEVEL.STRICT)
+    m.msh.msh_3, m.msh.msh_7, m.msh.msh_9 = "HGH-LAB", "20260315090000", "ORU^R01^ORU_R01"
+    m.msh.msh_10, m.msh.msh_11 = control, "P"
+    patient = m.add_group("ORU_R01_PATIENT_RESULT").add_group("ORU_R01_PATIENT")
+    patient.pid.pid_3 = "HM100777^^^HGH&2.999.1.1.1&ISO^MR"
+    patient.pid.pid_5 = "Larkspur^Wendeline"  # invented
+    patient.pid.pid_7 = "19610402"
+    patient.add_group("ORU_R01_VISIT").pv1.pv1_2 = "I"
+    order = m.children[1].add_group("ORU_R01_ORDER_OBSERVATION")
+    order.obr.obr_3, order.obr.obr_7 = "F-20260315-0777", "202603150840"
+    order.obr.obr_4 = "24336-0^Gas panel - Arterial blood^LN"
+    rows = [("2703-7", *pao2, "mm[Hg]"), ("2019-8", "NM", "38", "mm[Hg]")]
+    rows.append(("3150-0", "NM", "100", "%"))
+    for i, (code, value_type, value, unit) in enumerate(rows, 1):
+        obx = order.add_group("ORU_R01_OBSERVATION").obx
+        obx.obx_1, obx.obx_2, obx.obx_3 = str(i), value_type, f"{code}^^LN"
+        obx.obx_5, obx.obx_6, obx.obx_11 = value, unit, status
+    order.add_group("ORU_R01_SPECIMEN").spm.spm_4 = "BLDA^Blood arterial^HL70487"
+    m.validate()
+    return str(m.to_er7())
+
+
+def _gasgap(cwd: Path, *args: str) -> dict[str, object]:
+    done = subprocess.run(
+        [sys.executable, "-m", "monitor.cli", *args, "--json"],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        cwd=cwd,
+        env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
+    )
+    assert done.returncode == 0, done.stderr
+    return dict(json.loads(done.stdout))
+
+
+def test_a_censored_pao2_is_kept_shown_and_never_derived(tmp_path: Path) -> None:
+    db = tmp_path / "censored.db"
+    url = f"sqlite:///{db}"
+    first = tmp_path / "lab-1.hl7"
+    first.write_text(_message("HGH0901", ("SN", ">^500"), "F") + "\r", encoding="utf-8")
+
+    ingested = _gasgap(tmp_path, "ingest", str(first), "--db", url, "--no-progress")
+    assert ingested["beyond_limits"] == 1 and ingested["quarantined"] == 0
+    # the same message again changes nothing (one row per result)
+    _gasgap(tmp_path, "ingest", str(first), "--db", url, "--no-progress")
+    with sqlite3.connect(db) as conn:
+        [(key, kind, comparator, limit)] = conn.execute(
+            "select patient_key, kind, comparator, limit_value from censored_results"
+        ).fetchall()
+        pao2_readings = conn.execute("select count(*) from readings where kind = 'pao2'")
+        assert pao2_readings.fetchone()[0] == 0  # never an exact PaO2
+        assert conn.execute("select count(*) from derivations").fetchone()[0] == 0
+    assert (kind, comparator, limit) == ("pao2", ">", 500.0)
+
+    shown = _gasgap(tmp_path, "patient", key, "--db", url)
+    [beyond] = shown["beyond_limits"]  # type: ignore[misc]
+    assert beyond["sent_as"] == ">500 mm[Hg]" and beyond["used"] is False
+    assert shown["series"] == []
+
+    # The lab corrects the result to an exact number (OBX-11 C): the reading is used,
+    # and the censored row is no longer shown beside it.
+    second = tmp_path / "lab-2.hl7"
+    second.write_text(_message("HGH0902", ("NM", "512"), "C") + "\r", encoding="utf-8")
+    _gasgap(tmp_path, "ingest", str(second), "--db", url, "--no-progress")
+    shown = _gasgap(tmp_path, "patient", key, "--db", url)
+    assert shown["beyond_limits"] == []
+    [gas] = shown["series"]  # type: ignore[misc]
+    assert gas["pao2"] == 512.0 and gas["fio2"] == 1.0
