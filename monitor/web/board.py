@@ -52,6 +52,7 @@ from monitor.web.security import (
 )
 from storage import alerts as alerts_store
 from storage import board as board_store
+from storage.censored import censored_for_patient
 from storage.derivations import current_derivations
 
 if TYPE_CHECKING:
@@ -459,11 +460,12 @@ def patient_page(request: Request, patient_key: str) -> Response:
     with ctx.db.begin(read_only=True) as conn:
         card = board_store.patient_cards(conn, [patient_key]).get(patient_key)
         series = [s.derivation for s in current_derivations(conn, patient_key)]
+        beyond = censored_for_patient(conn, patient_key)
         flags = board_store.patient_alerts(conn, patient_key)
         views = [flag_view(a, ctx.site_tz, now) for a in flags]
         for view in views:
             view.events = alerts_store.alert_events(conn, alert_id=view.alert.alert_id)
-    if card is None and not series and not flags:
+    if card is None and not series and not flags and not beyond:
         return _missing(request, "unknown patient")
     location = card.location if card else (series[-1].location if series else None)
     display = display_for(
@@ -489,6 +491,7 @@ def patient_page(request: Request, patient_key: str) -> Response:
         ],
         common_notes=common,
         estimates=[(d, clock_words(d.drawn_at, ctx.site_tz)) for d in estimates],
+        beyond=[(c, clock_words(c.effective_at, ctx.site_tz)) for c in reversed(beyond)],
         any_adjusted=any(d.pf_ratio_adjusted is not None for d in gases),
         plots=patient_plots(series, now, ctx.site_tz),
         back=request.url.path,

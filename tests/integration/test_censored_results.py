@@ -91,3 +91,47 @@ def test_a_censored_pao2_is_kept_shown_and_never_derived(tmp_path: Path) -> None
     assert shown["beyond_limits"] == []
     [gas] = shown["series"]  # type: ignore[misc]
     assert gas["pao2"] == 512.0 and gas["fio2"] == 1.0
+
+
+def test_the_board_shows_a_censored_result_apart_from_the_gases(tmp_path: Path) -> None:
+    import asyncio
+    from urllib.parse import quote
+
+    import httpx
+
+    from monitor.bootstrap import pipeline_settings
+    from monitor.config import default_config
+    from monitor.pipeline import Pipeline
+    from monitor.web.app import create_app
+    from monitor.web.security import WebSecurity
+    from storage.db import open_database
+
+    url = f"sqlite:///{tmp_path / 'board.db'}"
+    feed = tmp_path / "lab.hl7"
+    feed.write_text(_message("HGH0911", ("SN", ">^500"), "F") + "\r", encoding="utf-8")
+    _gasgap(tmp_path, "ingest", str(feed), "--db", url, "--no-progress")
+    db = open_database(url)
+    with db.begin(read_only=True) as conn:
+        from storage.censored import censored_for_patient
+        from storage.tables import censored_results
+
+        key = conn.execute(censored_results.select()).first()._mapping["patient_key"]  # type: ignore[union-attr]
+        assert len(censored_for_patient(conn, key)) == 1
+    security = WebSecurity(board_token="board-code-for-tests-only-77", secure_cookies=False)
+    app = create_app(db, Pipeline(db, pipeline_settings(default_config())), security=security)
+
+    async def page() -> httpx.Response:
+        transport = httpx.ASGITransport(app=app)
+        async with httpx.AsyncClient(transport=transport, base_url="http://testserver") as c:
+            signed = await c.get("/board", params={"token": "board-code-for-tests-only-77"})
+            assert signed.status_code == 303
+            return await c.get("/board/patient/" + quote(key, safe=""))
+
+    try:
+        response = asyncio.run(page())
+    finally:
+        db.dispose()
+    assert response.status_code == 200
+    text = response.text
+    assert "Results sent as beyond a limit" in text and "&gt;500 mm[Hg]" in text
+    assert 'data-kind="beyond-limit"' in text and "No blood gas recorded." in text
