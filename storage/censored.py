@@ -86,7 +86,3 @@ def censored_for_patient(
         )
         for m in (row._mapping for row in conn.execute(query))
     ]
-
-
-def count_censored(conn: Connection) -> int:
-    return int(conn.execute(sa.select(sa.func.count()).select_from(censored_results)).scalar_one())
