@@ -227,7 +227,15 @@ class Pipeline:
         )
         for rejected in quarantine_store.collapse_alike(inbound.rejected):
             self._quarantine(conn, rejected, now, report)
-        good = self._screen_times(conn, inbound.readings, now, report)
+        # Each patient locked, then its stored birth date (for the time check) and
+        # revision (for the cache) read together, once.
+        births: dict[str, date | None] = {}
+        revisions: dict[str, int] = {}
+        for patient_key in sorted({r.patient_key for r in inbound.readings}):
+            patient_lock(conn, patient_key)
+            born, revision = timelines_store.birth_and_revision(conn, patient_key)
+            births[patient_key], revisions[patient_key] = born, revision or 0
+        good = self._screen_times(conn, inbound.readings, now, report, births)
         if not good:
             # a Patient or Encounter alone can still name a person: join what it links
             self._join(conn, inbound, now, report)
@@ -236,8 +244,9 @@ class Pipeline:
         by_patient = _by_patient(good)
         timelines: dict[str, tuple[int, PatientTimeline]] = {}
         for patient_key in sorted(by_patient):
-            patient_lock(conn, patient_key)
-            timelines[patient_key] = self._cached(conn, patient_key, by_patient[patient_key])
+            timelines[patient_key] = self._cached(
+                conn, patient_key, by_patient[patient_key], revisions[patient_key]
+            )
         result = store_readings(conn, good, processed=True)
         report.stored += result.stored
         report.duplicates += result.duplicates
@@ -358,11 +367,11 @@ class Pipeline:
         self._cache.pop(patient_key, None)
 
     def _cached(
-        self, conn: Connection, patient_key: str, new: Sequence[Reading]
+        self, conn: Connection, patient_key: str, new: Sequence[Reading], revision: int
     ) -> tuple[int, PatientTimeline]:
         """The patient's timeline, from the cache when storage has not changed it since
-        and it holds what ``new`` needs; else restored from storage."""
-        revision = timelines_store.revision(conn, patient_key) or 0
+        (``revision``: read under the patient's lock) and it holds what ``new`` needs;
+        else restored from storage."""
         held = self._cache.get(patient_key)
         if held is not None:
             cached_revision, timeline = held
@@ -426,11 +435,17 @@ class Pipeline:
     # --- steps shared by the live and historical paths -----------------------------------
 
     def _screen_times(
-        self, conn: Connection, readings: Sequence[Reading], now: datetime, report: BatchReport
+        self,
+        conn: Connection,
+        readings: Sequence[Reading],
+        now: datetime,
+        report: BatchReport,
+        births: dict[str, date | None] | None = None,
     ) -> list[Reading]:
-        """Readings whose times can be right; the rest quarantined with the reason."""
+        """Readings whose times can be right; the rest quarantined with the reason.
+        ``births``: stored birth dates already read (others are read here)."""
         good: list[Reading] = []
-        births: dict[str, date | None] = {}
+        births = {} if births is None else births
         for r in readings:
             born = r.birth_date
             if born is None:
