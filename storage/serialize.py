@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 from collections.abc import Mapping
 from datetime import UTC, datetime
 from typing import Any
@@ -69,7 +70,18 @@ def _json_default(value: object) -> object:
 
 def to_json_value(value: object) -> Any:
     """``value`` made JSON-safe (times as ISO text, anything else unknown as ``str``)."""
+    if type(value) is dict and all(type(k) is str and _plain_scalar(v) for k, v in value.items()):
+        # JSON text and back gives an equal new dict for these (a derivation's
+        # constants): spare the round trip
+        return dict(value)
     return json.loads(_TO_JSON.encode(value))
+
+
+def _plain_scalar(value: object) -> bool:
+    kind = type(value)
+    if kind is float:
+        return math.isfinite(value)  # type: ignore[arg-type]
+    return kind is str or kind is int or kind is bool or value is None
 
 
 #: ``json.dumps(value, default=_json_default, allow_nan=False)``, its encoder built once
