@@ -60,6 +60,7 @@ from storage import timelines as timelines_store
 from storage.db import Database, is_memory_sqlite, open_database
 from storage.locks import patient_lock
 from storage.register import load_register, save_links
+from storage.serialize import derivation_to_row
 
 log = logging.getLogger("gasgap.history")
 
@@ -264,8 +265,8 @@ def step_pending(
         return outcome
     bar = Progress("patients", unit="patients", total=len(patients), enabled=options.progress)
     try:
-        for key, step, deliveries, revision in _computed(pipeline, patients, options, pool):
-            _write(pipeline, key, step, deliveries, revision, options, outcome)
+        for key, step, deliveries, revision, rows in _computed(pipeline, patients, options, pool):
+            _write(pipeline, key, (step, deliveries, revision, rows), options, outcome)
             outcome.patients += 1
             bar.update(1)
     finally:
@@ -276,30 +277,32 @@ def step_pending(
 def _write(
     pipeline: Pipeline,
     key: str,
-    step: StepResult,
-    deliveries: list[str],
-    revision: int,
+    computed: tuple[StepResult, list[str], int, list[dict[str, Any]] | None],
     options: LoadOptions,
     outcome: StepOutcome,
 ) -> None:
+    step, deliveries, revision, rows = computed
     with pipeline.db.begin() as conn:
         patient_lock(conn, key)
         if timelines_store.revision(conn, key) != revision:
             # another process stepped this patient meanwhile: compute again, locked
             step, deliveries = _step(pipeline, conn, key, options)
+            rows = None
         pipeline.finish_pending(
-            conn, key, step, deliveries, seen_at=options.seen_at, report=outcome.report
+            conn, key, step, deliveries, seen_at=options.seen_at, report=outcome.report, rows=rows
         )
 
 
-_Computed = tuple[str, StepResult, list[str], int]
+#: (patient, what stepping it changed, deliveries stepped, revision read, the stored
+#: form of each derivation version when a worker made it, else None).
+_Computed = tuple[str, StepResult, list[str], int, list[dict[str, Any]] | None]
 
 
 def _computed(
     pipeline: Pipeline, patients: list[str], options: LoadOptions, pool: Executor | None = None
 ) -> Iterator[_Computed]:
-    """(patient, what stepping it changed, deliveries stepped, revision read), in
-    patient order: here, in worker processes, or on a Dask cluster."""
+    """What stepping each patient computed (``_Computed``), in patient order: here, in
+    worker processes, or on a Dask cluster."""
     workers = _worker_count(options)
     if options.dask:
         yield from _on_dask(pipeline, patients, options)
@@ -321,7 +324,7 @@ def _compute_here(pipeline: Pipeline, key: str, options: LoadOptions) -> _Comput
     with pipeline.db.begin(read_only=True) as conn:
         revision = timelines_store.revision(conn, key) or 0
         step, deliveries = _step(pipeline, conn, key, options)
-    return key, step, deliveries, revision
+    return key, step, deliveries, revision, None
 
 
 def _step(
@@ -361,7 +364,10 @@ def _compute_in_worker(key: str, options: LoadOptions) -> _Computed:
         pipeline = _WORKER["pipeline"] = Pipeline(
             open_database(job.db_url, create=False), job.settings
         )
-    return _compute_here(pipeline, key, options)
+    key, step, deliveries, revision, _ = _compute_here(pipeline, key, options)
+    # the stored form of the versions made here too, sparing the parent (the writer)
+    rows = [derivation_to_row(v.derivation) for v in step.derivations]
+    return key, step, deliveries, revision, rows
 
 
 def _parse_in_worker(

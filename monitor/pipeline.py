@@ -27,6 +27,7 @@ from collections import Counter, OrderedDict
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta, tzinfo
+from typing import Any
 
 from sqlalchemy.engine import Connection
 
@@ -359,9 +360,11 @@ class Pipeline:
         *,
         seen_at: datetime | None,
         report: BatchReport,
+        rows: Sequence[dict[str, Any]] | None = None,
     ) -> None:
-        """Write what ``step_pending`` computed and mark its readings stepped."""
-        self.write_step(conn, patient_key, step, seen_at, report)
+        """Write what ``step_pending`` computed and mark its readings stepped (``rows``:
+        see ``write_step``)."""
+        self.write_step(conn, patient_key, step, seen_at, report, rows)
         timelines_store.mark_processed(conn, patient_key, deliveries)
         timelines_store.bump_revision(conn, patient_key)
         self._cache.pop(patient_key, None)
@@ -496,15 +499,20 @@ class Pipeline:
         step: StepResult,
         seen_at: datetime | None,
         report: BatchReport,
+        rows: Sequence[dict[str, Any]] | None = None,
     ) -> None:
         """Write what a timeline step changed: derivation versions, flag changes, their
-        audit events and (unless historical) their notifications."""
+        audit events and (unless historical) their notifications. ``rows``: the stored
+        form of each derivation version (``storage.serialize.derivation_to_row``),
+        when a worker process already made them."""
         written, withdrawn = derivations_store.save_versions(
             conn,
             patient_key,
             [
-                derivations_store.VersionToSave(v.derivation, v.at, v.reason, v.retracted)
-                for v in step.derivations
+                derivations_store.VersionToSave(
+                    v.derivation, v.at, v.reason, v.retracted, None if rows is None else rows[i]
+                )
+                for i, v in enumerate(step.derivations)
             ],
         )
         report.derivations += written
