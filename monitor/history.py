@@ -29,9 +29,10 @@ from __future__ import annotations
 import logging
 import os
 from collections.abc import Callable, Iterator, Sequence
-from concurrent.futures import Executor, ProcessPoolExecutor
+from concurrent.futures import Executor, Future, ProcessPoolExecutor
 from dataclasses import dataclass, field, replace
 from datetime import UTC, date, datetime
+from functools import partial
 from pathlib import Path
 from typing import Any
 
@@ -39,14 +40,27 @@ from sqlalchemy.engine import Connection
 
 from adapters.fhir.limits import too_deep
 from adapters.fhir.observations import FhirBatch, FhirReadingBuilder
+from adapters.hl7v2.parse import ParsedMessage
 from monitor.engine.timeline import StepResult
-from monitor.ingest import SourceContext, Unit, context_resources, fhir_builder, file_units
+from monitor.ingest import (
+    HL7_SUFFIXES,
+    Hl7Ahead,
+    Hl7ParseJob,
+    Hl7Refused,
+    SourceContext,
+    Unit,
+    context_resources,
+    fhir_builder,
+    file_units,
+    parse_hl7_messages,
+)
 from monitor.pipeline import BatchReport, Inbound, Pipeline, PipelineSettings
 from monitor.progress import Progress
 from storage import timelines as timelines_store
 from storage.db import Database, is_memory_sqlite, open_database
 from storage.locks import patient_lock
 from storage.register import load_register, save_links
+from storage.serialize import derivation_to_row
 
 log = logging.getLogger("gasgap.history")
 
@@ -103,20 +117,59 @@ def load_files(
     context = _with_register(context, pipeline.db)
     result = LoadResult()
     builder = fhir_builder(context, clock)  # one reader for every file of the load
-    _remember_context(paths, builder, pipeline, clock)
-    bar = Progress("read", unit="units", enabled=options.progress)
+    # Worker processes start now, so their start-up overlaps the reading: they parse
+    # the HL7 v2 files while this process reads the rest, then step patients.
+    pool = _early_pool(pipeline, paths, context, options)
+    ahead: Hl7Ahead | None = None
     try:
-        units = (u for p in paths for u in file_units(p, context, clock, builder))
-        store_units(units, pipeline, context, options, result, bar)
+        _remember_context(paths, builder, pipeline, clock)
+        if pool is not None:
+            workers = pool
+
+            def submit(
+                messages: list[tuple[bytes, datetime]],
+            ) -> Future[list[ParsedMessage | Hl7Refused]]:
+                return workers.submit(_parse_in_worker, messages)
+
+            ahead = Hl7Ahead(paths, context, clock, submit)
+        bar = Progress("read", unit="units", enabled=options.progress)
+        try:
+            units = (u for p in paths for u in file_units(p, context, clock, builder, ahead))
+            store_units(units, pipeline, context, options, result, bar)
+        finally:
+            bar.close()
+        if on_stored is not None:
+            on_stored(result)
+        until = options.until or result.last_record
+        stepped = step_pending(
+            pipeline, replace(options, until=until, joined=frozenset(result.joined)), pool
+        )
     finally:
-        bar.close()
-    if on_stored is not None:
-        on_stored(result)
-    until = options.until or result.last_record
-    stepped = step_pending(pipeline, replace(options, until=until, joined=frozenset(result.joined)))
+        if ahead is not None:
+            ahead.cancel()
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
     result.report.merge(stepped.report)
     result.patients = stepped.patients
     return result
+
+
+def _worker_count(options: LoadOptions) -> int:
+    return options.workers if options.workers is not None else (os.cpu_count() or 1)
+
+
+def _early_pool(
+    pipeline: Pipeline, paths: Sequence[Path], context: SourceContext, options: LoadOptions
+) -> Executor | None:
+    """The worker processes of a load with more than one worker (not on Dask), when
+    they have HL7 v2 files to parse or patients to step (a database they can open)."""
+    if options.dask or _worker_count(options) <= 1:
+        return None
+    has_hl7 = any(p.suffix.lower() in HL7_SUFFIXES for p in paths)
+    if not has_hl7 and is_memory_sqlite(pipeline.db.url):
+        return None
+    job = _Job(pipeline.db.url, pipeline.settings, Hl7ParseJob.of(context))
+    return _pool(_worker_count(options), job)
 
 
 def _with_register(context: SourceContext, db: Database) -> SourceContext:
@@ -199,9 +252,12 @@ class StepOutcome:
     patients: int = 0
 
 
-def step_pending(pipeline: Pipeline, options: LoadOptions) -> StepOutcome:
+def step_pending(
+    pipeline: Pipeline, options: LoadOptions, pool: Executor | None = None
+) -> StepOutcome:
     """Step every patient with readings stored but not yet stepped; see the module
-    docstring. Results are written in patient order whatever computes them."""
+    docstring. Results are written in patient order whatever computes them (``pool``:
+    worker processes already started, used when ``options`` asks for workers)."""
     with pipeline.db.begin(read_only=True) as conn:
         patients = sorted(set(timelines_store.unprocessed_patients(conn)) | options.joined)
     outcome = StepOutcome()
@@ -209,8 +265,8 @@ def step_pending(pipeline: Pipeline, options: LoadOptions) -> StepOutcome:
         return outcome
     bar = Progress("patients", unit="patients", total=len(patients), enabled=options.progress)
     try:
-        for key, step, deliveries, revision in _computed(pipeline, patients, options):
-            _write(pipeline, key, step, deliveries, revision, options, outcome)
+        for key, step, deliveries, revision, rows in _computed(pipeline, patients, options, pool):
+            _write(pipeline, key, (step, deliveries, revision, rows), options, outcome)
             outcome.patients += 1
             bar.update(1)
     finally:
@@ -221,29 +277,33 @@ def step_pending(pipeline: Pipeline, options: LoadOptions) -> StepOutcome:
 def _write(
     pipeline: Pipeline,
     key: str,
-    step: StepResult,
-    deliveries: list[str],
-    revision: int,
+    computed: tuple[StepResult, list[str], int, list[dict[str, Any]] | None],
     options: LoadOptions,
     outcome: StepOutcome,
 ) -> None:
+    step, deliveries, revision, rows = computed
     with pipeline.db.begin() as conn:
         patient_lock(conn, key)
         if timelines_store.revision(conn, key) != revision:
             # another process stepped this patient meanwhile: compute again, locked
             step, deliveries = _step(pipeline, conn, key, options)
+            rows = None
         pipeline.finish_pending(
-            conn, key, step, deliveries, seen_at=options.seen_at, report=outcome.report
+            conn, key, step, deliveries, seen_at=options.seen_at, report=outcome.report, rows=rows
         )
 
 
-_Computed = tuple[str, StepResult, list[str], int]
+#: (patient, what stepping it changed, deliveries stepped, revision read, the stored
+#: form of each derivation version when a worker made it, else None).
+_Computed = tuple[str, StepResult, list[str], int, list[dict[str, Any]] | None]
 
 
-def _computed(pipeline: Pipeline, patients: list[str], options: LoadOptions) -> Iterator[_Computed]:
-    """(patient, what stepping it changed, deliveries stepped, revision read), in
-    patient order: here, in worker processes, or on a Dask cluster."""
-    workers = options.workers if options.workers is not None else (os.cpu_count() or 1)
+def _computed(
+    pipeline: Pipeline, patients: list[str], options: LoadOptions, pool: Executor | None = None
+) -> Iterator[_Computed]:
+    """What stepping each patient computed (``_Computed``), in patient order: here, in
+    worker processes, or on a Dask cluster."""
+    workers = _worker_count(options)
     if options.dask:
         yield from _on_dask(pipeline, patients, options)
         return
@@ -251,17 +311,20 @@ def _computed(pipeline: Pipeline, patients: list[str], options: LoadOptions) -> 
         for key in patients:
             yield _compute_here(pipeline, key, options)
         return
-    job = _Job(pipeline.db.url, pipeline.settings, options)
     chunk = max(1, min(64, len(patients) // (workers * 4)))
-    with _pool(workers, job) as pool:
-        yield from pool.map(_compute_in_worker, patients, chunksize=chunk)
+    compute = partial(_compute_in_worker, options=options)
+    if pool is not None:
+        yield from pool.map(compute, patients, chunksize=chunk)
+        return
+    with _pool(workers, _Job(pipeline.db.url, pipeline.settings)) as own:
+        yield from own.map(compute, patients, chunksize=chunk)
 
 
 def _compute_here(pipeline: Pipeline, key: str, options: LoadOptions) -> _Computed:
     with pipeline.db.begin(read_only=True) as conn:
         revision = timelines_store.revision(conn, key) or 0
         step, deliveries = _step(pipeline, conn, key, options)
-    return key, step, deliveries, revision
+    return key, step, deliveries, revision, None
 
 
 def _step(
@@ -280,23 +343,39 @@ def _step(
 @dataclass(frozen=True, slots=True)
 class _Job:
     """What a worker needs to compute patients on its own: where the database is and
-    the settings (all picklable)."""
+    the settings, and how to parse HL7 v2 (all picklable)."""
 
     db_url: str
     settings: PipelineSettings
-    options: LoadOptions
+    hl7: Hl7ParseJob | None = None
 
 
 _WORKER: dict[str, Any] = {}
 
 
 def _start_worker(job: _Job) -> None:
-    _WORKER["pipeline"] = Pipeline(open_database(job.db_url, create=False), job.settings)
-    _WORKER["options"] = job.options
+    _WORKER["job"] = job  # the database is opened when a patient is first computed
 
 
-def _compute_in_worker(key: str) -> _Computed:
-    return _compute_here(_WORKER["pipeline"], key, _WORKER["options"])
+def _compute_in_worker(key: str, options: LoadOptions) -> _Computed:
+    pipeline = _WORKER.get("pipeline")
+    if pipeline is None:
+        job: _Job = _WORKER["job"]
+        pipeline = _WORKER["pipeline"] = Pipeline(
+            open_database(job.db_url, create=False), job.settings
+        )
+    key, step, deliveries, revision, _ = _compute_here(pipeline, key, options)
+    # the stored form of the versions made here too, sparing the parent (the writer)
+    rows = [derivation_to_row(v.derivation) for v in step.derivations]
+    return key, step, deliveries, revision, rows
+
+
+def _parse_in_worker(
+    messages: list[tuple[bytes, datetime]],
+) -> list[ParsedMessage | Hl7Refused]:
+    job: _Job = _WORKER["job"]
+    assert job.hl7 is not None  # set whenever HL7 files are parsed ahead
+    return parse_hl7_messages(job.hl7, messages)
 
 
 def _pool(workers: int, job: _Job) -> Executor:
@@ -315,7 +394,8 @@ def _on_dask(pipeline: Pipeline, patients: list[str], options: LoadOptions) -> I
         from dask.distributed import Client, LocalCluster  # untyped: used through Any
     except ImportError as exc:  # the optional extra
         raise RuntimeError("--dask needs Dask distributed: pip install 'gasgap[dask]'") from exc
-    job = _Job(pipeline.db.url, pipeline.settings, replace(options, dask=None))
+    job = _Job(pipeline.db.url, pipeline.settings)
+    options = replace(options, dask=None)
     cluster: Any = None
     make_cluster: Any = LocalCluster
     make_client: Any = Client
@@ -332,7 +412,7 @@ def _on_dask(pipeline: Pipeline, patients: list[str], options: LoadOptions) -> I
     try:
         batch = max(1, len(patients) // 64)
         groups = [patients[i : i + batch] for i in range(0, len(patients), batch)]
-        futures = client.map(_compute_group, groups, job=job, pure=False)
+        futures = client.map(_compute_group, groups, job=job, options=options, pure=False)
         for future in futures:  # in submission order: the patient order
             yield from future.result()
     finally:
@@ -341,11 +421,11 @@ def _on_dask(pipeline: Pipeline, patients: list[str], options: LoadOptions) -> I
             cluster.close()
 
 
-def _compute_group(keys: list[str], job: _Job) -> list[_Computed]:
+def _compute_group(keys: list[str], job: _Job, options: LoadOptions) -> list[_Computed]:
     """On a Dask worker: compute a group of patients with one database connection."""
     db = open_database(job.db_url, create=False)
     try:
         pipeline = Pipeline(db, job.settings)
-        return [_compute_here(pipeline, key, job.options) for key in keys]
+        return [_compute_here(pipeline, key, options) for key in keys]
     finally:
         db.dispose()

@@ -16,10 +16,12 @@ from __future__ import annotations
 
 import heapq
 import logging
-from collections import Counter
+from collections import Counter, deque
 from collections.abc import Callable, Iterable, Iterator, Sequence
+from concurrent.futures import Future
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, tzinfo
+from itertools import islice
 from pathlib import Path
 from typing import Any
 
@@ -31,7 +33,7 @@ from adapters.fhir.limits import bounded_head, too_deep
 from adapters.fhir.observations import FhirBatch, FhirReadingBuilder, fhir_instant
 from adapters.hl7v2 import Hl7Error, parse_oru
 from adapters.hl7v2.files import iter_hl7_file
-from adapters.hl7v2.parse import parse_dtm
+from adapters.hl7v2.parse import ParsedMessage, parse_dtm
 from monitor.engine.errors import MonitorError
 from monitor.engine.identity import PatientRegister, RegisterSettings, Rekey
 from monitor.engine.model import Reading
@@ -110,15 +112,13 @@ def inbound_from_hl7(
     while the rest of the message is taken.
     """
     name = source or context.hl7_source
-    parsed = parse_oru(
-        raw,
-        received_at=received_at,
-        codes=context.codes,
-        source_system=name,
-        site_tz=context.site_tz,
-        patient_id_system=context.patient_id_system,
-        register_settings=context.register_settings(),
-    )
+    parsed = Hl7ParseJob.of(context, name).parse(raw, received_at)
+    return _inbound_of(parsed, raw, context, name)
+
+
+def _inbound_of(parsed: ParsedMessage, raw: bytes, context: SourceContext, name: str) -> Inbound:
+    """A parsed message as an Inbound unit, its keys as the shared register names them
+    (the register learns the message's links here, in message order)."""
     rejected = [
         RejectedInput(f"hl7:{name}", raw, f"message {parsed.control_id} {r}")
         for r in parsed.rejected
@@ -151,30 +151,219 @@ def _canonical(r: Reading, register: PatientRegister) -> Reading:
     return r if key == r.patient_key else replace(r, patient_key=key)
 
 
-def hl7_units(
+@dataclass(frozen=True, slots=True)
+class Hl7ParseJob:
+    """What parsing an HL7 v2 message needs from a ``SourceContext``, without the
+    register (picklable: worker processes parse with it)."""
+
+    codes: CodeTable
+    source_system: str
+    site_tz: tzinfo
+    patient_id_system: str | None
+    register_settings: RegisterSettings
+
+    @classmethod
+    def of(cls, context: SourceContext, source: str | None = None) -> Hl7ParseJob:
+        return cls(
+            codes=context.codes,
+            source_system=source or context.hl7_source,
+            site_tz=context.site_tz,
+            patient_id_system=context.patient_id_system,
+            register_settings=context.register_settings(),
+        )
+
+    def parse(self, raw: bytes, received_at: datetime) -> ParsedMessage:
+        """``parse_oru`` with this job's settings; raises ``Hl7Error`` as it does."""
+        return parse_oru(
+            raw,
+            received_at=received_at,
+            codes=self.codes,
+            source_system=self.source_system,
+            site_tz=self.site_tz,
+            patient_id_system=self.patient_id_system,
+            register_settings=self.register_settings,
+        )
+
+
+@dataclass(frozen=True, slots=True)
+class Hl7Refused:
+    """Why a whole message was refused (the text of its ``Hl7Error``)."""
+
+    reason: str
+
+
+def parse_hl7_messages(
+    job: Hl7ParseJob, messages: Sequence[tuple[bytes, datetime]]
+) -> list[ParsedMessage | Hl7Refused]:
+    """Each ``(raw, received_at)`` parsed, or why it was refused, in order (what a
+    worker process does with a part of a file)."""
+    out: list[ParsedMessage | Hl7Refused] = []
+    for raw, received_at in messages:
+        try:
+            out.append(job.parse(raw, received_at))
+        except Hl7Error as exc:
+            out.append(Hl7Refused(str(exc)))
+    return out
+
+
+@dataclass(frozen=True, slots=True)
+class _Oversized:
+    at: int
+    head: bytes
+
+
+@dataclass(frozen=True, slots=True)
+class _Message:
+    raw: bytes
+    record_time: datetime | None
+    received_at: datetime
+
+
+_Hl7Item = _Oversized | _Message
+
+
+def _hl7_items(
     path: Path, context: SourceContext, received_at: Callable[[], datetime]
-) -> Iterator[Unit]:
+) -> Iterator[_Hl7Item]:
+    """The messages of a file (with their record and receipt times) and the messages
+    too large to read, in file order."""
     oversized: list[tuple[int, bytes]] = []
-    source = f"hl7:{context.hl7_source}"
     for raw in iter_hl7_file(path, on_oversized=lambda at, head: oversized.append((at, head))):
         while oversized:
-            at, head = oversized.pop(0)
-            reason = f"{path.name} byte {at}: message over the size limit, not read"
-            yield Unit(Inbound(rejected=[RejectedInput(source, head, reason)]), None, path.name)
+            yield _Oversized(*oversized.pop(0))
         record_time = hl7_record_time(raw, context.site_tz)
-        try:
-            inbound = inbound_from_hl7(
-                raw, received_at=record_time or received_at(), context=context
-            )
-            inbound.rejected = [
-                RejectedInput(r.source, r.raw, f"{path.name}: {r.reason}") for r in inbound.rejected
-            ]
-        except Hl7Error as exc:
-            inbound = Inbound(rejected=[RejectedInput(source, raw, f"{path.name}: {exc}")])
-        yield Unit(inbound, record_time, f"{path.name}")
+        yield _Message(raw, record_time, record_time or received_at())
     for at, head in oversized:
-        reason = f"{path.name} byte {at}: message over the size limit, not read"
-        yield Unit(Inbound(rejected=[RejectedInput(source, head, reason)]), None, path.name)
+        yield _Oversized(at, head)
+
+
+def _hl7_unit(
+    path: Path, context: SourceContext, item: _Hl7Item, parsed: ParsedMessage | Hl7Refused | None
+) -> Unit:
+    source = f"hl7:{context.hl7_source}"
+    if isinstance(item, _Oversized):
+        reason = f"{path.name} byte {item.at}: message over the size limit, not read"
+        return Unit(Inbound(rejected=[RejectedInput(source, item.head, reason)]), None, path.name)
+    if isinstance(parsed, Hl7Refused) or parsed is None:
+        why = parsed.reason if parsed is not None else "not parsed"
+        inbound = Inbound(rejected=[RejectedInput(source, item.raw, f"{path.name}: {why}")])
+        return Unit(inbound, item.record_time, path.name)
+    inbound = _inbound_of(parsed, item.raw, context, context.hl7_source)
+    inbound.rejected = [
+        RejectedInput(r.source, r.raw, f"{path.name}: {r.reason}") for r in inbound.rejected
+    ]
+    return Unit(inbound, item.record_time, path.name)
+
+
+def hl7_units(
+    path: Path,
+    context: SourceContext,
+    received_at: Callable[[], datetime],
+    ahead: Hl7Ahead | None = None,
+) -> Iterator[Unit]:
+    """The units of an HL7 v2 file in file order (``ahead``: its messages parsed in
+    other processes; the register still learns here, in order)."""
+    if ahead is not None:
+        yield from ahead.units(path)
+        return
+    job = Hl7ParseJob.of(context)
+    for item in _hl7_items(path, context, received_at):
+        parsed = (
+            parse_hl7_messages(job, [(item.raw, item.received_at)])[0]
+            if isinstance(item, _Message)
+            else None
+        )
+        yield _hl7_unit(path, context, item, parsed)
+
+
+#: Sends messages to be parsed elsewhere: ``submit(messages)`` -> a future of
+#: ``parse_hl7_messages(job, messages)``.
+Submit = Callable[[list[tuple[bytes, datetime]]], "Future[list[ParsedMessage | Hl7Refused]]"]
+
+
+class Hl7Ahead:
+    """The HL7 v2 files of a load parsed ahead by worker processes, a part of a file
+    at a time, while this process reads and stores other files.
+
+    Parts are sent in file order as soon as this is built (``ahead`` parts in flight
+    at most, so memory stays bounded), and ``units(path)`` gives each file's units in
+    file order; the files must be asked for in the order given, each once. Only
+    ``parse_oru`` runs elsewhere (it depends on nothing but the message and the
+    settings): the register learns each message's links here, in message order, as
+    the serial path does.
+    """
+
+    def __init__(
+        self,
+        paths: Sequence[Path],
+        context: SourceContext,
+        received_at: Callable[[], datetime],
+        submit: Submit,
+        *,
+        part: int = 32,
+        ahead: int = 32,
+    ) -> None:
+        self._context = context
+        self._submit = submit
+        self._part = part
+        self._ahead = ahead
+        self._files = iter(
+            [
+                (index, p, _hl7_items(p, context, received_at))
+                for index, p in enumerate(p for p in paths if file_kind(p) == "hl7")
+            ]
+        )
+        self._file: tuple[int, Path, Iterator[_Hl7Item]] | None = next(self._files, None)
+        self._asked = -1  # the index of the file being given out
+        #: (index of the file, its items of this part, the future of their parse, an
+        #: error met reading the file, raised where the serial path would meet it)
+        self._pending: deque[
+            tuple[int, list[_Hl7Item], Future[Any] | None, BaseException | None]
+        ] = deque()
+        self._fill()
+
+    def _fill(self) -> None:
+        while len(self._pending) < self._ahead and self._file is not None:
+            index, _, items = self._file
+            part: list[_Hl7Item] = []
+            error: BaseException | None = None
+            try:
+                part.extend(islice(items, self._part))
+            except Exception as exc:  # an unreadable file: raised when it is reached
+                error = exc
+            if error is not None:
+                self._file = None
+            elif len(part) < self._part:
+                self._file = next(self._files, None)
+            messages = [(i.raw, i.received_at) for i in part if isinstance(i, _Message)]
+            future = self._submit(messages) if messages else None
+            if part or error is not None:
+                self._pending.append((index, part, future, error))
+
+    def units(self, path: Path) -> Iterator[Unit]:
+        self._asked += 1
+        index = self._asked
+        while True:
+            self._fill()
+            if not self._pending or self._pending[0][0] != index:
+                return
+            _, part, future, error = self._pending.popleft()
+            parsed = iter(future.result() if future is not None else ())
+            self._fill()  # keep the workers busy while this part is stored
+            for item in part:
+                yield _hl7_unit(
+                    path, self._context, item, next(parsed) if isinstance(item, _Message) else None
+                )
+            if error is not None:
+                raise error
+
+    def cancel(self) -> None:
+        """Drop the parts not asked for (a load that stopped early)."""
+        for _, _, future, _ in self._pending:
+            if future is not None:
+                future.cancel()
+        self._pending.clear()
+        self._file = None
 
 
 # --- FHIR ----------------------------------------------------------------------------------
@@ -351,13 +540,14 @@ def file_units(
     context: SourceContext,
     received_at: Callable[[], datetime] | None = None,
     builder: FhirReadingBuilder | None = None,
+    ahead: Hl7Ahead | None = None,
 ) -> Iterator[Unit]:
     """The units of one file, streamed in file order (``builder``: the FHIR reader
-    shared by every file of a load)."""
+    shared by every file of a load; ``ahead``: its HL7 v2 files parsed by workers)."""
     clock = received_at or (lambda: datetime.now(UTC))
     kind = file_kind(path)
     if kind == "hl7":
-        return hl7_units(path, context, clock)
+        return hl7_units(path, context, clock, ahead)
     if kind == "ndjson":
         return ndjson_units(path, context, clock, builder)
     return json_units(path, context, clock, builder)

@@ -27,6 +27,7 @@ from collections import Counter, OrderedDict
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta, tzinfo
+from typing import Any
 
 from sqlalchemy.engine import Connection
 
@@ -235,7 +236,15 @@ class Pipeline:
         for rejected in quarantine_store.collapse_alike(inbound.rejected):
             self._quarantine(conn, rejected, now, report)
         report.censored += save_censored(conn, inbound.censored, received_at=now)
-        good = self._screen_times(conn, inbound.readings, now, report)
+        # Each patient locked, then its stored birth date (for the time check) and
+        # revision (for the cache) read together, once.
+        births: dict[str, date | None] = {}
+        revisions: dict[str, int] = {}
+        for patient_key in sorted({r.patient_key for r in inbound.readings}):
+            patient_lock(conn, patient_key)
+            born, revision = timelines_store.birth_and_revision(conn, patient_key)
+            births[patient_key], revisions[patient_key] = born, revision or 0
+        good = self._screen_times(conn, inbound.readings, now, report, births)
         if not good:
             # a Patient or Encounter alone can still name a person: join what it links
             self._join(conn, inbound, now, report)
@@ -244,8 +253,9 @@ class Pipeline:
         by_patient = _by_patient(good)
         timelines: dict[str, tuple[int, PatientTimeline]] = {}
         for patient_key in sorted(by_patient):
-            patient_lock(conn, patient_key)
-            timelines[patient_key] = self._cached(conn, patient_key, by_patient[patient_key])
+            timelines[patient_key] = self._cached(
+                conn, patient_key, by_patient[patient_key], revisions[patient_key]
+            )
         result = store_readings(conn, good, processed=True)
         report.stored += result.stored
         report.duplicates += result.duplicates
@@ -360,19 +370,21 @@ class Pipeline:
         *,
         seen_at: datetime | None,
         report: BatchReport,
+        rows: Sequence[dict[str, Any]] | None = None,
     ) -> None:
-        """Write what ``step_pending`` computed and mark its readings stepped."""
-        self.write_step(conn, patient_key, step, seen_at, report)
+        """Write what ``step_pending`` computed and mark its readings stepped (``rows``:
+        see ``write_step``)."""
+        self.write_step(conn, patient_key, step, seen_at, report, rows)
         timelines_store.mark_processed(conn, patient_key, deliveries)
         timelines_store.bump_revision(conn, patient_key)
         self._cache.pop(patient_key, None)
 
     def _cached(
-        self, conn: Connection, patient_key: str, new: Sequence[Reading]
+        self, conn: Connection, patient_key: str, new: Sequence[Reading], revision: int
     ) -> tuple[int, PatientTimeline]:
         """The patient's timeline, from the cache when storage has not changed it since
-        and it holds what ``new`` needs; else restored from storage."""
-        revision = timelines_store.revision(conn, patient_key) or 0
+        (``revision``: read under the patient's lock) and it holds what ``new`` needs;
+        else restored from storage."""
         held = self._cache.get(patient_key)
         if held is not None:
             cached_revision, timeline = held
@@ -436,11 +448,17 @@ class Pipeline:
     # --- steps shared by the live and historical paths -----------------------------------
 
     def _screen_times(
-        self, conn: Connection, readings: Sequence[Reading], now: datetime, report: BatchReport
+        self,
+        conn: Connection,
+        readings: Sequence[Reading],
+        now: datetime,
+        report: BatchReport,
+        births: dict[str, date | None] | None = None,
     ) -> list[Reading]:
-        """Readings whose times can be right; the rest quarantined with the reason."""
+        """Readings whose times can be right; the rest quarantined with the reason.
+        ``births``: stored birth dates already read (others are read here)."""
         good: list[Reading] = []
-        births: dict[str, date | None] = {}
+        births = {} if births is None else births
         for r in readings:
             born = r.birth_date
             if born is None:
@@ -491,15 +509,20 @@ class Pipeline:
         step: StepResult,
         seen_at: datetime | None,
         report: BatchReport,
+        rows: Sequence[dict[str, Any]] | None = None,
     ) -> None:
         """Write what a timeline step changed: derivation versions, flag changes, their
-        audit events and (unless historical) their notifications."""
+        audit events and (unless historical) their notifications. ``rows``: the stored
+        form of each derivation version (``storage.serialize.derivation_to_row``),
+        when a worker process already made them."""
         written, withdrawn = derivations_store.save_versions(
             conn,
             patient_key,
             [
-                derivations_store.VersionToSave(v.derivation, v.at, v.reason, v.retracted)
-                for v in step.derivations
+                derivations_store.VersionToSave(
+                    v.derivation, v.at, v.reason, v.retracted, None if rows is None else rows[i]
+                )
+                for i, v in enumerate(step.derivations)
             ],
         )
         report.derivations += written

@@ -298,6 +298,8 @@ class VersionToSave:
     at: datetime
     reason: str
     retracted: bool = False
+    #: ``derivation_to_row(derivation)`` when already made (by a worker process).
+    row: dict[str, Any] | None = None
 
 
 _CURRENT_OF_SAMPLES = sa.select(
@@ -343,7 +345,7 @@ def save_versions(
         sid = v.derivation.sample_id
         held = state.setdefault(sid, {"max": 0, "current": None})
         current = held["current"]
-        new_row = derivation_to_row(v.derivation)
+        new_row = dict(v.row) if v.row is not None else derivation_to_row(v.derivation)
         if v.retracted:
             if current is None or current["retracted"]:
                 continue

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 from collections.abc import Mapping
 from datetime import UTC, datetime
 from typing import Any
@@ -69,7 +70,23 @@ def _json_default(value: object) -> object:
 
 def to_json_value(value: object) -> Any:
     """``value`` made JSON-safe (times as ISO text, anything else unknown as ``str``)."""
-    return json.loads(json.dumps(value, default=_json_default, allow_nan=False))
+    if type(value) is dict and all(type(k) is str and _plain_scalar(v) for k, v in value.items()):
+        # JSON text and back gives an equal new dict for these (a derivation's
+        # constants): spare the round trip
+        return dict(value)
+    return json.loads(_TO_JSON.encode(value))
+
+
+def _plain_scalar(value: object) -> bool:
+    kind = type(value)
+    if kind is float:
+        return math.isfinite(value)  # type: ignore[arg-type]
+    return kind is str or kind is int or kind is bool or value is None
+
+
+#: ``json.dumps(value, default=_json_default, allow_nan=False)``, its encoder built once
+#: (building one per call cost more than the writing).
+_TO_JSON = json.JSONEncoder(default=_json_default, allow_nan=False)
 
 
 # --- readings -----------------------------------------------------------------------
@@ -228,9 +245,33 @@ def fingerprint(row: Mapping[str, Any]) -> str:
 
     Floats are hashed by ``repr``, which is exact, so any change in a value counts.
     """
-    content = {k: _canonical(v) for k, v in row.items() if k != "fingerprint"}
-    text = json.dumps(content, sort_keys=True, default=_json_default, allow_nan=False)
+    content = {k: v for k, v in row.items() if k != "fingerprint"}
+    try:
+        # Fast path: the row written as it is. It is the canonical text unless a float
+        # is -0.0 (written "-0.0": any such text takes the full path, a value like -0.05
+        # too) or a mapping is not a dict (the full path makes it one).
+        text = _PLAIN_SORTED.encode(content)
+    except _NotPlain:
+        text = "-0.0"
+    if "-0.0" in text:
+        canonical = {k: _canonical(v) for k, v in content.items()}
+        text = _SORTED.encode(canonical)
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+class _NotPlain(Exception):
+    """A value the fast path of ``fingerprint`` cannot write as the full path would."""
+
+
+def _plain_default(value: object) -> object:
+    if isinstance(value, Mapping):
+        raise _NotPlain
+    return _json_default(value)
+
+
+# ``json.dumps(..., sort_keys=True, default=..., allow_nan=False)``, encoders built once.
+_SORTED = json.JSONEncoder(sort_keys=True, default=_json_default, allow_nan=False)
+_PLAIN_SORTED = json.JSONEncoder(sort_keys=True, default=_plain_default, allow_nan=False)
 
 
 def row_to_derivation(row: Row) -> Derivation:

@@ -75,6 +75,13 @@ def revision(conn: Connection, patient_key: str) -> int | None:
     return None if row is None else int(row.revision)
 
 
+def birth_and_revision(conn: Connection, patient_key: str) -> tuple[date | None, int | None]:
+    """The patient's stored birth date and timeline revision in one read (None, None:
+    no such patient yet)."""
+    row = conn.execute(_PATIENT, {"key": patient_key}).first()
+    return (None, None) if row is None else (row.birth_date, int(row.revision))
+
+
 _BUMP = (
     sa.update(patients)
     .where(patients.c.patient_key == sa.bindparam("key"))

@@ -238,6 +238,18 @@ class PatientRegister:
         self._site_keys: set[str] = set()
         self._attached: dict[str, set[str]] = {}  # site identifier -> roots naming it
         self._facts: dict[str, list[PatientFacts]] = {}
+        # Answers memoised while nothing changes: every Observation of a feed repeats
+        # its patient's link and asks for the person again. Any change clears both.
+        self._learnt: dict[tuple[str, ...], LearnResult] = {}
+        self._people: dict[str, Person] = {}
+        self._changes = 0
+
+    def _changed(self) -> None:
+        self._changes += 1
+        if self._learnt:
+            self._learnt = {}
+        if self._people:
+            self._people = {}
 
     # -- union-find over the non-site keys --
 
@@ -250,9 +262,12 @@ class PatientRegister:
 
     def _add(self, key: str) -> None:
         if key_rank(key) is KeyRank.SITE_IDENTIFIER:
-            self._site_keys.add(key)
-            self._attached.setdefault(key, set())
+            if key not in self._site_keys:
+                self._changed()
+                self._site_keys.add(key)
+                self._attached.setdefault(key, set())
         elif key not in self._parent:
+            self._changed()
             self._parent[key] = key
             self._members[key] = [key]
             self._sites[key] = frozenset()
@@ -267,6 +282,7 @@ class PatientRegister:
         ra, rb = self._find(a), self._find(b)
         if ra == rb:
             return ra
+        self._changed()
         if len(self._members[ra]) < len(self._members[rb]):
             ra, rb = rb, ra
         self._parent[rb] = ra
@@ -297,6 +313,16 @@ class PatientRegister:
         group moves to the new key. When a link joins groups that already belonged to
         different site identifiers, nothing moves: the dispute is reported instead.
         """
+        known = self._learnt.get(link.keys)
+        if known is not None:
+            return known  # the same link again, nothing changed since: the same answer
+        changes = self._changes
+        result = self._learn(link)
+        if self._changes == changes:
+            self._learnt[link.keys] = result
+        return result
+
+    def _learn(self, link: PatientLink) -> LearnResult:
         keys = sorted({k.strip() for k in link.keys if k and k.strip()})
         if not keys:
             return LearnResult()
@@ -314,9 +340,13 @@ class PatientRegister:
         for k in others[1:]:
             root = self._union(root, k)
         root = self._find(root)
-        self._sites[root] = self._sites[root] | sites
+        if not sites <= self._sites[root]:
+            self._changed()
+            self._sites[root] = self._sites[root] | sites
         for site in sites:
-            self._attached[site].add(root)
+            if root not in self._attached[site]:
+                self._changed()
+                self._attached[site].add(root)
         new_key = self._root_key(root)
         new_sites = self._sites[root]
         rekeys: list[Rekey] = []
@@ -350,6 +380,7 @@ class PatientRegister:
     def note(self, facts: PatientFacts) -> None:
         """Remember facts about the person a key names (they follow later links)."""
         self._add(facts.key)
+        self._changed()
         self._facts.setdefault(facts.key, []).append(facts)
 
     def keys_of(self, key: str) -> frozenset[str]:
@@ -372,6 +403,12 @@ class PatientRegister:
         location: the most recent by ``at`` (facts without a time count as oldest; ties
         go to the best-ranked key).
         """
+        known = self._people.get(key)
+        if known is None:
+            known = self._people[key] = self._person(key)
+        return known
+
+    def _person(self, key: str) -> Person:
         canon = self.canonical(key)
         keys = self.keys_of(key)
         facts = [f for k in keys for f in self._facts.get(k, ())]

@@ -836,6 +836,20 @@ def influence_window(kind: Kind, settings: PairingSettings) -> tuple[timedelta, 
     A reading's ``birth_date`` can change the age of any sample of the patient; the
     pipeline treats a new birth date as a reason to re-pair all of them.
     """
+    held = _INFLUENCE.get(id(settings))
+    if held is None or held[0] is not settings:
+        if len(_INFLUENCE) > 64:
+            _INFLUENCE.clear()
+        held = _INFLUENCE[id(settings)] = (settings, _influence_windows(settings))
+    return held[1][Kind(kind)]
+
+
+#: The windows of each settings object (frozen), by its id: a timeline asks for every
+#: reading it steps, and building them cost more than the pairing they decide.
+_INFLUENCE: dict[int, tuple[PairingSettings, dict[Kind, tuple[timedelta, timedelta]]]] = {}
+
+
+def _influence_windows(settings: PairingSettings) -> dict[Kind, tuple[timedelta, timedelta]]:
     staleness = max(settings.fio2_staleness, settings.ventilator_staleness)
     same = settings.same_sample_window
     therapy = staleness + settings.steady_state + same
@@ -854,4 +868,4 @@ def influence_window(kind: Kind, settings: PairingSettings) -> tuple[timedelta, 
         Kind.MEAN_AIRWAY_PRESSURE: (timedelta(0), settings.ventilator_window),
         Kind.SPO2: (settings.spo2_window, settings.spo2_window),
     }
-    return windows[Kind(kind)]
+    return windows

@@ -407,10 +407,12 @@ def _fio2_numbers(d: Derivation) -> dict[str, object]:
         "fio2_source": d.fio2_source.value,
         "fio2_basis": FIO2_BASIS[d.fio2_source],
     }
-    if d.fio2_set is not None and d.fio2_changed_at is not None:
-        numbers["fio2_set"] = d.fio2_set
-        numbers["fio2_set_at"] = _at(d.fio2_changed_at)
-        numbers["fio2_set_minutes"] = round((d.drawn_at - d.fio2_changed_at).total_seconds() / 60)
+    fio2_set = d.fio2_set
+    changed_at = d.fio2_changed_at if fio2_set is not None else None
+    if fio2_set is not None and changed_at is not None:
+        numbers["fio2_set"] = fio2_set
+        numbers["fio2_set_at"] = _at(changed_at)
+        numbers["fio2_set_minutes"] = round((d.drawn_at - changed_at).total_seconds() / 60)
     return numbers
 
 
@@ -422,8 +424,10 @@ def _prior(items: Sequence[Derivation], d: Derivation, window: timedelta) -> lis
 
 def _fio2_points(points: Sequence[FiO2Point], d: Derivation) -> list[tuple[datetime, float]]:
     """FiO2-in-effect points up to the draw, with the derivation's own FiO2 at the draw."""
-    known = [(p.at, p.fio2) for p in points if p.at <= d.drawn_at]
-    in_effect = d.fio2_set if d.fio2_set is not None else d.fio2  # set, not reflected
+    drawn = d.drawn_at
+    known = [(p.at, p.fio2) for p in points if p.at <= drawn]
+    fio2_set = d.fio2_set
+    in_effect = fio2_set if fio2_set is not None else d.fio2  # set, not reflected
     if in_effect is not None:
         known.append((d.drawn_at, in_effect))
     return sorted(known)
