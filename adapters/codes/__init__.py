@@ -15,7 +15,6 @@ from pathlib import Path
 
 from monitor.engine import physiology
 from monitor.engine.errors import InvalidReading
-from monitor.engine.model import CensoredValue as CensoredValue  # the readers' import
 from monitor.engine.model import Kind, O2Device, Specimen
 
 LOINC = "http://loinc.org"

@@ -48,7 +48,6 @@ from pydantic import ValidationError
 
 from adapters.codes import (
     COMPARATORS,
-    CensoredValue,
     CodeEntry,
     CodeTable,
     parse_number,
@@ -66,7 +65,7 @@ from monitor.engine.identity import (
     RegisterSettings,
     Rekey,
 )
-from monitor.engine.model import Kind, Location, Reading, Specimen, Status
+from monitor.engine.model import CensoredValue, Kind, Location, Reading, Specimen, Status
 
 UCUM = "http://unitsofmeasure.org"
 VITAL_SIGNS = "vital-signs"

@@ -46,7 +46,6 @@ import hl7
 
 from adapters.codes import (
     COMPARATORS,
-    CensoredValue,
     CodeEntry,
     CodeTable,
     normalise_system,
@@ -60,6 +59,7 @@ from monitor.engine.identity import PatientFacts, PatientLink, RegisterSettings
 from monitor.engine.model import (
     CANONICAL_UNIT,
     PLAUSIBLE_RANGE,
+    CensoredValue,
     Kind,
     Location,
     Reading,
