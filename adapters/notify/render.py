@@ -22,7 +22,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from adapters.notify.base import log_ref
 from monitor.engine.model import Notification, Priority
-from monitor.engine.wording import CLOSING_EVENTS, signed, site_time, zone_label
+from monitor.engine.wording import CLOSING_EVENTS, EVENT_PHRASES, signed, site_time, zone_label
 
 #: CDS Hooks card attribute ``summary``: "One-sentence, <140-character summary message"
 #: (CDS Hooks 2.0, Card Attributes). We keep it strictly under 140.
@@ -40,17 +40,6 @@ PRIORITY_WORDS: dict[Priority, str] = {
     Priority.LOW: "Low priority",
     Priority.MEDIUM: "Medium priority",
     Priority.HIGH: "High priority",
-}
-
-EVENT_WORDS: dict[str, str] = {
-    "raised": "raised",
-    "updated": "updated",
-    "worsened": "now worse",
-    "lowered": "priority lowered",
-    "escalated": "escalated (not acknowledged in time)",
-    "acknowledged": "acknowledged",
-    "resolved": "resolved",
-    "retracted": "withdrawn",
 }
 
 PAYLOAD_SCHEMA = "gasgap.flag-notification/1"
@@ -140,7 +129,7 @@ def card_summary(n: Notification) -> str:
         return _shorten(n.summary, CDS_SUMMARY_MAX)
     head = f"{PRIORITY_WORDS[n.priority]}: {n.patient_display}: {n.summary}"
     if n.event != "raised":
-        head = f"[{EVENT_WORDS.get(n.event, n.event)}] {head}"
+        head = f"[{EVENT_PHRASES.get(n.event, n.event)}] {head}"
     return _shorten(head, CDS_SUMMARY_MAX)
 
 
@@ -343,7 +332,7 @@ def text_lines(n: Notification) -> list[str]:
     once."""
     location = n.location.label() if n.location else "unknown location"
     tz = site_zone(n)
-    event = EVENT_WORDS.get(n.event, n.event)
+    event = EVENT_PHRASES.get(n.event, n.event)
     # A closed flag is not announced by its priority, only reminded of it.
     head = (
         f"Flag {event} (it was {PRIORITY_WORDS[n.priority].lower()})."

@@ -44,6 +44,19 @@ EVENT_WORDS: dict[str, str] = {
     "acknowledged": "Acknowledged",
 }
 
+#: How each event is said inside a sentence about the flag, by the channels ("Medium
+#: priority flag now worse.", "[withdrawn] ..."). Same keys as ``EVENT_WORDS``: the
+#: engine's event names (``alerts.Trigger``), never renamed.
+EVENT_PHRASES: dict[str, str] = {
+    "raised": "raised",
+    "worsened": "now worse",
+    "lowered": "priority lowered",
+    "escalated": "escalated (not acknowledged in time)",
+    "acknowledged": "acknowledged",
+    "resolved": "resolved",
+    "retracted": "withdrawn",
+}
+
 #: Events after which the flag is no longer open: its priority is said as it was.
 CLOSING_EVENTS = frozenset({"resolved", "retracted"})
 

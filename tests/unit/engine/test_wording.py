@@ -614,3 +614,14 @@ def test_the_short_text_always_says_estimated_fio2_a_late_change_and_altitude(
     assert f"FiO2 0.40 {basis}" in text
     assert ("adjusted for altitude (measured 150)" in text) is adjusted
     assert ("0.80 set 5 min before the draw" in text) is just_changed
+
+
+def test_every_event_of_the_engine_has_its_words_and_no_other_event_does():
+    # Issue 14 point 3: one vocabulary, the engine's event names (alerts.Trigger), each
+    # said in both forms; a word for an event the engine never records would be dead.
+    from monitor.engine.alerts import Trigger
+    from monitor.engine.wording import EVENT_PHRASES, EVENT_WORDS
+
+    events = {t.value for t in Trigger}
+    assert set(EVENT_WORDS) == events
+    assert set(EVENT_PHRASES) == events
