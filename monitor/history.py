@@ -41,6 +41,7 @@ from sqlalchemy.engine import Connection
 from adapters.fhir.limits import too_deep
 from adapters.fhir.observations import FhirBatch, FhirReadingBuilder
 from adapters.hl7v2.parse import ParsedMessage
+from monitor.engine.errors import MonitorError
 from monitor.engine.timeline import StepResult
 from monitor.ingest import (
     HL7_SUFFIXES,
@@ -389,17 +390,27 @@ def _pool(workers: int, job: _Job) -> Executor:
     )
 
 
+class DaskUnavailable(MonitorError, RuntimeError):
+    """``--dask`` cannot be used: the extra is not installed, or the scheduler named
+    cannot be reached. The message names the address."""
+
+
+#: How long to wait for a named Dask scheduler before saying it cannot be reached.
+DASK_CONNECT_TIMEOUT_S = 10
+
+
 def _on_dask(pipeline: Pipeline, patients: list[str], options: LoadOptions) -> Iterator[_Computed]:
     try:
         from dask.distributed import Client, LocalCluster  # untyped: used through Any
     except ImportError as exc:  # the optional extra
-        raise RuntimeError("--dask needs Dask distributed: pip install 'gasgap[dask]'") from exc
+        raise DaskUnavailable("--dask needs Dask distributed: pip install 'gasgap[dask]'") from exc
     job = _Job(pipeline.db.url, pipeline.settings)
-    options = replace(options, dask=None)
+    address = options.dask
+    options = replace(options, dask=None)  # what each patient's step is given
     cluster: Any = None
     make_cluster: Any = LocalCluster
     make_client: Any = Client
-    if options.dask == "local":
+    if address == "local":
         cluster = make_cluster(
             n_workers=options.workers or 2,
             threads_per_worker=1,
@@ -408,7 +419,12 @@ def _on_dask(pipeline: Pipeline, patients: list[str], options: LoadOptions) -> I
         )
         client = make_client(cluster)
     else:
-        client = make_client(options.dask)
+        try:
+            client = make_client(address, timeout=f"{DASK_CONNECT_TIMEOUT_S}s")
+        except OSError as exc:  # refused, timed out, unknown host
+            raise DaskUnavailable(
+                f"--dask {address}: cannot reach the Dask scheduler ({exc})"
+            ) from None
     try:
         batch = max(1, len(patients) // 64)
         groups = [patients[i : i + batch] for i in range(0, len(patients), batch)]

@@ -146,6 +146,34 @@ def test_a_dask_cluster_writes_what_one_process_writes(tmp_path: Path) -> None:
     assert dump(one) == dump(cluster)
 
 
+def test_a_named_dask_scheduler_is_the_one_that_computes(tmp_path: Path) -> None:
+    # `--dask ADDRESS` once ignored the address and made a cluster of its own; here a
+    # scheduler started by the test must see the patients' tasks.
+    distributed = pytest.importorskip("distributed", reason="the dask extra is not installed")
+    cluster = distributed.LocalCluster(
+        n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None
+    )
+    client = distributed.Client(cluster)
+    try:
+        with distributed.get_task_stream(client) as stream:
+            _historical(DEMO, f"sqlite:///{tmp_path}/named.db", dask=cluster.scheduler_address)
+        keys = [str(task["key"]) for task in stream.data]
+    finally:
+        client.close()
+        cluster.close()
+    assert any("_compute_group" in key for key in keys), keys[:5]
+
+
+def test_an_unreachable_dask_scheduler_is_said_not_replaced(tmp_path: Path) -> None:
+    pytest.importorskip("distributed", reason="the dask extra is not installed")
+    from monitor.history import DaskUnavailable
+    from tests.fhir_server import free_port
+
+    address = f"127.0.0.1:{free_port()}"  # nothing listens there
+    with pytest.raises(DaskUnavailable, match=f"--dask {address}: cannot reach"):
+        _historical(DEMO, f"sqlite:///{tmp_path}/nowhere.db", dask=address)
+
+
 def test_file_and_line_order_change_nothing(tmp_path: Path) -> None:
     # One NDJSON file in a shuffled line order, files given in reverse: the same rows.
     ehr = next(p for p in DEMO if p.suffix == ".ndjson")
