@@ -38,7 +38,7 @@ from alembic.config import Config
 from sqlalchemy.engine import Connection, Engine
 from sqlalchemy.pool import StaticPool
 
-from storage.errors import translate
+from storage.errors import StorageRefused, translate
 from storage.locks import advisory_lock
 
 DEFAULT_URL = "sqlite:///gasgap.db"
@@ -161,7 +161,7 @@ def upgrade(url: str) -> None:
     this call's engine. ``open_database("sqlite://")`` migrates its own engine instead.
     """
     if is_memory_sqlite(url):
-        raise ValueError(
+        raise StorageRefused(
             f"database url for upgrade must name a file or server, not {url!r} (in memory)"
         )
     engine = create_engine(url)

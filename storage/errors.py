@@ -9,6 +9,7 @@ database cannot be reached, is locked, timed out, went away) into
     MonitorError
      +-- StorageError                      storage refused or failed
           +-- StorageUnavailable           the database cannot be used now: worth a retry
+          +-- StorageRefused (ValueError)  a request that cannot work as asked
           +-- DuplicateOpenAlert (ValueError, storage.alerts)
 
 Other driver errors (an integrity violation, a bad statement) are programming errors
@@ -29,6 +30,11 @@ _MAX_DETAIL = 200
 
 class StorageError(MonitorError):
     """Root of storage's exceptions."""
+
+
+class StorageRefused(StorageError, ValueError):
+    """A request storage cannot carry out as asked (e.g. migrating an in-memory
+    database, which would vanish with the call); the message says why."""
 
 
 class StorageUnavailable(StorageError):

@@ -31,3 +31,19 @@ def test_flags_with_an_unreachable_database_is_one_line_and_exit_1() -> None:
     assert "Traceback" not in done.stderr
     assert "127.0.0.1:1/none" in lines[0]  # names the database
     assert PASSWORD not in done.stderr + done.stdout
+
+
+def test_migrating_an_in_memory_database_is_refused_in_one_line() -> None:
+    # An in-memory SQLite database vanishes with the command: upgrading it would report
+    # success for nothing (SQLite documentation, "In-Memory Databases").
+    done = subprocess.run(
+        [sys.executable, "-m", "monitor.cli", "db", "upgrade", "--db", "sqlite://"],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        cwd=ROOT,
+    )
+    assert done.returncode == 1, done.stderr
+    assert "Traceback" not in done.stderr
+    [line] = done.stderr.strip().splitlines()
+    assert "in memory" in line and "sqlite://" in line
