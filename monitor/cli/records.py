@@ -137,7 +137,7 @@ def _run_outbox(args: argparse.Namespace) -> int:
 
     from storage.outbox import outbox_items
 
-    shell = open_site(args)
+    shell = open_site(args, existing=True)
     try:
         sent = _send(shell) if args.action == "send" else None
         with shell.db.begin(read_only=True) as conn:
@@ -196,7 +196,7 @@ def _run_patient(args: argparse.Namespace) -> int:
     from storage.censored import censored_for_patient
     from storage.derivations import current_derivations
 
-    shell = open_site(args)
+    shell = open_site(args, existing=True)
     config, db = shell.config, shell.db
     with db.begin(read_only=True) as conn:
         stored = [
@@ -390,20 +390,6 @@ def unit_problem(known_units: list[str], unit: str | None) -> str | None:
     near = [u for u in known_units if u.casefold() == unit.casefold()]
     hint = f" (did you mean {near[0]}?)" if near else ""
     return f"--unit: unknown unit {unit!r}{hint}; known units: {', '.join(known_units) or 'none'}"
-
-
-def database_problem(url: str | None) -> str | None:
-    """A SQLite file that does not exist: say so instead of creating an empty one (which
-    would then answer "no open flags")."""
-    from storage.db import DEFAULT_URL
-
-    parsed = (url or DEFAULT_URL).split("///", 1)
-    if not parsed[0].startswith("sqlite") or len(parsed) < 2 or parsed[1] in ("", ":memory:"):
-        return None
-    path = Path(parsed[1].split("?", 1)[0])
-    if path.exists():
-        return None
-    return f"no database at {path} (give --db or --config, or run gasgap ingest first)"
 
 
 def write_trend_plot(

@@ -16,7 +16,13 @@ import sys
 from datetime import UTC, datetime
 from pathlib import Path
 
-from monitor.cli.common import EXIT_USAGE, Subparsers, UsageError, add_site_options, fail
+from monitor.cli.common import (
+    EXIT_USAGE,
+    Subparsers,
+    add_site_options,
+    fail,
+    site_database_url,
+)
 from monitor.engine.model import ADVISORY
 
 EXIT_CONFIG = EXIT_USAGE
@@ -66,17 +72,6 @@ def add_serve_commands(sub: Subparsers) -> None:
     ack.set_defaults(run=_run_alerts_ack)
 
 
-def _database_url(args: argparse.Namespace) -> str:
-    from monitor.bootstrap import Secrets, database_url, load_site
-    from monitor.config import ConfigError
-
-    try:
-        config = load_site(args.config)
-        return database_url(config, Secrets(args.secrets_file), args.db_url)
-    except ConfigError as exc:
-        raise UsageError(f"--config: {exc}") from None
-
-
 def _run_serve(args: argparse.Namespace) -> int:
     from monitor.config import ConfigError
     from monitor.service import run
@@ -90,7 +85,7 @@ def _run_serve(args: argparse.Namespace) -> int:
 def _run_db_upgrade(args: argparse.Namespace) -> int:
     from storage.db import upgrade
 
-    upgrade(_database_url(args))
+    upgrade(site_database_url(args))
     print("database schema is up to date")
     return 0
 
@@ -132,17 +127,14 @@ def _unset_secrets(path: Path) -> list[str]:
 def _run_alerts(args: argparse.Namespace) -> int:
     from monitor.bootstrap import load_site
     from monitor.cli.common import open_site
-    from monitor.cli.records import alerts_table, database_problem, unit_problem
+    from monitor.cli.records import alerts_table, unit_problem
     from monitor.shapes import alert_json
     from storage import board as board_store
     from storage.alerts import open_alerts
 
     if args.command == "alerts":
         print("gasgap: 'alerts' is now 'flags'; the old name still works", file=sys.stderr)
-    problem = database_problem(_database_url(args))
-    if problem is not None:  # never create an empty database to say "no open flags"
-        return fail(problem)
-    shell = open_site(args)
+    shell = open_site(args, existing=True)  # never an empty database to say "no open flags"
     db = shell.db
     try:
         with db.begin(read_only=True) as conn:
@@ -172,7 +164,7 @@ def _run_alerts_ack(args: argparse.Namespace) -> int:
     by = " ".join(args.by.split())
     if not by:
         return fail("--by: must name the person acknowledging")
-    shell = open_site(args)
+    shell = open_site(args, existing=True)
     try:
         alert = shell.pipeline.acknowledge(args.alert_id, by, now=datetime.now(UTC))
     except LookupError as exc:

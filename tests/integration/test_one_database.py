@@ -130,3 +130,27 @@ def test_the_old_alerts_name_still_lists_flags(tmp_path: Path, alias: str) -> No
     assert done.returncode == 0, done.stderr
     assert "no open flags" in done.stdout
     assert ("'alerts' is now 'flags'" in done.stderr) == (alias == "alerts")
+
+
+@pytest.mark.parametrize(
+    "command",
+    [
+        ["flags"],
+        ["flags", "ack", "F-1", "--by", "Charge Nurse Okafor"],
+        ["patient", "HGH-1007"],
+        ["outbox"],
+        ["outbox", "send"],
+        ["quarantine", "list"],
+    ],
+)
+def test_a_command_on_stored_data_never_makes_an_empty_database(
+    tmp_path: Path, command: list[str]
+) -> None:
+    # Made afresh, an empty database would answer "no open flags", "no derivations" or
+    # "nothing to send" about a site whose data is elsewhere: refused in one line.
+    missing = tmp_path / "not-made.db"
+    done = _gasgap(tmp_path, f"sqlite:///{missing}", *command, "--config", str(_site(tmp_path)))
+    assert done.returncode == 2, done.stderr
+    [line] = done.stderr.strip().splitlines()
+    assert "no database at" in line and str(missing) in line
+    assert not missing.exists()

@@ -9,10 +9,10 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
+from monitor.cli.common import database_problem
 from monitor.cli.records import (
     _table,
     alerts_table,
-    database_problem,
     series_row,
     unit_problem,
     write_trend_plot,
