@@ -99,7 +99,9 @@ def create_engine(url: str) -> Engine:
 
 
 def _sqlite_engine(url: sa.URL) -> Engine:
-    kwargs: dict[str, Any] = {}
+    # The busy wait holds from the connection's first statement (the journal-mode
+    # change below needs a lock too, and several processes may open a new file at once).
+    kwargs: dict[str, Any] = {"connect_args": {"timeout": SQLITE_BUSY_TIMEOUT_MS / 1000}}
     memory = is_memory_sqlite(url)
     if memory:
         kwargs = {"poolclass": StaticPool, "connect_args": {"check_same_thread": False}}
@@ -113,11 +115,11 @@ def _sqlite_engine(url: sa.URL) -> Engine:
         dbapi_connection.isolation_level = None
         cursor = dbapi_connection.cursor()
         try:
+            cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS:d}")
             if not memory:
                 cursor.execute("PRAGMA journal_mode=WAL")
                 cursor.execute("PRAGMA synchronous=NORMAL")
             cursor.execute("PRAGMA foreign_keys=ON")
-            cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS:d}")
         finally:
             cursor.close()
 

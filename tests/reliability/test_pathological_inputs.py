@@ -210,12 +210,20 @@ def _hook(service: ServiceProcess, body: bytes) -> int:
 @pytest.mark.slow
 @pytest.mark.timeout(400)
 def test_bundle_of_2500_observations(served: tuple[ServiceProcess, int, Path]) -> None:
+    # The bundle is stored in short transactions of 50 resources (monitor/web/hooks.py),
+    # so a normal sender waits for one part at most, not for the whole bundle. The
+    # bound is relative to the bundle's own time in the same run (the machine is shared
+    # and its speed varies): at most a quarter of it, or one second, whichever is more.
     service, port, _ = served
     waits = []
-    done: dict[str, int] = {}
-    thread = threading.Thread(
-        target=lambda: done.update(status=_hook(service, big_bundle())), daemon=True
-    )
+    done: dict[str, float] = {}
+
+    def post_bundle() -> None:
+        began = time.monotonic()
+        done["status"] = _hook(service, big_bundle())
+        done["seconds"] = time.monotonic() - began
+
+    thread = threading.Thread(target=post_bundle, daemon=True)
     thread.start()
     for pause in (0.3, 4.0, 4.0):  # early, and twice while the later parts are stored
         time.sleep(pause)
@@ -227,7 +235,8 @@ def test_bundle_of_2500_observations(served: tuple[ServiceProcess, int, Path]) -
         session.close()
     thread.join(300)
     assert done.get("status") == 200
-    assert all(code == "AA" and took < 1.0 for code, took in waits), waits
+    bound = max(1.0, done["seconds"] / 4)
+    assert all(code == "AA" and took < bound for code, took in waits), (waits, done)
 
 
 @pytest.mark.slow
