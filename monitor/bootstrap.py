@@ -31,16 +31,19 @@ from adapters.fhir.smart import SmartAuth
 from adapters.notify import Channel, build_channel
 from monitor.config import ConfigError, SiteConfig, default_config, load_config, secret
 from monitor.config.sections import FhirSource
+from monitor.engine.errors import MonitorError
 from monitor.ingest import SourceContext
 from monitor.pipeline import Pipeline, PipelineSettings, Routing
 from storage.db import DEFAULT_URL, Database, open_database
 
 __all__ = [
+    "NoDatabase",
     "Secrets",
     "Shell",
     "build_channels",
     "build_pipeline",
     "channel_secrets",
+    "database_problem",
     "database_url",
     "fhir_source_auth",
     "load_site",
@@ -92,9 +95,33 @@ def database_url(config: SiteConfig, secrets: Secrets, override: str | None = No
     return config.database.url or DEFAULT_URL
 
 
-def open_db(config: SiteConfig, secrets: Secrets, override: str | None = None) -> Database:
-    """Open (and migrate) the site's database; see ``database_url``."""
-    return open_database(database_url(config, secrets, override))
+class NoDatabase(MonitorError):
+    """A command on stored data named a SQLite file that is not there."""
+
+
+def database_problem(url: str | None) -> str | None:
+    """A SQLite file that does not exist: say so instead of creating an empty one (which
+    would then answer "no open flags", "no derivations" or "nothing to send")."""
+    parsed = (url or DEFAULT_URL).split("///", 1)
+    if not parsed[0].startswith("sqlite") or len(parsed) < 2 or parsed[1] in ("", ":memory:"):
+        return None
+    path = Path(parsed[1].split("?", 1)[0])
+    if path.exists():
+        return None
+    return f"no database at {path} (give --db or --config, or run gasgap ingest first)"
+
+
+def open_db(
+    config: SiteConfig, secrets: Secrets, override: str | None = None, *, existing: bool = False
+) -> Database:
+    """Open (and migrate) the site's database; see ``database_url``. ``existing``: the
+    caller only reads or acts on stored data, so a SQLite file that is not there raises
+    ``NoDatabase`` instead of being made empty."""
+    url = database_url(config, secrets, override)
+    problem = database_problem(url) if existing else None
+    if problem is not None:
+        raise NoDatabase(problem)
+    return open_database(url)
 
 
 # --- the engine's settings and the pipeline ------------------------------------------------
@@ -212,11 +239,13 @@ def open_shell(
     db_url: str | None = None,
     secrets_file: Path | None = None,
     environ: Mapping[str, str] | None = None,
+    existing: bool = False,
 ) -> Shell:
-    """Load the site, resolve its secrets and database, and build its pipeline."""
+    """Load the site, resolve its secrets and database, and build its pipeline
+    (``existing``: see ``open_db``)."""
     config = load_site(config_path)
     secrets = Secrets(secrets_file, environ)
-    db = open_db(config, secrets, db_url)
+    db = open_db(config, secrets, db_url, existing=existing)
     try:
         pipeline = build_pipeline(db, config)
         context = source_context(config)

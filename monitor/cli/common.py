@@ -53,20 +53,6 @@ def add_site_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--secrets-file", type=Path, help="KEY=VALUE secrets file")
 
 
-def database_problem(url: str | None) -> str | None:
-    """A SQLite file that does not exist: say so instead of creating an empty one (which
-    would then answer "no open flags", "no derivations" or "nothing to send")."""
-    from storage.db import DEFAULT_URL
-
-    parsed = (url or DEFAULT_URL).split("///", 1)
-    if not parsed[0].startswith("sqlite") or len(parsed) < 2 or parsed[1] in ("", ":memory:"):
-        return None
-    path = Path(parsed[1].split("?", 1)[0])
-    if path.exists():
-        return None
-    return f"no database at {path} (give --db or --config, or run gasgap ingest first)"
-
-
 def site_database_url(args: argparse.Namespace) -> str:
     """The database URL a command with ``add_site_options`` uses (``--db``, else the
     site's ``[database]``), resolved as ``monitor.bootstrap`` resolves it."""
@@ -85,14 +71,14 @@ def open_site(args: argparse.Namespace, *, existing: bool = False) -> Shell:
     secret problem becomes a ``UsageError`` naming the option. ``existing``: the command
     only reads or acts on stored data, so a SQLite file that is not there is a
     ``UsageError`` (never an empty database made to answer "nothing here")."""
-    from monitor.bootstrap import open_shell
+    from monitor.bootstrap import NoDatabase, open_shell
     from monitor.config import ConfigError
 
-    if existing:
-        problem = database_problem(site_database_url(args))
-        if problem is not None:
-            raise UsageError(problem)
     try:
-        return open_shell(args.config, db_url=args.db_url, secrets_file=args.secrets_file)
+        return open_shell(
+            args.config, db_url=args.db_url, secrets_file=args.secrets_file, existing=existing
+        )
     except ConfigError as exc:
         raise UsageError(f"--config: {exc}") from None
+    except NoDatabase as exc:
+        raise UsageError(str(exc)) from None

@@ -93,15 +93,14 @@ def _fail(message: str, code: int = EXIT_CONFIG) -> int:
 
 
 def _open(args: argparse.Namespace) -> tuple[SiteConfig, Database]:
-    from monitor.bootstrap import Secrets, database_url, load_site, open_db
-    from monitor.cli.common import UsageError, database_problem
+    from monitor.bootstrap import NoDatabase, Secrets, load_site, open_db
+    from monitor.cli.common import UsageError
 
     config = load_site(args.config)
-    secrets = Secrets(args.secrets_file)
-    problem = database_problem(database_url(config, secrets))
-    if problem is not None:  # never an empty database made to answer "nothing kept"
-        raise UsageError(problem)
-    return config, open_db(config, secrets)
+    try:  # never an empty database made to answer "nothing kept"
+        return config, open_db(config, Secrets(args.secrets_file), existing=True)
+    except NoDatabase as exc:
+        raise UsageError(str(exc)) from None
 
 
 def _run_list(args: argparse.Namespace) -> int:

@@ -9,7 +9,7 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
-from monitor.cli.common import database_problem
+from monitor.bootstrap import database_problem
 from monitor.cli.records import (
     _table,
     alerts_table,
