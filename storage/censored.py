@@ -17,8 +17,9 @@ from datetime import datetime
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection
 
-from monitor.engine.model import CensoredValue, Kind
+from monitor.engine.model import CensoredValue
 from storage.db import insert_for
+from storage.serialize import censored_to_row, row_to_censored
 from storage.tables import censored_results, readings
 
 _COLUMNS = [c.name for c in censored_results.c if c.name != "id"]
@@ -29,22 +30,7 @@ def save_censored(
 ) -> int:
     """Keep ``values`` (each replacing an earlier delivery of the same result); returns
     how many were written."""
-    rows = [
-        {
-            "patient_key": v.patient_key,
-            "kind": v.kind.value,
-            "comparator": v.comparator,
-            "limit_value": v.limit,
-            "original_value": v.original_value,
-            "original_unit": v.original_unit,
-            "code": v.code,
-            "effective_at": v.effective_at,
-            "source_system": v.source_system,
-            "logical_id": v.logical_id,
-            "received_at": received_at,
-        }
-        for v in values
-    ]
+    rows = [censored_to_row(v, received_at) for v in values]
     if not rows:
         return 0
     insert = insert_for(conn, censored_results)
@@ -56,11 +42,9 @@ def save_censored(
     return len(rows)
 
 
-def censored_for_patient(
-    conn: Connection, patient_key: str, since: datetime | None = None
-) -> list[CensoredValue]:
-    """The patient's censored results drawn at or after ``since`` (all when None), in
-    draw-time order, leaving out any result that now has a current exact reading."""
+def censored_for_patient(conn: Connection, patient_key: str) -> list[CensoredValue]:
+    """The patient's censored results in draw-time order, leaving out any result that
+    now has a current exact reading."""
     exact = sa.select(readings.c.logical_id).where(
         readings.c.is_current, readings.c.logical_id == censored_results.c.logical_id
     )
@@ -69,20 +53,4 @@ def censored_for_patient(
         .where(censored_results.c.patient_key == patient_key, ~sa.exists(exact))
         .order_by(censored_results.c.effective_at, censored_results.c.logical_id)
     )
-    if since is not None:
-        query = query.where(censored_results.c.effective_at >= since)
-    return [
-        CensoredValue(
-            patient_key=m["patient_key"],
-            kind=Kind(m["kind"]),
-            comparator=m["comparator"],
-            limit=m["limit_value"],
-            original_value=m["original_value"],
-            original_unit=m["original_unit"],
-            effective_at=m["effective_at"],
-            source_system=m["source_system"],
-            logical_id=m["logical_id"],
-            code=m["code"],
-        )
-        for m in (row._mapping for row in conn.execute(query))
-    ]
+    return [row_to_censored(row._mapping) for row in conn.execute(query)]

@@ -18,6 +18,7 @@ from monitor.engine.model import (
     Alert,
     AlertEvent,
     AlertState,
+    CensoredValue,
     Derivation,
     FiO2Source,
     InputUsed,
@@ -143,6 +144,40 @@ def row_to_reading(row: Row) -> Reading:
         location=row_to_location(row),
         birth_date=row["birth_date"],
         known_at=row.get("known_at"),
+    )
+
+
+# --- results beyond a limit ---------------------------------------------------------
+
+
+def censored_to_row(value: CensoredValue, received_at: datetime) -> dict[str, Any]:
+    return {
+        "patient_key": value.patient_key,
+        "kind": value.kind.value,
+        "comparator": value.comparator,
+        "limit_value": value.limit,
+        "original_value": value.original_value,
+        "original_unit": value.original_unit,
+        "code": value.code,
+        "effective_at": value.effective_at,
+        "source_system": value.source_system,
+        "logical_id": value.logical_id,
+        "received_at": received_at,
+    }
+
+
+def row_to_censored(row: Row) -> CensoredValue:
+    return CensoredValue(
+        patient_key=row["patient_key"],
+        kind=Kind(row["kind"]),
+        comparator=row["comparator"],
+        limit=row["limit_value"],
+        original_value=row["original_value"],
+        original_unit=row["original_unit"],
+        effective_at=row["effective_at"],
+        source_system=row["source_system"],
+        logical_id=row["logical_id"],
+        code=row["code"],
     )
 
 
