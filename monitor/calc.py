@@ -178,11 +178,10 @@ def calculate(gas: GasInput) -> GasResult:
     settings = DerivationSettings(equation=gas.equation, rq=gas.rq, age_normal=gas.age_normal)
     d = derive(snapshot, settings, strict=True)
     estimate = None if gas.spo2 is None else estimate_from_spo2(gas.spo2, gas.fio2, strict=True)
+    imputed = None if estimate is None else estimate.pao2
     values: dict[str, float | str | None] = {
-        key: getattr(d, key) for key in KEYS if key != "pao2_imputed_from_spo2"
+        key: imputed if key == "pao2_imputed_from_spo2" else getattr(d, key) for key in KEYS
     }
-    values["pao2_imputed_from_spo2"] = None if estimate is None else estimate.pao2
-    values = {key: values[key] for key in KEYS}
     notes = _plausibility(gas) + _quality_notes(d, gas)
     return GasResult(values=values, formulas=_formulas(d, gas, pb_formula), flags=notes)
 

@@ -322,8 +322,7 @@ class Pipeline:
         with self.db.begin() as conn:
             good: list[Reading] = []
             for inbound, now in units:
-                report.read += len(inbound.readings) + len(inbound.rejected)
-                report.read += len(inbound.censored)
+                report.read += len(inbound.readings) + len(inbound.rejected) + len(inbound.censored)
                 report.ignored += inbound.ignored
                 report.skipped_codes.update(inbound.skipped_codes)
                 for rejected in quarantine_store.collapse_alike(inbound.rejected):
