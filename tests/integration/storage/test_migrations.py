@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import sqlite3
 import threading
 from pathlib import Path
 
@@ -11,7 +12,7 @@ from alembic.autogenerate import compare_metadata
 from alembic.migration import MigrationContext
 from alembic.script import ScriptDirectory
 
-from storage.db import alembic_config, open_database, upgrade
+from storage.db import alembic_config, open_database, set_wal_mode, upgrade
 from storage.tables import metadata
 
 EXPECTED_TABLES = {
@@ -104,6 +105,56 @@ def test_sqlite_connections_use_wal_foreign_keys_and_a_busy_timeout(sqlite_url: 
         "busy_timeout": 10000,
         "synchronous": 1,
     }
+
+
+class _BusyCursor:
+    """A DBAPI cursor whose journal-mode change is refused ``busy`` times, as SQLite
+    refuses it (at once, no busy handler) while another process's last connection to
+    the file closes."""
+
+    def __init__(self, busy: int, error: str = "database is locked") -> None:
+        self.busy = busy
+        self.error = error
+        self.tries = 0
+
+    def execute(self, statement: str) -> None:
+        assert statement == "PRAGMA journal_mode=WAL"
+        self.tries += 1
+        if self.tries <= self.busy:
+            exc = sqlite3.OperationalError(self.error)
+            exc.sqlite_errorcode = sqlite3.SQLITE_BUSY if "locked" in self.error else 1
+            raise exc
+
+
+class _Clock:
+    def __init__(self) -> None:
+        self.now = 0.0
+        self.pauses: list[float] = []
+
+    def sleep(self, seconds: float) -> None:
+        self.pauses.append(seconds)
+        self.now += seconds
+
+
+def test_a_busy_answer_to_the_journal_mode_change_is_retried() -> None:
+    cursor, clock = _BusyCursor(busy=3), _Clock()
+    set_wal_mode(cursor, wait_s=10, sleep=clock.sleep, clock=lambda: clock.now)
+    assert cursor.tries == 4 and len(clock.pauses) == 3
+
+
+def test_a_journal_mode_change_busy_past_the_timeout_fails() -> None:
+    cursor, clock = _BusyCursor(busy=10**6), _Clock()
+    with pytest.raises(sqlite3.OperationalError, match="locked"):
+        set_wal_mode(cursor, wait_s=10, sleep=clock.sleep, clock=lambda: clock.now)
+    # Gave up once the busy timeout had passed, not before and not much after.
+    assert 10 <= clock.now <= 10.2
+
+
+def test_a_journal_mode_change_failing_otherwise_is_not_retried() -> None:
+    cursor, clock = _BusyCursor(busy=1, error="disk I/O error"), _Clock()
+    with pytest.raises(sqlite3.OperationalError, match="disk I/O"):
+        set_wal_mode(cursor, wait_s=10, sleep=clock.sleep, clock=lambda: clock.now)
+    assert cursor.tries == 1 and clock.pauses == []
 
 
 def test_in_memory_sqlite_keeps_one_database_across_transactions() -> None:
