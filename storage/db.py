@@ -42,6 +42,7 @@ from sqlalchemy.pool import StaticPool
 
 from storage.errors import StorageRefused, translate
 from storage.locks import advisory_lock
+from storage.turns import WriteTurns, turns_for
 
 DEFAULT_URL = "sqlite:///gasgap.db"
 #: How long a SQLite writer waits for another writer before giving up (milliseconds).
@@ -59,6 +60,9 @@ class Database:
 
     engine: Engine
     url: str
+    #: First come, first served turns at a SQLite file's write lock (storage/turns.py);
+    #: None for PostgreSQL and an in-memory database.
+    write_turns: WriteTurns | None = None
 
     @property
     def dialect_name(self) -> str:
@@ -72,6 +76,15 @@ class Database:
         ``read_only=True`` is a promise the caller makes (the board, reports); on SQLite
         it avoids taking the write lock.
         """
+        if read_only or self.write_turns is None:
+            with self._transaction(read_only) as conn:
+                yield conn
+            return
+        with self.write_turns.turn(SQLITE_BUSY_TIMEOUT_MS / 1000), self._transaction(False) as conn:
+            yield conn
+
+    @contextmanager
+    def _transaction(self, read_only: bool) -> Iterator[Connection]:
         with self.engine.connect() as conn:
             if read_only:
                 conn = conn.execution_options(**{_READ_ONLY: True})
@@ -223,7 +236,16 @@ def open_database(url: str | None = None, *, create: bool = True) -> Database:
         except BaseException:
             engine.dispose()
             raise
-    return Database(engine=engine, url=url)
+    return Database(engine=engine, url=url, write_turns=write_turns_for(engine))
+
+
+def write_turns_for(engine: Engine) -> WriteTurns | None:
+    """The write turns of the SQLite file ``engine`` opens; None for PostgreSQL and an
+    in-memory database (nothing to take turns at across engines)."""
+    path = engine.url.database
+    if engine.dialect.name != "sqlite" or is_memory_sqlite(engine.url) or not path:
+        return None
+    return turns_for(str(Path(path).resolve()))
 
 
 def insert_for(conn: Connection, table: sa.Table) -> Any:
