@@ -40,7 +40,7 @@ from alembic.config import Config
 from sqlalchemy.engine import Connection, Engine
 from sqlalchemy.pool import StaticPool
 
-from storage.errors import StorageRefused, translate
+from storage.errors import StorageRefused, pool_exhausted, translate
 from storage.locks import advisory_lock
 from storage.turns import WriteTurns, turns_for
 
@@ -85,7 +85,11 @@ class Database:
 
     @contextmanager
     def _transaction(self, read_only: bool) -> Iterator[Connection]:
-        with self.engine.connect() as conn:
+        try:
+            connection = self.engine.connect()
+        except sa.exc.TimeoutError as exc:
+            raise pool_exhausted(self.engine.url, exc) from exc
+        with connection as conn:
             if read_only:
                 conn = conn.execution_options(**{_READ_ONLY: True})
             with conn.begin():

@@ -9,11 +9,14 @@ database cannot be reached, is locked, timed out, went away) into
     MonitorError
      +-- StorageError                      storage refused or failed
           +-- StorageUnavailable           the database cannot be used now: worth a retry
+                                           (also monitor.engine.errors.Unavailable)
           +-- StorageRefused (ValueError)  a request that cannot work as asked
           +-- DuplicateOpenAlert (ValueError, storage.alerts)
 
-Other driver errors (an integrity violation, a bad statement) are programming errors
-and keep SQLAlchemy's type.
+A pool with no free connection within its timeout (``sqlalchemy.exc.TimeoutError``,
+raised before any driver is asked, so the hook never sees it) is translated by
+``Database.begin`` with :func:`pool_exhausted`. Other driver errors (an integrity
+violation, a bad statement) are programming errors and keep SQLAlchemy's type.
 """
 
 from __future__ import annotations
@@ -21,7 +24,7 @@ from __future__ import annotations
 import sqlalchemy as sa
 from sqlalchemy.engine import ExceptionContext
 
-from monitor.engine.errors import MonitorError
+from monitor.engine.errors import MonitorError, Unavailable
 
 #: SQLAlchemy's wrappers of the DBAPI errors that mean "not now", not "never".
 _UNAVAILABLE = (sa.exc.OperationalError, sa.exc.InterfaceError)
@@ -37,9 +40,10 @@ class StorageRefused(StorageError, ValueError):
     database, which would vanish with the call); the message says why."""
 
 
-class StorageUnavailable(StorageError):
-    """The database cannot be used now (cannot be reached, locked, timed out, gone):
-    worth a retry. ``database`` is its URL with any password masked."""
+class StorageUnavailable(StorageError, Unavailable):
+    """The database cannot be used now (cannot be reached, locked, timed out, gone, no
+    free connection in the pool): worth a retry. ``database`` is its URL with any
+    password masked."""
 
     def __init__(self, database: str, failed: str, detail: str) -> None:
         self.database = database
@@ -88,3 +92,10 @@ def _detail(exc: BaseException, password: str | None) -> str:
     if password:
         text = text.replace(password, "***")
     return text[:_MAX_DETAIL]
+
+
+def pool_exhausted(url: str | sa.URL, error: sa.exc.TimeoutError) -> StorageUnavailable:
+    """``StorageUnavailable`` for a pool that had no free connection in time."""
+    return StorageUnavailable(
+        masked_url(url), "no free connection in the pool", _detail(error, None)
+    )

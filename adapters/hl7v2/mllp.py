@@ -43,6 +43,7 @@ from datetime import UTC, datetime
 
 from adapters.hl7v2.ack import ACK_CODES, Hl7Error, build_ack, recover_header
 from adapters.hl7v2.framing import MessageTooLarge, MllpFramer, frame
+from monitor.engine.errors import Unavailable
 
 log = logging.getLogger("gasgap.hl7v2.mllp")
 _READ_CHUNK = 65536
@@ -65,41 +66,17 @@ NOT_NOW = "not stored: gasgap cannot store messages at the moment; resend later"
 #: Answer for a message that broke the reader in a way it did not foresee, once kept.
 KEPT_FOR_REVIEW = "could not be processed; kept in quarantine for review"
 
-#: By class name, anywhere in the exception's classes or its chain: storage's own
-#: ``StorageUnavailable`` (what every gasgap engine raises for a database it cannot use
-#: now), and the drivers' errors for code that reaches a database some other way.
-_TRANSIENT_NAMES = frozenset(
-    {
-        "StorageUnavailable",
-        "OperationalError",
-        "InterfaceError",
-        "DisconnectionError",
-        "TimeoutError",
-        "InternalError",
-        "ConnectionFailure",
-        "ConnectionTimeout",
-        "AdminShutdown",
-        "CannotConnectNow",
-        "QueryCanceled",
-        "LockNotAvailable",
-        "SerializationFailure",
-        "DeadlockDetected",
-    }
-)
-
 
 def is_transient(exc: BaseException) -> bool:
-    """True for a failure of storage that a later attempt may not meet: the database
-    down, locked, restarting or timing out (``storage.errors.StorageUnavailable``, and
-    SQLAlchemy, sqlite3 and psycopg errors, are recognised by class name: an adapter
-    imports no storage and no driver), or an OS-level connection failure."""
-    if isinstance(exc, (OSError, TimeoutError)):
-        return True
+    """True for a failure that a later attempt may not meet: anything gasgap raises as
+    ``Unavailable`` (``storage.errors.StorageUnavailable``: the database down, locked,
+    restarting, timing out, its pool full), anywhere in the exception's chain, or an
+    OS-level connection failure."""
     seen: set[int] = set()
     current: BaseException | None = exc
     while current is not None and id(current) not in seen:
         seen.add(id(current))
-        if any(cls.__name__ in _TRANSIENT_NAMES for cls in type(current).__mro__):
+        if isinstance(current, (Unavailable, OSError, TimeoutError)):
             return True
         current = current.__cause__ or current.__context__
     return False

@@ -9,11 +9,12 @@ engine's own, here::
      +-- InvalidInput (ValueError)        an input to a formula is impossible or out of range
      |    +-- InvalidReading              a reading cannot stand as a canonical Reading
      +-- IllegalTransition (RuntimeError) the alert state machine was asked for a move it has not
+     +-- Unavailable                      something the shell needs cannot be used now: retry
 
 and the roots the other rooms hang on it, where each lives::
 
      +-- StorageError                     storage.errors: storage refused or failed
-     |    +-- StorageUnavailable          the database cannot be used now (retry)
+     |    +-- StorageUnavailable          the database cannot be used now (also Unavailable)
      |    +-- DuplicateOpenAlert (ValueError)  storage.alerts: a second open flag
      +-- Hl7Error (ValueError)            adapters.hl7v2.ack: a message refused, with its ACK
      |    +-- MessageTooLarge             adapters.hl7v2.framing
@@ -37,6 +38,12 @@ Messages name the input and say what was wrong with it, e.g.
 
 class MonitorError(Exception):
     """Root of the engine's exceptions."""
+
+
+class Unavailable(MonitorError):
+    """Something the shell needs (the database) cannot be used now; a later attempt may
+    not meet it. Adapters recognise it without importing the room that raised it (an
+    MLLP sender is told to resend, a drop folder keeps its files for the next scan)."""
 
 
 class InvalidInput(MonitorError, ValueError):

@@ -5,17 +5,16 @@ reason, and a storage outage leaves files for the next scan. Messages are invent
 
 from __future__ import annotations
 
-import sqlite3
 from datetime import UTC, datetime
 from pathlib import Path
 
 import pytest
-import sqlalchemy.exc
 
 from monitor.dropfolder import DropFolder, ingest_from
 from monitor.ingest import SourceContext
 from monitor.pipeline import Pipeline
 from storage.db import open_database, upgrade
+from storage.errors import StorageUnavailable
 from tests import hl7_samples as h
 from tests.reliability.helpers import stored_control_ids
 
@@ -59,12 +58,13 @@ def test_a_storage_outage_leaves_the_files_for_the_next_scan(tmp_path: Path) -> 
     (drop / "batch.hl7").write_text(h.abg("DROP9"))
 
     def locked(paths: list[Path]) -> None:
-        raise sqlalchemy.exc.OperationalError("INSERT", {}, sqlite3.OperationalError("locked"))
+        # what every engine storage builds raises for a locked database
+        raise StorageUnavailable(url, "INSERT failed", "database is locked")
 
     working = folder.ingest
     folder.ingest = locked
     folder.scan()
-    with pytest.raises(sqlalchemy.exc.OperationalError):
+    with pytest.raises(StorageUnavailable):
         folder.scan()
     assert (drop / "batch.hl7").exists()
     folder.ingest = working

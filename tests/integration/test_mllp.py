@@ -205,24 +205,38 @@ def test_an_unforeseen_callback_exception_is_ar_without_its_text(serve) -> None:
     assert exchange(running.port, s.ABG_251.encode()).msa.msa_1.to_er7() == "AA"
 
 
-def test_a_storage_outage_is_ar_207_without_the_driver_text(serve) -> None:  # noqa: ANN001
+def test_a_storage_outage_is_ar_207_without_the_driver_text(
+    serve,
+    tmp_path,
+    monkeypatch,  # noqa: ANN001
+) -> None:
     import sqlite3
 
-    import sqlalchemy.exc
+    from storage import db as storage_db
+
+    # A real lock: another process's writer (a plain sqlite3 connection) holds the file,
+    # and storage waits 50 ms for it instead of the service's 10 s.
+    monkeypatch.setattr(storage_db, "SQLITE_BUSY_TIMEOUT_MS", 50)
+    url = f"sqlite:///{tmp_path / 'gasgap.db'}"
+    database = storage_db.open_database(url)
+    holder = sqlite3.connect(tmp_path / "gasgap.db", isolation_level=None)
+    holder.execute("BEGIN IMMEDIATE")
 
     def locked(raw: bytes) -> AckDecision:
-        # The exception SQLAlchemy raises over sqlite3 when another writer holds the lock.
-        raise sqlalchemy.exc.OperationalError(
-            "INSERT INTO readings ...", {}, sqlite3.OperationalError("database is locked")
-        )
+        with database.begin() as conn:
+            conn.exec_driver_sql("DELETE FROM readings")
+        return AckDecision("AA")
 
     kept: list[bytes] = []
     running = serve(locked, on_refused=lambda raw, reason: kept.append(raw))
     ack = exchange(running.port, s.ABG_251.encode())
     er7 = ack.to_er7()
     assert ack.msa.msa_1.to_er7() == "AR" and ack.err.err_3.err_3_1.to_er7() == "207"
-    assert "locked" not in er7 and "INSERT" not in er7 and "sqlalche.me" not in er7
+    assert "locked" not in er7 and "DELETE" not in er7 and "sqlite" not in er7
     assert kept == []  # an outage is not the message's fault: nothing quarantined
+    holder.execute("ROLLBACK")
+    holder.close()
+    database.dispose()
 
 
 def test_an_unforeseen_failure_is_kept_and_answered_ae(serve) -> None:  # noqa: ANN001

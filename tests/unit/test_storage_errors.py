@@ -22,7 +22,7 @@ from sqlalchemy.exc import IntegrityError
 from adapters.hl7v2.mllp import is_transient
 from monitor.engine.errors import MonitorError
 from storage import db as storage_db
-from storage.db import open_database
+from storage.db import Database, open_database
 from storage.errors import StorageError, StorageUnavailable, masked_url
 
 
@@ -78,3 +78,32 @@ def test_the_url_in_a_message_never_shows_the_password() -> None:
     assert "pw-never-shown" not in shown
     assert "gasgap@" in shown or "gasgap:" in shown
     assert "db.invalid:5432/gasgap" in shown
+
+
+def test_a_pool_with_no_free_connection_is_unavailable(tmp_path: Path) -> None:
+    # SQLAlchemy raises its own TimeoutError from the pool, before any driver is asked,
+    # so the engine's error hook never sees it: Database.begin translates it.
+    url = f"sqlite:///{tmp_path}/gasgap.db"
+    engine = sa.create_engine(url, pool_size=1, max_overflow=0, pool_timeout=0.05)
+    database = Database(engine, url)
+    try:
+        with database.begin(read_only=True):
+            with pytest.raises(StorageUnavailable, match="no free connection") as caught:
+                with database.begin(read_only=True):
+                    pass
+        assert isinstance(caught.value.__cause__, sa.exc.TimeoutError)
+        assert is_transient(caught.value)  # an MLLP sender is told to resend (AR)
+    finally:
+        database.dispose()
+
+
+def test_only_what_cannot_be_used_now_is_transient() -> None:
+    assert is_transient(StorageUnavailable("sqlite:///x.db", "could not connect", ""))
+    assert is_transient(ConnectionRefusedError("refused"))  # an OS-level failure
+    outer = RuntimeError("a step failed")
+    outer.__cause__ = StorageUnavailable("sqlite:///x.db", "BEGIN failed", "locked")
+    assert is_transient(outer)  # found anywhere in the chain
+    # a driver's error that storage did not translate is not taken for an outage
+    assert not is_transient(sqlite3.ProgrammingError("Cannot operate on a closed database."))
+    assert not is_transient(IntegrityError("INSERT", {}, Exception("UNIQUE failed")))
+    assert not is_transient(ValueError("fio2 must be a fraction"))
