@@ -27,6 +27,9 @@ from contextlib import contextmanager
 class WriteTurns:
     """A fair (FIFO), re-entrant turn at one database file's write lock."""
 
+    #: What a queued writer waits on (a test gives one that is interrupted).
+    event_type: type[threading.Event] = threading.Event
+
     def __init__(self) -> None:
         self._mutex = threading.Lock()
         self._owner: int | None = None
@@ -59,15 +62,26 @@ class WriteTurns:
             if self._owner is None and not self._waiting:
                 self._owner, self._depth = me, 1
                 return True
-            called = threading.Event()
+            called = self.event_type()
             self._waiting.append((me, called))
-        if called.wait(timeout):
-            return True
+        try:
+            if called.wait(timeout):
+                return True
+        except BaseException:  # interrupted while queued: leave no one waiting on us
+            self._give_up((me, called))
+            raise
         with self._mutex:
             if called.is_set():  # handed over between the wait ending and here
                 return True
             self._waiting.remove((me, called))
             return False
+
+    def _give_up(self, entry: tuple[int, threading.Event]) -> None:
+        with self._mutex:
+            if not entry[1].is_set():
+                self._waiting.remove(entry)
+                return
+        self._release()  # it had been handed to us meanwhile: pass it on
 
     def _release(self) -> None:
         with self._mutex:

@@ -130,3 +130,43 @@ def test_every_engine_on_one_file_shares_its_turns(tmp_path: Path) -> None:
     finally:
         first.dispose()
         second.dispose()
+
+
+class _Interrupt(BaseException):
+    """As a KeyboardInterrupt or a cancellation would arrive, mid-wait."""
+
+
+class _InterruptedEvent(threading.Event):
+    def wait(self, timeout: float | None = None) -> bool:
+        raise _Interrupt
+
+
+def test_a_waiter_interrupted_while_queued_leaves_nobody_waiting_on_it() -> None:
+    turns = WriteTurns()
+    raised: list[BaseException] = []
+
+    def interrupted() -> None:
+        try:
+            with turns.turn(timeout=30):
+                pass
+        except _Interrupt as exc:
+            raised.append(exc)
+
+    with turns.turn(timeout=30):
+        turns.event_type = _InterruptedEvent
+        thread = threading.Thread(target=interrupted)
+        thread.start()
+        thread.join(30)
+        turns.event_type = threading.Event
+        assert len(raised) == 1 and turns.waiting == 0
+    # the holder released it, and it is free: nobody gone from the queue holds it
+    after: list[bool] = []
+
+    def take() -> None:
+        with turns.turn(timeout=1) as had:
+            after.append(had)
+
+    thread = threading.Thread(target=take)
+    thread.start()
+    thread.join(30)
+    assert after == [True]
