@@ -3,10 +3,10 @@
 A censored value is not an exact number, so no derivation or rule may use it
 (``monitor.engine.model.CensoredValue``). It is still clinical information a person
 must be able to see: the patient's series lists it with what was sent. One row per
-result (source and logical id); a later delivery of the same result replaces the row
-(the last delivered wins: a censored value carries no time it became known). A result
-later sent as an exact number is shown as that reading, and its censored row is left
-out of the series.
+result (source and logical id); of two versions of one result the one known later
+stands (ties: the greater text sent), whatever order they are delivered in, as for
+readings. A result later sent as an exact number is shown as that reading, and its
+censored row is left out of the series.
 """
 
 from __future__ import annotations
@@ -23,20 +23,26 @@ from storage.serialize import censored_to_row, row_to_censored
 from storage.tables import censored_results, readings
 
 _COLUMNS = [c.name for c in censored_results.c if c.name != "id"]
+#: Which of two versions of one result stands: the later known, then the greater text
+#: (any fixed choice, so that delivery order cannot matter).
+_ORDER = ("known_at", "comparator", "original_value", "original_unit")
 
 
 def save_censored(
     conn: Connection, values: Iterable[CensoredValue], *, received_at: datetime
 ) -> int:
-    """Keep ``values`` (each replacing an earlier delivery of the same result); returns
-    how many were written."""
+    """Keep ``values``, each replacing a stored version of the same result that became
+    known earlier; returns how many were offered."""
     rows = [censored_to_row(v, received_at) for v in values]
     if not rows:
         return 0
     insert = insert_for(conn, censored_results)
+    stored, offered = censored_results.c, insert.excluded
     statement = insert.on_conflict_do_update(
         index_elements=["source_system", "logical_id"],
-        set_={name: insert.excluded[name] for name in _COLUMNS},
+        set_={name: offered[name] for name in _COLUMNS},
+        where=sa.tuple_(*(offered[name] for name in _ORDER))
+        > sa.tuple_(*(stored[name] for name in _ORDER)),
     )
     conn.execute(statement, rows)
     return len(rows)

@@ -163,6 +163,12 @@ def censored_to_row(value: CensoredValue, received_at: datetime) -> dict[str, An
         "source_system": value.source_system,
         "logical_id": value.logical_id,
         "received_at": received_at,
+        # as for a reading: the source's time, never after receipt; none, the receipt
+        "known_at": (
+            received_at
+            if value.known_at is None or value.known_at > received_at
+            else value.known_at
+        ),
     }
 
 
@@ -178,6 +184,7 @@ def row_to_censored(row: Row) -> CensoredValue:
         source_system=row["source_system"],
         logical_id=row["logical_id"],
         code=row["code"],
+        known_at=row["known_at"],
     )
 
 

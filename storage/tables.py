@@ -367,6 +367,8 @@ censored_results = sa.Table(
     sa.Column("source_system", sa.String, nullable=False),
     sa.Column("logical_id", sa.String, nullable=False),
     sa.Column("received_at", UTCDateTime, nullable=False),
+    # when this version became known (the source's time, never after receipt)
+    sa.Column("known_at", UTCDateTime, nullable=False),
     sa.UniqueConstraint("source_system", "logical_id"),
     sa.Index(None, "patient_key", "effective_at"),
 )

@@ -626,6 +626,7 @@ class FhirReadingBuilder:
                     effective,
                     logical + item.suffix,
                     coding.code or "",
+                    known_at,
                 )
                 continue
             try:
@@ -762,6 +763,7 @@ class FhirReadingBuilder:
         effective: datetime,
         logical_id: str,
         code: str,
+        known_at: datetime | None,
     ) -> None:
         comparator = (q.comparator or "").strip()
         if comparator not in COMPARATORS:
@@ -788,6 +790,7 @@ class FhirReadingBuilder:
                 source_system=self.source_system,
                 logical_id=logical_id,
                 code=code,
+                known_at=known_at,
             )
         )
 

@@ -685,7 +685,7 @@ def _read_obx(
             ctx, obx, where, kind, status, value_reps
         )
     except _CensoredSN as sn:
-        out.censored.append(_censored(ctx, facts, kind, code, logical_id, effective, sn))
+        out.censored.append(_censored(ctx, facts, kind, code, logical_id, effective, sn, known_at))
         return None
     return Reading(
         patient_key=facts.patient_key,
@@ -728,6 +728,7 @@ def _censored(
     logical_id: str,
     effective: datetime,
     sn: _CensoredSN,
+    known_at: datetime | None,
 ) -> CensoredValue:
     limit: float | None = None
     try:
@@ -745,6 +746,7 @@ def _censored(
         source_system=ctx.source_system,
         logical_id=logical_id,
         code=code,
+        known_at=known_at,
     )
 
 

@@ -297,6 +297,10 @@ class CensoredValue:
     source_system: str
     logical_id: str
     code: str = ""
+    #: When the result became available as the source said (HL7 OBX-19 or MSH-7, FHIR
+    #: issued or meta.lastUpdated), else None: of two versions of one result, the one
+    #: known later stands, whatever order they arrive in.
+    known_at: datetime | None = None
 
     @property
     def text(self) -> str:

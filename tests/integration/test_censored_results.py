@@ -12,19 +12,27 @@ import json
 import sqlite3
 import subprocess
 import sys
+from datetime import UTC, datetime
 from pathlib import Path
 
+import pytest
+import sqlalchemy as sa
 from hl7apy.consts import VALIDATION_LEVEL
 from hl7apy.core import Message
+
+from monitor.ingest import SourceContext, inbound_from_hl7
+from monitor.pipeline import Pipeline
+from storage.db import open_database
 
 ROOT = Path(__file__).resolve().parents[2]
 
 
-def _message(control: str, pao2: tuple[str, str], status: str) -> str:
+def _message(control: str, pao2: tuple[str, str], status: str, sent: str = "20260315090000") -> str:
     """An invented arterial gas of one patient of the invented hospital, PaO2 as
-    (value type, value), PaCO2 38 mmHg and FiO2 100 %."""
+    (value type, value), PaCO2 38 mmHg and FiO2 100 %, the message sent at ``sent``
+    (MSH-7, site time)."""
     m = Message("ORU_R01", version="2.5.1", validation_level=VALIDATION_LEVEL.STRICT)
-    m.msh.msh_3, m.msh.msh_7, m.msh.msh_9 = "HGH-LAB", "20260315090000", "ORU^R01^ORU_R01"
+    m.msh.msh_3, m.msh.msh_7, m.msh.msh_9 = "HGH-LAB", sent, "ORU^R01^ORU_R01"
     m.msh.msh_10, m.msh.msh_11 = control, "P"
     patient = m.add_group("ORU_R01_PATIENT_RESULT").add_group("ORU_R01_PATIENT")
     patient.pid.pid_3 = "HM100777^^^HGH&2.999.1.1.1&ISO^MR"
@@ -91,6 +99,35 @@ def test_a_censored_pao2_is_kept_shown_and_never_derived(tmp_path: Path) -> None
     assert shown["beyond_limits"] == []
     [gas] = shown["series"]  # type: ignore[misc]
     assert gas["pao2"] == 512.0 and gas["fio2"] == 1.0
+
+
+@pytest.mark.parametrize("order", ["as sent", "the correction first"])
+def test_of_two_versions_of_a_censored_result_the_later_known_stands(
+    db_url: str, order: str
+) -> None:
+    # The lab sends ">500" at 09:00 and corrects it to ">450" (OBX-11 C) at 09:20; a
+    # feed that delivers the correction first must end with the same row.
+    first = _message("HGH0911", ("SN", ">^500"), "F", sent="20260315090000")
+    correction = _message("HGH0912", ("SN", ">^450"), "C", sent="20260315092000")
+    deliveries = [first, correction] if order == "as sent" else [correction, first]
+    db = open_database(db_url)
+    pipeline = Pipeline(db)
+    context = SourceContext(patient_id_system="urn:oid:2.999.1.1.1")
+    try:
+        for n, text in enumerate(deliveries):
+            now = datetime(2026, 3, 15, 10, n, tzinfo=UTC)
+            inbound = inbound_from_hl7(text.encode(), received_at=now, context=context)
+            pipeline.accept(inbound, now=now)
+        with db.begin(read_only=True) as conn:
+            rows = conn.execute(
+                sa.text("select comparator, original_value, known_at from censored_results")
+            ).all()
+    finally:
+        db.dispose()
+    [(comparator, value, known_at)] = rows
+    assert (comparator, value) == (">", "450")
+    # MSH-7 09:20 site time; the default site zone is UTC (monitor.config defaults)
+    assert str(known_at).startswith("2026-03-15 09:20")
 
 
 def test_the_board_shows_a_censored_result_apart_from_the_gases(tmp_path: Path) -> None:

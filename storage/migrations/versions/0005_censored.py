@@ -36,6 +36,7 @@ def upgrade() -> None:
         sa.Column("source_system", sa.String(), nullable=False),
         sa.Column("logical_id", sa.String(), nullable=False),
         sa.Column("received_at", TIME, nullable=False),
+        sa.Column("known_at", TIME, nullable=False),
         sa.PrimaryKeyConstraint("id", name="pk_censored_results"),
         sa.UniqueConstraint(
             "source_system", "logical_id", name="uq_censored_results_source_system_logical_id"
