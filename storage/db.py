@@ -15,6 +15,10 @@ the writer), foreign keys on, a busy timeout (a second writer waits instead of f
 at once), ``synchronous=NORMAL`` (safe with WAL: a power cut can lose the last
 commits, never corrupt the file). Write transactions start with ``BEGIN IMMEDIATE`` so
 two processes do not both read, then both try to upgrade to a write lock and deadlock.
+Within one process, writers take turns at the file in the order they came
+(``storage.turns``), so none waits behind a stream of later transactions; the switch to
+WAL on a new connection is retried while SQLite answers busy without waiting
+(``set_wal_mode``).
 
 ``sqlite://`` (no path) is an in-memory database for replay: one connection shared by
 everything (``StaticPool``), gone when the process ends.
