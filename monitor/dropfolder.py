@@ -51,7 +51,14 @@ class ScanResult:
     loaded: list[Path] = field(default_factory=list)
     failed: list[Path] = field(default_factory=list)
     waiting: list[Path] = field(default_factory=list)
+    #: What the loaded files gave, added up (None when nothing was loaded).
     report: BatchReport | None = None
+
+    def add(self, report: BatchReport) -> None:
+        if self.report is None:
+            self.report = report
+        else:
+            self.report.merge(report)
 
 
 class DropFolder:
@@ -111,7 +118,7 @@ class DropFolder:
         if not ready:
             return result
         try:
-            result.report = self.ingest(ready)
+            result.add(self.ingest(ready))
         except Exception as exc:
             if is_transient(exc):
                 log.warning(
@@ -124,15 +131,32 @@ class DropFolder:
             # One file spoils the lot: load them one by one to find it.
             for path in ready:
                 self._one(path, result)
+            self._log_loaded(result)
             return result
         for path in ready:
             result.loaded.append(self._move(path, LOADED))
-        log.info("drop folder %s: %d file(s) loaded", self.name, len(ready))
+        self._log_loaded(result)
         return result
+
+    def _log_loaded(self, result: ScanResult) -> None:
+        """One line for the informatics team: counts only, no patient identifiers."""
+        if not result.loaded or result.report is None:
+            return
+        report = result.report
+        log.info(
+            "drop folder %s: %d file(s) loaded: %d reading(s) stored, %d already stored, "
+            "%d quarantined, %d flag event(s)",
+            self.name,
+            len(result.loaded),
+            report.stored,
+            report.duplicates,
+            report.quarantined,
+            len(report.alert_events),
+        )
 
     def _one(self, path: Path, result: ScanResult) -> None:
         try:
-            self.ingest([path])
+            report = self.ingest([path])
         except Exception as exc:
             if is_transient(exc):
                 raise
@@ -148,6 +172,7 @@ class DropFolder:
             )
             result.failed.append(moved)
         else:
+            result.add(report)
             result.loaded.append(self._move(path, LOADED))
 
     def _move(self, path: Path, where: str) -> Path:

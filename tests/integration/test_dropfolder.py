@@ -5,6 +5,7 @@ reason, and a storage outage leaves files for the next scan. Messages are invent
 
 from __future__ import annotations
 
+import logging
 from datetime import UTC, datetime
 from pathlib import Path
 
@@ -35,7 +36,9 @@ def _folder(tmp_path: Path) -> tuple[DropFolder, str, Path]:
     return folder, url, drop
 
 
-def test_settled_files_are_loaded_and_moved_aside(tmp_path: Path) -> None:
+def test_settled_files_are_loaded_and_moved_aside(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
     folder, url, drop = _folder(tmp_path)
     second_gas = h.abg("DROP2", filler="F-20260315-0002")
     (drop / "batch-1.hl7").write_text(h.abg("DROP1") + "\n\n" + second_gas)
@@ -43,7 +46,8 @@ def test_settled_files_are_loaded_and_moved_aside(tmp_path: Path) -> None:
     (drop / "notes.bin").write_bytes(b"\x00\x01 not a feed")
     first = folder.scan()
     assert first.loaded == [] and len(first.waiting) == 2  # seen once: not settled yet
-    second = folder.scan()
+    with caplog.at_level(logging.INFO, logger="gasgap.dropfolder"):
+        second = folder.scan()
     assert [p.name.split("-", 1)[1] for p in second.loaded] == ["batch-1.hl7"]
     assert [p.name.split("-", 1)[1] for p in second.failed] == ["notes.bin"]
     reason = second.failed[0].with_name(second.failed[0].name + ".reason.txt").read_text()
@@ -51,6 +55,12 @@ def test_settled_files_are_loaded_and_moved_aside(tmp_path: Path) -> None:
     assert sorted(p.name for p in drop.iterdir() if p.is_file()) == [".batch-2.hl7.part"]
     stored = stored_control_ids(url)
     assert stored.get("DROP1") and stored.get("DROP2") and "DROP3" not in stored
+    # two gases of five results each (tests/hl7_samples.abg), said in one line that
+    # names no patient (the samples' MRN is HM100234, the name Thornbury)
+    assert second.report is not None and second.report.stored == 10
+    [said] = [r.getMessage() for r in caplog.records if "file(s) loaded" in r.getMessage()]
+    assert "1 file(s) loaded: 10 reading(s) stored" in said
+    assert "HM1" not in said and "Thornbury" not in said
 
 
 def test_a_storage_outage_leaves_the_files_for_the_next_scan(tmp_path: Path) -> None:
