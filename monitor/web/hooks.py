@@ -57,7 +57,11 @@ async def fhir_hook(request: Request, source: str) -> JSONResponse:
         raise HTTPException(404, f"no FHIR source named {source!r} is configured")
     body = await request.body()
     try:
-        delivery = parse_notification(body, request.headers.get("content-type"))
+        # off the event loop: a body of thousands of resources takes a while to read,
+        # and the loop also serves the board, the API and (in the service) MLLP
+        delivery = await run_in_threadpool(
+            parse_notification, body, request.headers.get("content-type")
+        )
     except HookPayloadError as exc:
         raise HTTPException(400, str(exc)) from None
     gap = EVENT_GAPS.check(source, delivery)
@@ -76,7 +80,7 @@ async def fhir_hook(request: Request, source: str) -> JSONResponse:
     reader = ctx.hook_sources.get(source)
     if reader is None:
         raise HTTPException(409, f"source {source!r} does not take resources by hook")
-    delivery, refused = screen(delivery)
+    delivery, refused = await run_in_threadpool(screen, delivery)
     if refused:
         await run_in_threadpool(_keep, ctx, source, refused)
     if not delivery.resources:
