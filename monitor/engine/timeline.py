@@ -450,6 +450,10 @@ class PatientTimeline:
         return self._timeline[i:j]
 
     def _context(self, at: datetime, panel_id: str | None) -> list[Reading]:
+        """The readings pairing needs around ``at`` (and the panel's own), already what
+        ``pairing.current_readings`` would make of them: only current, usable readings
+        of this patient (``advance`` refuses another's; ``restore`` is given the
+        patient's own), one per logical id, sorted by ``_by_time`` (pairing's order)."""
         before, after = context_window(self.settings.pairing)
         # A PaO2 pairs with no other PaO2 (pairing.influence_window): leaving the other
         # samples out keeps a pathological feed (thousands of gases at one time) linear.
@@ -520,7 +524,8 @@ class PatientTimeline:
             sample = gases[lid]
             context = self._context(sample.effective_at, sample.panel_id)
             derivation = derive(
-                pair(sample, context, self.settings.pairing), self.settings.derivation
+                pair(sample, context, self.settings.pairing, current=True),
+                self.settings.derivation,
             )
             if self.derivations.get(lid) != derivation:
                 self._put(derivation)
@@ -535,6 +540,7 @@ class PatientTimeline:
                 self._context(r.effective_at, r.panel_id),
                 self.settings.derivation,
                 self.settings.pairing,
+                current=True,
             ):
                 estimated[d.sample_id] = d
         out: list[tuple[Derivation, str, bool]] = []
