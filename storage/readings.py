@@ -18,7 +18,8 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Collection, Iterable
 from dataclasses import dataclass, field
-from datetime import date, datetime
+from datetime import UTC, date, datetime
+from types import SimpleNamespace
 from typing import Any
 
 import sqlalchemy as sa
@@ -135,6 +136,8 @@ def _insert_new(
         | {"is_current": r.logical_id in current, "superseded_at": None, "processed": processed}
         for r in batch
     ]
+    if conn.dialect.name == "sqlite":
+        return _insert_new_sqlite(conn, rows)
     statement = _INSERTS.get(conn.dialect.name)
     if statement is None:
         statement = (
@@ -147,6 +150,72 @@ def _insert_new(
     for part in chunks(rows):
         inserted.extend(conn.execute(statement, part))
     return inserted
+
+
+#: The readings columns an insert names (all but the surrogate key), in table order.
+_INSERT_COLUMNS = tuple(c for c in readings.c if c.name != "id")
+_INSERT_NAMES = tuple(c.name for c in _INSERT_COLUMNS)
+_TIME_COLUMNS = frozenset(c.name for c in _INSERT_COLUMNS if isinstance(c.type, UTCDateTime))
+#: Per dialect: each column's bind processor and the SQL text by rows per statement.
+_SQLITE_INSERT: dict[Any, tuple[list[Any], dict[int, str]]] = {}
+
+
+def _insert_new_sqlite(conn: Connection, rows: list[dict[str, Any]]) -> list[Any]:
+    """``_insert_new`` on SQLite: the same INSERT .. ON CONFLICT (delivery_id) DO
+    NOTHING, a few hundred rows to a statement in the order given (so the same ids),
+    its parameters made by the columns' own bind processors (the same stored text),
+    sent as driver SQL (SQLAlchemy's errors and events kept). It spares SQLAlchemy's
+    per-row work (about half the insert's time) and reading every inserted row back:
+    only ids come back, and the rows returned are made from what was inserted."""
+    dialect = conn.dialect
+    held = _SQLITE_INSERT.get(dialect)
+    if held is None:
+        processors = [c.type.dialect_impl(dialect).bind_processor(dialect) for c in _INSERT_COLUMNS]
+        held = _SQLITE_INSERT[dialect] = (processors, {})
+    processors, texts = held
+    width = len(_INSERT_NAMES)
+    per = max(1, min(500, dialect.insertmanyvalues_max_parameters // width))
+    ids: dict[str, int] = {}
+    for start in range(0, len(rows), per):
+        part = rows[start : start + per]
+        text = texts.get(len(part))
+        if text is None:
+            one = "(" + ", ".join("?" * width) + ")"
+            text = texts[len(part)] = (
+                f"INSERT INTO readings ({', '.join(_INSERT_NAMES)}) VALUES "
+                + ", ".join([one] * len(part))
+                + " ON CONFLICT (delivery_id) DO NOTHING RETURNING id, delivery_id"
+            )
+        params: list[Any] = []
+        for row in part:
+            for name, process in zip(_INSERT_NAMES, processors, strict=True):
+                value = row[name]
+                params.append(value if process is None else process(value))
+        for row_id, delivery_id in conn.exec_driver_sql(text, tuple(params)):
+            ids[delivery_id] = row_id
+    # each inserted row as the rest of this module reads it (``_choose_current``): the
+    # same names, and the values the row read back would hold
+    inserted = [
+        SimpleNamespace(
+            id=ids[row["delivery_id"]],
+            **{name: _read_back(name, row[name]) for name in _INSERT_NAMES},
+        )
+        for row in rows
+        if row["delivery_id"] in ids
+    ]
+    inserted.sort(key=lambda row: row.id)
+    return inserted
+
+
+def _read_back(name: str, value: Any) -> Any:
+    """``value`` as a row read back holds it: times in UTC, numbers as floats."""
+    if value is None:
+        return None
+    if name in _TIME_COLUMNS:
+        return value.astimezone(UTC)
+    if name == "value":
+        return float(value)
+    return value
 
 
 def _rows_for(conn: Connection, logical_ids: Collection[str], *, current_only: bool) -> list[Any]:
