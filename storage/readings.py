@@ -15,6 +15,7 @@ value) but the time-window queries leave them out, so pairing never uses them.
 
 from __future__ import annotations
 
+import sqlite3
 from collections import Counter
 from collections.abc import Collection, Iterable
 from dataclasses import dataclass, field
@@ -156,8 +157,9 @@ def _insert_new(
 _INSERT_COLUMNS = tuple(c for c in readings.c if c.name != "id")
 _INSERT_NAMES = tuple(c.name for c in _INSERT_COLUMNS)
 _TIME_COLUMNS = frozenset(c.name for c in _INSERT_COLUMNS if isinstance(c.type, UTCDateTime))
-#: Per dialect: each column's bind processor and the SQL text by rows per statement.
-_SQLITE_INSERT: dict[Any, tuple[list[Any], dict[int, str]]] = {}
+#: Per dialect: each column's bind processor, the SQL text by rows per statement, and
+#: the most parameters a statement may carry.
+_SQLITE_INSERT: dict[Any, tuple[list[Any], dict[int, str], int]] = {}
 
 
 def _insert_new_sqlite(conn: Connection, rows: list[dict[str, Any]]) -> list[Any]:
@@ -171,10 +173,13 @@ def _insert_new_sqlite(conn: Connection, rows: list[dict[str, Any]]) -> list[Any
     held = _SQLITE_INSERT.get(dialect)
     if held is None:
         processors = [c.type.dialect_impl(dialect).bind_processor(dialect) for c in _INSERT_COLUMNS]
-        held = _SQLITE_INSERT[dialect] = (processors, {})
-    processors, texts = held
+        # the parameters one statement may carry: this SQLite library's own limit
+        driver = conn.connection.driver_connection
+        limit = driver.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) if driver else 999
+        held = _SQLITE_INSERT[dialect] = (processors, {}, limit)
+    processors, texts, limit = held
     width = len(_INSERT_NAMES)
-    per = max(1, min(500, dialect.insertmanyvalues_max_parameters // width))
+    per = max(1, min(500, limit // width))
     ids: dict[str, int] = {}
     for start in range(0, len(rows), per):
         part = rows[start : start + per]
