@@ -15,7 +15,6 @@ value) but the time-window queries leave them out, so pairing never uses them.
 
 from __future__ import annotations
 
-import sqlite3
 from collections import Counter
 from collections.abc import Collection, Iterable
 from dataclasses import dataclass, field
@@ -27,7 +26,7 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Connection
 
 from monitor.engine.model import Kind, Location, Reading, Status
-from storage.db import chunks, insert_for
+from storage.db import chunks, insert_for, sqlite_insert_rows
 from storage.locks import advisory_locks
 from storage.serialize import location_to_row, reading_to_row, row_to_location, row_to_reading
 from storage.tables import UTCDateTime, patients, readings
@@ -153,53 +152,22 @@ def _insert_new(
     return inserted
 
 
-#: The readings columns an insert names (all but the surrogate key), in table order.
-_INSERT_COLUMNS = tuple(c for c in readings.c if c.name != "id")
-_INSERT_NAMES = tuple(c.name for c in _INSERT_COLUMNS)
-_TIME_COLUMNS = frozenset(c.name for c in _INSERT_COLUMNS if isinstance(c.type, UTCDateTime))
-#: Per dialect: each column's bind processor, the SQL text by rows per statement, and
-#: the most parameters a statement may carry.
-_SQLITE_INSERT: dict[Any, tuple[list[Any], dict[int, str], int]] = {}
+#: The readings columns an insert names (all but the surrogate key), and the times.
+_INSERT_NAMES = tuple(c.name for c in readings.c if c.name != "id")
+_TIME_COLUMNS = frozenset(c.name for c in readings.c if isinstance(c.type, UTCDateTime))
 
 
 def _insert_new_sqlite(conn: Connection, rows: list[dict[str, Any]]) -> list[Any]:
-    """``_insert_new`` on SQLite: the same INSERT .. ON CONFLICT (delivery_id) DO
-    NOTHING, a few hundred rows to a statement in the order given (so the same ids),
-    its parameters made by the columns' own bind processors (the same stored text),
-    sent as driver SQL (SQLAlchemy's errors and events kept). It spares SQLAlchemy's
-    per-row work (about half the insert's time) and reading every inserted row back:
-    only ids come back, and the rows returned are made from what was inserted."""
-    dialect = conn.dialect
-    held = _SQLITE_INSERT.get(dialect)
-    if held is None:
-        processors = [c.type.dialect_impl(dialect).bind_processor(dialect) for c in _INSERT_COLUMNS]
-        # the parameters one statement may carry: this SQLite library's own limit
-        driver = conn.connection.driver_connection
-        limit = driver.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) if driver else 999
-        held = _SQLITE_INSERT[dialect] = (processors, {}, limit)
-    processors, texts, limit = held
-    width = len(_INSERT_NAMES)
-    per = max(1, min(500, limit // width))
-    ids: dict[str, int] = {}
-    for start in range(0, len(rows), per):
-        part = rows[start : start + per]
-        text = texts.get(len(part))
-        if text is None:
-            one = "(" + ", ".join("?" * width) + ")"
-            text = texts[len(part)] = (
-                f"INSERT INTO readings ({', '.join(_INSERT_NAMES)}) VALUES "
-                + ", ".join([one] * len(part))
-                + " ON CONFLICT (delivery_id) DO NOTHING RETURNING id, delivery_id"
-            )
-        params: list[Any] = []
-        for row in part:
-            for name, process in zip(_INSERT_NAMES, processors, strict=True):
-                value = row[name]
-                params.append(value if process is None else process(value))
-        for row_id, delivery_id in conn.exec_driver_sql(text, tuple(params)):
-            ids[delivery_id] = row_id
-    # each inserted row as the rest of this module reads it (``_choose_current``): the
-    # same names, and the values the row read back would hold
+    """``_insert_new`` on SQLite (``storage.db.sqlite_insert_rows``): the same
+    INSERT .. ON CONFLICT (delivery_id) DO NOTHING; only ids come back, and the rows
+    returned are made from what was inserted, as a row read back would hold them."""
+    ids = dict(
+        (delivery_id, row_id)
+        for row_id, delivery_id in sqlite_insert_rows(
+            conn, readings, rows, ("id", "delivery_id"), on_conflict_do_nothing="delivery_id"
+        )
+    )
+    # each inserted row as the rest of this module reads it (``_choose_current``)
     inserted = [
         SimpleNamespace(
             id=ids[row["delivery_id"]],
