@@ -271,6 +271,21 @@ def chunks(items: list[Any], size: int = 500) -> Iterator[list[Any]]:
         yield items[start : start + size]
 
 
+def _statement_sizes(count: int, most: int) -> Iterator[tuple[int, int]]:
+    """(start, rows) of each statement for ``count`` rows: 256 rows to a statement (fewer
+    when ``most`` says so), the rest in powers of two, so a table's inserts use a few
+    statement texts (each kept, as SQLite keeps each prepared) whatever the counts."""
+    size = 256
+    while size > max(1, most):
+        size //= 2
+    start = 0
+    while start < count:
+        while size > count - start:
+            size //= 2
+        yield start, size
+        start += size
+
+
 #: Per (dialect, table, statement shape): each column's bind processor, the SQL text
 #: by rows per statement, and the most parameters one statement may carry.
 _DRIVER_INSERTS: dict[tuple[Any, ...], tuple[list[Any], dict[int, str], int]] = {}
@@ -285,7 +300,7 @@ def sqlite_insert_rows(
     on_conflict_do_nothing: str | None = None,
 ) -> list[tuple[Any, ...]]:
     """Insert ``rows`` (every column but the surrogate ``id``, by name) into ``table`` on
-    SQLite as driver SQL, a few hundred rows to a statement in the order given (so the
+    SQLite as driver SQL, up to 256 rows to a statement in the order given (so the
     ids are those SQLAlchemy's insert would give), each parameter made by its column's
     own bind processor (so the stored text is the same), with SQLAlchemy's errors and
     events kept (``exec_driver_sql``). Returns the ``returning`` columns of the rows
@@ -304,14 +319,13 @@ def sqlite_insert_rows(
         held = _DRIVER_INSERTS[memo] = (processors, {}, limit)
     processors, texts, limit = held
     names = [c.name for c in columns]
-    per = max(1, min(500, limit // len(names)))
     conflict = (
         f" ON CONFLICT ({on_conflict_do_nothing}) DO NOTHING" if on_conflict_do_nothing else ""
     )
     found: list[tuple[Any, ...]] = []
-    for start in range(0, len(rows), per):
-        part = rows[start : start + per]
-        text = texts.get(len(part))
+    for start, size in _statement_sizes(len(rows), limit // len(names)):
+        part = rows[start : start + size]
+        text = texts.get(size)
         if text is None:
             one = "(" + ", ".join("?" * len(names)) + ")"
             text = texts[len(part)] = (
