@@ -20,7 +20,7 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Connection
 
 from monitor.engine.model import Derivation
-from storage.db import chunks
+from storage.db import chunks, sqlite_insert_rows
 from storage.serialize import derivation_to_row, row_to_derivation
 from storage.tables import UTCDateTime, derivation_inputs, derivations
 
@@ -382,8 +382,7 @@ def save_versions(
     if demote:
         conn.execute(_DEMOTE, demote)
     if pending:
-        statement = sa.insert(_d).returning(_d.c.id, sort_by_parameter_order=True)
-        ids = [int(r.id) for r in conn.execute(statement, pending)]
+        ids = _insert_versions(conn, pending)
         links = [
             {"derivation_id": new_id, "reading_logical_id": lid}
             for new_id, saved in zip(ids, pending, strict=True)
@@ -394,3 +393,18 @@ def save_versions(
         for part in chunks(links, 1000):
             conn.execute(_INSERT_LINKS, part)
     return written, retracted
+
+
+def _insert_versions(conn: Connection, pending: list[dict[str, Any]]) -> list[int]:
+    """Insert new derivation versions; their ids, in the order given."""
+    if conn.dialect.name == "sqlite":  # storage.db.sqlite_insert_rows: the same rows
+        made = {
+            (sample_id, version): int(row_id)
+            for row_id, sample_id, version in sqlite_insert_rows(
+                conn, _d, pending, ("id", "sample_id", "version")
+            )
+        }
+        # one patient's versions: (sample, version) names each
+        return [made[(row["sample_id"], row["version"])] for row in pending]
+    statement = sa.insert(_d).returning(_d.c.id, sort_by_parameter_order=True)
+    return [int(r.id) for r in conn.execute(statement, pending)]

@@ -18,14 +18,15 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Collection, Iterable
 from dataclasses import dataclass, field
-from datetime import date, datetime
+from datetime import UTC, date, datetime
+from types import SimpleNamespace
 from typing import Any
 
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection
 
 from monitor.engine.model import Kind, Location, Reading, Status
-from storage.db import chunks, insert_for
+from storage.db import chunks, insert_for, sqlite_insert_rows
 from storage.locks import advisory_locks
 from storage.serialize import location_to_row, reading_to_row, row_to_location, row_to_reading
 from storage.tables import UTCDateTime, patients, readings
@@ -135,6 +136,8 @@ def _insert_new(
         | {"is_current": r.logical_id in current, "superseded_at": None, "processed": processed}
         for r in batch
     ]
+    if conn.dialect.name == "sqlite":
+        return _insert_new_sqlite(conn, rows)
     statement = _INSERTS.get(conn.dialect.name)
     if statement is None:
         statement = (
@@ -147,6 +150,45 @@ def _insert_new(
     for part in chunks(rows):
         inserted.extend(conn.execute(statement, part))
     return inserted
+
+
+#: The readings columns an insert names (all but the surrogate key), and the times.
+_INSERT_NAMES = tuple(c.name for c in readings.c if c.name != "id")
+_TIME_COLUMNS = frozenset(c.name for c in readings.c if isinstance(c.type, UTCDateTime))
+
+
+def _insert_new_sqlite(conn: Connection, rows: list[dict[str, Any]]) -> list[Any]:
+    """``_insert_new`` on SQLite (``storage.db.sqlite_insert_rows``): the same
+    INSERT .. ON CONFLICT (delivery_id) DO NOTHING; only ids come back, and the rows
+    returned are made from what was inserted, as a row read back would hold them."""
+    ids = dict(
+        (delivery_id, row_id)
+        for row_id, delivery_id in sqlite_insert_rows(
+            conn, readings, rows, ("id", "delivery_id"), on_conflict_do_nothing="delivery_id"
+        )
+    )
+    # each inserted row as the rest of this module reads it (``_choose_current``)
+    inserted = [
+        SimpleNamespace(
+            id=ids[row["delivery_id"]],
+            **{name: _read_back(name, row[name]) for name in _INSERT_NAMES},
+        )
+        for row in rows
+        if row["delivery_id"] in ids
+    ]
+    inserted.sort(key=lambda row: row.id)
+    return inserted
+
+
+def _read_back(name: str, value: Any) -> Any:
+    """``value`` as a row read back holds it: times in UTC, numbers as floats."""
+    if value is None:
+        return None
+    if name in _TIME_COLUMNS:
+        return value.astimezone(UTC)
+    if name == "value":
+        return float(value)
+    return value
 
 
 def _rows_for(conn: Connection, logical_ids: Collection[str], *, current_only: bool) -> list[Any]:

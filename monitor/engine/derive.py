@@ -400,13 +400,21 @@ def estimate_from_spo2(spo2: float, fio2: float | None, *, strict: bool = False)
 
 
 def _spo2_derivation(
-    spo2: Reading, context: Sequence[Reading], pairing_settings: PairingSettings
+    spo2: Reading,
+    context: Sequence[Reading],
+    pairing_settings: PairingSettings,
+    current: bool,
 ) -> Derivation | None:
     value = spo2.value
     if value is None or value > physiology.SPO2_RATIO_LIMIT:
         return None
     fio2 = fio2_in_effect(
-        spo2.patient_key, spo2.effective_at, context, pairing_settings, panel_id=spo2.panel_id
+        spo2.patient_key,
+        spo2.effective_at,
+        context,
+        pairing_settings,
+        panel_id=spo2.panel_id,
+        current=current,
     )
     if fio2.value is None:
         return None
@@ -453,6 +461,8 @@ def derive_spo2_series(
     context: Sequence[Reading],
     settings: DerivationSettings,
     pairing_settings: PairingSettings,
+    *,
+    current: bool = False,
 ) -> list[Derivation]:
     """Estimated derivations for SpO2 readings (%) between gases, in time order.
 
@@ -462,14 +472,15 @@ def derive_spo2_series(
     (Rice 2007) and, at SpO2 <= 96 %, the PaO2 imputed by the exact inverse of
     Severinghaus Eq. 1 and its P/F (Brown 2016). Readings above 97 %, retracted or
     without a FiO2 in effect give nothing. ``settings`` is accepted so callers pass the
-    site's choices uniformly; no setting changes these estimates today.
+    site's choices uniformly; no setting changes these estimates today. ``current``:
+    ``context`` is already the patient's current readings (``pairing.pair``).
     """
     del settings  # no alveolar equation or content is computed from SpO2 alone
     spo2s = [r for r in spo2_readings if r.kind is Kind.SPO2]
     result: list[Derivation] = []
     for patient in sorted({r.patient_key for r in spo2s}):
         for r in current_readings(spo2s, patient):
-            derived = _spo2_derivation(r, context, pairing_settings)
+            derived = _spo2_derivation(r, context, pairing_settings, current)
             if derived is not None:
                 result.append(derived)
     result.sort(key=lambda d: (d.drawn_at, d.patient_key, d.sample_id))

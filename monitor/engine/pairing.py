@@ -540,11 +540,13 @@ def fio2_in_effect(
     settings: PairingSettings,
     *,
     panel_id: str | None = None,
+    current: bool = False,
 ) -> FiO2InEffect:
     """The FiO2 (fraction 0.21-1.0) in effect for ``patient_key`` at ``at``, by the
     priority in this module's docstring. ``panel_id`` names the panel whose own FiO2
-    counts as "reported with the gas"."""
-    return _choose_fio2(at, current_readings(context, patient_key), settings, panel_id)
+    counts as "reported with the gas". ``current``: see ``pair``."""
+    readings = list(context) if current else current_readings(context, patient_key)
+    return _choose_fio2(at, readings, settings, panel_id)
 
 
 # --- pressure, temperature, ventilator, SpO2, age ------------------------------------------
@@ -729,7 +731,13 @@ def _conditions(
     return pb, pb_source, temp, temp_source
 
 
-def pair(sample: Reading, context: Sequence[Reading], settings: PairingSettings) -> Snapshot:
+def pair(
+    sample: Reading,
+    context: Sequence[Reading],
+    settings: PairingSettings,
+    *,
+    current: bool = False,
+) -> Snapshot:
     """Pair one PaO2 reading with everything in effect at its draw.
 
     ``sample`` is a PaO2 reading (mmHg) of any specimen; anything but ARTERIAL gives a
@@ -738,15 +746,18 @@ def pair(sample: Reading, context: Sequence[Reading], settings: PairingSettings)
     around the draw (see ``context_window``); other patients' readings, retracted
     readings and superseded versions are ignored. Raises ``InvalidInput`` only when
     ``sample`` is not a usable PaO2 reading.
+
+    ``current``: the caller vouches that ``context`` is already what
+    ``current_readings`` would make of it (only the sample's patient, one reading per
+    logical id, none retracted or unusable, sorted by effective time, then known time
+    and ids), as a patient timeline's context is; the sorting and filtering are then
+    not done again. The result is the same either way.
     """
     if sample.kind is not Kind.PAO2 or sample.value is None or sample.status is Status.RETRACTED:
         raise InvalidInput("sample", sample.logical_id, "must be a PaO2 reading with a value")
     t = sample.effective_at
-    readings = [
-        r
-        for r in current_readings(context, sample.patient_key)
-        if r.logical_id != sample.logical_id
-    ]
+    held = context if current else current_readings(context, sample.patient_key)
+    readings = [r for r in held if r.logical_id != sample.logical_id]
     prov = _sample_provenance(sample)
     lab = _lab_values(sample, readings, settings, prov)
 

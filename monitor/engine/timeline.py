@@ -150,6 +150,31 @@ class StepResult:
         self.duplicates += other.duplicates
 
 
+#: The kinds an SpO2 estimate reads besides the SpO2 itself: the FiO2 in effect comes
+#: from charted FiO2, O2 devices and O2 flows only (``pairing.fio2_in_effect``).
+_THERAPY_KINDS = frozenset({Kind.FIO2, Kind.O2_DEVICE, Kind.O2_FLOW})
+
+
+@dataclass(slots=True)
+class _EstimateInputs:
+    """What changed in one step that an SpO2 estimate can read: the SpO2 results
+    themselves (``spo2s``, logical ids), and the influence windows and panels of the
+    changed FiO2, O2 device and O2 flow readings. An SpO2 touched by none of them
+    estimates as it did (``derive._spo2_derivation`` reads the SpO2 and the FiO2 in
+    effect, which reads only those kinds, in its context window or its panel), so
+    it is not estimated again."""
+
+    spo2s: set[str] = field(default_factory=set)
+    windows: list[tuple[datetime, datetime]] = field(default_factory=list)
+    panels: set[str] = field(default_factory=set)
+
+    def touch(self, r: Reading) -> bool:
+        if r.logical_id in self.spo2s or (r.panel_id is not None and r.panel_id in self.panels):
+            return True
+        t = r.effective_at
+        return any(s <= t <= e for s, e in self.windows)
+
+
 @dataclass(slots=True)
 class _Judged:
     derivation: Derivation
@@ -313,6 +338,7 @@ class PatientTimeline:
         withdrawn: set[str] = set()
         touched_times: list[datetime] = []
         direct: set[str] = set()
+        estimates = _EstimateInputs()
         for r in group:
             before = self._current.get(r.logical_id)
             self._add_delivery(r)
@@ -328,25 +354,35 @@ class PatientTimeline:
                     touched_times.append(version.effective_at)
                     continue
                 lo, hi = influence_window(version.kind, ps)
-                windows.append((version.effective_at - lo, version.effective_at + hi))
+                window = (version.effective_at - lo, version.effective_at + hi)
+                windows.append(window)
                 touched_times.append(version.effective_at)
                 if version.panel_id:
                     panels.add(version.panel_id)
+                if version.kind is Kind.SPO2:
+                    estimates.spo2s.add(version.logical_id)
+                elif version.kind in _THERAPY_KINDS:
+                    estimates.windows.append(window)
+                    if version.panel_id:
+                        estimates.panels.add(version.panel_id)
             if after is not None and after.status is Status.RETRACTED:
                 withdrawn.add(r.logical_id)
             if r.birth_date is not None and r.birth_date != self.birth_date:
                 self.birth_date = r.birth_date
                 # a birth date can change the age, and so the expected A-a, of any sample
-                windows.append(
-                    (
-                        datetime.min.replace(tzinfo=known.tzinfo),
-                        datetime.max.replace(tzinfo=known.tzinfo),
-                    )
+                # (an estimate reads no age: estimated again all the same, to be plain)
+                everything = (
+                    datetime.min.replace(tzinfo=known.tzinfo),
+                    datetime.max.replace(tzinfo=known.tzinfo),
                 )
+                windows.append(everything)
+                estimates.windows.append(everything)
         if not windows and not direct:
             return result
         result.extend(
-            self._follow(windows, panels, withdrawn, touched_times, instant, seen_at, direct)
+            self._follow(
+                windows, panels, withdrawn, touched_times, instant, seen_at, direct, estimates
+            )
         )
         return result
 
@@ -375,9 +411,11 @@ class PatientTimeline:
         instant: datetime,
         seen_at: datetime,
         direct: set[str] | None = None,
+        estimates: _EstimateInputs | None = None,
     ) -> StepResult:
         """Re-derive what changed readings can affect (``direct``: samples changed
-        themselves), withdraw, judge."""
+        themselves; ``estimates``: what changed that SpO2 estimates read, None: every
+        SpO2 in ``windows`` and ``panels`` is estimated again), withdraw, judge."""
         result = StepResult()
         stood = (
             {
@@ -390,7 +428,9 @@ class PatientTimeline:
         )
         changed: dict[str, Derivation] = {}
         changed_times: list[datetime] = list(touched_times)
-        for d, reason, retracted in self._rederive(windows, panels, withdrawn, direct or set()):
+        for d, reason, retracted in self._rederive(
+            windows, panels, withdrawn, direct or set(), estimates
+        ):
             result.derivations.append(DerivedVersion(d, instant, reason, retracted))
             changed_times.append(d.drawn_at)
             if not retracted:
@@ -450,6 +490,10 @@ class PatientTimeline:
         return self._timeline[i:j]
 
     def _context(self, at: datetime, panel_id: str | None) -> list[Reading]:
+        """The readings pairing needs around ``at`` (and the panel's own), already what
+        ``pairing.current_readings`` would make of them: only current, usable readings
+        of this patient (``advance`` refuses another's; ``restore`` is given the
+        patient's own), one per logical id, sorted by ``_by_time`` (pairing's order)."""
         before, after = context_window(self.settings.pairing)
         # A PaO2 pairs with no other PaO2 (pairing.influence_window): leaving the other
         # samples out keeps a pathological feed (thousands of gases at one time) linear.
@@ -471,10 +515,11 @@ class PatientTimeline:
         panels: set[str],
         withdrawn: set[str],
         direct: set[str],
+        estimates: _EstimateInputs | None = None,
     ) -> list[tuple[Derivation, str, bool]]:
         """Derive again every sample the changed readings can affect; returns the new
         versions (derivation, reason, retracted)."""
-        gases, spo2s = self._affected(windows, panels, direct)
+        gases, spo2s = self._affected(windows, panels, direct, estimates)
         out = self._rederive_gases(gases)
         out += self._rederive_estimates(spo2s)
         # Samples whose own result was withdrawn (they are no longer in the timeline).
@@ -485,10 +530,15 @@ class PatientTimeline:
         return out
 
     def _affected(
-        self, windows: list[tuple[datetime, datetime]], panels: set[str], direct: set[str]
+        self,
+        windows: list[tuple[datetime, datetime]],
+        panels: set[str],
+        direct: set[str],
+        estimates: _EstimateInputs | None = None,
     ) -> tuple[dict[str, Reading], dict[str, Reading]]:
         """The current gases (PaO2) and SpO2 readings, by logical id, that fall in one of
-        ``windows``, belong to one of ``panels`` or are named in ``direct``."""
+        ``windows``, belong to one of ``panels`` or are named in ``direct``; of the SpO2
+        readings only those ``estimates`` touches, when given (``_EstimateInputs``)."""
 
         def inside(r: Reading) -> bool:
             return (
@@ -511,7 +561,11 @@ class PatientTimeline:
         for panel in panels:
             candidates += current(self._panels.get(panel, ()))
         gases = {r.logical_id: r for r in candidates if r.kind is Kind.PAO2 and inside(r)}
-        spo2s = {r.logical_id: r for r in candidates if r.kind is Kind.SPO2 and inside(r)}
+        spo2s = {
+            r.logical_id: r
+            for r in candidates
+            if r.kind is Kind.SPO2 and inside(r) and (estimates is None or estimates.touch(r))
+        }
         return gases, spo2s
 
     def _rederive_gases(self, gases: dict[str, Reading]) -> list[tuple[Derivation, str, bool]]:
@@ -520,7 +574,8 @@ class PatientTimeline:
             sample = gases[lid]
             context = self._context(sample.effective_at, sample.panel_id)
             derivation = derive(
-                pair(sample, context, self.settings.pairing), self.settings.derivation
+                pair(sample, context, self.settings.pairing, current=True),
+                self.settings.derivation,
             )
             if self.derivations.get(lid) != derivation:
                 self._put(derivation)
@@ -535,6 +590,7 @@ class PatientTimeline:
                 self._context(r.effective_at, r.panel_id),
                 self.settings.derivation,
                 self.settings.pairing,
+                current=True,
             ):
                 estimated[d.sample_id] = d
         out: list[tuple[Derivation, str, bool]] = []
