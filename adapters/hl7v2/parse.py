@@ -181,37 +181,47 @@ def _msh18(raw: bytes) -> str:
     return fields[17].split("~")[0].split("^")[0].strip() if len(fields) > 17 else ""
 
 
+#: One segment as its raw fields: ``[name, field 1, field 2, ...]``. In MSH, field 1 is
+#: the field separator itself and field 2 the encoding characters (HL7 v2.5 chapter 2,
+#: from memory), so ``seg[n]`` is MSH-n as in every other segment.
+_Segment = list[str]
+
+
+@dataclass(frozen=True, slots=True)
+class _Message:
+    """A message split into segments of raw fields, with its separators; a field is
+    split further only when read (``_Segments.reps``)."""
+
+    segments: list[_Segment]
+    field_sep: str
+    rep_sep: str
+    comp_sep: str
+    sub_sep: str
+    esc: str
+
+
 class _Segments:
-    """Read access to a python-hl7 message as plain strings, with unescaping.
+    """Read access to a split message as plain strings, with unescaping: every field as
+    repetitions of components of subcomponents."""
 
-    Every field is normalised to repetitions of components of subcomponents, because
-    python-hl7 nests only as deep as the separators present in each field.
-    """
-
-    def __init__(self, message: hl7.Message) -> None:
+    def __init__(self, message: _Message) -> None:
         self.esc = message.esc
-        seps = message.separators  # "\r|~^&": segment, field, repetition, component, sub
-        self.field_sep, self.rep_sep, self.comp_sep, self.sub_sep = seps[1:5]
+        self.field_sep, self.rep_sep = message.field_sep, message.rep_sep
+        self.comp_sep, self.sub_sep = message.comp_sep, message.sub_sep
 
-    def reps(self, seg: hl7.Segment, n: int) -> list[list[list[str]]]:
+    def reps(self, seg: _Segment, n: int) -> list[list[list[str]]]:
         if n >= len(seg):
             return []
-        node = seg[n]
-        if isinstance(node, str):
-            return [[[self.unescape(node)]]]
-        out: list[list[list[str]]] = []
-        for rep in node:
-            if isinstance(rep, str):
-                out.append([[self.unescape(rep)]])
-                continue
-            comps: list[list[str]] = []
-            for comp in rep:
-                subs = [comp] if isinstance(comp, str) else [str(s) for s in comp]
-                comps.append([self.unescape(s) for s in subs])
-            out.append(comps)
-        return out
+        raw = seg[n]
+        if n <= 2 and seg[0] == "MSH":  # the separators themselves: never split
+            return [[[self.unescape(raw)]]]
+        unescape, sub_sep, comp_sep = self.unescape, self.sub_sep, self.comp_sep
+        return [
+            [[unescape(s) for s in comp.split(sub_sep)] for comp in rep.split(comp_sep)]
+            for rep in raw.split(self.rep_sep)
+        ]
 
-    def get(self, seg: hl7.Segment, n: int, comp: int = 1, sub: int = 1, rep: int = 1) -> str:
+    def get(self, seg: _Segment, n: int, comp: int = 1, sub: int = 1, rep: int = 1) -> str:
         """Field n, repetition rep, component comp, subcomponent sub (all from 1), or ''."""
         reps = self.reps(seg, n)
         try:
@@ -254,8 +264,8 @@ class _Bad(ValueError):
         super().__init__(f"{where}: {reason}")
 
 
-def _name(seg: hl7.Segment) -> str:
-    return str(seg[0]).strip() if len(seg) else ""
+def _name(seg: _Segment) -> str:
+    return seg[0].strip() if seg else ""
 
 
 # --- times ----------------------------------------------------------------------------
@@ -345,15 +355,15 @@ def combine_specimens(*signs: Specimen) -> Specimen:
 class _Order:
     """One OBR with what it inherits (patient, visit) and what belongs to it."""
 
-    pid: hl7.Segment | None
-    pv1: hl7.Segment | None
-    orc: hl7.Segment | None
-    obr: hl7.Segment | None
-    obxs: list[tuple[int, hl7.Segment]] = field(default_factory=list)
-    spms: list[hl7.Segment] = field(default_factory=list)
+    pid: _Segment | None
+    pv1: _Segment | None
+    orc: _Segment | None
+    obr: _Segment | None
+    obxs: list[tuple[int, _Segment]] = field(default_factory=list)
+    spms: list[_Segment] = field(default_factory=list)
 
 
-def _orders(segments: list[hl7.Segment]) -> Iterator[_Order]:
+def _orders(segments: list[_Segment]) -> Iterator[_Order]:
     pid = pv1 = orc = None
     order: _Order | None = None
     obx_count = 0
@@ -383,7 +393,7 @@ def _orders(segments: list[hl7.Segment]) -> Iterator[_Order]:
         yield order
 
 
-def _split_message(text: str) -> hl7.Message:
+def _split_message(text: str) -> _Message:
     text = text.replace("\r\n", "\r").replace("\n", "\r").strip()
     if not text.startswith("MSH"):
         raise Hl7Error("first segment is not MSH", "AE", "100")
@@ -394,10 +404,18 @@ def _split_message(text: str) -> hl7.Message:
     enc = text[4:8]
     if text[3] in enc or len(set(enc)) < 4 or any(c.isalnum() or c.isspace() for c in enc):
         raise Hl7Error("MSH-2: encoding characters must be four distinct symbols", "AE", "102")
-    try:
-        return hl7.parse(text)
-    except (hl7.HL7Exception, ValueError, IndexError) as exc:
-        raise Hl7Error(f"message cannot be split into segments: {exc}", "AE", "100") from exc
+    # MSH-2: component, repetition, escape, subcomponent (HL7 v2.5 chapter 2, from memory)
+    field_sep = text[3]
+    comp_sep, rep_sep, esc, sub_sep = enc[0], enc[1], enc[2], enc[3]
+    segments: list[_Segment] = []
+    for line in text.split("\r"):
+        if not line:
+            continue
+        fields = line.split(field_sep)
+        if fields[0] == "MSH":
+            fields.insert(1, field_sep)
+        segments.append(fields)
+    return _Message(segments, field_sep, rep_sep, comp_sep, sub_sep, esc)
 
 
 # --- the parse ------------------------------------------------------------------------
@@ -441,7 +459,7 @@ def parse_oru(
         raise ValueError("received_at must be a timezone-aware time")
     message = _split_message(decode(raw))
     seg = _Segments(message)
-    msh = message[0]
+    msh = message.segments[0]
     message_type = "^".join(p for p in (seg.get(msh, 9, 1), seg.get(msh, 9, 2)) if p)
     version = seg.get(msh, 12, 1)
     control_id = seg.get(msh, 10)
@@ -459,7 +477,7 @@ def parse_oru(
         )
     if not control_id:
         raise Hl7Error("MSH-10: message control id is empty", "AE", "101")
-    segments = [s for s in message[1:] if _name(s)]
+    segments = [s for s in message.segments[1:] if _name(s)]
     if not any(_name(s) == "PID" for s in segments):
         raise Hl7Error("no PID segment: results cannot be linked to a patient", "AE", "100")
     oximetry = any(_is_oximetry(seg, s, codes) for s in segments if _name(s) == "OBX")
@@ -507,14 +525,12 @@ def _drop_ambiguous(taken: list[tuple[str, Reading]], out: ParsedMessage) -> Non
             )
 
 
-def _is_oximetry(seg: _Segments, obx: hl7.Segment, codes: CodeTable) -> bool:
+def _is_oximetry(seg: _Segments, obx: _Segment, codes: CodeTable) -> bool:
     entry = _lookup(seg, obx, codes)[0]
     return entry is not None and entry.oximetry
 
 
-def _lookup(
-    seg: _Segments, obx: hl7.Segment, codes: CodeTable
-) -> tuple[CodeEntry | None, str, str]:
+def _lookup(seg: _Segments, obx: _Segment, codes: CodeTable) -> tuple[CodeEntry | None, str, str]:
     """The code table entry for OBX-3 (primary coding, then the alternate one)."""
     code, system = seg.get(obx, 3, 1), seg.get(obx, 3, 3)
     entry = codes.lookup(system or None, code) if code else None
@@ -606,7 +622,7 @@ def _order_facts(ctx: _Context, order: _Order, out: ParsedMessage) -> _OrderFact
     )
 
 
-def _patient_keys(seg: _Segments, pid: hl7.Segment, ctx: _Context) -> list[str]:
+def _patient_keys(seg: _Segments, pid: _Segment, ctx: _Context) -> list[str]:
     """A key for each PID-3 repetition (CX: ID^^^namespace&universal id&type), best first."""
     keys: list[str] = []
     for rep in seg.reps(pid, 3):
@@ -625,7 +641,7 @@ def _patient_keys(seg: _Segments, pid: hl7.Segment, ctx: _Context) -> list[str]:
     return sorted(dict.fromkeys(keys), key=lambda k: (identity.key_rank(k), k))
 
 
-def _location(seg: _Segments, pv1: hl7.Segment | None) -> Location | None:
+def _location(seg: _Segments, pv1: _Segment | None) -> Location | None:
     if pv1 is None:
         return None
     unit, room, bed = (seg.get(pv1, 3, i) or None for i in (1, 2, 3))
@@ -633,7 +649,7 @@ def _location(seg: _Segments, pv1: hl7.Segment | None) -> Location | None:
 
 
 def _read_obx(
-    ctx: _Context, facts: _OrderFacts, obx: hl7.Segment, where: str, out: ParsedMessage
+    ctx: _Context, facts: _OrderFacts, obx: _Segment, where: str, out: ParsedMessage
 ) -> Reading | None:
     seg = ctx.seg
     entry, code, system = _lookup(seg, obx, ctx.codes)
@@ -750,13 +766,13 @@ def _censored(
     )
 
 
-def _names_oximeter(seg: _Segments, obx: hl7.Segment) -> bool:
+def _names_oximeter(seg: _Segments, obx: _Segment) -> bool:
     return any(_OXIMETER.search(s) for rep in seg.reps(obx, 18) for c in rep for s in c)
 
 
 def _value(
     ctx: _Context,
-    obx: hl7.Segment,
+    obx: _Segment,
     where: str,
     kind: Kind,
     status: Status,
