@@ -1,6 +1,8 @@
 """ORU^R01 (HL7 v2.3 to 2.5.1) to canonical Readings. Pure: no I/O, no clock.
 
-python-hl7 splits the message into segments, fields, repetitions and components; this
+The message is split here: segments by CR, fields by MSH-1, and a field into
+repetitions, components and subcomponents by MSH-2 only when it is read (checked
+against python-hl7's split in tests/unit/adapters/test_hl7_split_reference.py); this
 module decides what each field means for gasgap. It holds no clinical rule and no
 formula: codes and units go through ``adapters.codes``.
 
