@@ -21,6 +21,20 @@ def _wait_until(condition: object, what: str) -> None:
         time.sleep(0.001)
 
 
+def _taken_by_another_thread(turns: WriteTurns, timeout: float) -> bool:
+    """Whether a writer on another thread had the turn (waiting at most ``timeout``)."""
+    had: list[bool] = []
+
+    def take() -> None:
+        with turns.turn(timeout=timeout) as got:
+            had.append(got)
+
+    thread = threading.Thread(target=take)
+    thread.start()
+    thread.join(30)
+    return had == [True]
+
+
 def test_a_writer_is_let_in_after_the_transaction_ahead_not_after_a_stream(
     tmp_path: Path,
 ) -> None:
@@ -83,16 +97,7 @@ def test_a_thread_holding_the_turn_may_open_another_write() -> None:
     turns = WriteTurns()
     with turns.turn(timeout=1) as outer, turns.turn(timeout=1) as inner:
         assert outer and inner
-    other: list[bool] = []
-
-    def take() -> None:
-        with turns.turn(timeout=1) as had:
-            other.append(had)
-
-    thread = threading.Thread(target=take)
-    thread.start()
-    thread.join(30)
-    assert other == [True]  # released fully once both blocks ended
+    assert _taken_by_another_thread(turns, timeout=1)  # released fully once both ended
 
 
 def test_a_waiter_that_waited_too_long_goes_on_without_the_turn() -> None:
@@ -160,13 +165,4 @@ def test_a_waiter_interrupted_while_queued_leaves_nobody_waiting_on_it() -> None
         turns.event_type = threading.Event
         assert len(raised) == 1 and turns.waiting == 0
     # the holder released it, and it is free: nobody gone from the queue holds it
-    after: list[bool] = []
-
-    def take() -> None:
-        with turns.turn(timeout=1) as had:
-            after.append(had)
-
-    thread = threading.Thread(target=take)
-    thread.start()
-    thread.join(30)
-    assert after == [True]
+    assert _taken_by_another_thread(turns, timeout=1)
