@@ -30,6 +30,7 @@ from monitor.engine.model import (
     Reading,
     Specimen,
     Status,
+    known_time,
     stored_reading,
 )
 
@@ -173,12 +174,7 @@ def censored_to_row(value: CensoredValue, received_at: datetime) -> dict[str, An
         "source_system": value.source_system,
         "logical_id": value.logical_id,
         "received_at": received_at,
-        # as for a reading: the source's time, never after receipt; none, the receipt
-        "known_at": (
-            received_at
-            if value.known_at is None or value.known_at > received_at
-            else value.known_at
-        ),
+        "known_at": known_time(value.known_at, received_at),  # as for a reading
     }
 
 

@@ -15,6 +15,7 @@ import math
 from dataclasses import dataclass, field
 from datetime import date, datetime
 from enum import StrEnum
+from typing import Any
 
 from monitor.engine.errors import InvalidReading
 
@@ -180,12 +181,8 @@ class Reading:
 
     @property
     def known(self) -> datetime:
-        """When the result became available: ``known_at`` when the source said, else
-        when it was received. Never after it was received: a stated time later than
-        that comes from a clock that runs ahead."""
-        if self.known_at is None or self.known_at > self.received_at:
-            return self.received_at
-        return self.known_at
+        """When the result became available (``known_time``)."""
+        return known_time(self.known_at, self.received_at)
 
     def __post_init__(self) -> None:
         if not self.patient_key:
@@ -227,91 +224,35 @@ class Reading:
             )
 
 
-def stored_reading(
-    patient_key: str,
-    kind: Kind,
-    value: float | None,
-    effective_at: datetime,
-    received_at: datetime,
-    source_system: str,
-    logical_id: str,
-    delivery_id: str,
-    status: Status,
-    specimen: Specimen,
-    unit: str,
-    original_value: str,
-    original_unit: str,
-    code: str,
-    code_system: str,
-    code_value: str | None,
-    panel_id: str | None,
-    from_ventilator: bool,
-    encounter_id: str | None,
-    location: Location | None,
-    birth_date: date | None,
-    known_at: datetime | None,
-) -> Reading:
-    """A ``Reading`` made again from what storage kept of one, without running
-    ``Reading.__post_init__``'s checks a second time: every stored reading was a
-    ``Reading`` (so checked) when it was stored. Only for storage's own rows; input
-    from anywhere else is made with ``Reading(...)``. Equal to ``Reading(...)`` of the
-    same fields, the canonical unit filled in the same way when ``unit`` is empty."""
+def known_time(stated: datetime | None, received_at: datetime) -> datetime:
+    """When a result became available: the time the source ``stated`` when it said one,
+    else when it was received. Never after it was received: a stated time later than
+    that comes from a clock that runs ahead."""
+    if stated is None or stated > received_at:
+        return received_at
+    return stated
+
+
+def stored_reading(**fields: Any) -> Reading:
+    """A ``Reading`` made again from what storage kept of one (every field, by name),
+    without running ``Reading.__post_init__``'s checks a second time: every stored
+    reading was a ``Reading`` (so checked) when it was stored. Only for storage's own
+    rows; input from anywhere else is made with ``Reading(...)``. Equal to
+    ``Reading(...)`` of the same fields, the canonical unit filled in the same way when
+    ``unit`` is empty. Names missing or unknown to ``Reading`` raise ``TypeError``."""
+    if fields.keys() != _READING_FIELDS:
+        raise TypeError(f"stored_reading needs exactly Reading's fields, not {sorted(fields)}")
     r = _new_object(Reading)
-    _set_field(r, "patient_key", patient_key)
-    _set_field(r, "kind", kind)
-    _set_field(r, "value", value)
-    _set_field(r, "effective_at", effective_at)
-    _set_field(r, "received_at", received_at)
-    _set_field(r, "source_system", source_system)
-    _set_field(r, "logical_id", logical_id)
-    _set_field(r, "delivery_id", delivery_id)
-    _set_field(r, "status", status)
-    _set_field(r, "specimen", specimen)
-    _set_field(r, "unit", unit or CANONICAL_UNIT[kind])
-    _set_field(r, "original_value", original_value)
-    _set_field(r, "original_unit", original_unit)
-    _set_field(r, "code", code)
-    _set_field(r, "code_system", code_system)
-    _set_field(r, "code_value", code_value)
-    _set_field(r, "panel_id", panel_id)
-    _set_field(r, "from_ventilator", from_ventilator)
-    _set_field(r, "encounter_id", encounter_id)
-    _set_field(r, "location", location)
-    _set_field(r, "birth_date", birth_date)
-    _set_field(r, "known_at", known_at)
+    for name, value in fields.items():
+        _set_field(r, name, value)
+    if not r.unit:
+        _set_field(r, "unit", CANONICAL_UNIT[r.kind])
     return r
 
 
 _new_object = object.__new__
 _set_field = object.__setattr__
-#: The fields ``stored_reading`` sets, in order: a field added to ``Reading`` must be
-#: set there too, and this says so when the module is imported, not at first use.
-_STORED_READING_FIELDS = (
-    "patient_key",
-    "kind",
-    "value",
-    "effective_at",
-    "received_at",
-    "source_system",
-    "logical_id",
-    "delivery_id",
-    "status",
-    "specimen",
-    "unit",
-    "original_value",
-    "original_unit",
-    "code",
-    "code_system",
-    "code_value",
-    "panel_id",
-    "from_ventilator",
-    "encounter_id",
-    "location",
-    "birth_date",
-    "known_at",
-)
-if tuple(Reading.__dataclass_fields__) != _STORED_READING_FIELDS:
-    raise RuntimeError("Reading's fields changed: update model.stored_reading")
+_READING_FIELDS = Reading.__dataclass_fields__.keys()
 
 
 class FiO2Source(StrEnum):

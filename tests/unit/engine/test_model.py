@@ -8,7 +8,7 @@ from datetime import UTC, datetime
 import pytest
 
 from monitor.engine.errors import InvalidReading
-from monitor.engine.model import Kind, Location, Reading
+from monitor.engine.model import Kind, Location, Reading, known_time, stored_reading
 
 AT = datetime(2026, 3, 2, 8, 0, tzinfo=UTC)
 GOOD = Reading(
@@ -47,3 +47,25 @@ def test_values_outside_any_physiology_are_refused(kind: Kind, value: float) -> 
 def test_naive_times_are_refused() -> None:
     with pytest.raises(InvalidReading, match="effective_at"):
         replace(GOOD, effective_at=datetime(2026, 3, 2, 8, 0))
+
+
+def test_a_stored_reading_is_the_reading_that_was_stored() -> None:
+    fields = {name: getattr(GOOD, name) for name in Reading.__dataclass_fields__}
+    assert stored_reading(**fields) == GOOD
+    # a row kept without its unit gets the canonical one, as Reading(...) gives it
+    assert stored_reading(**(fields | {"unit": ""})).unit == GOOD.unit == "mm[Hg]"
+
+
+def test_a_stored_reading_needs_every_field_and_no_other() -> None:
+    fields = {name: getattr(GOOD, name) for name in Reading.__dataclass_fields__}
+    with pytest.raises(TypeError, match="fields"):
+        stored_reading(**{k: v for k, v in fields.items() if k != "known_at"})
+    with pytest.raises(TypeError, match="fields"):
+        stored_reading(**fields, ward="ICU-North")
+
+
+def test_a_known_time_is_the_stated_one_never_after_receipt() -> None:
+    later = datetime(2026, 3, 2, 9, 0, tzinfo=UTC)
+    assert known_time(AT, later) == AT
+    assert known_time(later, AT) == AT  # a clock that runs ahead
+    assert known_time(None, AT) == AT
