@@ -290,8 +290,10 @@ def _statement_sizes(count: int, most: int) -> Iterator[tuple[int, int]]:
         start += size
 
 
-#: Per (dialect, table, statement shape): each column's bind processor, the SQL text
-#: by rows per statement, and the most parameters one statement may carry.
+#: Per (dialect class, table, statement shape): each column's bind processor, the SQL
+#: text by rows per statement, and the most parameters one statement may carry. Keyed
+#: by the class, not the engine's dialect object, so no engine is kept alive by it
+#: (every SQLite engine here is made alike by ``create_engine``).
 _DRIVER_INSERTS: dict[tuple[Any, ...], tuple[list[Any], dict[int, str], int]] = {}
 
 
@@ -313,7 +315,7 @@ def sqlite_insert_rows(
     Spares SQLAlchemy's per-row work, which cost about as much as SQLite's own."""
     dialect = conn.dialect
     columns = [c for c in table.c if c.name != "id"]
-    memo = (dialect, table.name, tuple(returning), on_conflict_do_nothing)
+    memo = (type(dialect), table.name, tuple(returning), on_conflict_do_nothing)
     held = _DRIVER_INSERTS.get(memo)
     if held is None:
         processors = [c.type.dialect_impl(dialect).bind_processor(dialect) for c in columns]
